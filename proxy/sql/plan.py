@@ -1,0 +1,99 @@
+"""The plan: what an accepted query asks for, independent of SQL text.
+
+Analysis (``proxy.sql.analyse``) turns one SELECT into a ``Plan``; the rewrite
+(``proxy.sql.rewrite``) turns a plan into backend SQL; the engine noises the plan's measures and
+post-processing (``proxy.sql.postprocess``) applies HAVING, ORDER BY, LIMIT and OFFSET to the
+noisy rows. A plan is immutable and holds no data, so it can be cached by statement text.
+
+Vocabulary:
+- a *measure* is one integer-valued quantity the backend computes per cell and the engine
+  noises: a row count, a count of non-null values, a clamped sum in units of the column's step,
+  or a count of distinct individuals. Measures are deduplicated: ``AVG(x)`` and ``SUM(x)`` in one
+  query share the sum of ``x``, so epsilon is split among distinct measures only.
+- an *output* is one column of the answer, built from measures by post-processing.
+- a *cell* is one combination of group-key values from the declared domains.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal
+
+import sqlglot.expressions as exp
+
+from proxy.policy import TablePolicy
+
+MeasureKind = Literal["count_rows", "count_values", "sum", "count_individuals"]
+OutputKind = Literal["key", "count", "sum", "avg"]
+
+
+@dataclass(frozen=True)
+class Measure:
+    """One noisy integer per cell. ``column`` is None for ``count_rows`` and ``count_individuals``."""
+
+    kind: MeasureKind
+    column: str | None = None
+
+
+@dataclass(frozen=True)
+class GroupKey:
+    """A GROUP BY key: a column with a declared domain (``bucket`` for date columns)."""
+
+    column: str
+    bucket: str | None = None
+
+
+@dataclass(frozen=True)
+class Output:
+    """One answer column.
+
+    ``key`` indexes ``Plan.keys`` for kind "key"; ``measures`` indexes ``Plan.measures`` for
+    aggregates: count -> (count,), sum -> (sum,), avg -> (sum, count_values). Hidden outputs
+    (``visible`` False) exist only because HAVING or ORDER BY names an aggregate not selected.
+    """
+
+    name: str
+    kind: OutputKind
+    key: int | None = None
+    measures: tuple[int, ...] = ()
+    column: str | None = None
+    visible: bool = True
+
+
+@dataclass(frozen=True)
+class OrderItem:
+    """Sort the noisy rows by output ``output``."""
+
+    output: int
+    descending: bool = False
+    nulls_first: bool | None = None
+
+
+@dataclass(frozen=True)
+class Plan:
+    """An accepted aggregate query over one policy table.
+
+    ``where`` is a validated sqlglot condition over the table's exposed columns (unqualified
+    ``exp.Column`` nodes named as in the policy) or None. ``having`` is a condition in which each
+    aggregate has been replaced by ``exp.Column(this=exp.to_identifier(output_ref(i)))``, evaluated
+    on noisy values by post-processing.
+    """
+
+    table: TablePolicy
+    measures: tuple[Measure, ...]
+    outputs: tuple[Output, ...]
+    keys: tuple[GroupKey, ...] = ()
+    where: exp.Expression | None = None
+    having: exp.Expression | None = None
+    order_by: tuple[OrderItem, ...] = ()
+    limit: int | None = None
+    offset: int | None = None
+
+    @property
+    def visible_outputs(self) -> list[Output]:
+        return [o for o in self.outputs if o.visible]
+
+
+def output_ref(index: int) -> str:
+    """The placeholder column name standing for output ``index`` inside ``Plan.having``."""
+    return f"__hushql_output_{index}"
