@@ -1,0 +1,348 @@
+"""Plan -> backend SQL, and the sensitivity of each measure of the plan.
+
+Everything here is a pure function of the plan and its table policy; the SQL is built as a
+sqlglot tree, never by pasting strings, and written once for PostgreSQL.
+
+The backend query returns exactly one row per declared cell, in domain order: the key ordinals
+``i0, i1, ...`` and then one column per measure ``m0, m1, ...`` (0 for empty cells). It never
+returns rows of the table, never sorts, limits or filters on aggregates.
+
+Row tables (each row is one individual)
+---------------------------------------
+Every summed value is clamped to its declared range, in units of the column's step
+(``LEAST(GREATEST(ROUND(x / step), lo/step), hi/step)``, NULL stays NULL). Rows whose keys fall
+outside the declared domains are aggregated into groups that are then dropped by joining the
+finished aggregate to the domain list. Adding or removing one row changes one cell by at most 1
+for a count and by at most ``M = max(|lo|, |hi|) / step`` for a sum, so the L1 sensitivity of the
+whole histogram is 1 (count) or M (sum), whatever the number of cells.
+
+Tables with individuals (``[individual]`` with ``groups_cap = g``, ``rows_cap = r``)
+---------------------------------------------------------------------------------------
+One individual may own many rows, in many cells. The rewrite
+1. aggregates per (individual, cell): partial count, partial clamped sum, partial value count;
+2. keeps only cells inside the declared domains, then keeps at most ``g`` of each individual's
+   cells, chosen at random in the database (``ROW_NUMBER() OVER (PARTITION BY individual
+   ORDER BY md5(individual, cell, salt))`` with a fresh random salt per query); the choice
+   depends only on that individual's own cells and on randomness independent of the data;
+3. clamps each partial count to ``[0, r]`` and each partial sum to
+   ``[r * min(lo, 0), r * max(hi, 0)]`` (in step units; the interval holds 0 so a partial sum is
+   never pushed away from zero);
+4. sums the capped partials over individuals.
+Argument: neighbouring databases differ by all rows of one individual. Every other individual's
+capped partials are identical in both (their rows and their own random choice are unchanged), so
+the answers differ only by that individual's at most ``g`` kept partials, each bounded as in 3.
+Hence the L1 sensitivity is ``g * r`` for a count, ``g * r * M`` for a sum and ``g`` for
+COUNT(DISTINCT individual). With ``C`` cells an individual reaches at most ``C`` of them, so
+``g`` is replaced by ``min(g, C)`` (1 for an ungrouped query), and when ``g >= C`` step 2's
+ranking is skipped as it would keep everything anyway.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+from decimal import Decimal
+
+import sqlglot.expressions as exp
+
+from proxy.policy import ColumnPolicy, TablePolicy
+from proxy.sql.domains import domain_size, domain_values
+from proxy.sql.plan import GroupKey, Measure, Plan
+
+
+# The backend session setting holding the per-query salt of the random choice of cells.
+PICK_SALT_SETTING = "hushql.pick_salt"
+
+
+@dataclass(frozen=True)
+class Rewritten:
+    """The backend SQL of a plan and the L1 sensitivity (in measure units) of each measure."""
+
+    sql: str
+    sensitivities: tuple[int, ...]
+    cells: int
+    groups_kept: int | None  # min(g, cells) for individual tables, else None
+    needs_salt: bool = False  # the query reads PICK_SALT_SETTING: set it per query
+
+
+def rewrite(plan: Plan) -> Rewritten:
+    """Build the backend query and sensitivities of an analysed plan. Pure."""
+    policy = plan.table
+    sizes = [domain_size(_key_column(policy, k), k.bucket) for k in plan.keys]
+    cells = 1
+    for size in sizes:
+        cells *= size
+    if policy.individual is None:
+        tree = _row_table_query(plan)
+        groups_kept = None
+        factor = 1
+        rows_cap = 1
+    else:
+        groups_kept = min(policy.individual.groups_cap, cells)
+        tree = _individual_table_query(plan, groups_kept, cells)
+        factor = groups_kept
+        rows_cap = policy.individual.rows_cap
+    sensitivities = tuple(
+        factor * _unit_sensitivity(policy, m, rows_cap) for m in plan.measures)
+    return Rewritten(sql=tree.sql(dialect="postgres"), sensitivities=sensitivities,
+                     cells=cells, groups_kept=groups_kept,
+                     needs_salt=groups_kept is not None and groups_kept < cells)
+
+
+def _unit_sensitivity(policy: TablePolicy, measure: Measure, rows_cap: int) -> int:
+    """Largest change of one cell of ``measure`` from one individual (before the groups factor)."""
+    if measure.kind == "count_individuals":
+        if policy.individual is None:
+            raise ValueError("COUNT(DISTINCT individual) needs an [individual] section")
+        return 1
+    if measure.kind in ("count_rows", "count_values"):
+        return rows_cap
+    low, high = _unit_range(policy.columns[measure.column])  # type: ignore[index]
+    return rows_cap * max(abs(low), abs(high))
+
+
+def _unit_range(column: ColumnPolicy) -> tuple[int, int]:
+    """The declared range of a summable column in integer units of its step."""
+    unit = column.unit
+    low, high = (Decimal(v) / unit for v in column.range)  # type: ignore[union-attr]
+    if low != low.to_integral_value() or high != high.to_integral_value():
+        raise ValueError("range bounds must be multiples of the step")
+    return int(low), int(high)
+
+
+# ---- building blocks -------------------------------------------------------------------------
+
+def _ident(name: str) -> exp.Identifier:
+    return exp.to_identifier(name, quoted=True)
+
+
+def _col(name: str, table: str | None = None) -> exp.Column:
+    return exp.Column(this=_ident(name), table=exp.to_identifier(table) if table else None)
+
+
+def _num(value: int) -> exp.Expression:
+    literal = exp.Literal.number(abs(value))
+    return exp.Neg(this=literal) if value < 0 else literal
+
+
+def _literal(value: object) -> exp.Expression:
+    if isinstance(value, bool):
+        return exp.Boolean(this=value)
+    if isinstance(value, int):
+        return _num(value)
+    if isinstance(value, dt.date):
+        return exp.cast(exp.Literal.string(value.isoformat()), "date")
+    return exp.Literal.string(str(value))
+
+
+def _least(a: exp.Expression, b: exp.Expression) -> exp.Expression:
+    return exp.Least(this=a, expressions=[b])
+
+
+def _greatest(a: exp.Expression, b: exp.Expression) -> exp.Expression:
+    return exp.Greatest(this=a, expressions=[b])
+
+
+def _clamp(value: exp.Expression, low: int, high: int) -> exp.Expression:
+    return _least(_greatest(value, _num(low)), _num(high))
+
+
+def _key_column(policy: TablePolicy, key: GroupKey) -> ColumnPolicy:
+    return policy.columns[key.column]
+
+
+def _key_expression(key: GroupKey) -> exp.Expression:
+    """The per-row value a key groups by: the column, or its date bucket as a date."""
+    column = _col(key.column)
+    if key.bucket is None:
+        return column
+    trunc = exp.Anonymous(this="date_trunc", expressions=[exp.Literal.string(key.bucket), column])
+    return exp.cast(trunc, "date")
+
+
+def _row_value(policy: TablePolicy, measure: Measure) -> exp.Expression:
+    """What one row contributes to ``measure`` before aggregation."""
+    if measure.kind == "sum":
+        column = policy.columns[measure.column]  # type: ignore[index]
+        value: exp.Expression = _col(measure.column)  # type: ignore[arg-type]
+        if column.kind == "number":
+            # round() by name: sqlglot's Round node would add a per-row cast to double precision.
+            value = exp.Anonymous(this="round", expressions=[
+                exp.Div(this=value, expression=exp.Literal.number(str(column.unit)), typed=True)])
+        low, high = _unit_range(column)
+        return _clamp(value, low, high)
+    raise AssertionError(measure.kind)
+
+
+def _aggregate(policy: TablePolicy, measure: Measure) -> exp.Expression:
+    """The row-level aggregate computing ``measure`` over one group of rows."""
+    if measure.kind == "count_rows":
+        return exp.Count(this=exp.Star())
+    if measure.kind == "count_values":
+        return exp.Count(this=_col(measure.column))  # type: ignore[arg-type]
+    if measure.kind == "sum":
+        return exp.Sum(this=_row_value(policy, measure))
+    raise AssertionError(measure.kind)
+
+
+def _domain_source(policy: TablePolicy, key: GroupKey, index: int) -> exp.Expression:
+    """A FROM item ``d<index>(i, v)`` listing the declared values of a key with ordinals."""
+    column = _key_column(policy, key)
+    alias = exp.TableAlias(this=exp.to_identifier(f"d{index}"),
+                           columns=[exp.to_identifier("i"), exp.to_identifier("v")])
+    if column.kind == "integer" and key.bucket is None:
+        low, high = (int(v) for v in column.range)  # type: ignore[union-attr]
+        series = exp.Anonymous(this="generate_series", expressions=[_num(low), _num(high)])
+        inner = exp.select(
+            exp.alias_(exp.Sub(this=exp.column("v"), expression=_num(low)), "i"),
+            exp.column("v")).from_(
+            exp.Table(this=series, alias=exp.TableAlias(this=exp.to_identifier("s"),
+                                                          columns=[exp.to_identifier("v")])))
+        return exp.Subquery(this=inner, alias=alias)
+    rows = [exp.Tuple(expressions=[_num(i), _literal(v)])
+            for i, v in enumerate(domain_values(column, key.bucket))]
+    return exp.Values(expressions=rows, alias=alias)
+
+
+def _key_matches(key: GroupKey, policy: TablePolicy, grouped: exp.Expression,
+                 domain_value: exp.Expression) -> exp.Expression:
+    """Join condition between a grouped key and a domain value; categories compare as text."""
+    if _key_column(policy, key).kind == "category":
+        grouped = exp.cast(grouped, "text")
+    return exp.EQ(this=grouped, expression=domain_value)
+
+
+def _source(policy: TablePolicy) -> exp.Table:
+    table = exp.to_table(policy.source, dialect="postgres")
+    for part in ("this", "db", "catalog"):
+        node = table.args.get(part)
+        if isinstance(node, exp.Identifier):
+            node.set("quoted", True)
+    return table
+
+
+def _filtered(plan: Plan, select: exp.Select) -> exp.Select:
+    select = select.from_(_source(plan.table))
+    if plan.where is not None:
+        select = select.where(plan.where.copy())
+    return select
+
+
+def _cells_frame(plan: Plan) -> exp.Select:
+    """SELECT i0, v0, i1, v1, ... over every declared cell (a cross join of the domains)."""
+    projections: list[exp.Expression] = []
+    for j in range(len(plan.keys)):
+        projections += [exp.alias_(exp.column("i", f"d{j}"), f"i{j}"),
+                        exp.alias_(exp.column("v", f"d{j}"), f"v{j}")]
+    select = exp.select(*projections)
+    for j, key in enumerate(plan.keys):
+        source = _domain_source(plan.table, key, j)
+        select = select.from_(source) if j == 0 else select.join(source, join_type="cross")
+    return select
+
+
+def _finish(plan: Plan, aggregate: exp.Select, by_ordinal: bool) -> exp.Select:
+    """Left-join the finished aggregate ``a`` to all cells ``c``; empty cells read 0.
+
+    ``by_ordinal``: ``a`` carries key ordinals i0.. to match; otherwise key values k0.., matched
+    to the declared values (values outside the domains match no cell and drop out).
+    Rows come back in domain order, one per cell.
+    """
+    policy = plan.table
+    outer = exp.select(*[exp.column(f"i{j}", "c") for j in range(len(plan.keys))],
+                       *[exp.alias_(exp.Coalesce(this=exp.column(f"m{n}", "a"),
+                                                 expressions=[_num(0)]), f"m{n}")
+                         for n in range(len(plan.measures))])
+    outer = outer.from_(exp.Subquery(this=_cells_frame(plan),
+                                     alias=exp.TableAlias(this=exp.to_identifier("c"))))
+    conditions = [
+        exp.EQ(this=exp.column(f"i{j}", "a"), expression=exp.column(f"i{j}", "c")) if by_ordinal
+        else _key_matches(key, policy, exp.column(f"k{j}", "a"), exp.column(f"v{j}", "c"))
+        for j, key in enumerate(plan.keys)]
+    outer = outer.join(exp.Subquery(this=aggregate, alias=exp.TableAlias(this=exp.to_identifier("a"))),
+                       on=exp.and_(*conditions), join_type="left")
+    return outer.order_by(*[exp.column(f"i{j}", "c") for j in range(len(plan.keys))])
+
+
+def _in_domains(plan: Plan, grouped: exp.Select, alias: str) -> exp.Select:
+    """The rows of ``grouped`` (key columns k0..) whose keys lie in the declared domains, with
+    their ordinals i0.. added; rows outside the domains drop out of the inner joins."""
+    select = exp.select(*[exp.column(p.alias_or_name, alias) for p in grouped.expressions]).from_(
+        exp.Subquery(this=grouped, alias=exp.TableAlias(this=exp.to_identifier(alias))))
+    for j, key in enumerate(plan.keys):
+        source = _domain_source(plan.table, key, j)
+        select = select.join(source, on=_key_matches(key, plan.table, exp.column(f"k{j}", alias),
+                                                     exp.column("v", f"d{j}")), join_type="inner")
+        select = select.select(exp.alias_(exp.column("i", f"d{j}"), f"i{j}"))
+    return select
+
+
+def _row_table_query(plan: Plan) -> exp.Select:
+    policy = plan.table
+    measures = [exp.alias_(exp.Coalesce(this=_aggregate(policy, m), expressions=[_num(0)]), f"m{n}")
+                for n, m in enumerate(plan.measures)]
+    if not plan.keys:
+        return _filtered(plan, exp.select(*measures))
+    keys = [exp.alias_(_key_expression(k), f"k{j}") for j, k in enumerate(plan.keys)]
+    grouped = _filtered(plan, exp.select(*keys, *measures)).group_by(
+        *[_num(j + 1) for j in range(len(keys))])
+    return _finish(plan, grouped, by_ordinal=False)
+
+
+def _shuffle_key(plan: Plan) -> exp.Expression:
+    """A per-query random order of one individual's cells: md5 of (individual, cell, salt).
+
+    The salt is a fresh random value per query (setting ``PICK_SALT_SETTING``), so the order
+    depends only on the individual's own cells and on randomness independent of the data.
+    """
+    parts: list[exp.Expression] = [exp.cast(exp.column("who", "p"), "text")]
+    for j in range(len(plan.keys)):
+        parts += [exp.Literal.string(":"), exp.cast(exp.column("i", f"d{j}"), "text")]
+    parts += [exp.Literal.string(":"), exp.Anonymous(
+        this="current_setting", expressions=[exp.Literal.string(PICK_SALT_SETTING)])]
+    text = parts[0]
+    for part in parts[1:]:
+        text = exp.DPipe(this=text, expression=part)
+    return exp.MD5(this=text)
+
+
+def _individual_table_query(plan: Plan, groups_kept: int, cells: int) -> exp.Select:
+    policy = plan.table
+    assert policy.individual is not None
+    rows_cap = policy.individual.rows_cap
+    who = exp.alias_(_col(policy.individual.column), "who")
+    keys = [exp.alias_(_key_expression(k), f"k{j}") for j, k in enumerate(plan.keys)]
+    partials = [exp.alias_(_aggregate(policy, m), f"m{n}")
+                for n, m in enumerate(plan.measures) if m.kind != "count_individuals"]
+    per_individual = _filtered(plan, exp.select(who, *keys, *partials)).group_by(
+        *[_num(j + 1) for j in range(len(keys) + 1)])
+    if plan.keys:
+        kept = _in_domains(plan, per_individual, "p")
+        if groups_kept < cells:
+            pick = exp.Window(this=exp.RowNumber(), partition_by=[exp.column("who", "p")],
+                              order=exp.Order(expressions=[exp.Ordered(this=_shuffle_key(plan))]))
+            kept.set("expressions", kept.expressions + [exp.alias_(pick, "pick")])
+            kept = exp.select(exp.Star()).from_(
+                exp.Subquery(this=kept, alias=exp.TableAlias(this=exp.to_identifier("r")))).where(
+                exp.LTE(this=exp.column("pick", "r"), expression=_num(groups_kept)))
+    else:
+        kept = per_individual
+    frame_alias = "q"
+    capped: list[exp.Expression] = []
+    for n, measure in enumerate(plan.measures):
+        partial = exp.column(f"m{n}", frame_alias)
+        if measure.kind == "count_individuals":
+            total: exp.Expression = exp.Count(this=exp.Star())
+        elif measure.kind == "sum":
+            low, high = _unit_range(policy.columns[measure.column])  # type: ignore[index]
+            total = exp.Sum(this=_clamp(partial, rows_cap * min(low, 0), rows_cap * max(high, 0)))
+        else:
+            total = exp.Sum(this=_least(partial, _num(rows_cap)))
+        capped.append(exp.alias_(exp.Coalesce(this=total, expressions=[_num(0)]), f"m{n}"))
+    ordinals = [exp.column(f"i{j}", frame_alias).as_(f"i{j}") for j in range(len(plan.keys))]
+    summed = exp.select(*ordinals, *capped).from_(
+        exp.Subquery(this=kept, alias=exp.TableAlias(this=exp.to_identifier(frame_alias))))
+    if not plan.keys:
+        return summed
+    summed = summed.group_by(*[exp.column(f"i{j}", frame_alias) for j in range(len(plan.keys))])
+    return _finish(plan, summed, by_ordinal=True)
