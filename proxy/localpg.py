@@ -98,8 +98,11 @@ def _start_from_binaries(binaries: Path, data_dir: Path, port: int) -> LocalServ
         os.chown(data_dir, entry.pw_uid, entry.pw_gid)
         _make_traversable(data_dir)
     pgdata = data_dir / "pgdata"
+    # As root, drop the group and supplementary groups too, or initdb keeps root's.
+    drop = {} if user is None else {"user": user, "group": pwd.getpwnam(user).pw_gid,
+                                    "extra_groups": []}
     run = lambda *args: subprocess.run(  # noqa: E731 - one place that sets user and output
-        [str(a) for a in args], user=user, check=True, capture_output=True, text=True)
+        [str(a) for a in args], check=True, capture_output=True, text=True, **drop)
     if not (pgdata / "PG_VERSION").exists():
         run(binaries / "initdb", "-D", pgdata, "-U", "postgres", "--auth=trust",
             "--encoding=UTF8", "--locale=C.UTF-8" if _has_c_utf8() else "--no-locale")
@@ -114,7 +117,7 @@ def _start_from_binaries(binaries: Path, data_dir: Path, port: int) -> LocalServ
 
     def stop() -> None:
         subprocess.run([str(binaries / "pg_ctl"), "-D", str(pgdata), "-m", "fast", "-w", "stop"],
-                       user=user, capture_output=True)
+                       capture_output=True, **drop)
 
     _wait_ready(port)
     return LocalServer(dsn=dsn, data_dir=data_dir, _stop=stop)

@@ -14,17 +14,25 @@ Rules of this module:
 
 from __future__ import annotations
 
+import base64
+import binascii
+import copy
 import datetime as dt
+import re
 import tomllib
 from dataclasses import dataclass
 from decimal import Decimal
+from fractions import Fraction
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, Strict, ValidationError
 
 GroupBucket = Literal["day", "week", "month", "quarter", "year"]
 ColumnKind = Literal["category", "integer", "number", "date", "boolean"]
+# Counts and caps are whole numbers written as TOML integers: `true` or `4.0` is refused, not
+# silently read as 1 or 4.
+WholeNumber = Annotated[int, Strict()]
 
 
 class _Strict(BaseModel):
@@ -34,7 +42,7 @@ class _Strict(BaseModel):
 class Defaults(_Strict):
     epsilon_per_query: Decimal = Decimal("0.1")
     largest_epsilon_per_query: Decimal = Decimal("1.0")
-    most_cells: int = 10_000
+    most_cells: WholeNumber = 10_000
 
 
 class AnalystPolicy(_Strict):
@@ -57,8 +65,8 @@ class Individual(_Strict):
     """Who one individual is: rows sharing ``column`` belong to one person or household."""
 
     column: str
-    groups_cap: int
-    rows_cap: int
+    groups_cap: WholeNumber
+    rows_cap: WholeNumber
 
 
 class TableBudget(_Strict):
@@ -146,57 +154,116 @@ def load_policies(directory: str | Path) -> Policies:
     Returns the policies, or raises PolicyError listing every problem found.
     """
     root = Path(directory)
+    if not root.is_dir():
+        raise PolicyError([f"{root}: (directory): not found; expected access.toml and tables/"])
     problems: list[str] = []
     tables: dict[str, TablePolicy] = {}
     table_files: dict[str, str] = {}
+    # Names declared by any table file, even one with problems, so that a grant of that table
+    # is not reported a second time as "no policy file".
+    declared: set[str] = set()
     tables_dir = root / "tables"
     for path in sorted(tables_dir.glob("*.toml")) if tables_dir.is_dir() else []:
         label = f"tables/{path.name}"
-        policy = _parse(path, label, TablePolicy, problems)
+        raw = _read_toml(path, label, problems)
+        if raw is None:
+            declared.add(path.stem)  # unreadable: assume it declares the table it is named for
+            continue
+        if isinstance(raw.get("table"), str):
+            declared.add(raw["table"])
+        policy, shape_keys = _validate(raw, label, TablePolicy, problems)
         if policy is None:
             continue
-        found = _table_problems(policy)
+        found = [(key, problem) for key, problem in _table_problems(policy)
+                 if not _overlaps(key, shape_keys)]
         problems += [f"{label}: {key}: {problem}" for key, problem in found]
-        if policy.table in tables:
+        if policy.table in table_files:
             problems.append(f"{label}: table: {policy.table!r} is already declared by "
                             f"{table_files[policy.table]}")
-        elif not found:
+            continue
+        table_files[policy.table] = label
+        if not found and not shape_keys:
             tables[policy.table] = policy
-            table_files[policy.table] = label
     access_path = root / "access.toml"
     access: AccessPolicy | None = None
     if not access_path.is_file():
         problems.append("access.toml: (file): missing; the administrator's file is required")
     else:
-        access = _parse(access_path, "access.toml", AccessPolicy, problems)
-        if access is not None:
-            problems += [f"access.toml: {key}: {problem}"
-                         for key, problem in _access_problems(access, set(tables) | set(table_files))]
+        raw = _read_toml(access_path, "access.toml", problems)
+        if raw is not None:
+            access, shape_keys = _validate(raw, "access.toml", AccessPolicy, problems)
+            if access is not None:
+                problems += [f"access.toml: {key}: {problem}"
+                             for key, problem in _access_problems(access, declared)
+                             if not _overlaps(key, shape_keys)]
     if problems or access is None:
         raise PolicyError(problems)
     return Policies(access=access, tables=tables, directory=root)
 
 
-def _parse(path: Path, label: str, model: type[_Strict], problems: list[str]) -> Any:
-    """Parse one TOML file into ``model``; on failure append ``file: key: problem`` lines."""
+def _read_toml(path: Path, label: str, problems: list[str]) -> dict[str, Any] | None:
+    """Read one TOML file (floats as exact Decimal); on failure append a problem, return None."""
     try:
         with path.open("rb") as handle:
-            raw = tomllib.load(handle, parse_float=Decimal)
+            return tomllib.load(handle, parse_float=Decimal)
     except tomllib.TOMLDecodeError as error:
         problems.append(f"{label}: (syntax): {error}")
-        return None
-    except OSError as error:
-        problems.append(f"{label}: (file): cannot read: {error.strerror}")
-        return None
+    except (OSError, UnicodeDecodeError) as error:
+        reason = error.strerror if isinstance(error, OSError) else "not UTF-8 text"
+        problems.append(f"{label}: (file): cannot read: {reason}")
+    return None
+
+
+_PYDANTIC_WORDING = {
+    "extra_forbidden": "unknown key",
+    "missing": "required key is missing",
+}
+
+
+def _validate(raw: dict[str, Any], label: str, model: type[_Strict],
+              problems: list[str]) -> tuple[Any, set[str]]:
+    """Check the shape of ``raw`` against ``model``; returns (model or None, keys in error).
+
+    On failure appends ``file: key: problem`` lines, then tries again without the offending
+    keys, so that the meaning checks still run on the rest of the file and an owner sees every
+    problem in one pass. The model returned then is only for reporting: the file has problems.
+    """
     try:
-        return model.model_validate(raw)
+        return model.model_validate(raw), set()
     except ValidationError as error:
+        keys: set[str] = set()
+        pruned = copy.deepcopy(raw)
         for item in error.errors():
             key = ".".join(str(part) for part in item["loc"]) or "(top)"
-            message = "unknown key" if item["type"] == "extra_forbidden" else item["msg"]
-            problems.append(f"{label}: {key}: {message}")
-        return None
+            problems.append(f"{label}: {key}: {_PYDANTIC_WORDING.get(item['type'], item['msg'])}")
+            keys.add(key)
+            _prune(pruned, item["loc"])
+    try:
+        return model.model_validate(pruned), keys
+    except ValidationError:
+        return None, keys
 
+
+def _prune(tree: dict[str, Any], loc: tuple[Any, ...]) -> None:
+    """Delete the key at ``loc`` (or the list holding it) from nested dicts, if present."""
+    node: Any = tree
+    for depth, part in enumerate(loc):
+        if not isinstance(node, dict) or part not in node:
+            return
+        if depth == len(loc) - 1 or not isinstance(node[part], dict):
+            del node[part]
+            return
+        node = node[part]
+
+
+def _overlaps(key: str, reported: set[str]) -> bool:
+    """True when ``key`` is, contains or lies inside a key already reported as malformed."""
+    return any(key == other or key.startswith(other + ".") or other.startswith(key + ".")
+               for other in reported)
+
+
+# A backend relation, optionally schema-qualified, in plain identifiers (no quoting needed).
+_SOURCE = re.compile(r"[A-Za-z_][A-Za-z0-9_]*(\.[A-Za-z_][A-Za-z0-9_]*)?")
 
 _KEYS_BY_KIND: dict[str, set[str]] = {
     "category": {"values"},
@@ -212,8 +279,9 @@ def _table_problems(policy: TablePolicy) -> list[tuple[str, str]]:
     found: list[tuple[str, str]] = []
     if not policy.table.isidentifier() or policy.table != policy.table.lower():
         found.append(("table", "must be a lower-case SQL identifier (letters, digits, _)"))
-    if not policy.source.strip():
-        found.append(("source", "must name a relation in the backend database"))
+    if not _SOURCE.fullmatch(policy.source):
+        found.append(("source", "must name a relation in the backend database as relation or "
+                                "schema.relation (letters, digits, _)"))
     if not policy.columns:
         found.append(("columns", "no columns are listed; analysts would see nothing"))
     for name, column in policy.columns.items():
@@ -240,7 +308,7 @@ def _column_problems(column: ColumnPolicy) -> list[tuple[str, str]]:
     allowed = _KEYS_BY_KIND[column.kind]
     for key in ("values", "range", "step", "bucket"):
         if getattr(column, key) is not None and key not in allowed:
-            found.append((key, f"not used by a {column.kind} column"))
+            found.append((key, f"not used by {_a(column.kind)} column"))
     if column.kind == "category":
         values = column.values
         if not values:
@@ -257,7 +325,9 @@ def _column_problems(column: ColumnPolicy) -> list[tuple[str, str]]:
             found.append(("step", "must be positive"))
         elif column.range is not None and not found:
             low, high = column.range
-            if (low % column.step) != 0 or (high % column.step) != 0:
+            # Exact rational arithmetic: Decimal's % fails on quotients beyond its precision.
+            step = Fraction(column.step)
+            if Fraction(low) % step != 0 or Fraction(high) % step != 0:
                 found.append(("step", f"step {column.step} does not divide the range "
                                       f"[{low}, {high}]; both bounds must be multiples of it"))
     return found
@@ -265,7 +335,7 @@ def _column_problems(column: ColumnPolicy) -> list[tuple[str, str]]:
 
 def _range_problems(column: ColumnPolicy) -> list[tuple[str, str]]:
     if column.range is None:
-        return [("range", f"a {column.kind} column needs range = [low, high]")]
+        return [("range", f"{_a(column.kind)} column needs range = [low, high]")]
     if len(column.range) != 2:
         return [("range", "must have exactly two values, [low, high]")]
     low, high = column.range
@@ -283,6 +353,11 @@ def _range_problems(column: ColumnPolicy) -> list[tuple[str, str]]:
     if low > high:
         return [("range", f"lower bound {low} is above upper bound {high}")]
     return []
+
+
+def _a(word: str) -> str:
+    """``word`` with its indefinite article ("an integer", "a date")."""
+    return f"an {word}" if word[0] in "aeiou" else f"a {word}"
 
 
 def _as_date(value: Any) -> dt.date:
@@ -317,9 +392,11 @@ def _access_problems(access: AccessPolicy, table_names: set[str]) -> list[tuple[
     accounts = [("analysts", n, a.password) for n, a in access.analysts.items()]
     accounts += [("admins", n, a.password) for n, a in access.admins.items()]
     for section, name, password in accounts:
-        if not password.startswith("SCRAM-SHA-256$"):
+        try:
+            parse_scram_verifier(password)
+        except ValueError as error:
             found.append((f"{section}.{name}.password",
-                          "must be a SCRAM-SHA-256 verifier from `hushql hash-password`, "
+                          f"{error}; paste the verifier from `hushql hash-password`, "
                           "never a plaintext password"))
     for name in set(access.analysts) & set(access.admins):
         found.append((f"admins.{name}", "the same name is also an analyst; use separate accounts"))
@@ -331,3 +408,36 @@ def _access_problems(access: AccessPolicy, table_names: set[str]) -> list[tuple[
                 found.append((f"analysts.{name}.tables",
                               f"{table!r} has no policy file in tables/"))
     return found
+
+
+# PostgreSQL's stored form of a SCRAM-SHA-256 password, as in pg_authid.rolpassword
+# (PostgreSQL documentation, "pg_authid"):
+#     SCRAM-SHA-256$<iterations>:<salt>$<StoredKey>:<ServerKey>
+# salt and keys in base64. (The keys of a real verifier are 32-byte SHA-256 digests, RFC 7677;
+# a wrong length is not refused here: such a verifier simply never authenticates anyone.)
+_B64 = r"([A-Za-z0-9+/=]+)"
+_VERIFIER = re.compile(rf"SCRAM-SHA-256\$([0-9]{{1,9}}):{_B64}\${_B64}:{_B64}")
+# RFC 7677 section 4 asks for an iteration count of at least 4096 (from memory); PostgreSQL's
+# default is 4096.
+LEAST_SCRAM_ITERATIONS = 4096
+
+
+def parse_scram_verifier(text: str) -> tuple[int, bytes, bytes, bytes]:
+    """Split a stored verifier into (iterations, salt, stored_key, server_key).
+
+    Raises ValueError saying what is wrong; never echoes the text (it may be a password).
+    """
+    match = _VERIFIER.fullmatch(text)
+    if match is None:
+        raise ValueError("not a SCRAM-SHA-256 verifier "
+                         "(SCRAM-SHA-256$<iterations>:<salt>$<StoredKey>:<ServerKey>)")
+    iterations = int(match.group(1))
+    try:
+        salt, stored_key, server_key = (base64.b64decode(part, validate=True)
+                                        for part in match.group(2, 3, 4))
+    except binascii.Error:
+        raise ValueError("the verifier's salt or keys are not valid base64") from None
+    if iterations < LEAST_SCRAM_ITERATIONS:
+        raise ValueError(f"the verifier's iteration count {iterations} is below "
+                         f"{LEAST_SCRAM_ITERATIONS}")
+    return iterations, salt, stored_key, server_key

@@ -1,0 +1,389 @@
+"""The demo: an invented municipal water utility, loaded into PostgreSQL and ready to query.
+
+Everything here is invented for the demo (no real people, places or readings): a few thousand
+households in the districts Northbank, Old Mill and Harbourside, and one meter reading per
+household per day for 2026. Water use depends on occupants, garden and season, and a few values
+lie outside the declared ranges on purpose (leaks above 2000 litres, meter corrections below
+zero, unread meters as NULL, households with more than 8 occupants), so the policies' clamping
+has something to do.
+
+The data come from numpy's seeded generator. That is right here and only here: this is data
+generation, where repeatability matters; privacy noise never comes from numpy's generator.
+
+Loading replaces the tables in one transaction (the old ones stay until the new ones are
+complete) and streams text COPY, about a million rows in a few seconds.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import shlex
+import signal
+import threading
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from urllib.parse import urlsplit, urlunsplit
+
+import numpy as np
+import psycopg
+from psycopg import sql
+from psycopg.conninfo import conninfo_to_dict, make_conninfo
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+from proxy.localpg import LocalServer, NoPostgresError, start_local_postgres
+from proxy.policy import PolicyError, load_policies
+
+# The demo's accounts. These passwords are public (written here and printed by `hushql demo`);
+# their SCRAM-SHA-256 verifiers are in policies/access.toml. Never reuse them for real data.
+PLANNER_PASSWORD = "planner-demo"
+RESEARCHER_PASSWORD = "researcher-demo"
+AUDITOR_PASSWORD = "auditor-demo"
+
+DEMO_DATABASE = "hushql_demo"
+DEMO_DATA_DIR = Path(".hushql") / "demo-postgres"
+SCHEMA = "utility"
+DISTRICTS = ("Northbank", "Old Mill", "Harbourside")
+TARIFFS = ("standard", "saver", "social")
+YEAR = 2026
+DAYS = (dt.date(YEAR + 1, 1, 1) - dt.date(YEAR, 1, 1)).days
+# Account numbers are six digits starting with 1 (the range declared in the policies).
+FIRST_ACCOUNT = 100001
+LAST_ACCOUNT = 199999
+
+_DDL = f"""
+DROP TABLE IF EXISTS {SCHEMA}.meter_readings;
+DROP TABLE IF EXISTS {SCHEMA}.households;
+CREATE SCHEMA IF NOT EXISTS {SCHEMA};
+CREATE TABLE {SCHEMA}.households (
+    household_id integer PRIMARY KEY,
+    district     text    NOT NULL,
+    occupants    integer NOT NULL,
+    tariff       text    NOT NULL,
+    has_garden   boolean NOT NULL
+);
+CREATE TABLE {SCHEMA}.meter_readings (
+    household_id integer      NOT NULL,
+    district     text         NOT NULL,
+    reading_date date         NOT NULL,
+    litres       numeric(7,1)
+);
+COMMENT ON TABLE {SCHEMA}.households IS 'hushql demo: invented households of an invented utility';
+COMMENT ON TABLE {SCHEMA}.meter_readings IS 'hushql demo: invented daily meter readings';
+"""
+
+# Built after the rows are in: one sort instead of a million index insertions and FK checks.
+_CONSTRAINTS = f"""
+ALTER TABLE {SCHEMA}.meter_readings
+    ADD PRIMARY KEY (household_id, reading_date),
+    ADD FOREIGN KEY (household_id) REFERENCES {SCHEMA}.households;
+"""
+
+
+def demo_accounts() -> list[tuple[str, str]]:
+    """The demo's (account name, password) pairs: two analysts and one administrator."""
+    return [("planner", PLANNER_PASSWORD), ("researcher", RESEARCHER_PASSWORD),
+            ("auditor", AUDITOR_PASSWORD)]
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """The generated demo data as arrays: one entry per household, one row per household-day.
+
+    ``district`` and ``tariff`` index DISTRICTS and TARIFFS; ``litres_tenths`` holds readings
+    in tenths of a litre (shape households x DAYS), meaningless where ``unread`` is True.
+    """
+
+    household_id: np.ndarray
+    district: np.ndarray
+    occupants: np.ndarray
+    tariff: np.ndarray
+    has_garden: np.ndarray
+    litres_tenths: np.ndarray
+    unread: np.ndarray
+
+    @property
+    def households(self) -> int:
+        return int(self.household_id.size)
+
+    @property
+    def readings(self) -> int:
+        return int(self.litres_tenths.size)
+
+
+def generate_scenario(households: int = 3000, seed: int = 2026) -> Scenario:
+    """Invent the utility's households and a year of daily readings; same seed, same data.
+
+    The figures (140 litres per person per day, summer watering, holidays, leaks) are invented
+    to look plausible, not taken from any real utility.
+    """
+    if not 1 <= households <= LAST_ACCOUNT - FIRST_ACCOUNT + 1:
+        raise ValueError(f"households must be between 1 and {LAST_ACCOUNT - FIRST_ACCOUNT + 1}")
+    rng = np.random.default_rng(seed)
+    n = households
+    household_id = np.arange(FIRST_ACCOUNT, FIRST_ACCOUNT + n, dtype=np.int64)
+    district = rng.choice(len(DISTRICTS), size=n, p=[0.40, 0.25, 0.35])
+    # Harbourside is flats (fewer people, few gardens), Northbank family houses.
+    occupants = np.minimum(1 + rng.poisson(np.array([1.6, 1.3, 0.9])[district]), 8)
+    large = rng.choice(n, size=max(1, n // 400), replace=False)
+    occupants[large] = rng.integers(9, 12, size=large.size)  # above the declared range [1, 8]
+    has_garden = rng.random(n) < np.array([0.75, 0.55, 0.20])[district]
+    tariff = rng.choice(len(TARIFFS), size=n, p=[0.63, 0.25, 0.12])
+
+    day = np.arange(DAYS)
+    weekday = (np.datetime64(f"{YEAR}-01-01") + day).astype(np.int64) % 7  # 0 = Thursday
+    weekend = np.isin(weekday, (2, 3))  # Saturday, Sunday
+    season = 1 + 0.08 * np.cos(2 * np.pi * (day - 196) / DAYS)  # a little more in mid-July
+    # Gardens are watered from May to September, most in July.
+    watering_season = np.where((day >= 120) & (day <= 273),
+                               np.clip(np.sin(np.pi * (day - 120) / 153), 0, None), 0.0)
+
+    habit = rng.lognormal(0.0, 0.25, n) * np.where(tariff == TARIFFS.index("saver"), 0.9, 1.0)
+    base = 140.0 * occupants ** 0.9 * habit
+    litres = (base[:, None] * season[None, :] * np.where(weekend, 1.08, 1.0)[None, :]
+              * rng.lognormal(0.0, 0.15, (n, DAYS)))
+    waters_today = rng.random((n, DAYS)) < 0.45
+    litres += (has_garden[:, None] * watering_season[None, :] * waters_today
+               * rng.gamma(2.0, 60.0, (n, DAYS)))
+    away = rng.random(n) < 0.4
+    leave = rng.integers(0, DAYS - 14, n)
+    back = leave + rng.integers(3, 15, n)
+    on_holiday = away[:, None] & (day[None, :] >= leave[:, None]) & (day[None, :] < back[:, None])
+    litres = np.where(on_holiday, litres * 0.02, litres)
+
+    # Leaks: a few households lose 2,400-3,400 litres a day for 2-6 days (above the range).
+    for house in rng.choice(n, size=max(1, n // 250), replace=False):
+        start, length = int(rng.integers(0, DAYS - 6)), int(rng.integers(2, 7))
+        litres[house, start:start + length] = rng.uniform(2400, 3400, length)
+    tenths = np.rint(litres * 10).astype(np.int64)
+    # Meter corrections (a few negative readings, below the range) and unread meters (NULL),
+    # on distinct ordinary days so that neither hides a leak or the other.
+    flat = tenths.reshape(-1)
+    ordinary = np.flatnonzero(flat < 20_000)
+    corrections, missing = max(1, n // 1000), max(3, flat.size // 2000)
+    chosen = rng.choice(ordinary, size=corrections + missing, replace=False)
+    flat[chosen[:corrections]] = -rng.integers(5, 400, corrections)
+    unread = np.zeros(tenths.shape, dtype=bool)
+    unread.reshape(-1)[chosen[corrections:]] = True
+    return Scenario(household_id=household_id, district=district, occupants=occupants,
+                    tariff=tariff, has_garden=has_garden, litres_tenths=tenths, unread=unread)
+
+
+def load_scenario(dsn: str, *, households: int = 3000, seed: int = 2026,
+                  progress: bool = True) -> dict[str, int]:
+    """Create schema ``utility`` with ``households`` and ``meter_readings`` in ``dsn``'s database.
+
+    Replaces both tables if present, atomically (one transaction). Returns the row counts as
+    {"households": ..., "readings": ...}. Same seed and count give the same rows.
+    """
+    scenario = generate_scenario(households, seed)
+    with _progress(progress) as bar, psycopg.connect(dsn) as conn:
+        houses_task = bar.add_task("households", total=scenario.households)
+        readings_task = bar.add_task("readings", total=scenario.readings)
+        with conn.transaction():
+            conn.execute(_DDL)
+            _copy(conn, f"{SCHEMA}.households", _household_lines(scenario),
+                  lambda rows: bar.advance(houses_task, rows))
+            _copy(conn, f"{SCHEMA}.meter_readings", _reading_lines(scenario),
+                  lambda rows: bar.advance(readings_task, rows))
+            conn.execute(_CONSTRAINTS)
+        conn.execute(f"ANALYZE {SCHEMA}.households, {SCHEMA}.meter_readings")
+        conn.commit()
+    return {"households": scenario.households, "readings": scenario.readings}
+
+
+def _copy(conn: psycopg.Connection, table: str, chunks: Iterator[tuple[bytes, int]],
+          advance: Callable[[int], None]) -> None:
+    """Stream text-format COPY chunks of (bytes, row count) into ``table``.
+
+    FREEZE is allowed because the table was created in this transaction; it spares the first
+    reader from rewriting every page's visibility hints.
+    """
+    with conn.cursor().copy(f"COPY {table} FROM STDIN WITH (FORMAT text, FREEZE)") as copy:
+        for data, rows in chunks:
+            copy.write(data)
+            advance(rows)
+
+
+def _household_lines(s: Scenario) -> Iterator[tuple[bytes, int]]:
+    lines = [f"{h}\t{DISTRICTS[d]}\t{o}\t{TARIFFS[t]}\t{'t' if g else 'f'}\n"
+             for h, d, o, t, g in zip(s.household_id.tolist(), s.district.tolist(),
+                                      s.occupants.tolist(), s.tariff.tolist(),
+                                      s.has_garden.tolist())]
+    yield "".join(lines).encode(), len(lines)
+
+
+def _reading_lines(s: Scenario, per_chunk: int = 100) -> Iterator[tuple[bytes, int]]:
+    """COPY text for the readings, ``per_chunk`` households (x DAYS rows) at a time."""
+    dates = [str(dt.date(YEAR, 1, 1) + dt.timedelta(days=i)) for i in range(DAYS)]
+    low, high = int(s.litres_tenths.min()), int(s.litres_tenths.max())
+    # Every reading is one of a few thousand values: format each once, look the rest up.
+    text = [_tenths_text(v) for v in range(low, high + 1)]
+    values = np.where(s.unread, high + 1 - low, s.litres_tenths - low)
+    text.append("\\N")
+    for first in range(0, s.households, per_chunk):
+        lines: list[str] = []
+        for house in range(first, min(first + per_chunk, s.households)):
+            prefix = f"{s.household_id[house]}\t{DISTRICTS[s.district[house]]}\t"
+            lines += [f"{prefix}{d}\t{text[v]}\n" for d, v in zip(dates, values[house].tolist())]
+        yield "".join(lines).encode(), len(lines)
+
+
+def _tenths_text(tenths: int) -> str:
+    """-15 -> '-1.5': exact decimal text of a whole number of tenths."""
+    sign = "-" if tenths < 0 else ""
+    whole, tenth = divmod(abs(tenths), 10)
+    return f"{sign}{whole}.{tenth}"
+
+
+@contextmanager
+def _progress(enabled: bool) -> Iterator[Progress]:
+    """A rich progress bar on stderr, or one that draws nothing when disabled."""
+    bar = Progress(TextColumn("{task.description:>10}"), BarColumn(), MofNCompleteColumn(),
+                   TimeElapsedColumn(), console=Console(stderr=True), disable=not enabled)
+    with bar:
+        yield bar
+
+
+# --- running the demo -------------------------------------------------------------------------
+
+# (account, query, what to expect when it is not an answer)
+EXAMPLE_QUERIES: list[tuple[str, str, str]] = [
+    ("planner", "SELECT district, COUNT(*) FROM households GROUP BY district", ""),
+    ("planner", "SELECT tariff, AVG(occupants) FROM households GROUP BY tariff", ""),
+    ("planner", "SELECT district, SUM(litres) AS july_litres FROM readings "
+                "WHERE reading_date BETWEEN '2026-07-01' AND '2026-07-31' GROUP BY district", ""),
+    ("researcher", "SELECT has_garden, COUNT(*) FROM households GROUP BY has_garden", ""),
+    ("researcher", "SELECT COUNT(*) FROM readings", "refused: readings is not granted"),
+    ("planner", "SELECT * FROM households", "refused: raw rows"),
+]
+
+
+def run_demo(backend: str | None, data_dir: Path | None, policies_dir: Path,
+             listen: tuple[str, int] | None, serve_callback: Callable[[str], None] | None = None,
+             *, console: Console | None = None) -> int:
+    """``hushql demo``: check the policies, load the scenario, print how to query it, then serve.
+
+    With no ``backend``, starts a private PostgreSQL in ``data_dir`` (default
+    ``.hushql/demo-postgres``) and creates database hushql_demo in it. Calls
+    ``serve_callback(backend_dsn)`` if given (it blocks), else waits for Ctrl-C. Returns the
+    exit code: 0 after a clean stop, 1 when the policies are broken or no server can be had.
+    """
+    out = console or Console()
+    err = console or Console(stderr=True)
+    try:
+        load_policies(policies_dir)
+    except PolicyError as error:
+        _say(err, f"The policies in {policies_dir} have problems:")
+        for line in error.problems:
+            _say(err, line)
+        return 1
+    server: LocalServer | None = None
+    if backend is None:
+        folder = data_dir or Path.cwd() / DEMO_DATA_DIR
+        _say(out, f"Starting a private PostgreSQL in {folder} ...")
+        try:
+            server = start_local_postgres(folder)
+        except NoPostgresError as error:
+            _say(err, f"hushql demo: {error}")
+            _say(err, "Or point the demo at a server you have: hushql demo --backend DSN")
+            return 1
+    try:
+        with _stop_on_sigterm():
+            try:
+                if server is not None:
+                    backend = _ensure_database(server.dsn, DEMO_DATABASE)
+                assert backend is not None
+                started = time.perf_counter()
+                counts = load_scenario(backend)
+                seconds = time.perf_counter() - started
+            except psycopg.Error as error:
+                _say(err, f"hushql demo: cannot load the scenario into the backend: {error}")
+                return 1
+            _say(out, f"Loaded {counts['households']:,} households and {counts['readings']:,} "
+                     f"readings in {seconds:.1f} s.")
+            _print_examples(out, backend, policies_dir, listen)
+            if serve_callback is not None:
+                serve_callback(backend)
+            else:
+                _say(out, "Press Ctrl-C to stop.")
+                threading.Event().wait()
+    except KeyboardInterrupt:
+        pass
+    finally:
+        if server is not None:
+            _say(out, "Stopping the private PostgreSQL.")
+            server.stop()
+    return 0
+
+
+def _say(console: Console, text: str) -> None:
+    """Print plain text: no markup, emoji or highlighting, never wrapped (so it pastes)."""
+    console.print(text, markup=False, emoji=False, highlight=False, soft_wrap=True)
+
+
+def _print_examples(out: Console, backend: str, policies_dir: Path,
+                    listen: tuple[str, int] | None) -> None:
+    """The commands to try, one per line and never wrapped, so they paste into a shell as is."""
+    lines = [f"export HUSHQL_BACKEND={_shell_quote(backend)}",
+             f"export HUSHQL_POLICIES={_shell_quote(str(policies_dir))}"]
+    lines += [f"hushql ask --as {who} {_shell_quote(query)}" + (f"    # {note}" if note else "")
+              for who, query, note in EXAMPLE_QUERIES]
+    if listen is not None:
+        host, port = listen
+        lines += [f"psql {_shell_quote(f'postgresql://planner@{host}:{port}/{DEMO_DATABASE}')}"
+                  "    # password planner-demo"]
+    out.rule("hushql demo: try these")
+    for line in lines:
+        _say(out, line)
+    _say(out, "Accounts (invented, for this demo only): "
+         + ", ".join(f"{name} / {password}" for name, password in demo_accounts()))
+    out.rule()
+
+
+def _shell_quote(text: str) -> str:
+    """Quote for a POSIX shell; double quotes when they suffice, since SQL uses single ones."""
+    if text and all(c.isalnum() or c in "@%+=:,./-_" for c in text):
+        return text
+    if not any(c in text for c in '"$`\\!'):
+        return f'"{text}"'
+    return shlex.quote(text)
+
+
+def _ensure_database(admin_dsn: str, name: str) -> str:
+    """Create database ``name`` on the server of ``admin_dsn`` if missing; return its DSN."""
+    with psycopg.connect(admin_dsn, autocommit=True) as conn:
+        exists = conn.execute("SELECT 1 FROM pg_database WHERE datname = %s", (name,)).fetchone()
+        if exists is None:
+            conn.execute(sql.SQL("CREATE DATABASE {}").format(sql.Identifier(name)))
+    return with_database(admin_dsn, name)
+
+
+def with_database(dsn: str, name: str) -> str:
+    """``dsn`` pointing at database ``name``, keeping the URL form when it was a URL."""
+    if "://" in dsn:
+        parts = urlsplit(dsn)
+        return urlunsplit(parts._replace(path=f"/{name}"))
+    params = conninfo_to_dict(dsn)
+    params["dbname"] = name
+    return make_conninfo(**params)
+
+
+@contextmanager
+def _stop_on_sigterm() -> Iterator[None]:
+    """Treat SIGTERM (docker stop, systemd) like Ctrl-C so the private server stops cleanly."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def interrupt(signum: int, frame: object) -> None:
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGTERM, interrupt)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
