@@ -9,8 +9,8 @@ returns rows of the table, never sorts, limits or filters on aggregates.
 
 Row tables (each row is one individual)
 ---------------------------------------
-Every summed value is clamped to its declared range, in units of the column's step
-(``LEAST(GREATEST(ROUND(x / step), lo/step), hi/step)``, NULL stays NULL). Rows whose keys fall
+Every summed value is clamped to its declared range on the column's own type, then counted in
+units of the column's step (``round(LEAST(GREATEST(x, lo), hi) / step)``, NULL stays NULL). Rows whose keys fall
 outside the declared domains are aggregated into groups that are then dropped by joining the
 finished aggregate to the domain list. Adding or removing one row changes one cell by at most 1
 for a count and by at most ``M = max(|lo|, |hi|) / step`` for a sum, so the L1 sensitivity of the
@@ -45,7 +45,7 @@ from decimal import Decimal
 
 import sqlglot.expressions as exp
 
-from proxy.policy import ColumnPolicy, TablePolicy
+from proxy.policy import ColumnPolicy, TablePolicy, date_range
 from proxy.sql.domains import domain_size, domain_values
 from proxy.sql.plan import GroupKey, Measure, Plan
 
@@ -151,27 +151,35 @@ def _key_column(policy: TablePolicy, key: GroupKey) -> ColumnPolicy:
     return policy.columns[key.column]
 
 
-def _key_expression(key: GroupKey) -> exp.Expression:
-    """The per-row value a key groups by: the column, or its date bucket as a date."""
+def _key_expression(policy: TablePolicy, key: GroupKey) -> exp.Expression:
+    """The per-row value a key groups by: the column, or its date bucket as a date.
+
+    Dates are bucketed only inside the declared range (others become NULL and match no cell),
+    so date_trunc never sees a date it could fail on.
+    """
     column = _col(key.column)
     if key.bucket is None:
         return column
-    trunc = exp.Anonymous(this="date_trunc", expressions=[exp.Literal.string(key.bucket), column])
-    return exp.cast(trunc, "date")
+    start, end = date_range(policy.columns[key.column])
+    inside = exp.Between(this=_col(key.column), low=_literal(start), high=_literal(end))
+    trunc = exp.cast(exp.Anonymous(this="date_trunc",
+                                   expressions=[exp.Literal.string(key.bucket), column]), "date")
+    return exp.Case(ifs=[exp.If(this=inside, true=trunc)])
 
 
 def _row_value(policy: TablePolicy, measure: Measure) -> exp.Expression:
-    """What one row contributes to ``measure`` before aggregation."""
-    if measure.kind == "sum":
-        column = policy.columns[measure.column]  # type: ignore[index]
-        value: exp.Expression = _col(measure.column)  # type: ignore[arg-type]
-        if column.kind == "number":
-            # round() by name: sqlglot's Round node would add a per-row cast to double precision.
-            value = exp.Anonymous(this="round", expressions=[
-                exp.Div(this=value, expression=exp.Literal.number(str(column.unit)), typed=True)])
-        low, high = _unit_range(column)
-        return _clamp(value, low, high)
-    raise AssertionError(measure.kind)
+    """What one row contributes to a sum: clamped on the column's own type first (so nothing
+    after it can overflow), then, for number columns, divided by the step and rounded."""
+    column = policy.columns[measure.column]  # type: ignore[index]
+    low, high = _unit_range(column)
+    if column.kind == "integer":
+        return _clamp(_col(measure.column), low, high)  # type: ignore[arg-type]
+    clamped = _least(_greatest(_col(measure.column), exp.Literal.number(str(column.low))),  # type: ignore[arg-type]
+                     exp.Literal.number(str(column.high)))
+    # round() by name: sqlglot's Round node would add a per-row cast to double precision;
+    # typed=True keeps PostgreSQL's own division (no cast).
+    return exp.Anonymous(this="round", expressions=[
+        exp.Div(this=clamped, expression=exp.Literal.number(str(column.unit)), typed=True)])
 
 
 def _aggregate(policy: TablePolicy, measure: Measure) -> exp.Expression:
@@ -283,7 +291,7 @@ def _row_table_query(plan: Plan) -> exp.Select:
                 for n, m in enumerate(plan.measures)]
     if not plan.keys:
         return _filtered(plan, exp.select(*measures))
-    keys = [exp.alias_(_key_expression(k), f"k{j}") for j, k in enumerate(plan.keys)]
+    keys = [exp.alias_(_key_expression(policy, k), f"k{j}") for j, k in enumerate(plan.keys)]
     grouped = _filtered(plan, exp.select(*keys, *measures)).group_by(
         *[_num(j + 1) for j in range(len(keys))])
     return _finish(plan, grouped, by_ordinal=False)
@@ -311,7 +319,7 @@ def _individual_table_query(plan: Plan, groups_kept: int, cells: int) -> exp.Sel
     assert policy.individual is not None
     rows_cap = policy.individual.rows_cap
     who = exp.alias_(_col(policy.individual.column), "who")
-    keys = [exp.alias_(_key_expression(k), f"k{j}") for j, k in enumerate(plan.keys)]
+    keys = [exp.alias_(_key_expression(policy, k), f"k{j}") for j, k in enumerate(plan.keys)]
     partials = [exp.alias_(_aggregate(policy, m), f"m{n}")
                 for n, m in enumerate(plan.measures) if m.kind != "count_individuals"]
     per_individual = _filtered(plan, exp.select(who, *keys, *partials)).group_by(

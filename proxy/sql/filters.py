@@ -1,0 +1,624 @@
+"""Safe WHERE conditions: checked and rewritten so that no row value can make the backend raise.
+
+Why: an error raised while PostgreSQL evaluates a row is a side channel. "Division by zero" for
+one filter and not for another tells the analyst that some row holds a zero, outside every
+privacy bound. So a condition is accepted only when every operator and function in it is total
+on every value its operands can hold, and it is rebuilt (never passed through) from fresh nodes:
+
+- columns: listed columns only, rebuilt unqualified and quoted (``exp.Column`` named as in the
+  policy);
+- literals: numbers within +-1e30 (so coercion to real or double precision cannot overflow or
+  underflow), text without NUL, dates written 'YYYY-MM-DD' or DATE 'YYYY-MM-DD', TRUE/FALSE/NULL;
+  each literal's type is checked against the column it meets, so PostgreSQL never reports a
+  type error (42804 here instead, before anything runs);
+- comparisons = <> < <= > >= and IS [NOT] DISTINCT FROM, BETWEEN, IN (literal list), LIKE/ILIKE
+  with a literal pattern, IS [NOT] NULL/TRUE/FALSE, AND/OR/NOT;
+- functions that cannot raise on any value of their argument types: lower, upper, length,
+  trim/btrim/ltrim/rtrim, coalesce, and extract/date_part of a date with a unit that is valid
+  for dates (year quarter month week day dow isodow doy isoyear: checked on PostgreSQL 15 for
+  the first and last dates it can store, and infinity).
+
+Arithmetic (+, -, * and unary minus). Integer arithmetic overflows at 2^31 or 2^63 and double
+precision overflows at 1.8e308, both raising errors; NUMERIC has no overflow short of 131072
+digits before the point and rounds scale instead of failing (checked on PostgreSQL 15). So every
+operand is evaluated as NUMERIC, and a column used inside arithmetic stands for its value
+clamped to the policy's declared range, written as
+``CASE WHEN c < lo THEN lo WHEN c > hi THEN hi ELSE CAST(c AS NUMERIC) END`` (a CASE keeps NULL
+as NULL, unlike LEAST/GREATEST; NaN sorts above every number and so clamps to hi). With every
+operand bounded, each arithmetic result has a bound on its number of digits, and a condition
+whose bound exceeds ``MOST_DIGITS`` is refused; ordinary arithmetic is far below it. This is the
+one place where a filter sees clamped values: the same values SUM and AVG see.
+
+The data owner's contract, assumed here: a column's kind matches its backend type (a number
+kind backed by text would fail the cast), and text columns use a deterministic collation
+(LIKE raises under a nondeterministic one).
+
+Comparisons mixing two non-literal numeric operands compare as NUMERIC too (a NUMERIC column
+compared with a double precision one would otherwise be cast to double precision, which
+overflows above 1.8e308).
+
+Refused (each as a HushError with a hint): division and modulo (a zero divisor), exponent and
+roots (overflow, negative operands), casts (bad text), regular expressions and SIMILAR TO
+(invalid patterns fail per row), LIKE ... ESCAPE and patterns ending in an unpaired backslash
+(PostgreSQL raises on those only when a row is evaluated), date_trunc in WHERE (it converts to
+timestamp, which fails for dates after 294276 AD), date arithmetic, subqueries, window
+functions, parameters, and anything not listed above.
+
+tests/test_analyse.py runs random accepted conditions on PostgreSQL over rows holding NULL, NaN,
+infinities, the extreme integers, 130000-digit numerics and the first and last storable dates,
+and expects no error.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+from dataclasses import dataclass, field
+from decimal import Decimal, InvalidOperation
+from typing import Callable, Iterable, Sequence
+
+import sqlglot.expressions as exp
+
+from proxy.errors import SYNTAX_ERROR, UNDEFINED_FUNCTION, HushError, refused
+from proxy.policy import ColumnPolicy
+
+# SQLSTATE codes not (yet) in proxy.errors (PostgreSQL Appendix A, "PostgreSQL Error Codes").
+DATATYPE_MISMATCH = "42804"
+GROUPING_ERROR = "42803"
+
+# Analysis types of expressions. "string" is an untyped quoted literal (PostgreSQL's unknown),
+# which takes the type of what it meets; "null" is the NULL literal.
+KIND_TYPE = {"category": "text", "integer": "number", "number": "number", "date": "date",
+             "boolean": "boolean"}
+_TYPE_WORDS = {"text": "text", "number": "a number", "date": "a date", "boolean": "a boolean",
+               "string": "a quoted text literal", "null": "NULL"}
+_TYPE_HINTS = {
+    "text": "compare category columns with text literals in single quotes, e.g. district = 'Old Mill'",
+    "number": "compare integer and number columns with numeric literals, e.g. litres > 12.5",
+    "date": "compare date columns with dates written 'YYYY-MM-DD', e.g. reading_date >= '2026-03-01'",
+    "boolean": "compare boolean columns with TRUE or FALSE, or use the column itself as a condition",
+}
+
+LARGEST_LITERAL = Decimal("1e30")
+SMALLEST_LITERAL = Decimal("1e-30")
+MOST_LITERAL_DIGITS = 40
+MOST_DIGITS = 1000  # digits before the point any arithmetic result may have; NUMERIC allows 131072
+
+DATE_UNITS = frozenset({"year", "quarter", "month", "week", "day", "dow", "isodow", "doy",
+                        "isoyear"})
+_ISO_DATE = re.compile(r"\d{4}-\d{2}-\d{2}")
+_TRAILING_BACKSLASHES = re.compile(r"\\+$")
+
+WHERE_HINT = ("WHERE accepts listed columns, literals, = <> < <= > >=, BETWEEN, IN (literal list), "
+              "LIKE/ILIKE 'pattern', IS [NOT] NULL, AND/OR/NOT, + - * on numbers, and the functions "
+              "lower, upper, length, trim, coalesce and extract(<unit> FROM <date column>)")
+FUNCTION_HINT = ("accepted functions: lower, upper, length, trim (btrim, ltrim, rtrim), coalesce, "
+                 "extract(year|quarter|month|week|day|dow|isodow|doy|isoyear FROM <date>); "
+                 "aggregates: COUNT(*), COUNT(col), SUM(col), AVG(col)")
+
+ColumnResolver = Callable[[exp.Column], "tuple[str, ColumnPolicy]"]
+_NUMERIC = exp.DataType.Type.DECIMAL  # NUMERIC in PostgreSQL
+
+
+@dataclass
+class Typed:
+    """A checked expression: its rebuilt node, analysis type, and how to use it in arithmetic.
+
+    ``literal`` marks constants; ``string`` holds the text of an untyped quoted literal (checked
+    against whatever it meets); ``digits`` bounds the digits before the point of a numeric value
+    once clamped (None: not numeric). ``as_numeric`` and ``as_bounded`` give the node cast to
+    NUMERIC, respectively cast and clamped to declared ranges, for the contexts that need them.
+    """
+
+    node: exp.Expression
+    type: str
+    literal: bool = False
+    string: str | None = None
+    digits: int | None = None
+    as_numeric: Callable[[], exp.Expression] | None = field(default=None, repr=False)
+    as_bounded: Callable[[], exp.Expression] | None = field(default=None, repr=False)
+
+    def numeric(self) -> exp.Expression:
+        return self.as_numeric() if self.as_numeric else self.node
+
+    def bounded(self) -> exp.Expression:
+        return self.as_bounded() if self.as_bounded else _cast_numeric(self.node)
+
+
+def check_filter(condition: exp.Expression, resolve: ColumnResolver) -> exp.Expression:
+    """Check a WHERE condition and return a rebuilt, safe copy; raise HushError when refused.
+
+    ``resolve`` maps a column reference to (policy name, ColumnPolicy) or raises 42703/42P01.
+    The input tree is never modified.
+    """
+    checked = _FilterChecker(resolve).check(condition)
+    if checked.type not in ("boolean", "null"):
+        raise HushError(DATATYPE_MISMATCH,
+                        f"argument of WHERE must be a condition, not {_TYPE_WORDS[checked.type]}",
+                        WHERE_HINT)
+    return checked.node
+
+
+# ---------------------------------------------------------------------------------------------
+# Helpers shared with analysis (HAVING uses the same literal and type rules).
+
+def unparen(node: exp.Expression) -> exp.Expression:
+    """The expression inside any number of redundant parentheses."""
+    while isinstance(node, exp.Paren):
+        node = node.this
+    return node
+
+
+def only_args(node: exp.Expression, allowed: Iterable[str], what: str, hint: str) -> None:
+    """Fail closed on syntax this module does not model: refuse when any other argument is set."""
+    for key, value in node.args.items():
+        if value not in (None, False, []) and key not in allowed:
+            raise refused(f"{what} is not accepted in this form ({key})", hint)
+
+
+def chain_operands(node: exp.Connector) -> list[exp.Expression]:
+    """Operands of a chain of one connective (a AND b AND c), left to right, without recursion.
+
+    Parentheses are kept: sqlglot's own ``flatten`` removes them, and its generator does not
+    put them back, which would turn (a OR b) AND c into a OR b AND c.
+    """
+    kind, parts, stack = type(node), [], [node]
+    while stack:
+        current = stack.pop()
+        if type(current) is kind:
+            stack.append(current.expression)
+            stack.append(current.this)
+        else:
+            parts.append(current)
+    return parts
+
+
+def iso_date(text: str) -> dt.date | None:
+    """The date written 'YYYY-MM-DD', or None when ``text`` is anything else."""
+    if not _ISO_DATE.fullmatch(text):
+        return None
+    try:
+        return dt.date.fromisoformat(text)
+    except ValueError:
+        return None
+
+
+def literal(node: exp.Expression) -> Typed | None:
+    """A checked, freshly built constant (number, text, date, boolean, NULL), or None if ``node``
+    is not a constant. Raises HushError for constants outside the accepted forms."""
+    if isinstance(node, exp.Literal):
+        if node.is_string:
+            text = node.this
+            if "\x00" in text:
+                raise HushError(SYNTAX_ERROR, "text literals may not contain NUL characters",
+                                "remove the NUL character")
+            return Typed(exp.Literal.string(text), "string", literal=True, string=text)
+        return _number_literal(node.this, negative=False)
+    if isinstance(node, exp.Neg) and isinstance(unparen(node.this), exp.Literal) \
+            and not unparen(node.this).is_string:
+        return _number_literal(unparen(node.this).this, negative=True)
+    if isinstance(node, exp.Null):
+        return Typed(exp.Null(), "null", literal=True, digits=0)
+    if isinstance(node, exp.Boolean):
+        return Typed(exp.Boolean(this=bool(node.this)), "boolean", literal=True)
+    if isinstance(node, exp.Cast) and isinstance(node.this, exp.Literal) and node.this.is_string \
+            and node.to.this == exp.DataType.Type.DATE and not node.to.expressions:
+        text = node.this.this
+        if iso_date(text) is None:
+            raise HushError(DATATYPE_MISMATCH, f"invalid date literal {text!r}",
+                            "write dates as 'YYYY-MM-DD' or DATE 'YYYY-MM-DD'")
+        return Typed(date_node(text), "date", literal=True)
+    return None
+
+
+def date_node(text: str) -> exp.Expression:
+    """CAST('YYYY-MM-DD' AS DATE) as a fresh node."""
+    return exp.Cast(this=exp.Literal.string(text), to=exp.DataType(this=exp.DataType.Type.DATE))
+
+
+def unify(items: Sequence[Typed], what: str) -> str:
+    """The common type of operands that meet (compared, listed, coalesced); raise 42804 if none.
+
+    Untyped quoted literals take the others' type: fine for text, checked as 'YYYY-MM-DD' for
+    dates, refused for numbers and booleans (PostgreSQL would coerce '5' but reject 'five').
+    """
+    family: str | None = None
+    for item in items:
+        if item.type in ("null", "string"):
+            continue
+        if family is None:
+            family = item.type
+        elif item.type != family:
+            raise _mismatch(family, item.type, what)
+    if family is None:
+        return "string" if any(i.type == "string" for i in items) else "null"
+    for item in items:
+        if item.type != "string" or family == "text":
+            continue
+        if family == "date":
+            if iso_date(item.string or "") is None:
+                raise HushError(DATATYPE_MISMATCH, f"invalid date literal {item.string!r} in {what}",
+                                _TYPE_HINTS["date"])
+        else:
+            raise _mismatch(family, "string", what)
+    return family
+
+
+def _mismatch(first: str, second: str, what: str) -> HushError:
+    return HushError(DATATYPE_MISMATCH,
+                     f"{what}: {_TYPE_WORDS[first]} cannot be compared with {_TYPE_WORDS[second]}",
+                     _TYPE_HINTS.get(first, WHERE_HINT))
+
+
+def refuse_expression(node: exp.Expression, clause: str, hint: str) -> HushError:
+    """The refusal for an expression ``clause`` does not accept, as specific as the node allows."""
+    if isinstance(node, (exp.Subquery, exp.Select, exp.Exists, exp.SetOperation)) or (
+            isinstance(node, exp.In) and node.args.get("query") is not None):
+        return refused(f"subqueries are not accepted (in {clause})",
+                       "write one SELECT over one table; combine answers in your client")
+    if isinstance(node, exp.Window):
+        return refused("window functions are not accepted",
+                       "use GROUP BY with COUNT, SUM or AVG; order and rank the answer in your client")
+    if isinstance(node, exp.AggFunc):
+        return HushError(GROUPING_ERROR, f"aggregate functions are not allowed in {clause}",
+                         "aggregates belong in the select list, HAVING or ORDER BY")
+    if isinstance(node, (exp.Div, exp.IntDiv, exp.Mod)):
+        return refused("division and modulo are not accepted: they fail when some row holds a zero",
+                       "compare instead: write x > 2 * y rather than x / y > 2; " + hint)
+    if isinstance(node, (exp.Pow, exp.Sqrt, exp.Cbrt, exp.Ln, exp.Log, exp.Exp)):
+        return refused("exponents, roots and logarithms are not accepted: they fail on some row values",
+                       hint)
+    if isinstance(node, (exp.Cast, exp.TryCast)):
+        return refused("casts are not accepted: a cast can fail on one row's value",
+                       "compare columns with literals of their own type; dates as 'YYYY-MM-DD'")
+    if isinstance(node, (exp.Placeholder, exp.Parameter)):
+        return refused("parameters are not accepted", "write literal values into the statement")
+    if isinstance(node, exp.Star) or (isinstance(node, exp.Column) and isinstance(node.this, exp.Star)):
+        return refused("* is accepted only inside COUNT(*)",
+                       "name the aggregates you want: SELECT COUNT(*), SUM(col) ...")
+    if isinstance(node, (exp.RegexpLike, exp.RegexpILike, exp.SimilarTo)):
+        return refused("regular expressions and SIMILAR TO are not accepted: an invalid pattern fails",
+                       "use LIKE or ILIKE with % and _")
+    if isinstance(node, exp.Escape):
+        return refused("LIKE ... ESCAPE is not accepted", "use LIKE without ESCAPE; \\ escapes % and _")
+    if isinstance(node, (exp.TimestampTrunc, exp.DateTrunc)) and clause == "WHERE":
+        return refused("date_trunc is not accepted in WHERE: it fails for dates beyond the timestamp range",
+                       "compare the date column with dates, e.g. reading_date >= '2026-03-01', "
+                       "or use extract(month FROM reading_date)")
+    if isinstance(node, (exp.Case, exp.If)):
+        return refused(f"CASE is not accepted in {clause}", hint)
+    if isinstance(node, exp.Func) and not isinstance(node, exp.Binary):
+        return HushError(UNDEFINED_FUNCTION, f"function {_function_name(node)}() is not accepted in {clause}",
+                         FUNCTION_HINT)
+    return refused(f"the expression {_snippet(node)} is not accepted in {clause}", hint)
+
+
+def _function_name(node: exp.Func) -> str:
+    """The name PostgreSQL would show: sqlglot's own class names differ (now() is CurrentTimestamp)."""
+    if isinstance(node, exp.Anonymous):
+        return node.name.lower()
+    try:
+        return node.sql(dialect="postgres").split("(", 1)[0].strip().lower() or node.sql_name().lower()
+    except Exception:  # the generator may not know every node
+        return node.sql_name().lower()
+
+
+def _snippet(node: exp.Expression) -> str:
+    try:
+        text = node.sql(dialect="postgres")
+    except Exception:  # the generator may not know every node; the message need not quote it
+        return f"of kind {node.key}"
+    return f'"{text[:57]}..."' if len(text) > 60 else f'"{text}"'
+
+
+def _digits(value: Decimal | int) -> int:
+    """Digits before the decimal point of |value| (at least 1)."""
+    value = Decimal(value)
+    return 1 if value == 0 else max(1, value.adjusted() + 1)
+
+
+def _number_literal(text: str, negative: bool) -> Typed:
+    try:
+        value = Decimal(text)
+    except InvalidOperation:
+        raise HushError(SYNTAX_ERROR, f"invalid number {text!r}", "write numbers like 12 or 12.5")
+    if not value.is_finite() or abs(value) > LARGEST_LITERAL or (
+            value != 0 and abs(value) < SMALLEST_LITERAL) or len(value.as_tuple().digits) > MOST_LITERAL_DIGITS:
+        raise refused(f"the number {text} is outside the accepted literal range",
+                      "numeric literals must lie between -1e30 and 1e30, be 0 or at least 1e-30 in "
+                      f"size, and have at most {MOST_LITERAL_DIGITS} digits")
+    node: exp.Expression = exp.Literal.number(text)
+    if negative:
+        node = exp.Neg(this=node)
+    return Typed(node, "number", literal=True, digits=_digits(value))
+
+
+def _cast_numeric(node: exp.Expression) -> exp.Expression:
+    return exp.Cast(this=node, to=exp.DataType(this=_NUMERIC))
+
+
+def _bound_literal(value: Decimal | int) -> exp.Expression:
+    """A fresh numeric constant for a policy bound (negative bounds as unary minus)."""
+    value = Decimal(value)
+    node: exp.Expression = exp.Literal.number(format(abs(value), "f"))
+    return exp.Neg(this=node) if value < 0 else node
+
+
+def _column_ref(name: str) -> exp.Column:
+    return exp.Column(this=exp.to_identifier(name, quoted=True))
+
+
+def _clamped(name: str, column: ColumnPolicy) -> exp.Expression:
+    """CASE WHEN c < lo THEN lo WHEN c > hi THEN hi ELSE c END, every branch NUMERIC.
+
+    The tests compare the column in its own type with the bound (coerced once, at planning).
+    """
+    low, high = column.low, column.high
+    return exp.Case(
+        ifs=[exp.If(this=exp.LT(this=_column_ref(name), expression=_bound_literal(low)),
+                    true=_cast_numeric(_bound_literal(low))),
+             exp.If(this=exp.GT(this=_column_ref(name), expression=_bound_literal(high)),
+                    true=_cast_numeric(_bound_literal(high)))],
+        default=_cast_numeric(_column_ref(name)))
+
+
+# ---------------------------------------------------------------------------------------------
+
+class _FilterChecker:
+    """One recursive pass over a WHERE condition, building the safe copy as it goes."""
+
+    def __init__(self, resolve: ColumnResolver) -> None:
+        self._resolve = resolve
+
+    def check(self, node: exp.Expression) -> Typed:
+        constant = literal(node)
+        if constant is not None:
+            return constant
+        method = _DISPATCH.get(type(node))
+        if method is None:
+            raise refuse_expression(node, "WHERE", WHERE_HINT)
+        return method(self, node)
+
+    # structure -------------------------------------------------------------------------------
+    def _paren(self, node: exp.Paren) -> Typed:
+        inner = self.check(node.this)
+        return Typed(exp.Paren(this=inner.node), inner.type, literal=inner.literal,
+                     string=inner.string, digits=inner.digits,
+                     as_numeric=lambda: exp.Paren(this=inner.numeric()),
+                     as_bounded=lambda: exp.Paren(this=inner.bounded()))
+
+    def _connective(self, node: exp.Connector) -> Typed:
+        # Long AND/OR chains are left-deep trees: walk them flat rather than recursing per link.
+        kind = type(node)
+        parts = [self._condition(part, kind.__name__.upper()) for part in chain_operands(node)]
+        built = parts[0]
+        for part in parts[1:]:
+            built = kind(this=built, expression=part)
+        return Typed(built, "boolean")
+
+    def _not(self, node: exp.Not) -> Typed:
+        return Typed(exp.Not(this=self._condition(node.this, "NOT")), "boolean")
+
+    def _condition(self, node: exp.Expression, what: str) -> exp.Expression:
+        checked = self.check(node)
+        if checked.type not in ("boolean", "null"):
+            raise HushError(DATATYPE_MISMATCH,
+                            f"argument of {what} must be a condition, not {_TYPE_WORDS[checked.type]}",
+                            WHERE_HINT)
+        return checked.node
+
+    # leaves ----------------------------------------------------------------------------------
+    def _column(self, node: exp.Column) -> Typed:
+        if isinstance(node.this, exp.Star):
+            raise refuse_expression(node, "WHERE", WHERE_HINT)
+        name, column = self._resolve(node)
+        kind = KIND_TYPE[column.kind]
+        if kind != "number":
+            return Typed(_column_ref(name), kind)
+        digits = max(_digits(column.low), _digits(column.high))
+        return Typed(_column_ref(name), "number", digits=digits,
+                     as_numeric=lambda: _cast_numeric(_column_ref(name)),
+                     as_bounded=lambda: _clamped(name, column))
+
+    # comparisons -----------------------------------------------------------------------------
+    def _comparison(self, node: exp.Binary) -> Typed:
+        left, right = self.check(node.this), self.check(node.expression)
+        what = f"comparison {_snippet(node)}"
+        family = unify([left, right], what)
+        a, b = self._operands([left, right], family)
+        return Typed(type(node)(this=a, expression=b), "boolean")
+
+    def _between(self, node: exp.Between) -> Typed:
+        only_args(node, ("this", "low", "high", "symmetric"), "BETWEEN", WHERE_HINT)
+        items = [self.check(node.this), self.check(node.args["low"]), self.check(node.args["high"])]
+        family = unify(items, f"BETWEEN {_snippet(node)}")
+        this, low, high = self._operands(items, family)
+        return Typed(exp.Between(this=this, low=low, high=high,
+                                 symmetric=node.args.get("symmetric") or None), "boolean")
+
+    def _in(self, node: exp.In) -> Typed:
+        if node.args.get("query") is not None:
+            raise refuse_expression(node, "WHERE", WHERE_HINT)
+        only_args(node, ("this", "expressions"), "IN", "write x IN (literal, literal, ...)")
+        if not node.expressions:
+            raise HushError(SYNTAX_ERROR, "IN needs at least one value", "write x IN ('a', 'b')")
+        this = self.check(node.this)
+        values = []
+        for item in node.expressions:
+            constant = literal(item)
+            if constant is None:
+                raise refused(f"IN accepts a list of literals, not {_snippet(item)}",
+                              "write x IN ('a', 'b') or x IN (1, 2)")
+            values.append(constant)
+        unify([this, *values], f"IN {_snippet(node)}")
+        return Typed(exp.In(this=this.node, expressions=[v.node for v in values]), "boolean")
+
+    def _like(self, node: exp.Like | exp.ILike) -> Typed:
+        only_args(node, ("this", "expression", "negate"), "LIKE", WHERE_HINT)
+        this = self.check(node.this)
+        if this.type not in ("text", "string", "null"):
+            raise HushError(DATATYPE_MISMATCH,
+                            f"LIKE and ILIKE take text, not {_TYPE_WORDS[this.type]}",
+                            "use LIKE on category columns, e.g. district LIKE 'North%'")
+        pattern = unparen(node.expression)
+        if not (isinstance(pattern, exp.Literal) and pattern.is_string):
+            raise refused("LIKE and ILIKE accept only a literal pattern",
+                          "write the pattern in single quotes, e.g. district LIKE 'North%'")
+        text = pattern.this
+        trailing = _TRAILING_BACKSLASHES.search(text)
+        if trailing and len(trailing.group()) % 2 == 1:
+            raise refused("a LIKE pattern may not end with an unpaired backslash "
+                          "(PostgreSQL would fail on the first row it tests)",
+                          "double the backslash to match one: LIKE 'a\\\\'")
+        checked = literal(pattern)
+        assert checked is not None
+        kwargs = {"negate": True} if node.args.get("negate") else {}
+        return Typed(type(node)(this=this.node, expression=checked.node, **kwargs), "boolean")
+
+    def _is(self, node: exp.Is) -> Typed:
+        only_args(node, ("this", "expression", "negate"), "IS", WHERE_HINT)
+        this = self.check(node.this)
+        target = node.expression
+        if isinstance(target, exp.Null):
+            right: exp.Expression = exp.Null()
+        elif isinstance(target, exp.Boolean):
+            if this.type not in ("boolean", "null"):
+                raise HushError(DATATYPE_MISMATCH,
+                                f"IS TRUE/FALSE takes a condition, not {_TYPE_WORDS[this.type]}",
+                                _TYPE_HINTS["boolean"])
+            right = exp.Boolean(this=bool(target.this))
+        else:
+            raise refused(f"IS {_snippet(target)} is not accepted",
+                          "use IS [NOT] NULL, IS [NOT] TRUE or IS [NOT] FALSE")
+        kwargs = {"negate": True} if node.args.get("negate") else {}
+        return Typed(exp.Is(this=this.node, expression=right, **kwargs), "boolean")
+
+    # arithmetic ------------------------------------------------------------------------------
+    def _arithmetic(self, node: exp.Binary) -> Typed:
+        left, right = self.check(node.this), self.check(node.expression)
+        for side in (left, right):
+            if side.type == "date":
+                raise refused("date arithmetic is not accepted (it fails past the last storable date)",
+                              "compare dates with dates, e.g. reading_date >= '2026-03-01'")
+            if side.type not in ("number", "null"):
+                raise HushError(DATATYPE_MISMATCH,
+                                f"+, - and * take numbers, not {_TYPE_WORDS[side.type]}",
+                                "arithmetic is accepted on integer and number columns and numeric "
+                                "literals; compare dates with dates instead")
+        a, b = left.digits or 0, right.digits or 0
+        digits = a + b if isinstance(node, exp.Mul) else max(a, b) + 1
+        if digits > MOST_DIGITS:
+            raise refused("the arithmetic in WHERE could exceed the numeric range",
+                          "use fewer or smaller factors")
+        built = type(node)(this=left.bounded(), expression=right.bounded())
+        return Typed(built, "number", digits=digits, as_bounded=lambda: built)
+
+    def _negative(self, node: exp.Neg) -> Typed:
+        inner = self.check(node.this)
+        if inner.type not in ("number", "null"):
+            raise HushError(DATATYPE_MISMATCH, f"unary minus takes a number, not {_TYPE_WORDS[inner.type]}",
+                            WHERE_HINT)
+        built = exp.Neg(this=inner.bounded())
+        return Typed(built, "number", digits=inner.digits, as_bounded=lambda: built)
+
+    # functions -------------------------------------------------------------------------------
+    def _text_argument(self, node: exp.Expression, function: str) -> Typed:
+        argument = self.check(node)
+        if argument.type not in ("text", "string", "null"):
+            raise HushError(UNDEFINED_FUNCTION,
+                            f"function {function}() takes text, not {_TYPE_WORDS[argument.type]}",
+                            FUNCTION_HINT)
+        return argument
+
+    def _case_function(self, node: exp.Lower | exp.Upper) -> Typed:
+        name = "lower" if isinstance(node, exp.Lower) else "upper"
+        only_args(node, ("this",), f"{name}()", FUNCTION_HINT)
+        return Typed(type(node)(this=self._text_argument(node.this, name).node), "text")
+
+    def _length(self, node: exp.Length) -> Typed:
+        only_args(node, ("this",), "length()", FUNCTION_HINT)
+        built = exp.Length(this=self._text_argument(node.this, "length").node)
+        return Typed(built, "number", digits=10)  # at most 1 GB of characters
+
+    def _trim(self, node: exp.Trim) -> Typed:
+        only_args(node, ("this", "expression", "position"), "trim()", FUNCTION_HINT)
+        kwargs: dict = {"this": self._text_argument(node.this, "trim").node}
+        if node.args.get("expression") is not None:
+            kwargs["expression"] = self._text_argument(node.args["expression"], "trim").node
+        if node.args.get("position"):
+            kwargs["position"] = node.args["position"]
+        return Typed(exp.Trim(**kwargs), "text")
+
+    def _coalesce(self, node: exp.Coalesce) -> Typed:
+        only_args(node, ("this", "expressions"), "coalesce()", FUNCTION_HINT)
+        items = [self.check(node.this), *(self.check(e) for e in node.expressions)]
+        family = unify(items, f"coalesce {_snippet(node)}")
+        nodes = self._operands(items, family)
+        built = exp.Coalesce(this=nodes[0], expressions=nodes[1:])
+        if family in ("null", "string"):
+            return Typed(built, "text")  # PostgreSQL resolves coalesce of untyped literals to text
+        if family != "number":
+            return Typed(built, family)
+        digits = max(i.digits or 0 for i in items)
+        return Typed(built, "number", digits=digits,
+                     as_numeric=lambda: exp.Coalesce(
+                         this=items[0].node if items[0].literal else items[0].numeric(),
+                         expressions=[i.node if i.literal else i.numeric() for i in items[1:]]),
+                     as_bounded=lambda: exp.Coalesce(this=items[0].bounded(),
+                                                     expressions=[i.bounded() for i in items[1:]]))
+
+    def _extract(self, node: exp.Extract) -> Typed:
+        only_args(node, ("this", "expression"), "extract()", FUNCTION_HINT)
+        unit = node.this
+        name = unit.this if isinstance(unit, exp.Literal) and unit.is_string else (
+            unit.name if isinstance(unit, exp.Var) else None)
+        if name is None or name.lower() not in DATE_UNITS:
+            raise refused(f"extract unit {_snippet(unit)} is not accepted",
+                          "extract takes one of " + ", ".join(sorted(DATE_UNITS)) + " from a date")
+        source = self.check(node.expression)
+        if source.type != "date" and not (source.type == "string" and iso_date(source.string or "")):
+            raise HushError(UNDEFINED_FUNCTION,
+                            f"extract() takes a date, not {_TYPE_WORDS[source.type]}",
+                            "write extract(month FROM <date column>)")
+        source_node = source.node if source.type == "date" else date_node(source.string or "")
+        built = exp.Extract(this=exp.var(name.upper()), expression=source_node)
+        return Typed(built, "number", digits=8, as_bounded=lambda: built)  # NUMERIC, |year| < 1e7
+
+    # -----------------------------------------------------------------------------------------
+    def _operands(self, items: Sequence[Typed], family: str) -> list[exp.Expression]:
+        """Nodes for operands that meet; numbers compare as NUMERIC unless all but one are literals."""
+        if family == "number" and sum(1 for i in items if not i.literal) >= 2:
+            return [i.node if i.literal else i.numeric() for i in items]
+        return [i.node for i in items]
+
+
+_DISPATCH: dict[type, Callable[[_FilterChecker, exp.Expression], Typed]] = {
+    exp.Paren: _FilterChecker._paren,
+    exp.And: _FilterChecker._connective,
+    exp.Or: _FilterChecker._connective,
+    exp.Not: _FilterChecker._not,
+    exp.Column: _FilterChecker._column,
+    exp.EQ: _FilterChecker._comparison,
+    exp.NEQ: _FilterChecker._comparison,
+    exp.LT: _FilterChecker._comparison,
+    exp.LTE: _FilterChecker._comparison,
+    exp.GT: _FilterChecker._comparison,
+    exp.GTE: _FilterChecker._comparison,
+    exp.NullSafeEQ: _FilterChecker._comparison,
+    exp.NullSafeNEQ: _FilterChecker._comparison,
+    exp.Between: _FilterChecker._between,
+    exp.In: _FilterChecker._in,
+    exp.Like: _FilterChecker._like,
+    exp.ILike: _FilterChecker._like,
+    exp.Is: _FilterChecker._is,
+    exp.Add: _FilterChecker._arithmetic,
+    exp.Sub: _FilterChecker._arithmetic,
+    exp.Mul: _FilterChecker._arithmetic,
+    exp.Neg: _FilterChecker._negative,
+    exp.Lower: _FilterChecker._case_function,
+    exp.Upper: _FilterChecker._case_function,
+    exp.Length: _FilterChecker._length,
+    exp.Trim: _FilterChecker._trim,
+    exp.Coalesce: _FilterChecker._coalesce,
+    exp.Extract: _FilterChecker._extract,
+}
