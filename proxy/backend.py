@@ -65,6 +65,8 @@ class Backend:
         connection.autocommit = False
         with connection.cursor() as cursor:
             cursor.execute(f"SET statement_timeout = {int(self._timeout)}")
+            # sqlglot writes string literals with backslashes unescaped: only sound when on.
+            cursor.execute("SET standard_conforming_strings = on")
         connection.commit()
 
     def run(self, sql: str, control: QueryControl | None = None,

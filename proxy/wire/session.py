@@ -1,0 +1,798 @@
+"""One analyst's session: settings, prepared statements, portals, and the calls to the engine.
+
+The server hands the session each message of the query phase; the session answers with the
+backend messages to send. It knows nothing of sockets: blocking work (the engine, the catalog)
+runs in an executor so one analyst's slow query never holds up the event loop, and a running
+query can be cancelled from outside (CancelRequest, statement_timeout, a vanished client).
+
+What the engine sees: for a statement without parameters, its own text (the engine caches plans
+by text); with parameters, a copy of the parsed tree in which every ``$n`` has been replaced by a
+literal node built from the decoded value. Parameter values are never pasted into SQL text.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import functools
+import logging
+import threading
+import traceback
+from concurrent.futures import Executor
+from dataclasses import dataclass, field
+from decimal import Decimal
+from typing import Any, Callable, Sequence
+
+from sqlglot import exp
+
+from proxy.answer import Answer
+from proxy.engine import QueryControl, parse_epsilon
+from proxy.errors import (DUPLICATE_CURSOR, DUPLICATE_PREPARED_STATEMENT, FEATURE_NOT_SUPPORTED,
+                          INTERNAL_ERROR, INVALID_CURSOR_NAME, INVALID_SQL_STATEMENT_NAME,
+                          PROGRAM_LIMIT_EXCEEDED, PROTOCOL_VIOLATION, QUERY_CANCELED, HushError)
+from proxy.wire import codec, settings, statements, types
+from proxy.wire.states import TransactionMachine, TxEvent, TxStatus, TxStep
+from proxy.wire.statements import (DeallocateStatement, DiscardStatement, EmptyStatement,
+                                   ExplainStatement, NoopStatement, QueryStatement,
+                                   ResetStatement, SetStatement, ShowStatement, Statement,
+                                   TransactionStatement)
+
+log = logging.getLogger("hushql.wire")
+
+INVALID_SAVEPOINT = "3B001"  # invalid_savepoint_specification (PostgreSQL Appendix A)
+
+CATALOG_HINT = "hushql answers aggregate queries over the tables in your policy."
+
+# Functions and schemas that mark a query about the catalog rather than the data.
+_CATALOG_SCHEMAS = frozenset({"pg_catalog", "information_schema"})
+_CATALOG_FUNCTIONS = frozenset({"version", "current_schema", "current_schemas",
+                                "current_database", "current_catalog", "current_user",
+                                "session_user", "current_setting", "set_config", "format_type",
+                                "obj_description", "col_description", "has_table_privilege",
+                                "has_schema_privilege", "to_regclass"})
+
+
+def looks_like_catalog(tree: exp.Expression) -> bool:
+    """Whether a query reads catalog relations or catalog functions (used when no catalog
+    module is plugged in, so such queries get a clear refusal)."""
+    for table in tree.find_all(exp.Table):
+        if table.db.lower() in _CATALOG_SCHEMAS or table.name.lower().startswith("pg_"):
+            return True
+    for func in tree.find_all(exp.Func):
+        name = (func.name if isinstance(func, exp.Anonymous) else func.sql_name()).lower()
+        if name in _CATALOG_FUNCTIONS or name.startswith("pg_"):
+            return True
+    return isinstance(tree, exp.Select) and any(
+        isinstance(n, (exp.CurrentUser, exp.CurrentSchema)) for n in tree.walk())
+
+
+# --------------------------------------------------------------------------- results
+
+
+@dataclass
+class Outcome:
+    """What running one statement produced, before it is framed for the client."""
+
+    shape: types.ResultShape | None  # None: a command without rows
+    rows: list[Sequence[Any]] = field(default_factory=list)
+    tag: str = "SELECT"
+    notices: list[codec.NoticeResponse] = field(default_factory=list)
+    empty: bool = False  # an empty query string (EmptyQueryResponse)
+
+    def complete(self, count: int) -> codec.CommandComplete:
+        return codec.CommandComplete(f"SELECT {count}" if self.tag == "SELECT" else self.tag)
+
+
+def answer_notice(answer: Answer) -> codec.NoticeResponse:
+    """The NOTICE that goes with every answer: what it cost, what is left, how accurate it is."""
+    message = (f"this answer spent epsilon {answer.epsilon} of your privacy budget; "
+               f"{answer.remaining} remains")
+    parts = []
+    for a in answer.accuracy:
+        if a.bound95 is None:
+            parts.append(f"{a.column}: no finite 95% bound ({a.note})" if a.note
+                         else f"{a.column}: no finite 95% bound")
+        else:
+            scale = "" if a.scale is None else f", noise scale {float(a.scale):.4g}"
+            parts.append(f"{a.column}: within ±{a.bound95} of the exact value in 95% of "
+                         f"answers{scale}")
+    detail = "; ".join(parts) if parts else None
+    return codec.NoticeResponse.build(
+        "NOTICE", "00000", message, detail=detail,
+        hint="The figures carry deliberate random noise; SET hushql.epsilon changes the trade "
+             "between cost and accuracy." if parts else None)
+
+
+def error_response(error: HushError, severity: str = "ERROR") -> codec.ErrorResponse:
+    return codec.ErrorResponse.build(severity, error.sqlstate, error.message,
+                                     detail=error.detail, hint=error.hint)
+
+
+def internal_error() -> HushError:
+    """The only thing a client learns about a bug: that there was one."""
+    return HushError(INTERNAL_ERROR, "internal error",
+                     hint="The server log has a record of this failure.")
+
+
+def log_internal(where: str, exc: BaseException) -> None:
+    """Logs an unexpected exception by type and code location, never by its text (it may
+    hold values)."""
+    frames = traceback.extract_tb(exc.__traceback__)
+    trail = " <- ".join(f"{f.name}:{f.lineno}" for f in reversed(frames[-6:]))
+    log.error("internal error in %s: %s at %s", where, type(exc).__name__, trail)
+
+
+# --------------------------------------------------------------------------- extended query
+
+
+@dataclass
+class Prepared:
+    """A Parse'd statement: its classification and parameter types."""
+
+    statement: Statement
+    param_types: tuple[int, ...]
+    to_catalog: bool = False
+    shape: types.ResultShape | None | bool = False  # False: not described yet
+
+
+@dataclass
+class Portal:
+    """A Bind'ed statement: its values, its result formats, and its result once executed."""
+
+    prepared: Prepared
+    values: list[Any]
+    tree: exp.Expression | None  # the bound tree (None: use the statement's text)
+    result_formats: tuple[int, ...]
+    outcome: Outcome | None = None
+    sent: int = 0
+    described: types.ResultShape | None | bool = False
+
+
+# --------------------------------------------------------------------------- the session
+
+
+class Session:
+    """The state of one authenticated connection and the handling of its queries.
+
+    ``engine`` offers answer/explain/describe/remaining/policies (proxy.engine.Engine);
+    ``catalog`` is optional (is_catalog_query(tree) and run(analyst, sql, params)); ``executor``
+    runs blocking calls (None: the loop's default).
+    """
+
+    def __init__(self, engine: Any, analyst: str, *, catalog: Any = None,
+                 executor: Executor | None = None, database: str = "") -> None:
+        self.engine = engine
+        self.analyst = analyst
+        self.database = database or analyst
+        self.catalog = catalog
+        self.executor = executor
+        self.tx = TransactionMachine()
+        self.values: dict[str, str] = {k: s.default for k, s in settings.SETTINGS.items()}
+        self.values["session_authorization"] = analyst
+        self.defaults: dict[str, str] = dict(self.values)
+        self._block_start: dict[str, str] | None = None  # settings when BEGIN ran
+        self._implicit_start: dict[str, str] | None = None  # when this message/batch began
+        self._local_undo: dict[str, str] = {}
+        self._savepoints: list[tuple[str, dict[str, str]]] = []
+        self._reported: dict[str, str] = {k: v for k, v in self.values.items()
+                                          if settings.SETTINGS[k].reported}
+        self.statements: dict[str, Prepared] = {}
+        self.portals: dict[str, Portal] = {}
+        self._running: QueryControl | None = None
+        self._cancel_reason: str | None = None
+
+    # ---- startup --------------------------------------------------------------------------
+
+    def apply_startup(self, params: dict[str, str]) -> None:
+        """Applies startup parameters (client_encoding, DateStyle, options='-c x=y', ...) as
+        session defaults; raises HushError for a bad value. Unknown names are ignored."""
+        pairs = [(k, v) for k, v in params.items()
+                 if k not in ("user", "database", "options", "replication")]
+        pairs += _options_pairs(params.get("options", ""))
+        if params.get("replication", "false").lower() not in ("false", "off", "0", "no"):
+            raise HushError(FEATURE_NOT_SUPPORTED, "replication connections are not supported")
+        for name, value in pairs:
+            key = name.lower()
+            if key not in settings.SETTINGS:
+                log.info("ignoring unknown startup parameter %s", name[:64])
+                continue
+            self._assign(key, value)
+        self.defaults = dict(self.values)
+        self._reported = {k: v for k, v in self.values.items() if settings.SETTINGS[k].reported}
+
+    def parameter_statuses(self) -> list[codec.ParameterStatus]:
+        """ParameterStatus for every reported setting (sent once after authentication)."""
+        return [codec.ParameterStatus(settings.SETTINGS[k].name, v)
+                for k, v in self._reported.items()]
+
+    # ---- dispatch -------------------------------------------------------------------------
+
+    async def handle(self, message: Any) -> tuple[list[Any], bool]:
+        """Backend messages answering one query-phase message, and whether it failed (an
+        extended-query failure makes the server skip to Sync)."""
+        if self._implicit_start is None and self.tx.status is TxStatus.IDLE:
+            self._implicit_start = dict(self.values)
+        try:
+            if isinstance(message, codec.Query):
+                return await self.simple_query(message.sql), False
+            if isinstance(message, codec.Parse):
+                return await self.parse(message), False
+            if isinstance(message, codec.Bind):
+                return self.bind(message), False
+            if isinstance(message, codec.Describe):
+                return await self.describe(message), False
+            if isinstance(message, codec.Execute):
+                return await self.execute(message), False
+            if isinstance(message, codec.Close):
+                return self.close(message), False
+            if isinstance(message, codec.Sync):
+                return self.sync(), False
+            if isinstance(message, codec.FunctionCall):
+                err = HushError(FEATURE_NOT_SUPPORTED, "function calls are not supported")
+                self._statement_failed()
+                self._implicit_start = None
+                return [error_response(err)] + self.ready(), False
+        except HushError as err:
+            self._statement_failed()
+            return [error_response(err)], True
+        except Exception as exc:  # a bug: say nothing about it to the client
+            log_internal(type(message).__name__, exc)
+            self._statement_failed()
+            return [error_response(internal_error())], True
+        raise TypeError(f"not a query-phase message: {type(message).__name__}")
+
+    def fail(self, error: HushError, *, simple: bool) -> list[Any]:
+        """The reply to a message that could not even be read (e.g. text not in UTF-8)."""
+        self._statement_failed()
+        return [error_response(error)] + (self.ready() if simple else [])
+
+    def ready(self) -> list[Any]:
+        """Pending ParameterStatus changes, then ReadyForQuery with the transaction status."""
+        out: list[Any] = []
+        for key, setting in settings.SETTINGS.items():
+            if setting.reported and self._reported.get(key) != self.values[key]:
+                self._reported[key] = self.values[key]
+                out.append(codec.ParameterStatus(setting.name, self.values[key]))
+        out.append(codec.ReadyForQuery(self.tx.status.value))
+        return out
+
+    # ---- simple query ---------------------------------------------------------------------
+
+    async def simple_query(self, sql: str) -> list[Any]:
+        """All statements of one Query message; the first error ends the message."""
+        out: list[Any] = []
+        try:
+            parsed = statements.split(sql)
+            if not parsed:
+                return [codec.EmptyQueryResponse()] + self.ready()
+            # Like PostgreSQL, a syntax error anywhere means nothing in the message runs.
+            routes = [self._route(st) for st in parsed]
+            for st, to_catalog in zip(parsed, routes):
+                outcome = await self._run(st, None, [], to_catalog)
+                out += self._frame_all(outcome)
+        except HushError as err:
+            self._statement_failed()
+            out.append(error_response(err))
+        except Exception as exc:
+            log_internal("simple query", exc)
+            self._statement_failed()
+            out.append(error_response(internal_error()))
+        if self.tx.status is TxStatus.IDLE:
+            self.portals.clear()
+        self._implicit_start = None
+        return out + self.ready()
+
+    def _frame_all(self, outcome: Outcome) -> list[Any]:
+        """A whole outcome for the simple protocol: notices, description, rows, completion."""
+        if outcome.empty:
+            return [codec.EmptyQueryResponse()]
+        out: list[Any] = list(outcome.notices)
+        if outcome.shape is None:
+            return out + [outcome.complete(0)]
+        formats = outcome.shape.formats(())
+        encoder = outcome.shape.encoder(formats)
+        rows = [encoder.encode(r) for r in outcome.rows]  # all or nothing: encode first
+        return out + [outcome.shape.description(formats)] + rows + [outcome.complete(len(rows))]
+
+    # ---- extended query -------------------------------------------------------------------
+
+    async def parse(self, msg: codec.Parse) -> list[Any]:
+        if msg.name and msg.name in self.statements:
+            raise HushError(DUPLICATE_PREPARED_STATEMENT,
+                            f'prepared statement "{msg.name}" already exists',
+                            hint="Close or DEALLOCATE it first, or use another name.")
+        st = statements.single(msg.sql)
+        self._check_block(st)
+        to_catalog = self._route(st)
+        tree = statements.statement_tree(st)
+        for i, oid in enumerate(msg.param_oids):
+            types.check_parameter_oid(oid, i + 1)
+        count = max(len(msg.param_oids), statements.parameter_count(tree))
+        if count > statements.MAX_PARAMETERS:
+            raise HushError(PROGRAM_LIMIT_EXCEEDED, "too many parameters")
+        suggested = await self._suggested_types(tree, msg.param_oids, count, to_catalog)
+        param_types = statements.infer_parameter_types(tree, msg.param_oids, count, suggested)
+        self.statements[msg.name] = Prepared(st, param_types, to_catalog)
+        return [codec.ParseComplete()]
+
+    async def _suggested_types(self, tree: exp.Expression | None, declared: Sequence[int],
+                               count: int, to_catalog: bool) -> list[int | None]:
+        """Types the engine infers for untyped parameters, when it offers
+        ``parameter_types(analyst, tree) -> list[type name | None]`` (one per $n). A planning
+        error here is left for Describe or Execute to report."""
+        infer = getattr(self.engine, "parameter_types", None)
+        untyped = any((declared[i] if i < len(declared) else 0) in (0, types.UNKNOWN_LITERAL)
+                      for i in range(count))
+        if infer is None or tree is None or to_catalog or not untyped:
+            return []
+        try:
+            names = await self._blocking(infer, self.analyst, tree.copy())
+        except HushError:
+            return []
+        return [types.oid_of(n) if n else None for n in list(names)[:count]]
+
+    def bind(self, msg: codec.Bind) -> list[Any]:
+        prepared = self._statement(msg.statement)
+        self._check_block(prepared.statement)
+        if msg.portal and msg.portal in self.portals:
+            raise HushError(DUPLICATE_CURSOR, f'cursor "{msg.portal}" already exists')
+        n = len(prepared.param_types)
+        if len(msg.params) != n:
+            raise HushError(PROTOCOL_VIOLATION, f"bind message supplies {len(msg.params)} "
+                            f"parameters, but prepared statement \"{msg.statement}\" requires {n}")
+        formats = msg.param_formats
+        if len(formats) not in (0, 1, n):
+            raise HushError(PROTOCOL_VIOLATION, f"bind message has {len(formats)} parameter "
+                                                f"formats but {n} parameters")
+        per_param = formats if len(formats) == n else (formats[0] if formats else 0,) * n
+        values = [types.decode_parameter(data, oid, fmt, i + 1) for i, (data, oid, fmt)
+                  in enumerate(zip(msg.params, prepared.param_types, per_param))]
+        tree = statements.statement_tree(prepared.statement)
+        bound = None
+        if tree is not None and n and not prepared.to_catalog:
+            bound = statements.bind(tree, values, prepared.param_types)
+        self.portals[msg.portal] = Portal(prepared, values, bound, msg.result_formats)
+        return [codec.BindComplete()]
+
+    async def describe(self, msg: codec.Describe) -> list[Any]:
+        if msg.kind == "S":
+            prepared = self._statement(msg.name)
+            self._check_block(prepared.statement)
+            if prepared.shape is False:
+                prepared.shape = await self._describe_statement(prepared)
+            out: list[Any] = [codec.ParameterDescription(prepared.param_types)]
+            shape = prepared.shape
+            assert shape is not False
+            out.append(codec.NoData() if shape is None else shape.description(shape.formats(())))
+            return out
+        portal = self._portal(msg.name)
+        self._check_block(portal.prepared.statement)
+        if portal.described is False:
+            portal.described = await self._describe_portal(portal)
+        shape = portal.described
+        assert shape is not False
+        if shape is None:
+            return [codec.NoData()]
+        return [shape.description(shape.formats(portal.result_formats))]
+
+    async def execute(self, msg: codec.Execute) -> list[Any]:
+        portal = self._portal(msg.portal)
+        out: list[Any] = []
+        if portal.outcome is None:
+            prepared = portal.prepared
+            self._check_block(prepared.statement)
+            portal.outcome = await self._run(prepared.statement, portal.tree, portal.values,
+                                             prepared.to_catalog)
+            out += portal.outcome.notices
+        outcome = portal.outcome
+        if outcome.empty:
+            return out + [codec.EmptyQueryResponse()]
+        if outcome.shape is None:
+            return out + [outcome.complete(0)]
+        told = portal.described if portal.described is not False else portal.prepared.shape
+        if told not in (False, None) and told != outcome.shape:
+            raise RuntimeError("the answer's columns differ from its description")
+        formats = outcome.shape.formats(portal.result_formats)
+        encoder = outcome.shape.encoder(formats)
+        end = len(outcome.rows) if msg.max_rows <= 0 else min(len(outcome.rows),
+                                                               portal.sent + msg.max_rows)
+        batch = [encoder.encode(r) for r in outcome.rows[portal.sent:end]]
+        portal.sent = end
+        out += batch
+        if end < len(outcome.rows):
+            return out + [codec.PortalSuspended()]
+        return out + [outcome.complete(len(batch))]
+
+    def close(self, msg: codec.Close) -> list[Any]:
+        # Closing what does not exist is not an error (protocol documentation, "Close").
+        if msg.kind == "S":
+            prepared = self.statements.pop(msg.name, None)
+            if prepared is not None:
+                for name in [n for n, p in self.portals.items() if p.prepared is prepared]:
+                    del self.portals[name]
+        else:
+            self.portals.pop(msg.name, None)
+        return [codec.CloseComplete()]
+
+    def sync(self) -> list[Any]:
+        if self.tx.status is TxStatus.IDLE:  # the implicit transaction ends: portals go
+            self.portals.clear()
+        self._implicit_start = None
+        return self.ready()
+
+    def _statement(self, name: str) -> Prepared:
+        prepared = self.statements.get(name)
+        if prepared is None:
+            what = f'prepared statement "{name}"' if name else "unnamed prepared statement"
+            raise HushError(INVALID_SQL_STATEMENT_NAME, f"{what} does not exist")
+        return prepared
+
+    def _portal(self, name: str) -> Portal:
+        portal = self.portals.get(name)
+        if portal is None:
+            what = f'portal "{name}"' if name else "unnamed portal"
+            raise HushError(INVALID_CURSOR_NAME, f"{what} does not exist")
+        return portal
+
+    async def _describe_statement(self, prepared: Prepared) -> types.ResultShape | None:
+        """Columns of a statement before its parameters are known."""
+        st = prepared.statement
+        tree = statements.statement_tree(st)
+        if tree is None or not prepared.param_types or prepared.to_catalog:
+            return await self._shape(st, None, [None] * len(prepared.param_types),
+                                     prepared.to_catalog)
+        # Plan with stand-in values: the columns of an answer do not depend on them.
+        stand_ins = statements.stand_in_values(tree, prepared.param_types)
+        bound = statements.bind(tree, stand_ins, prepared.param_types)
+        return await self._shape(st, bound, stand_ins, False)
+
+    async def _describe_portal(self, portal: Portal) -> types.ResultShape | None:
+        if portal.outcome is not None:
+            return portal.outcome.shape
+        st = portal.prepared.statement
+        if isinstance(st, ExplainStatement) or portal.prepared.to_catalog:
+            # Data-free and uncharged: run it now and keep the result for Execute.
+            portal.outcome = await self._run(st, portal.tree, portal.values,
+                                             portal.prepared.to_catalog)
+            return portal.outcome.shape
+        return await self._shape(st, portal.tree, portal.values, False)
+
+    async def _shape(self, st: Statement, tree: exp.Expression | None, values: list[Any],
+                     to_catalog: bool) -> types.ResultShape | None:
+        """The result columns of a statement without running it (where that is possible)."""
+        if isinstance(st, ShowStatement):
+            return _show_shape(st)
+        if isinstance(st, ExplainStatement):
+            target = tree if tree is not None else st.query.text
+            answer = await self._blocking(self.engine.explain, self.analyst, target,
+                                          epsilon=self._epsilon())
+            return types.ResultShape.of(answer.columns)
+        if isinstance(st, QueryStatement):
+            if to_catalog:
+                describe = getattr(self.catalog, "describe", None)
+                if describe is not None:
+                    columns = await self._blocking(describe, self.analyst, st.text)
+                else:
+                    columns, _ = await self._blocking(self.catalog.run, self.analyst, st.text,
+                                                      values)
+                return types.ResultShape.of(columns)
+            target = tree if tree is not None else st.text
+            columns = await self._blocking(self.engine.describe, self.analyst, target)
+            return types.ResultShape.of(columns)
+        return None
+
+    # ---- running statements ---------------------------------------------------------------
+
+    def _route(self, st: Statement) -> bool:
+        """True when a query goes to the catalog; raises its syntax error when nobody can take
+        it, and 0A000 for catalog queries when no catalog is plugged in."""
+        if not isinstance(st, QueryStatement):
+            if isinstance(st, ExplainStatement) and st.query.error is not None:
+                raise st.query.error
+            return False
+        if st.tree is None:
+            claim = getattr(self.catalog, "is_catalog_text", None)
+            if claim is not None and claim(st.text):
+                return True
+            assert st.error is not None
+            raise st.error
+        if self.catalog is not None:
+            return bool(self.catalog.is_catalog_query(st.tree))
+        if looks_like_catalog(st.tree):
+            raise HushError(FEATURE_NOT_SUPPORTED, "catalog queries are not available on this "
+                            "server", hint=CATALOG_HINT)
+        return False
+
+    def _check_block(self, st: Statement) -> None:
+        """Raises 25P02 when a failed transaction block refuses this statement."""
+        event = _tx_event(st)
+        if self.tx.status is TxStatus.FAILED and self.tx.peek(event).refuse is not None:
+            raise HushError(*self.tx.peek(event).refuse, hint=_FAILED_HINT)
+
+    async def _run(self, st: Statement, tree: exp.Expression | None, values: list[Any],
+                   to_catalog: bool) -> Outcome:
+        """Runs one statement; raises HushError."""
+        if isinstance(st, TransactionStatement):
+            return self._transaction(st)
+        step = self.tx.step(TxEvent.OUTSIDE_BLOCK_ONLY if isinstance(st, DiscardStatement)
+                            and st.all else TxEvent.STATEMENT)
+        if step.refuse is not None:
+            raise HushError(*step.refuse, hint=_FAILED_HINT if step.next is TxStatus.FAILED
+                            and step.refuse[0] == "25P02" else None)
+        if isinstance(st, EmptyStatement):
+            return Outcome(None, empty=True)
+        if isinstance(st, QueryStatement):
+            if to_catalog:
+                return await self._catalog(st, values)
+            return await self._answer(tree if tree is not None else st.text)
+        if isinstance(st, ExplainStatement):
+            target = tree if tree is not None else st.query.text
+            answer = await self._blocking(self.engine.explain, self.analyst, target,
+                                          epsilon=self._epsilon())
+            return Outcome(types.ResultShape.of(answer.columns), list(answer.rows), "EXPLAIN")
+        if isinstance(st, SetStatement):
+            return self._set(st)
+        if isinstance(st, ShowStatement):
+            return await self._show(st)
+        if isinstance(st, ResetStatement):
+            if st.name is None:
+                self._reset_all()
+            else:
+                self._set(SetStatement(st.name, None))
+            return Outcome(None, tag="RESET")
+        if isinstance(st, DiscardStatement):
+            if st.all:
+                self._reset_all()
+                self.statements.clear()
+                self.portals.clear()
+            return Outcome(None, tag=st.tag)
+        if isinstance(st, DeallocateStatement):
+            if st.name is None:
+                self.statements = {k: v for k, v in self.statements.items() if k == ""}
+                return Outcome(None, tag="DEALLOCATE ALL")
+            if st.name not in self.statements:
+                raise HushError(INVALID_SQL_STATEMENT_NAME,
+                                f'prepared statement "{st.name}" does not exist')
+            del self.statements[st.name]
+            return Outcome(None, tag="DEALLOCATE")
+        if isinstance(st, NoopStatement):
+            return Outcome(None, tag=st.tag)
+        raise TypeError(f"unhandled statement {type(st).__name__}")
+
+    async def _answer(self, target: str | exp.Expression) -> Outcome:
+        epsilon = self._epsilon()
+        try:
+            answer = await self._controlled(self.engine.answer, self.analyst, target,
+                                            epsilon=epsilon)
+        except HushError as err:
+            log.info("answer analyst=%s epsilon=%s outcome=%s", self.analyst,
+                     epsilon if epsilon is not None else "default", err.sqlstate)
+            raise
+        log.info("answer analyst=%s epsilon=%s outcome=ok", self.analyst, answer.epsilon)
+        return Outcome(types.ResultShape.of(answer.columns), list(answer.rows), "SELECT",
+                       [answer_notice(answer)])
+
+    async def _catalog(self, st: QueryStatement, values: list[Any]) -> Outcome:
+        columns, rows = await self._blocking(self.catalog.run, self.analyst, st.text, values)
+        return Outcome(types.ResultShape.of(columns), list(rows), "SELECT")
+
+    def _epsilon(self) -> Decimal | None:
+        value = self.values[settings.EPSILON]
+        return Decimal(value) if value else None
+
+    async def _blocking(self, fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
+        """Runs a blocking call in the executor; its HushErrors pass, anything else becomes
+        an internal error (logged without its text)."""
+        loop = asyncio.get_running_loop()
+        try:
+            return await loop.run_in_executor(self.executor,
+                                               functools.partial(fn, *args, **kwargs))
+        except HushError:
+            raise
+        except Exception as exc:
+            log_internal(getattr(fn, "__name__", "call"), exc)
+            raise internal_error() from None
+
+    async def _controlled(self, fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
+        """Like _blocking, with a QueryControl the session can cancel (CancelRequest, a timeout,
+        a vanished client)."""
+        control = QueryControl()
+        self._running, self._cancel_reason = control, None
+        loop = asyncio.get_running_loop()
+        timeout_ms = settings.parse_duration_ms(self.values["statement_timeout"])
+        timer = loop.call_later(timeout_ms / 1000, self.cancel, "timeout") if timeout_ms else None
+        try:
+            return await self._blocking(fn, *args, control=control, **kwargs)
+        except HushError as err:  # after our own cancel, say why it was cancelled
+            if self._cancel_reason is not None and err.sqlstate in (INTERNAL_ERROR,
+                                                                    QUERY_CANCELED):
+                raise self._cancelled() from None
+            raise
+        except asyncio.CancelledError:  # the connection is going away; stop the backend work too
+            self._cancel_reason = "vanished"
+            threading.Thread(target=control.cancel, name="hushql-cancel", daemon=True).start()
+            raise
+        finally:
+            if timer is not None:
+                timer.cancel()
+            self._running = None
+
+    def _cancelled(self) -> HushError:
+        if self._cancel_reason == "timeout":
+            return HushError(QUERY_CANCELED, "canceling statement due to statement timeout")
+        return HushError(QUERY_CANCELED, "canceling statement due to user request")
+
+    def cancel(self, reason: str = "user") -> None:
+        """Cancels the running query, if any. QueryControl.cancel() may block on the backend,
+        so it runs on a thread of its own rather than the event loop or the busy executor."""
+        control = self._running
+        if control is not None:
+            self._cancel_reason = reason
+            threading.Thread(target=control.cancel, name="hushql-cancel", daemon=True).start()
+
+    # ---- transactions ---------------------------------------------------------------------
+
+    def _statement_failed(self) -> None:
+        """An error: fails an explicit block, or undoes the settings changed by the implicit
+        transaction (the message or batch so far), as PostgreSQL rolls it back."""
+        self.tx.step(TxEvent.STATEMENT_FAILED)
+        if self.tx.status is TxStatus.IDLE and self._implicit_start is not None:
+            self.values = dict(self._implicit_start)
+            self._local_undo = {}
+
+    def _transaction(self, st: TransactionStatement) -> Outcome:
+        before = self.tx.status
+        step = self.tx.step(st.event)
+        if step.refuse is not None:
+            raise HushError(*step.refuse)
+        notices = [codec.NoticeResponse.build("WARNING", *step.warn)] if step.warn else []
+        if st.event is TxEvent.BEGIN and before is TxStatus.IDLE:
+            self._block_start = dict(self.values)
+            self._savepoints = []
+        elif st.event is TxEvent.SAVEPOINT:
+            assert st.savepoint is not None
+            self._savepoints.append((st.savepoint, dict(self.values)))
+        elif st.event in (TxEvent.RELEASE, TxEvent.ROLLBACK_TO):
+            names = [n for n, _ in self._savepoints]
+            if st.savepoint not in names:
+                raise HushError(INVALID_SAVEPOINT, f'savepoint "{st.savepoint}" does not exist')
+            at = len(names) - 1 - names[::-1].index(st.savepoint)
+            if st.event is TxEvent.RELEASE:
+                del self._savepoints[at:]
+            else:
+                self.values = dict(self._savepoints[at][1])
+                del self._savepoints[at + 1:]
+        self._end_block(step)
+        if st.chain and step.ends_block:
+            self.tx.step(TxEvent.BEGIN)
+            self._block_start = dict(self.values)
+        return Outcome(None, tag=step.tag or st.tag, notices=notices)
+
+    def _end_block(self, step: TxStep) -> None:
+        if not step.ends_block:
+            return
+        if step.rolls_back and self._block_start is not None:
+            self.values = dict(self._block_start)
+        else:
+            self.values.update(self._local_undo)
+        self._block_start, self._local_undo, self._savepoints = None, {}, []
+        self._implicit_start = dict(self.values)  # what follows starts a new implicit one
+        self.portals = {}
+
+    # ---- settings -------------------------------------------------------------------------
+
+    def _assign(self, key: str, value: str | None) -> None:
+        """Checks and stores one setting (None: its session default); raises HushError."""
+        if key == settings.EPSILON:
+            if value is None or value == "":
+                self.values[key] = self.defaults.get(key, "")
+                return
+            largest = self.engine.policies.defaults.largest_epsilon_per_query
+            self.values[key] = format(parse_epsilon(value, largest), "f")
+            return
+        if value is None:
+            settings.normalise(key, self.defaults[key])  # still refuses read-only names
+            self.values[key] = self.defaults[key]
+            return
+        self.values[key] = settings.normalise(key, value, self.values.get(key))
+
+    def _set(self, st: SetStatement) -> Outcome:
+        key = settings.lookup(st.name).name.lower()
+        notices = []
+        if st.local:
+            if self.tx.status is TxStatus.IDLE:
+                notices.append(codec.NoticeResponse.build(
+                    "WARNING", "25P01", "SET LOCAL can only be used in transaction blocks"))
+                self._assign_checked_only(key, st.value)
+                return Outcome(None, tag="SET", notices=notices)
+            self._local_undo.setdefault(key, self.values[key])
+        else:
+            self._local_undo.pop(key, None)
+        self._assign(key, st.value)
+        return Outcome(None, tag="SET", notices=notices)
+
+    def _assign_checked_only(self, key: str, value: str | None) -> None:
+        saved = dict(self.values)
+        try:
+            self._assign(key, value)
+        finally:
+            self.values = saved
+
+    def _reset_all(self) -> None:
+        for key, setting in settings.SETTINGS.items():
+            if setting.check is not None or key == settings.EPSILON:
+                self.values[key] = self.defaults[key]
+
+    async def _show(self, st: ShowStatement) -> Outcome:
+        if st.name == "all":
+            rows = []
+            for key, setting in settings.SETTINGS.items():
+                rows.append((setting.name, await self._setting_value(key), setting.description))
+            return Outcome(_show_shape(st), rows, "SHOW")
+        setting = settings.lookup(st.name)
+        value = await self._setting_value(setting.name.lower())
+        return Outcome(_show_shape(st), [(value,)], "SHOW")
+
+    async def _setting_value(self, key: str) -> str:
+        if key == settings.REMAINING:
+            remaining = await self._blocking(self.engine.remaining, self.analyst)
+            return format(remaining, "f")
+        if key == settings.EPSILON and not self.values[key]:
+            return format(Decimal(self.engine.policies.defaults.epsilon_per_query), "f")
+        return self.values[key]
+
+
+_FAILED_HINT = "Send ROLLBACK to end the failed transaction block."
+
+
+def _show_shape(st: ShowStatement) -> types.ResultShape:
+    if st.name == "all":
+        return types.ResultShape.of([("name", "text"), ("setting", "text"),
+                                     ("description", "text")])
+    name = settings.SETTINGS.get(settings.ALIASES.get(st.name, st.name))
+    return types.ResultShape.of([(name.name if name else st.name, "text")])
+
+
+def _tx_event(st: Statement) -> TxEvent:
+    if isinstance(st, TransactionStatement):
+        return st.event
+    if isinstance(st, DiscardStatement) and st.all:
+        return TxEvent.OUTSIDE_BLOCK_ONLY
+    return TxEvent.STATEMENT
+
+
+def _options_pairs(options: str) -> list[tuple[str, str]]:
+    """(name, value) pairs from a startup 'options' string: '-c name=value' or '--name=value',
+    separated by spaces, with backslash escaping a space (libpq's convention)."""
+    words, current, escaped = [], [], False
+    for ch in options:
+        if escaped:
+            current.append(ch)
+            escaped = False
+        elif ch == "\\":
+            escaped = True
+        elif ch.isspace():
+            if current:
+                words.append("".join(current))
+                current = []
+        else:
+            current.append(ch)
+    if current:
+        words.append("".join(current))
+    pairs, i = [], 0
+    while i < len(words):
+        w = words[i]
+        if w == "-c" and i + 1 < len(words):
+            w, i = words[i + 1], i + 1
+        elif w.startswith("--"):
+            w = w[2:]
+        elif w.startswith("-c"):
+            w = w[2:]
+        else:
+            raise HushError(FEATURE_NOT_SUPPORTED, "startup options other than -c name=value "
+                            "are not supported")
+        if "=" not in w:
+            raise HushError("22023", "startup option needs the form name=value")
+        name, value = w.split("=", 1)
+        pairs.append((name.replace("-", "_"), value))
+        i += 1
+    return pairs
