@@ -34,6 +34,7 @@ from proxy.ledger import Ledger
 from proxy.policy import ColumnPolicy, Policies
 from proxy.sql.analyse import analyse
 from proxy.sql.domains import domain_values
+from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
 from proxy.sql.postprocess import postprocess
 from proxy.sql.rewrite import PICK_SALT_SETTING, Rewritten, rewrite
@@ -120,6 +121,10 @@ class Engine:
         """The columns an answer would have; plans only."""
         plan = self.prepare(analyst, statement).plan
         return [OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs]
+
+    def parameter_types(self, analyst: str, tree: exp.Expression) -> list[str | None]:
+        """Types of untyped ``$n`` parameters from the columns they are compared with."""
+        return parameter_types(tree, self.policies, analyst)
 
     def epsilon_for(self, epsilon: Decimal | str | None) -> Decimal:
         """The epsilon a query runs with: the session's, else the policy default; validated."""
