@@ -81,6 +81,7 @@ class Engine:
         self._cache: OrderedDict[tuple[str, str], Prepared] = OrderedDict()
         self._cache_size = plan_cache_size
         self._cache_lock = threading.Lock()
+        self._exact: dict[str, frozenset[str]] = {}
         ledger.sync_budgets(policies)
 
     @classmethod
@@ -107,7 +108,7 @@ class Engine:
                     self._cache.move_to_end(key)
                     return cached
         plan = analyse(statement, self.policies, analyst)
-        rewritten = rewrite(plan)
+        rewritten = rewrite(plan, self._exact_columns(plan.table.table))
         prepared = Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                             fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16])
         if key is not None:
@@ -116,6 +117,22 @@ class Engine:
                 if len(self._cache) > self._cache_size:
                     self._cache.popitem(last=False)
         return prepared
+
+    def _exact_columns(self, table: str) -> frozenset[str]:
+        """Number columns of ``table`` whose backend type is numeric (summed exactly); looked up
+        once per table. On any doubt, none: sums are then rounded to steps per row."""
+        with self._cache_lock:
+            known = self._exact.get(table)
+        if known is None:
+            try:
+                types = self.backend.column_types(self.policies.tables[table].source)
+            except Exception:
+                log.warning("could not read the column types of table %s", table)
+                types = {}
+            known = frozenset(name for name, kind in types.items() if kind.startswith("numeric"))
+            with self._cache_lock:
+                self._exact[table] = known
+        return known
 
     def describe(self, analyst: str, statement: str | exp.Expression) -> list[OutputColumn]:
         """The columns an answer would have; plans only."""

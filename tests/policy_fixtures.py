@@ -69,6 +69,11 @@ range = [0, 60]
 kind = "date"
 range = ["2026-01-01", "2026-12-31"]
 bucket = "month"
+
+[columns.fee]
+kind = "number"
+range = [0, 50]
+step = 0.25
 """
 
 
@@ -119,5 +124,6 @@ def load_clinic(dsn: str, *, people: int = 2000, seed: int = 7) -> None:
             SELECT p.person_id,
                    (ARRAY['north','south','east','west'])[1 + (p.person_id + v) % 4] AS ward,
                    CASE WHEN v % 17 = 0 THEN 75 ELSE (p.person_id * 3 + v * 7) % 61 END AS minutes,
-                   DATE '2026-01-01' + ((p.person_id * 5 + v * 29) % 380) AS visited
+                   DATE '2026-01-01' + ((p.person_id * 5 + v * 29) % 380) AS visited,
+                   round(((p.person_id * 7 + v * 13) % 6000) / 97.0, 3)::numeric AS fee
             FROM clinic.people p, generate_series(1, 1 + p.person_id % 9) AS v""")

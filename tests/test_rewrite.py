@@ -29,11 +29,11 @@ def clinic(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
         yield conn, policies
 
 
-def measures_of(clinic, sql: str) -> list[tuple]:
+def measures_of(clinic, sql: str, exact: frozenset[str] = frozenset()) -> list[tuple]:
     """The rewrite's noise-free rows for ``sql``: key ordinals dropped, measures as ints."""
     conn, policies = clinic
     plan = analyse(sql, policies, "tester")
-    rewritten = rewrite(plan)
+    rewritten = rewrite(plan, exact)
     with conn.transaction():
         conn.execute("SELECT set_config(%s, 'fixed-test-salt', true)", (PICK_SALT_SETTING,))
         rows = conn.execute(rewritten.sql).fetchall()
@@ -99,6 +99,21 @@ def test_rewrite_matches_reference_sql(clinic, query: str, expected: str) -> Non
     want = reference(clinic, expected)
     # The measures of each cell, in the plan's order, must equal the reference's columns.
     assert got == want
+
+
+EXACT_WEIGHT_UNITS = ("floor(sum(CASE WHEN weight > 120 THEN 120 WHEN weight < -5 THEN -5 "
+                      "ELSE weight END) / 0.5 + 0.5)")
+
+
+@pytest.mark.parametrize("query, expected", [
+    ("SELECT SUM(weight) FROM people", f"SELECT {EXACT_WEIGHT_UNITS} FROM clinic.people"),
+    ("SELECT ward, SUM(weight) FROM people GROUP BY ward",
+     f"SELECT (SELECT {EXACT_WEIGHT_UNITS} FROM clinic.people p WHERE p.ward = w.v) "
+     f"FROM {WARDS} ORDER BY w.i"),
+])
+def test_numeric_sums_are_exact_then_converted_to_steps_once(clinic, query: str, expected: str) -> None:
+    # weight is numeric in the backend: clamped values add up exactly, then become steps.
+    assert measures_of(clinic, query, frozenset({"weight"})) == reference(clinic, expected)
 
 
 def test_empty_cells_are_zero_and_outside_values_are_not_counted(clinic) -> None:

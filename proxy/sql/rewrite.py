@@ -10,7 +10,9 @@ returns rows of the table, never sorts, limits or filters on aggregates.
 Row tables (each row is one individual)
 ---------------------------------------
 Every summed value is clamped to its declared range on the column's own type, then counted in
-units of the column's step (``round(LEAST(GREATEST(x, lo), hi) / step)``, NULL stays NULL). Rows whose keys fall
+units of the column's step: per row (``round(LEAST(GREATEST(x, lo), hi) / step)``) for inexact
+types, or once per cell (``floor(SUM(LEAST(GREATEST(x, lo), hi)) / step + 0.5)``) for numeric
+columns, whose sums are exact (see ``_in_column_units``). NULL stays NULL. Rows whose keys fall
 outside the declared domains are aggregated into groups that are then dropped by joining the
 finished aggregate to the domain list. Adding or removing one row changes one cell by at most 1
 for a count and by at most ``M = max(|lo|, |hi|) / step`` for a sum, so the L1 sensitivity of the
@@ -65,21 +67,25 @@ class Rewritten:
     needs_salt: bool = False  # the query reads PICK_SALT_SETTING: set it per query
 
 
-def rewrite(plan: Plan) -> Rewritten:
-    """Build the backend query and sensitivities of an analysed plan. Pure."""
+def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritten:
+    """Build the backend query and sensitivities of an analysed plan. Pure.
+
+    ``exact_columns`` names number columns whose backend type is exact (numeric): their clamped
+    values are summed exactly and turned into step units once per cell instead of per row.
+    """
     policy = plan.table
     sizes = [domain_size(_key_column(policy, k), k.bucket) for k in plan.keys]
     cells = 1
     for size in sizes:
         cells *= size
     if policy.individual is None:
-        tree = _row_table_query(plan)
+        tree = _row_table_query(plan, exact_columns)
         groups_kept = None
         factor = 1
         rows_cap = 1
     else:
         groups_kept = min(policy.individual.groups_cap, cells)
-        tree = _individual_table_query(plan, groups_kept, cells)
+        tree = _individual_table_query(plan, groups_kept, cells, exact_columns)
         factor = groups_kept
         rows_cap = policy.individual.rows_cap
     sensitivities = tuple(
@@ -131,7 +137,7 @@ def _literal(value: object) -> exp.Expression:
     if isinstance(value, int):
         return _num(value)
     if isinstance(value, dt.date):
-        return exp.cast(exp.Literal.string(value.isoformat()), "date")
+        return exp.cast(exp.Literal.string(value.isoformat()), "date", copy=False)
     return exp.Literal.string(str(value))
 
 
@@ -163,33 +169,65 @@ def _key_expression(policy: TablePolicy, key: GroupKey) -> exp.Expression:
     start, end = date_range(policy.columns[key.column])
     inside = exp.Between(this=_col(key.column), low=_literal(start), high=_literal(end))
     trunc = exp.cast(exp.Anonymous(this="date_trunc",
-                                   expressions=[exp.Literal.string(key.bucket), column]), "date")
+                                   expressions=[exp.Literal.string(key.bucket), column]), "date", copy=False)
     return exp.Case(ifs=[exp.If(this=inside, true=trunc)])
 
 
-def _row_value(policy: TablePolicy, measure: Measure) -> exp.Expression:
+def _in_column_units(column: ColumnPolicy, name: str, exact: frozenset[str]) -> bool:
+    """Whether sums of this number column are kept in its own units until the cell is done.
+
+    For an exact backend type (numeric) the clamped values add up exactly, so the conversion to
+    step units, ``floor(total / step + 0.5)``, runs once per cell instead of a division per row.
+    It keeps the sensitivity: floor(x + 0.5) is monotone and commutes with integer shifts, so
+    totals differing by at most an integer number D of steps convert to integers at most D apart.
+    Inexact types (double precision) are rounded to steps per row, so their sums are integers.
+    """
+    return column.kind == "number" and name in exact
+
+
+def _row_value(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> exp.Expression:
     """What one row contributes to a sum: clamped on the column's own type first (so nothing
-    after it can overflow), then, for number columns, divided by the step and rounded."""
+    after it can overflow), then, unless summed in column units, rounded to step units."""
     column = policy.columns[measure.column]  # type: ignore[index]
     low, high = _unit_range(column)
     if column.kind == "integer":
         return _clamp(_col(measure.column), low, high)  # type: ignore[arg-type]
-    clamped = _least(_greatest(_col(measure.column), exp.Literal.number(str(column.low))),  # type: ignore[arg-type]
-                     exp.Literal.number(str(column.high)))
+    clamped = _least(_greatest(_col(measure.column), _decimal(column.low)),  # type: ignore[arg-type]
+                     _decimal(column.high))
+    if _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
+        return clamped
     # round() by name: sqlglot's Round node would add a per-row cast to double precision;
     # typed=True keeps PostgreSQL's own division (no cast).
     return exp.Anonymous(this="round", expressions=[
-        exp.Div(this=clamped, expression=exp.Literal.number(str(column.unit)), typed=True)])
+        exp.Div(this=clamped, expression=_decimal(column.unit), typed=True)])
 
 
-def _aggregate(policy: TablePolicy, measure: Measure) -> exp.Expression:
-    """The row-level aggregate computing ``measure`` over one group of rows."""
+def _decimal(value: object) -> exp.Expression:
+    number = Decimal(str(value))
+    literal = exp.Literal.number(str(abs(number)))
+    return exp.Neg(this=literal) if number < 0 else literal
+
+
+def _to_units(total: exp.Expression, column: ColumnPolicy) -> exp.Expression:
+    """floor(total / step + 0.5): a finished sum in column units as an integer of steps."""
+    ratio = exp.Div(this=total, expression=_decimal(column.unit), typed=True)
+    return exp.Anonymous(this="floor", expressions=[exp.Add(this=ratio, expression=_decimal("0.5"))])
+
+
+def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
+               finish: bool = True) -> exp.Expression:
+    """The row-level aggregate computing ``measure`` over one group of rows; with ``finish``
+    False a sum kept in column units is left unconverted (per-individual partials)."""
     if measure.kind == "count_rows":
         return exp.Count(this=exp.Star())
     if measure.kind == "count_values":
         return exp.Count(this=_col(measure.column))  # type: ignore[arg-type]
     if measure.kind == "sum":
-        return exp.Sum(this=_row_value(policy, measure))
+        total: exp.Expression = exp.Sum(this=_row_value(policy, measure, exact))
+        column = policy.columns[measure.column]  # type: ignore[index]
+        if finish and _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
+            total = _to_units(total, column)
+        return total
     raise AssertionError(measure.kind)
 
 
@@ -201,11 +239,11 @@ def _domain_source(policy: TablePolicy, key: GroupKey, index: int) -> exp.Expres
     if column.kind == "integer" and key.bucket is None:
         low, high = (int(v) for v in column.range)  # type: ignore[union-attr]
         series = exp.Anonymous(this="generate_series", expressions=[_num(low), _num(high)])
-        inner = exp.select(
-            exp.alias_(exp.Sub(this=exp.column("v"), expression=_num(low)), "i"),
-            exp.column("v")).from_(
+        inner = exp.Select().select(
+            exp.alias_(exp.Sub(this=exp.column("v"), expression=_num(low)), "i", copy=False),
+            exp.column("v"), copy=False).from_(
             exp.Table(this=series, alias=exp.TableAlias(this=exp.to_identifier("s"),
-                                                          columns=[exp.to_identifier("v")])))
+                                                          columns=[exp.to_identifier("v")])), copy=False)
         return exp.Subquery(this=inner, alias=alias)
     rows = [exp.Tuple(expressions=[_num(i), _literal(v)])
             for i, v in enumerate(domain_values(column, key.bucket))]
@@ -216,7 +254,7 @@ def _key_matches(key: GroupKey, policy: TablePolicy, grouped: exp.Expression,
                  domain_value: exp.Expression) -> exp.Expression:
     """Join condition between a grouped key and a domain value; categories compare as text."""
     if _key_column(policy, key).kind == "category":
-        grouped = exp.cast(grouped, "text")
+        grouped = exp.cast(grouped, "text", copy=False)
     return exp.EQ(this=grouped, expression=domain_value)
 
 
@@ -230,9 +268,9 @@ def _source(policy: TablePolicy) -> exp.Table:
 
 
 def _filtered(plan: Plan, select: exp.Select) -> exp.Select:
-    select = select.from_(_source(plan.table))
+    select = select.from_(_source(plan.table), copy=False)
     if plan.where is not None:
-        select = select.where(plan.where.copy())
+        select = select.where(plan.where.copy(), copy=False)
     return select
 
 
@@ -240,12 +278,12 @@ def _cells_frame(plan: Plan) -> exp.Select:
     """SELECT i0, v0, i1, v1, ... over every declared cell (a cross join of the domains)."""
     projections: list[exp.Expression] = []
     for j in range(len(plan.keys)):
-        projections += [exp.alias_(exp.column("i", f"d{j}"), f"i{j}"),
-                        exp.alias_(exp.column("v", f"d{j}"), f"v{j}")]
-    select = exp.select(*projections)
+        projections += [exp.alias_(exp.column("i", f"d{j}"), f"i{j}", copy=False),
+                        exp.alias_(exp.column("v", f"d{j}"), f"v{j}", copy=False)]
+    select = exp.Select().select(*projections, copy=False)
     for j, key in enumerate(plan.keys):
         source = _domain_source(plan.table, key, j)
-        select = select.from_(source) if j == 0 else select.join(source, join_type="cross")
+        select = select.from_(source, copy=False) if j == 0 else select.join(source, join_type="cross", copy=False)
     return select
 
 
@@ -257,43 +295,44 @@ def _finish(plan: Plan, aggregate: exp.Select, by_ordinal: bool) -> exp.Select:
     Rows come back in domain order, one per cell.
     """
     policy = plan.table
-    outer = exp.select(*[exp.column(f"i{j}", "c") for j in range(len(plan.keys))],
+    outer = exp.Select().select(*[exp.column(f"i{j}", "c") for j in range(len(plan.keys))],
                        *[exp.alias_(exp.Coalesce(this=exp.column(f"m{n}", "a"),
-                                                 expressions=[_num(0)]), f"m{n}")
-                         for n in range(len(plan.measures))])
+                                                 expressions=[_num(0)]), f"m{n}", copy=False)
+                         for n in range(len(plan.measures))], copy=False)
     outer = outer.from_(exp.Subquery(this=_cells_frame(plan),
-                                     alias=exp.TableAlias(this=exp.to_identifier("c"))))
+                                     alias=exp.TableAlias(this=exp.to_identifier("c"))), copy=False)
     conditions = [
         exp.EQ(this=exp.column(f"i{j}", "a"), expression=exp.column(f"i{j}", "c")) if by_ordinal
         else _key_matches(key, policy, exp.column(f"k{j}", "a"), exp.column(f"v{j}", "c"))
         for j, key in enumerate(plan.keys)]
     outer = outer.join(exp.Subquery(this=aggregate, alias=exp.TableAlias(this=exp.to_identifier("a"))),
-                       on=exp.and_(*conditions), join_type="left")
-    return outer.order_by(*[exp.column(f"i{j}", "c") for j in range(len(plan.keys))])
+                       on=exp.and_(*conditions, copy=False), join_type="left", copy=False)
+    return outer.order_by(*[exp.column(f"i{j}", "c") for j in range(len(plan.keys))], copy=False)
 
 
 def _in_domains(plan: Plan, grouped: exp.Select, alias: str) -> exp.Select:
     """The rows of ``grouped`` (key columns k0..) whose keys lie in the declared domains, with
     their ordinals i0.. added; rows outside the domains drop out of the inner joins."""
-    select = exp.select(*[exp.column(p.alias_or_name, alias) for p in grouped.expressions]).from_(
-        exp.Subquery(this=grouped, alias=exp.TableAlias(this=exp.to_identifier(alias))))
+    select = exp.Select().select(*[exp.column(p.alias_or_name, alias) for p in grouped.expressions], copy=False).from_(
+        exp.Subquery(this=grouped, alias=exp.TableAlias(this=exp.to_identifier(alias))), copy=False)
     for j, key in enumerate(plan.keys):
         source = _domain_source(plan.table, key, j)
         select = select.join(source, on=_key_matches(key, plan.table, exp.column(f"k{j}", alias),
-                                                     exp.column("v", f"d{j}")), join_type="inner")
-        select = select.select(exp.alias_(exp.column("i", f"d{j}"), f"i{j}"))
+                                                     exp.column("v", f"d{j}")), join_type="inner", copy=False)
+        select = select.select(exp.alias_(exp.column("i", f"d{j}"), f"i{j}", copy=False), copy=False)
     return select
 
 
-def _row_table_query(plan: Plan) -> exp.Select:
+def _row_table_query(plan: Plan, exact: frozenset[str]) -> exp.Select:
     policy = plan.table
-    measures = [exp.alias_(exp.Coalesce(this=_aggregate(policy, m), expressions=[_num(0)]), f"m{n}")
+    measures = [exp.alias_(exp.Coalesce(this=_aggregate(policy, m, exact), expressions=[_num(0)]),
+                           f"m{n}", copy=False)
                 for n, m in enumerate(plan.measures)]
     if not plan.keys:
-        return _filtered(plan, exp.select(*measures))
-    keys = [exp.alias_(_key_expression(policy, k), f"k{j}") for j, k in enumerate(plan.keys)]
-    grouped = _filtered(plan, exp.select(*keys, *measures)).group_by(
-        *[_num(j + 1) for j in range(len(keys))])
+        return _filtered(plan, exp.Select().select(*measures, copy=False))
+    keys = [exp.alias_(_key_expression(policy, k), f"k{j}", copy=False) for j, k in enumerate(plan.keys)]
+    grouped = _filtered(plan, exp.Select().select(*keys, *measures, copy=False)).group_by(
+        *[_num(j + 1) for j in range(len(keys))], copy=False)
     return _finish(plan, grouped, by_ordinal=False)
 
 
@@ -303,9 +342,9 @@ def _shuffle_key(plan: Plan) -> exp.Expression:
     The salt is a fresh random value per query (setting ``PICK_SALT_SETTING``), so the order
     depends only on the individual's own cells and on randomness independent of the data.
     """
-    parts: list[exp.Expression] = [exp.cast(exp.column("who", "p"), "text")]
+    parts: list[exp.Expression] = [exp.cast(exp.column("who", "p"), "text", copy=False)]
     for j in range(len(plan.keys)):
-        parts += [exp.Literal.string(":"), exp.cast(exp.column("i", f"d{j}"), "text")]
+        parts += [exp.Literal.string(":"), exp.cast(exp.column("i", f"d{j}"), "text", copy=False)]
     parts += [exp.Literal.string(":"), exp.Anonymous(
         this="current_setting", expressions=[exp.Literal.string(PICK_SALT_SETTING)])]
     text = parts[0]
@@ -314,25 +353,26 @@ def _shuffle_key(plan: Plan) -> exp.Expression:
     return exp.MD5(this=text)
 
 
-def _individual_table_query(plan: Plan, groups_kept: int, cells: int) -> exp.Select:
+def _individual_table_query(plan: Plan, groups_kept: int, cells: int,
+                            exact: frozenset[str]) -> exp.Select:
     policy = plan.table
     assert policy.individual is not None
     rows_cap = policy.individual.rows_cap
-    who = exp.alias_(_col(policy.individual.column), "who")
-    keys = [exp.alias_(_key_expression(policy, k), f"k{j}") for j, k in enumerate(plan.keys)]
-    partials = [exp.alias_(_aggregate(policy, m), f"m{n}")
+    who = exp.alias_(_col(policy.individual.column), "who", copy=False)
+    keys = [exp.alias_(_key_expression(policy, k), f"k{j}", copy=False) for j, k in enumerate(plan.keys)]
+    partials = [exp.alias_(_aggregate(policy, m, exact, finish=False), f"m{n}", copy=False)
                 for n, m in enumerate(plan.measures) if m.kind != "count_individuals"]
-    per_individual = _filtered(plan, exp.select(who, *keys, *partials)).group_by(
-        *[_num(j + 1) for j in range(len(keys) + 1)])
+    per_individual = _filtered(plan, exp.Select().select(who, *keys, *partials, copy=False)).group_by(
+        *[_num(j + 1) for j in range(len(keys) + 1)], copy=False)
     if plan.keys:
         kept = _in_domains(plan, per_individual, "p")
         if groups_kept < cells:
             pick = exp.Window(this=exp.RowNumber(), partition_by=[exp.column("who", "p")],
                               order=exp.Order(expressions=[exp.Ordered(this=_shuffle_key(plan))]))
-            kept.set("expressions", kept.expressions + [exp.alias_(pick, "pick")])
-            kept = exp.select(exp.Star()).from_(
-                exp.Subquery(this=kept, alias=exp.TableAlias(this=exp.to_identifier("r")))).where(
-                exp.LTE(this=exp.column("pick", "r"), expression=_num(groups_kept)))
+            kept.set("expressions", kept.expressions + [exp.alias_(pick, "pick", copy=False)])
+            kept = exp.Select().select(exp.Star(), copy=False).from_(
+                exp.Subquery(this=kept, alias=exp.TableAlias(this=exp.to_identifier("r"))), copy=False).where(
+                exp.LTE(this=exp.column("pick", "r"), expression=_num(groups_kept)), copy=False)
     else:
         kept = per_individual
     frame_alias = "q"
@@ -342,15 +382,22 @@ def _individual_table_query(plan: Plan, groups_kept: int, cells: int) -> exp.Sel
         if measure.kind == "count_individuals":
             total: exp.Expression = exp.Count(this=exp.Star())
         elif measure.kind == "sum":
-            low, high = _unit_range(policy.columns[measure.column])  # type: ignore[index]
-            total = exp.Sum(this=_clamp(partial, rows_cap * min(low, 0), rows_cap * max(high, 0)))
+            column = policy.columns[measure.column]  # type: ignore[index]
+            if _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
+                low, high = Decimal(column.low), Decimal(column.high)
+                floor, ceiling = _decimal(rows_cap * min(low, 0)), _decimal(rows_cap * max(high, 0))
+                total = _to_units(exp.Sum(this=_least(_greatest(partial, floor), ceiling)), column)
+            else:
+                low_u, high_u = _unit_range(column)
+                total = exp.Sum(this=_clamp(partial, rows_cap * min(low_u, 0),
+                                            rows_cap * max(high_u, 0)))
         else:
             total = exp.Sum(this=_least(partial, _num(rows_cap)))
-        capped.append(exp.alias_(exp.Coalesce(this=total, expressions=[_num(0)]), f"m{n}"))
+        capped.append(exp.alias_(exp.Coalesce(this=total, expressions=[_num(0)]), f"m{n}", copy=False))
     ordinals = [exp.column(f"i{j}", frame_alias).as_(f"i{j}") for j in range(len(plan.keys))]
-    summed = exp.select(*ordinals, *capped).from_(
-        exp.Subquery(this=kept, alias=exp.TableAlias(this=exp.to_identifier(frame_alias))))
+    summed = exp.Select().select(*ordinals, *capped, copy=False).from_(
+        exp.Subquery(this=kept, alias=exp.TableAlias(this=exp.to_identifier(frame_alias))), copy=False)
     if not plan.keys:
         return summed
-    summed = summed.group_by(*[exp.column(f"i{j}", frame_alias) for j in range(len(plan.keys))])
+    summed = summed.group_by(*[exp.column(f"i{j}", frame_alias) for j in range(len(plan.keys))], copy=False)
     return _finish(plan, summed, by_ordinal=True)
