@@ -334,8 +334,9 @@ def _print_examples(out: Console, backend: str, policies_dir: Path,
               for who, query, note in EXAMPLE_QUERIES]
     if listen is not None:
         host, port = listen
-        lines += [f"psql {_shell_quote(f'postgresql://planner@{host}:{port}/{DEMO_DATABASE}')}"
-                  "    # password planner-demo"]
+        planner = dict(demo_accounts())["planner"]
+        lines += [f"psql {_shell_quote(f'postgresql://planner:{planner}@{host}:{port}/{DEMO_DATABASE}')}"
+                  "    # the demo's invented planner account"]
     out.rule("hushql demo: try these")
     for line in lines:
         _say(out, line)
