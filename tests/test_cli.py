@@ -1,0 +1,77 @@
+"""The ``hushql`` command line: ask, check and hash-password, through the console script."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from proxy.demo import load_scenario
+from proxy.wire.auth import verify_password
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def hushql(*args: str, env: dict[str, str] | None = None, stdin: str | None = None):
+    return subprocess.run([sys.executable, "-m", "proxy.cli", *args], capture_output=True,
+                          text=True, input=stdin, timeout=120, cwd=ROOT,
+                          env={**os.environ, "COLUMNS": "200", **(env or {})})
+
+
+@pytest.fixture(scope="module")
+def demo_dsn(module_dsn: str) -> str:
+    load_scenario(module_dsn, households=300, progress=False)
+    return module_dsn
+
+
+def test_ask_prints_a_noisy_table_the_charge_and_the_bound(demo_dsn: str) -> None:
+    done = hushql("ask", "--as", "planner", "--backend", demo_dsn,
+                  "SELECT district, COUNT(*) FROM households GROUP BY district")
+    assert done.returncode == 0, done.stderr
+    for text in ("Northbank", "Old Mill", "Harbourside", "epsilon spent: 0.1", "remaining:",
+                 "95% of answers within ±30"):
+        assert text in done.stdout
+    again = hushql("ask", "--as", "planner", "--epsilon", "0.5",
+                   "SELECT COUNT(*) FROM households", env={"HUSHQL_BACKEND": demo_dsn})
+    assert again.returncode == 0, again.stderr
+    assert "epsilon spent: 0.5" in again.stdout and "remaining: 2.4" in again.stdout
+
+
+def test_ask_refusals_exit_1_with_sqlstate_and_hint(demo_dsn: str) -> None:
+    done = hushql("ask", "--as", "planner", "--backend", demo_dsn, "SELECT * FROM households")
+    assert done.returncode == 1
+    assert "0A000" in done.stdout and "HINT" in done.stdout and "Traceback" not in done.stderr
+    denied = hushql("ask", "--as", "researcher", "--backend", demo_dsn, "SELECT COUNT(*) FROM readings")
+    assert denied.returncode == 1 and "42501" in denied.stdout
+
+
+def test_ask_explain_charges_nothing(demo_dsn: str) -> None:
+    done = hushql("ask", "--as", "researcher", "--explain", "--backend", demo_dsn,
+                  "SELECT has_garden, COUNT(*) FROM households GROUP BY has_garden")
+    assert done.returncode == 0, done.stderr
+    assert "sensitivity 1" in done.stdout and "backend sql" in done.stdout
+    assert "epsilon spent" not in done.stdout
+
+
+def test_ask_without_a_backend_says_how_to_give_one() -> None:
+    done = hushql("ask", "--as", "planner", "SELECT COUNT(*) FROM households",
+                  env={"HUSHQL_BACKEND": ""})
+    assert done.returncode == 1 and "--backend" in done.stdout
+
+
+def test_check_passes_on_the_demo_policies() -> None:
+    done = hushql("check", "policies")
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "readings" in done.stdout and "planner" in done.stdout
+
+
+def test_hash_password_makes_a_verifier_that_verifies() -> None:
+    done = hushql("hash-password", stdin="a long passphrase\n")
+    assert done.returncode == 0
+    verifier = done.stdout.strip()
+    assert verifier.startswith("SCRAM-SHA-256$4096:")
+    assert verify_password("a long passphrase", verifier)
+    assert not verify_password("another", verifier)
