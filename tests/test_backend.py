@@ -1,0 +1,66 @@
+"""The backend pool: read-only, cancellable, and silent about what went wrong."""
+
+from __future__ import annotations
+
+import threading
+import time
+
+import psycopg
+import pytest
+
+from proxy.backend import Backend, QueryControl
+from proxy.errors import HushError
+
+
+@pytest.fixture
+def backend(fresh_dsn: str):
+    with psycopg.connect(fresh_dsn, autocommit=True) as conn:
+        conn.execute("CREATE TABLE secret_rows (name text)")
+        conn.execute("INSERT INTO secret_rows VALUES ('Ada Example')")
+    pool = Backend(fresh_dsn, pool_size=2, statement_timeout_ms=2000)
+    yield pool
+    pool.close()
+
+
+def test_a_running_query_can_be_cancelled(backend: Backend) -> None:
+    control = QueryControl()
+    threading.Timer(0.3, control.cancel).start()
+    started = time.monotonic()
+    with pytest.raises(HushError) as error:
+        backend.run("SELECT pg_sleep(10)", control)
+    assert error.value.sqlstate == "57014"
+    assert time.monotonic() - started < 5
+    assert backend.run("SELECT 1") == [(1,)]  # the connection went back to the pool usable
+
+
+def test_cancelling_before_the_query_starts_prevents_it(backend: Backend) -> None:
+    control = QueryControl()
+    control.cancel()
+    with pytest.raises(HushError) as error:
+        backend.run("SELECT 1", control)
+    assert error.value.sqlstate == "57014"
+
+
+def test_statement_timeout_ends_slow_queries(backend: Backend) -> None:
+    with pytest.raises(HushError) as error:
+        backend.run("SELECT pg_sleep(10)")
+    assert error.value.sqlstate == "57014" and "timeout" in error.value.message
+
+
+def test_backend_errors_never_carry_backend_text(backend: Backend) -> None:
+    # The error PostgreSQL raises here quotes the row value; the proxy must not pass it on.
+    with pytest.raises(HushError) as error:
+        backend.run("SELECT CAST(name AS integer) FROM secret_rows")
+    assert error.value.sqlstate == "XX000"
+    assert "Ada" not in error.value.message + (error.value.hint or "") + (error.value.detail or "")
+
+
+def test_backend_sessions_are_read_only(backend: Backend, fresh_dsn: str) -> None:
+    with pytest.raises(HushError):
+        backend.run("DELETE FROM secret_rows")
+    with psycopg.connect(fresh_dsn) as conn:
+        assert conn.execute("SELECT count(*) FROM secret_rows").fetchone() == (1,)
+
+
+def test_column_types_are_read_from_the_catalog(backend: Backend) -> None:
+    assert backend.column_types("public.secret_rows") == {"name": "text"}
