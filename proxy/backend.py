@@ -61,19 +61,21 @@ class Backend:
         self._pool.open(wait=True, timeout=open_timeout)
 
     def _configure(self, connection: psycopg.Connection[Any]) -> None:
-        connection.read_only = True
-        connection.autocommit = False
+        # Autocommit with read-only default transactions: one round trip per query, and the
+        # session still cannot write.
+        connection.autocommit = True
         with connection.cursor() as cursor:
+            cursor.execute("SET default_transaction_read_only = on")
             cursor.execute(f"SET statement_timeout = {int(self._timeout)}")
             # sqlglot writes string literals with backslashes unescaped: only sound when on.
             cursor.execute("SET standard_conforming_strings = on")
-        connection.commit()
 
     def run(self, sql: str, control: QueryControl | None = None,
             settings: dict[str, str] | None = None) -> list[tuple[Any, ...]]:
         """Run one rewritten query and return all its rows (one per cell, so few).
 
-        ``settings`` are set for this transaction only (set_config(..., true)) before the query.
+        ``settings`` are set on the session just before the query (set_config(..., false)); every
+        query that reads one sets it first, so a value left on a pooled connection is never used.
 
         Raises HushError 57014 when cancelled, XX000 on any other failure (no backend text).
         """
@@ -84,7 +86,7 @@ class Backend:
                 try:
                     with connection.cursor() as cursor:
                         for name, value in (settings or {}).items():
-                            cursor.execute("SELECT set_config(%s, %s, true)", (name, value))
+                            cursor.execute("SELECT set_config(%s, %s, false)", (name, value))
                         cursor.execute(sql, prepare=False)
                         return cursor.fetchall()
                 finally:

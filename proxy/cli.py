@@ -54,8 +54,9 @@ def _parser() -> argparse.ArgumentParser:
         command.add_argument("--ledger", default=os.environ.get("HUSHQL_LEDGER"),
                              help="DSN of the ledger database; default: schema hushql in the "
                                   "backend (HUSHQL_LEDGER)")
-        command.add_argument("--pool-size", type=int, default=8,
-                             help="backend connections in the pool (default 8)")
+        command.add_argument("--pool-size", type=int, default=16,
+                             help="backend connections in the pool, and as many to the ledger "
+                                  "(default 16)")
 
     demo = commands.add_parser("demo", help="start a private PostgreSQL with the invented "
                                "water-utility scenario and serve it")
@@ -202,6 +203,7 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
     host, port = args.listen
     try:
         run_server(engine, host=host, port=port, ssl_context=context,
+                   engine_threads=max(32, 2 * args.pool_size),
                    max_message_bytes=args.max_message_bytes,
                    max_connections=args.max_connections, catalog=_catalog(policies, args))
     finally:
@@ -225,7 +227,7 @@ def _run_demo(args: argparse.Namespace, console: Console) -> int:
         if args.no_serve:
             return
         namespace = argparse.Namespace(policies=args.policies, backend=backend_dsn,
-                                       ledger=None, pool_size=8, listen=args.listen,
+                                       ledger=None, pool_size=16, listen=args.listen,
                                        tls_cert=None, tls_key=None, max_connections=200,
                                        max_message_bytes=1 << 20)
         _run_serve(namespace, console)

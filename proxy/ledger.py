@@ -340,20 +340,22 @@ class Ledger:
             raise _refused(refusal, name, limit, left, epsilon)
         return int(charge_id)
 
-    def finish(self, charge_id: int, outcome: str) -> None:
+    def finish(self, charge_id: int, outcome: str) -> Decimal:
         """Record how a reserved charge ended; its epsilon stays spent whatever the outcome.
 
         The outcome is a note, not a charge: if a crash loses it, the charge still stands and
         reads 'reserved' (started, outcome unknown), which is true; so its commit does not wait
         for the disk. Raises ValueError for an unknown outcome, or a charge that is unknown or
-        already finished.
+        already finished. Returns what the charged analyst may still spend (one round trip for
+        both, since every answer reports it).
         """
         if outcome not in OUTCOMES:
             raise ValueError(f"outcome must be one of {', '.join(OUTCOMES)}, not {outcome!r}")
         with self._connection() as conn:
-            row = conn.execute(self._sql.finish, [charge_id, outcome]).fetchone()
+            row = conn.execute(self._sql.finish, [charge_id, outcome, charge_id]).fetchone()
         if not row or not row[0]:
             raise ValueError(f"charge {charge_id} is unknown or already finished")
+        return row[1]
 
     def remaining(self, analyst: str) -> Decimal:
         """Epsilon the analyst may still spend (never negative); HushError 42501 if unknown."""
@@ -467,7 +469,10 @@ class _Statements:
         self.reserve = (
             "SELECT charge_id, refusal, refused_name, refused_limit, refused_left "
             f"FROM {s}.reserve_charge(%s, %s::text[], %s, %s, %s)")
-        self.finish = f"SELECT {s}.finish_charge(%s, %s)"
+        self.finish = (
+            f"SELECT {s}.finish_charge(%s, %s), (SELECT greatest(b.budget - b.spent, 0) "
+            f"FROM {s}.analyst_budgets b JOIN {s}.charges c ON c.analyst = b.analyst "
+            "WHERE c.id = %s)")
         self.remaining = (
             f"SELECT greatest(budget - spent, 0) FROM {s}.analyst_budgets WHERE analyst = %s")
         self.spent = f"SELECT spent FROM {s}.analyst_budgets WHERE analyst = %s"
