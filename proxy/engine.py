@@ -14,6 +14,7 @@ The order of steps is the privacy argument, so it lives here and only here:
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import secrets
 import logging
@@ -58,16 +59,36 @@ class Prepared:
     fingerprint: str
 
 
+# Digits an epsilon may have after the decimal point (so the smallest is 1e-12). Noise scales
+# are exact fractions of epsilon and the 95% bound is computed in decimals as wide as the scale:
+# an unbounded exponent (1e-999999999) would make them numbers of a billion digits.
+MOST_EPSILON_PLACES = 12
+
+
 def parse_epsilon(value: str | Decimal | float, largest: Decimal) -> Decimal:
-    """An analyst's epsilon as an exact Decimal in (0, largest]; raises HushError 22023."""
+    """An analyst's epsilon as an exact Decimal in (0, largest] with at most
+    ``MOST_EPSILON_PLACES`` digits after the point; raises HushError 22023 otherwise."""
     try:
         epsilon = value if isinstance(value, Decimal) else Decimal(str(value).strip())
     except (InvalidOperation, ValueError):
         epsilon = Decimal("NaN")
-    if not epsilon.is_finite() or epsilon <= 0 or epsilon > largest:
-        raise HushError(INVALID_PARAMETER_VALUE, f"invalid epsilon {value!s}",
-                        hint=f"epsilon must be a decimal number above 0 and at most {largest}")
+    if not epsilon.is_finite() or epsilon <= 0 or epsilon > largest \
+            or _decimal_places(epsilon) > MOST_EPSILON_PLACES:
+        shown = str(value)
+        raise HushError(INVALID_PARAMETER_VALUE,
+                        f"invalid epsilon {shown if len(shown) <= 40 else shown[:37] + '...'}",
+                        hint=f"epsilon must be a decimal number above 0 and at most {largest}, "
+                             f"with at most {MOST_EPSILON_PLACES} digits after the decimal point")
     return epsilon
+
+
+def _decimal_places(value: Decimal) -> int:
+    """Digits after the point of a finite Decimal, trailing zeros aside (0.2500 has 2); exact."""
+    _, digits, exponent = value.as_tuple()
+    assert isinstance(exponent, int)
+    text = "".join(map(str, digits))
+    trailing_zeros = len(text) - len(text.rstrip("0"))
+    return max(0, -(exponent + trailing_zeros))
 
 
 class Engine:
@@ -86,10 +107,11 @@ class Engine:
 
     @classmethod
     def connect(cls, policies: Policies, backend_dsn: str, ledger_dsn: str | None = None, *,
-                pool_size: int = 8) -> Engine:
+                pool_size: int = 16) -> Engine:
         """An engine with its own backend pool and ledger (default: schema hushql in the backend)."""
         backend = Backend(backend_dsn, pool_size=pool_size)
-        ledger = Ledger(ledger_dsn or backend_dsn, pool_size=max(2, pool_size // 2))
+        # Each answer makes two ledger calls to one backend call: give the ledger as many.
+        ledger = Ledger(ledger_dsn or backend_dsn, pool_size=max(2, pool_size))
         return cls(policies, backend, ledger)
 
     def close(self) -> None:
@@ -198,18 +220,23 @@ class Engine:
             true_rows = self.backend.run(prepared.rewritten.sql, control, settings)
             if len(true_rows) != len(prepared.cells):
                 raise HushError("XX000", "the backend returned an unexpected result shape")
-            answer = self._release(prepared, eps, true_rows, analyst, charge)
+            answer = self._release(prepared, eps, true_rows, charge)
             outcome = "answered"
-            return answer
         except HushError as error:
             if error.sqlstate == "57014":
                 outcome = "cancelled"
             raise
         finally:
-            try:
-                self.ledger.finish(charge, outcome)
-            except Exception:  # the charge itself is already durable; only the outcome is lost
-                log.exception("could not record the outcome of charge %s", charge)
+            remaining = self._finish(charge, outcome, analyst)
+        return dataclasses.replace(answer, remaining=remaining)
+
+    def _finish(self, charge: int, outcome: str, analyst: str) -> Decimal:
+        """Record the outcome; returns the analyst's remaining budget."""
+        try:
+            return self.ledger.finish(charge, outcome)
+        except Exception:  # the charge itself is already durable; only the outcome is lost
+            log.exception("could not record the outcome of charge %s", charge)
+            return self.ledger.remaining(analyst)
 
     def _scales(self, prepared: Prepared, epsilon: Decimal) -> list[Fraction]:
         """Noise scale of each measure in measure units: sensitivity * k / epsilon, exactly."""
@@ -217,7 +244,9 @@ class Engine:
         return [Fraction(s) * k / Fraction(epsilon) for s in prepared.rewritten.sensitivities]
 
     def _release(self, prepared: Prepared, epsilon: Decimal, true_rows: list[tuple[Any, ...]],
-                 analyst: str, charge: int) -> Answer:
+                 charge: int) -> Answer:
+        """Noise every measure of every cell, then post-process; ``remaining`` is filled in by
+        the caller once the outcome is recorded."""
         plan = prepared.plan
         key_count = len(plan.keys)
         cells = len(true_rows)
@@ -235,7 +264,7 @@ class Engine:
                               noisy) for o in plan.outputs if o.visible and o.kind != "key"]
         return Answer(columns=[OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs],
                       rows=postprocess(plan, rows), epsilon=epsilon,
-                      remaining=self.ledger.remaining(analyst), accuracy=accuracy,
+                      remaining=Decimal(0), accuracy=accuracy,
                       tables=[plan.table.table], charge_id=charge)
 
 

@@ -10,9 +10,12 @@ returns rows of the table, never sorts, limits or filters on aggregates.
 Row tables (each row is one individual)
 ---------------------------------------
 Every summed value is clamped to its declared range on the column's own type, then counted in
-units of the column's step: per row (``round(LEAST(GREATEST(x, lo), hi) / step)``) for inexact
-types, or once per cell (``floor(SUM(LEAST(GREATEST(x, lo), hi)) / step + 0.5)``) for numeric
-columns, whose sums are exact (see ``_in_column_units``). NULL stays NULL. Rows whose keys fall
+units of the column's step: per row (``round(clamp(x, lo, hi) / step)``) for inexact types, or
+once per cell (``floor(SUM(clamp(x, lo, hi)) / step + 0.5)``) for numeric columns, whose sums are
+exact (see ``_in_column_units``). The clamp is ``CASE WHEN x < lo THEN lo WHEN x > hi THEN hi
+ELSE x END`` so that NULL stays NULL and adds nothing to a SUM (LEAST/GREATEST ignore NULL
+arguments, so ``GREATEST(NULL, lo)`` would count every NULL as ``lo``); NaN sorts above every
+number in PostgreSQL and clamps to ``hi``. Rows whose keys fall
 outside the declared domains are aggregated into groups that are then dropped by joining the
 finished aggregate to the domain list. Adding or removing one row changes one cell by at most 1
 for a count and by at most ``M = max(|lo|, |hi|) / step`` for a sum, so the L1 sensitivity of the
@@ -30,6 +33,10 @@ One individual may own many rows, in many cells. The rewrite
    ``[r * min(lo, 0), r * max(hi, 0)]`` (in step units; the interval holds 0 so a partial sum is
    never pushed away from zero);
 4. sums the capped partials over individuals.
+Rows whose individual column is NULL belong to no identifiable individual, so no cap could be
+enforced on the person they belong to; they are not counted. (Kept as one group, they would
+also break step 2: md5 of a NULL is NULL, so their choice of cells would follow the executor's
+row order, which depends on everyone else's rows.)
 Argument: neighbouring databases differ by all rows of one individual. Every other individual's
 capped partials are identical in both (their rows and their own random choice are unchanged), so
 the answers differ only by that individual's at most ``g`` kept partials, each bounded as in 3.
@@ -96,7 +103,9 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
 
 
 def _unit_sensitivity(policy: TablePolicy, measure: Measure, rows_cap: int) -> int:
-    """Largest change of one cell of ``measure`` from one individual (before the groups factor)."""
+    """Largest change of one cell of ``measure`` from one individual (before the groups factor),
+    at least 1: a sum over a column declared as [0, 0] cannot move, but noise needs a positive
+    scale, and any upper bound is a sound sensitivity."""
     if measure.kind == "count_individuals":
         if policy.individual is None:
             raise ValueError("COUNT(DISTINCT individual) needs an [individual] section")
@@ -104,7 +113,7 @@ def _unit_sensitivity(policy: TablePolicy, measure: Measure, rows_cap: int) -> i
     if measure.kind in ("count_rows", "count_values"):
         return rows_cap
     low, high = _unit_range(policy.columns[measure.column])  # type: ignore[index]
-    return rows_cap * max(abs(low), abs(high))
+    return max(1, rows_cap * max(abs(low), abs(high)))
 
 
 def _unit_range(column: ColumnPolicy) -> tuple[int, int]:
@@ -145,12 +154,15 @@ def _least(a: exp.Expression, b: exp.Expression) -> exp.Expression:
     return exp.Least(this=a, expressions=[b])
 
 
-def _greatest(a: exp.Expression, b: exp.Expression) -> exp.Expression:
-    return exp.Greatest(this=a, expressions=[b])
-
-
 def _clamp(value: exp.Expression, low: int, high: int) -> exp.Expression:
-    return _least(_greatest(value, _num(low)), _num(high))
+    return _clamp_between(value, _num(low), _num(high))
+
+
+def _clamp_between(value: exp.Expression, low: exp.Expression, high: exp.Expression) -> exp.Expression:
+    """``value`` clamped to [low, high] on its own type, NULL kept as NULL (see the module notes)."""
+    return exp.Case(ifs=[exp.If(this=exp.LT(this=value, expression=low), true=low.copy()),
+                         exp.If(this=exp.GT(this=value.copy(), expression=high), true=high.copy())],
+                    default=value.copy())
 
 
 def _key_column(policy: TablePolicy, key: GroupKey) -> ColumnPolicy:
@@ -192,8 +204,8 @@ def _row_value(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> 
     low, high = _unit_range(column)
     if column.kind == "integer":
         return _clamp(_col(measure.column), low, high)  # type: ignore[arg-type]
-    clamped = _least(_greatest(_col(measure.column), _decimal(column.low)),  # type: ignore[arg-type]
-                     _decimal(column.high))
+    clamped = _clamp_between(_col(measure.column), _decimal(column.low),  # type: ignore[arg-type]
+                             _decimal(column.high))
     if _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
         return clamped
     # round() by name: sqlglot's Round node would add a per-row cast to double precision;
@@ -362,8 +374,9 @@ def _individual_table_query(plan: Plan, groups_kept: int, cells: int,
     keys = [exp.alias_(_key_expression(policy, k), f"k{j}", copy=False) for j, k in enumerate(plan.keys)]
     partials = [exp.alias_(_aggregate(policy, m, exact, finish=False), f"m{n}", copy=False)
                 for n, m in enumerate(plan.measures) if m.kind != "count_individuals"]
-    per_individual = _filtered(plan, exp.Select().select(who, *keys, *partials, copy=False)).group_by(
-        *[_num(j + 1) for j in range(len(keys) + 1)], copy=False)
+    per_individual = _filtered(plan, exp.Select().select(who, *keys, *partials, copy=False)).where(
+        exp.Not(this=exp.Is(this=_col(policy.individual.column), expression=exp.Null())),
+        copy=False).group_by(*[_num(j + 1) for j in range(len(keys) + 1)], copy=False)
     if plan.keys:
         kept = _in_domains(plan, per_individual, "p")
         if groups_kept < cells:
@@ -386,7 +399,7 @@ def _individual_table_query(plan: Plan, groups_kept: int, cells: int,
             if _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
                 low, high = Decimal(column.low), Decimal(column.high)
                 floor, ceiling = _decimal(rows_cap * min(low, 0)), _decimal(rows_cap * max(high, 0))
-                total = _to_units(exp.Sum(this=_least(_greatest(partial, floor), ceiling)), column)
+                total = _to_units(exp.Sum(this=_clamp_between(partial, floor, ceiling)), column)
             else:
                 low_u, high_u = _unit_range(column)
                 total = exp.Sum(this=_clamp(partial, rows_cap * min(low_u, 0),
