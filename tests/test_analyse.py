@@ -713,3 +713,19 @@ def test_group_by_prefers_input_columns_and_order_by_prefers_output_names():
                    "ORDER BY district")
     assert plan.keys == (GroupKey("tariff"), GroupKey("district"))
     assert plan.order_by == (OrderItem(0, False, False),)
+
+
+# ---- declared date domains at the edges of the calendar ------------------------------------
+
+@pytest.mark.parametrize("bucket", ["day", "week", "month", "quarter", "year"])
+@pytest.mark.parametrize("start, end", [("2026-01-01", "2026-12-31"), ("2025-12-29", "2027-03-02"),
+                                        ("9990-01-01", "9999-12-31"), ("0001-01-01", "0001-01-01")])
+def test_date_domain_sizes_are_counted_without_listing(bucket: str, start: str, end: str) -> None:
+    import datetime as dt
+
+    from proxy.policy import ColumnPolicy
+    from proxy.sql.domains import domain_size, domain_values
+
+    column = ColumnPolicy(kind="date", range=[dt.date.fromisoformat(start), dt.date.fromisoformat(end)],
+                          bucket=bucket)
+    assert domain_size(column) == len(domain_values(column))

@@ -35,10 +35,21 @@ def domain_values(column: ColumnPolicy, bucket: str | None = None) -> list[Any]:
 
 
 def domain_size(column: ColumnPolicy, bucket: str | None = None) -> int:
-    """len(domain_values(...)) without building the list for integer ranges."""
+    """len(domain_values(...)), counted without building the list for ranges (so a policy
+    with a huge range costs nothing until the cell limit refuses it)."""
     if column.kind == "integer":
         low, high = column.range  # type: ignore[misc]
         return int(high) - int(low) + 1
+    if column.kind == "date":
+        unit = bucket or column.bucket
+        if unit is None:
+            raise ValueError("a date column needs a bucket to have a domain")
+        start, end = date_range(column)
+        first, last = bucket_start(start, unit), bucket_start(end, unit)
+        if unit in ("day", "week"):
+            return (last - first).days // (1 if unit == "day" else 7) + 1
+        months = (last.year * 12 + last.month) - (first.year * 12 + first.month)
+        return months // {"month": 1, "quarter": 3, "year": 12}[unit] + 1
     return len(domain_values(column, bucket))
 
 
@@ -66,7 +77,10 @@ def _date_buckets(start: dt.date, end: dt.date, unit: str):
     current = bucket_start(start, unit)
     while current <= end:
         yield current
-        current = _next_bucket(current, unit)
+        try:
+            current = _next_bucket(current, unit)
+        except (OverflowError, ValueError):  # past 9999-12-31: no later bucket exists
+            return
 
 
 def _next_bucket(day: dt.date, unit: str) -> dt.date:
