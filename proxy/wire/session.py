@@ -309,7 +309,11 @@ class Session:
         count = max(len(msg.param_oids), statements.parameter_count(tree))
         if count > statements.MAX_PARAMETERS:
             raise HushError(PROGRAM_LIMIT_EXCEEDED, "too many parameters")
-        suggested = await self._suggested_types(tree, msg.param_oids, count, to_catalog)
+        if to_catalog:  # the mirror's own reading: it also counts $n in text sqlglot cannot parse
+            suggested = await self._catalog_parameter_types(st)
+            count = max(count, len(suggested))
+        else:
+            suggested = await self._suggested_types(tree, msg.param_oids, count, to_catalog)
         param_types = statements.infer_parameter_types(tree, msg.param_oids, count, suggested)
         self.statements[msg.name] = Prepared(st, param_types, to_catalog)
         return [codec.ParseComplete()]
@@ -329,6 +333,19 @@ class Session:
         except HushError:
             return []
         return [types.oid_of(n) if n else None for n in list(names)[:count]]
+
+    async def _catalog_parameter_types(self, st: Statement) -> list[int | None]:
+        """Parameter types of a catalog statement as the mirror infers them, when the catalog
+        offers ``parameter_types(analyst, text) -> list[OID]``; types hushql does not accept
+        are left to the default (text). A refusal here is left for Describe or Execute."""
+        infer = getattr(self.catalog, "parameter_types", None)
+        if infer is None or not isinstance(st, QueryStatement):
+            return []
+        try:
+            oids = await self._blocking(infer, self.analyst, st.text)
+        except HushError:
+            return []
+        return [oid if oid in types.PARAMETER_OIDS and oid else None for oid in oids]
 
     def bind(self, msg: codec.Bind) -> list[Any]:
         prepared = self._statement(msg.statement)
