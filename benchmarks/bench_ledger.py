@@ -58,7 +58,7 @@ def reserve_p50_ms(dsn: str, rounds: int = ROUNDS) -> float:
         ledger.sync_budgets(_budgets(["planner"], ["readings"]))  # type: ignore[arg-type]
 
         def one() -> None:
-            ledger.finish(ledger.reserve("planner", ["readings"], EPSILON, "SELECT 1", "f"),
+            ledger.finish(ledger.reserve("planner", ["readings"], EPSILON, "SELECT 1", "f").charge_id,
                           "answered")
         for _ in range(20):
             one()  # warm-up: pool connection, prepared statements
@@ -110,7 +110,7 @@ def _throughput(ledger: Ledger, pick: object) -> float:
         analyst, table = pick(i)  # type: ignore[operator]
         barrier.wait()
         for _ in range(PER_THREAD):
-            ledger.finish(ledger.reserve(analyst, [table], EPSILON, "SELECT 1", "f"),
+            ledger.finish(ledger.reserve(analyst, [table], EPSILON, "SELECT 1", "f").charge_id,
                           "answered")
 
     start = time.perf_counter()

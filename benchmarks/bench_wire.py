@@ -46,7 +46,8 @@ from rich.table import Table
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from proxy.demo import PLANNER_PASSWORD, with_database  # noqa: E402
+from proxy.demo import PLANNER_PASSWORD  # noqa: E402
+from proxy.dsn import with_database  # noqa: E402
 from proxy.localpg import free_port, start_local_postgres  # noqa: E402
 
 DP_QUERY = "SELECT district, COUNT(*) FROM households GROUP BY district"

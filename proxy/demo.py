@@ -25,15 +25,14 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from urllib.parse import urlsplit, urlunsplit
 
 import numpy as np
 import psycopg
 from psycopg import sql
-from psycopg.conninfo import conninfo_to_dict, make_conninfo
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
+from proxy.dsn import with_database  # noqa: F401 - re-exported for callers of the demo
 from proxy.localpg import LocalServer, NoPostgresError, start_local_postgres
 from proxy.policy import PolicyError, load_policies
 
@@ -363,14 +362,6 @@ def _ensure_database(admin_dsn: str, name: str) -> str:
     return with_database(admin_dsn, name)
 
 
-def with_database(dsn: str, name: str) -> str:
-    """``dsn`` pointing at database ``name``, keeping the URL form when it was a URL."""
-    if "://" in dsn:
-        parts = urlsplit(dsn)
-        return urlunsplit(parts._replace(path=f"/{name}"))
-    params = conninfo_to_dict(dsn)
-    params["dbname"] = name
-    return make_conninfo(**params)
 
 
 @contextmanager

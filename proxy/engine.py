@@ -20,6 +20,7 @@ import secrets
 import logging
 import threading
 from collections import OrderedDict
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from decimal import Decimal, InvalidOperation
 from fractions import Fraction
@@ -103,6 +104,8 @@ class Engine:
         self._cache_size = plan_cache_size
         self._cache_lock = threading.Lock()
         self._exact: dict[str, frozenset[str]] = {}
+        # Records answered outcomes after the answer is released, in order, on one thread.
+        self._notes = ThreadPoolExecutor(max_workers=1, thread_name_prefix="hushql-outcomes")
         ledger.sync_budgets(policies)
 
     @classmethod
@@ -115,6 +118,8 @@ class Engine:
         return cls(policies, backend, ledger)
 
     def close(self) -> None:
+        """Record pending outcomes, then close the pools."""
+        self._notes.shutdown(wait=True)
         self.backend.close()
         self.ledger.close()
 
@@ -212,7 +217,8 @@ class Engine:
         eps = self.epsilon_for(epsilon)
         plan = prepared.plan
         text = statement if isinstance(statement, str) else statement.sql(dialect="postgres")
-        charge = self.ledger.reserve(analyst, [plan.table.table], eps, text, prepared.fingerprint)
+        charge, remaining = self.ledger.reserve(analyst, [plan.table.table], eps, text,
+                                                prepared.fingerprint)
         outcome = "failed"
         try:
             settings = ({PICK_SALT_SETTING: secrets.token_hex(16)}
@@ -227,16 +233,19 @@ class Engine:
                 outcome = "cancelled"
             raise
         finally:
-            remaining = self._finish(charge, outcome, analyst)
+            if outcome == "answered":
+                # A note, not a charge (the charge is durable already): off the answer's path.
+                self._notes.submit(self._finish, charge, outcome)
+            else:
+                self._finish(charge, outcome)
         return dataclasses.replace(answer, remaining=remaining)
 
-    def _finish(self, charge: int, outcome: str, analyst: str) -> Decimal:
-        """Record the outcome; returns the analyst's remaining budget."""
+    def _finish(self, charge: int, outcome: str) -> None:
+        """Record the outcome of a charge; a failure to record it loses only the note."""
         try:
-            return self.ledger.finish(charge, outcome)
-        except Exception:  # the charge itself is already durable; only the outcome is lost
+            self.ledger.finish(charge, outcome)
+        except Exception:
             log.exception("could not record the outcome of charge %s", charge)
-            return self.ledger.remaining(analyst)
 
     def _scales(self, prepared: Prepared, epsilon: Decimal) -> list[Fraction]:
         """Noise scale of each measure in measure units: sensitivity * k / epsilon, exactly."""
@@ -246,7 +255,7 @@ class Engine:
     def _release(self, prepared: Prepared, epsilon: Decimal, true_rows: list[tuple[Any, ...]],
                  charge: int) -> Answer:
         """Noise every measure of every cell, then post-process; ``remaining`` is filled in by
-        the caller once the outcome is recorded."""
+        the caller from the reservation."""
         plan = prepared.plan
         key_count = len(plan.keys)
         cells = len(true_rows)

@@ -37,7 +37,7 @@ import re
 from collections.abc import Iterator
 from contextlib import AbstractContextManager, contextmanager
 from decimal import Decimal
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, NamedTuple
 
 import psycopg
 from psycopg import sql
@@ -133,7 +133,7 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
             analyst_name text, table_names text[], amount numeric,
             statement_text text, statement_fingerprint text,
             OUT charge_id bigint, OUT refusal text, OUT refused_name text,
-            OUT refused_limit numeric, OUT refused_left numeric)
+            OUT refused_limit numeric, OUT refused_left numeric, OUT left_after numeric)
         LANGUAGE plpgsql AS $body$
         DECLARE
             found_row record;
@@ -180,7 +180,8 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
                 RETURN;
             END IF;
             UPDATE {schema}.analyst_budgets SET spent = spent + amount, updated_at = now()
-             WHERE analyst = analyst_name;
+             WHERE analyst = analyst_name
+            RETURNING greatest(budget - spent, 0) INTO left_after;
             UPDATE {schema}.table_budgets SET spent = spent + amount, updated_at = now()
              WHERE table_name = ANY (table_names);
             INSERT INTO {schema}.charges (analyst, tables, epsilon, statement, fingerprint)
@@ -210,6 +211,13 @@ SCHEMA_VERSION = len(_MIGRATIONS)
 """The ledger schema version this program creates and understands."""
 
 _UNAVAILABLE_HINT = "try again shortly; if it persists, tell an administrator"
+
+
+class Reservation(NamedTuple):
+    """A durable charge: its id (for ``finish``) and the analyst's budget left after it."""
+
+    charge_id: int
+    remaining: Decimal
 
 
 class LedgerError(Exception):
@@ -317,8 +325,9 @@ class Ledger:
                     cur.executemany(self._sql.upsert_table, tables)
 
     def reserve(self, analyst: str, tables: list[str], epsilon: Decimal, statement: str,
-                fingerprint: str) -> int:
-        """Charge ``epsilon`` to ``analyst`` and ``tables``; return the charge id once durable.
+                fingerprint: str) -> Reservation:
+        """Charge ``epsilon`` to ``analyst`` and ``tables``; return the charge (its id and what
+        the analyst has left after it) once durable.
 
         Raises HushError 53400 (nothing charged) when the analyst's budget or a table's cap
         would be exceeded, 42501 for an analyst with no budget, 42P01 for a table the ledger does
@@ -335,27 +344,25 @@ class Ledger:
             row = conn.execute(self._sql.reserve,
                                [analyst, names, epsilon, statement, fingerprint]).fetchone()
         assert row is not None
-        charge_id, refusal, name, limit, left = row
+        charge_id, refusal, name, limit, left, left_after = row
         if refusal is not None:
             raise _refused(refusal, name, limit, left, epsilon)
-        return int(charge_id)
+        return Reservation(int(charge_id), left_after)
 
-    def finish(self, charge_id: int, outcome: str) -> Decimal:
+    def finish(self, charge_id: int, outcome: str) -> None:
         """Record how a reserved charge ended; its epsilon stays spent whatever the outcome.
 
         The outcome is a note, not a charge: if a crash loses it, the charge still stands and
         reads 'reserved' (started, outcome unknown), which is true; so its commit does not wait
         for the disk. Raises ValueError for an unknown outcome, or a charge that is unknown or
-        already finished. Returns what the charged analyst may still spend (one round trip for
-        both, since every answer reports it).
+        already finished.
         """
         if outcome not in OUTCOMES:
             raise ValueError(f"outcome must be one of {', '.join(OUTCOMES)}, not {outcome!r}")
         with self._connection() as conn:
-            row = conn.execute(self._sql.finish, [charge_id, outcome, charge_id]).fetchone()
+            row = conn.execute(self._sql.finish, [charge_id, outcome]).fetchone()
         if not row or not row[0]:
             raise ValueError(f"charge {charge_id} is unknown or already finished")
-        return row[1]
 
     def remaining(self, analyst: str) -> Decimal:
         """Epsilon the analyst may still spend (never negative); HushError 42501 if unknown."""
@@ -467,12 +474,9 @@ class _Statements:
     def __init__(self, schema: str) -> None:
         s = sql.Identifier(schema).as_string(None)
         self.reserve = (
-            "SELECT charge_id, refusal, refused_name, refused_limit, refused_left "
+            "SELECT charge_id, refusal, refused_name, refused_limit, refused_left, left_after "
             f"FROM {s}.reserve_charge(%s, %s::text[], %s, %s, %s)")
-        self.finish = (
-            f"SELECT {s}.finish_charge(%s, %s), (SELECT greatest(b.budget - b.spent, 0) "
-            f"FROM {s}.analyst_budgets b JOIN {s}.charges c ON c.analyst = b.analyst "
-            "WHERE c.id = %s)")
+        self.finish = f"SELECT {s}.finish_charge(%s, %s)"
         self.remaining = (
             f"SELECT greatest(budget - spent, 0) FROM {s}.analyst_budgets WHERE analyst = %s")
         self.spent = f"SELECT spent FROM {s}.analyst_budgets WHERE analyst = %s"

@@ -17,7 +17,9 @@ from pathlib import Path
 
 import psycopg
 import pytest
-from psycopg.conninfo import conninfo_to_dict, make_conninfo
+from psycopg.conninfo import conninfo_to_dict
+
+from proxy.dsn import with_database
 
 
 def _docker_answers() -> bool:
@@ -54,13 +56,6 @@ def pg_server_dsn() -> Iterator[str]:
     finally:
         server.stop()
         shutil.rmtree(folder, ignore_errors=True)
-
-
-def with_database(dsn: str, database: str) -> str:
-    """``dsn`` pointed at another database on the same server."""
-    params = conninfo_to_dict(dsn)
-    params["dbname"] = database
-    return make_conninfo(**params)
 
 
 def create_database(admin_dsn: str) -> str:

@@ -138,14 +138,15 @@ def test_commits_are_synchronous_even_when_the_database_default_is_not(
     with ledger._pool.connection() as conn:  # noqa: SLF001 - the setting is the contract
         assert conn.execute("SHOW synchronous_commit").fetchone() == ("on",)
     ledger.sync_budgets(make_policies({"planner": "1.0"}, {}))
-    ledger.finish(ledger.reserve("planner", [], D("0.1"), "SELECT 1", "f"), "answered")
+    ledger.finish(ledger.reserve("planner", [], D("0.1"), "SELECT 1", "f").charge_id, "answered")
     with ledger._pool.connection() as conn:  # noqa: SLF001
         # finish's asynchronous commit is local to its own transaction
         assert conn.execute("SHOW synchronous_commit").fetchone() == ("on",)
-    charge = ledger.reserve("planner", [], D("0.1"), "SELECT 1", "f")
+    charge, left = ledger.reserve("planner", [], D("0.1"), "SELECT 1", "f")
     # Returned means committed: another session sees the charge and the spending.
     assert query(fresh_dsn, "SELECT outcome FROM hushql.charges WHERE id = %s",
                  [charge]) == [("reserved",)]
+    assert left == D("0.8")
     assert query(fresh_dsn, "SELECT spent FROM hushql.analyst_budgets") == [(D("0.2"),)]
 
 
@@ -178,7 +179,7 @@ def test_tenths_add_up_exactly(open_ledger: Callable[..., Ledger]) -> None:
     ledger = open_ledger()
     ledger.sync_budgets(make_policies({"planner": "3.0"}, {"readings": "3.0"}))
     for _ in range(30):
-        ledger.finish(ledger.reserve("planner", ["readings"], D("0.1"), "SELECT 1", "f"),
+        ledger.finish(ledger.reserve("planner", ["readings"], D("0.1"), "SELECT 1", "f").charge_id,
                       "answered")
     assert ledger.spent("planner") == D("3.0")
     assert str(ledger.spent("planner")) == "3.0"
@@ -278,7 +279,7 @@ def test_charge_rows_and_outcomes(fresh_dsn: str, open_ledger: Callable[..., Led
     ledger.sync_budgets(make_policies({"planner": "3.0"}, {"readings": None, "households": None}))
     statement = "SELECT district, COUNT(*) FROM households GROUP BY district"
     ids = [ledger.reserve("planner", ["readings", "households", "readings"], D("0.5"),
-                          statement, "fp-1") for _ in range(3)]
+                          statement, "fp-1").charge_id for _ in range(3)]
     assert ids == sorted(ids) and len(set(ids)) == 3
     row = query(fresh_dsn, "SELECT analyst, tables, epsilon, statement, fingerprint, outcome, "
                            "finished_at FROM hushql.charges WHERE id = %s", [ids[0]])[0]
@@ -325,7 +326,7 @@ def race(ledgers: list[Ledger], attempts: int, analyst: Callable[[int], str],
         barrier.wait()
         try:
             ledger = ledgers[i % len(ledgers)]
-            ledger.finish(ledger.reserve(analyst(i), tables, epsilon, f"SELECT {i}", "f"),
+            ledger.finish(ledger.reserve(analyst(i), tables, epsilon, f"SELECT {i}", "f").charge_id,
                           "answered")
             return None
         except HushError as error:

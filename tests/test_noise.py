@@ -373,3 +373,12 @@ def test_short_read_from_the_source_fails_closed(monkeypatch: pytest.MonkeyPatch
         sample_discrete_laplace(Fraction(10, 3), 10)
     with pytest.raises(RuntimeError):
         sample_discrete_laplace(PYTHON_INT_SCALE, 1)
+
+
+def test_few_draws_follow_the_same_distribution() -> None:
+    """Calls for a handful of cells take the Python-int path; pooled over many such calls, the
+    draws must fit scipy.stats.dlaplace exactly as the vectorised path's do."""
+    scale = Fraction(10, 3)
+    draws = np.concatenate([noise.sample_discrete_laplace(scale, 3) for _ in range(34_000)])
+    assert draws.dtype == np.int64 and len(draws) == 102_000
+    assert goodness_of_fit_p(draws, scale) > SIGNIFICANCE

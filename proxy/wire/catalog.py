@@ -52,7 +52,6 @@ from typing import Any, Iterable, Iterator, Sequence
 import psycopg
 from psycopg import sql
 from psycopg.adapt import Transformer
-from psycopg.conninfo import conninfo_to_dict, make_conninfo
 from psycopg.pq import DiagnosticField, ExecStatus, Format
 from psycopg.types.string import TextLoader
 from psycopg_pool import ConnectionPool
@@ -60,6 +59,7 @@ from sqlglot import exp
 
 from proxy.errors import (FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, PROGRAM_LIMIT_EXCEEDED,
                           QUERY_CANCELED, HushError)
+from proxy.dsn import with_database
 from proxy.policy import ColumnPolicy, Policies
 from proxy.wire import statements, types
 from proxy.wire.statements import Token
@@ -434,12 +434,6 @@ def mirror_name(backend_database: str, layout: tuple[MirrorTable, ...]) -> str:
     return MIRROR_PREFIX + hashlib.sha256(body.encode()).hexdigest()[:12]
 
 
-def _with_database(dsn: str, database: str) -> str:
-    params = conninfo_to_dict(dsn)
-    params["dbname"] = database
-    return make_conninfo(**params)
-
-
 class CatalogSetupError(Exception):
     """The mirror or its role could not be made; the catalog is then unavailable."""
 
@@ -547,7 +541,7 @@ def _create_mirror(admin: psycopg.Connection[Any], admin_dsn: str, name: str,
     """Reuses a sound mirror called ``name`` or builds it anew under a temporary name and
     renames it into place. Raises CatalogSetupError when databases cannot be created."""
     exists = admin.execute("SELECT 1 FROM pg_database WHERE datname = %s", (name,)).fetchone()
-    if exists and _mirror_is_sound(_with_database(admin_dsn, name), layout):
+    if exists and _mirror_is_sound(with_database(admin_dsn, name), layout):
         return
     building = f"{name}_new_{secrets.token_hex(4)}"
     ident = sql.Identifier(building)
@@ -566,7 +560,7 @@ def _create_mirror(admin: psycopg.Connection[Any], admin_dsn: str, name: str,
         raise CatalogSetupError("the server would not create a UTF8 database in the C locale")
     try:
         admin.execute(sql.SQL("REVOKE ALL ON DATABASE {} FROM PUBLIC").format(ident))
-        _fill_mirror(_with_database(admin_dsn, building), layout)
+        _fill_mirror(with_database(admin_dsn, building), layout)
         admin.execute(sql.SQL("ALTER DATABASE {} SET default_transaction_read_only = on"
                               ).format(ident))
         admin.execute(sql.SQL("ALTER DATABASE {} SET statement_timeout = {}").format(
@@ -752,7 +746,7 @@ class Catalog:
             pool = self._pools.get(database)
             if pool is None:
                 # check: a mirror rebuilt by another proxy drops its connections.
-                pool = ConnectionPool(_with_database(self.admin_dsn, database), min_size=1,
+                pool = ConnectionPool(with_database(self.admin_dsn, database), min_size=1,
                                       max_size=POOL_SIZE, open=False, configure=_configure,
                                       check=ConnectionPool.check_connection,
                                       name=f"hushql-catalog-{database[-12:]}")
