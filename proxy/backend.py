@@ -1,8 +1,10 @@
 """The backend database: runs rewritten queries, read-only, from a connection pool.
 
-With ``proxy.ledger`` this is the only module that talks to PostgreSQL. Every query runs in a
-read-only transaction with a statement timeout. Backend error text never leaves this module:
-callers get a HushError that says only that the query could not run, because an error message
+With ``proxy.ledger`` this is the only module the engine reaches PostgreSQL through (the catalog
+mirror and the demo loader keep connections of their own, for catalog questions and set-up).
+Connections are in autocommit mode with ``default_transaction_read_only`` on, so every query is
+its own read-only transaction, and carry a statement timeout. Backend error text never leaves
+this module: callers get a HushError that says only that the query could not run, because an error message
 about a particular row would be a side channel.
 """
 

@@ -20,7 +20,7 @@ from typing import Sequence
 from rich.console import Console
 from rich.table import Table
 
-from proxy.errors import HushError
+from proxy.errors import CANNOT_CONNECT, CONFIG_FILE_ERROR, HushError
 
 DEFAULT_LISTEN = "127.0.0.1:7432"
 
@@ -101,6 +101,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     logging.basicConfig(level=logging.INFO, stream=sys.stderr,
                         format="%(asctime)s %(name)s %(levelname)s %(message)s")
+    # sqlglot's warnings quote statement text; logs never carry SQL or values.
+    logging.getLogger("sqlglot").setLevel(logging.ERROR)
     console = Console()
     try:
         return _COMMANDS[args.command](args, console)
@@ -115,7 +117,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _need_backend(args: argparse.Namespace) -> str:
     if not args.backend:
-        raise HushError("08001", "no backend database given",
+        raise HushError(CANNOT_CONNECT, "no backend database given",
                         hint="pass --backend DSN or set HUSHQL_BACKEND")
     return args.backend
 
@@ -126,7 +128,7 @@ def _load(args: argparse.Namespace):
     try:
         return load_policies(args.policies)
     except PolicyError as error:
-        raise HushError("F0000", "the policy folder has problems:\n" + "\n".join(error.problems),
+        raise HushError(CONFIG_FILE_ERROR, "the policy folder has problems:\n" + "\n".join(error.problems),
                         hint=f"run `hushql check {args.policies}`") from None
 
 
@@ -196,7 +198,7 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
     context = None
     if args.tls_cert or args.tls_key:
         if not (args.tls_cert and args.tls_key):
-            raise HushError("F0000", "TLS needs both --tls-cert and --tls-key")
+            raise HushError(CONFIG_FILE_ERROR, "TLS needs both --tls-cert and --tls-key")
         context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
         context.load_cert_chain(str(args.tls_cert), str(args.tls_key))
     engine = Engine.connect(policies, _need_backend(args), args.ledger, pool_size=args.pool_size)

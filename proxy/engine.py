@@ -3,21 +3,25 @@
 The order of steps is the privacy argument, so it lives here and only here:
 1. plan: analyse and rewrite (pure, cached by statement text; no data read). A refusal here
    charges nothing.
-2. reserve: the ledger charges epsilon in one committed transaction, or refuses (budget spent).
+2. reserve: the ledger charges epsilon in one committed transaction, or refuses (budget spent);
+   the reservation also says what the analyst has left, which the answer reports.
 3. run: the rewritten query on the backend. From here on the charge stands whatever happens,
    because whether a query fails can depend on the data.
 4. noise: discrete Laplace noise of scale sensitivity / (epsilon / k) on each of the k measures
    of every cell (the cells of a GROUP BY are disjoint and share that epsilon).
 5. release: post-processing on noisy values only (clamping counts at zero, AVG's division,
    HAVING, ORDER BY, LIMIT), then the answer.
+6. finish: the charge's outcome (answered, failed, cancelled) is noted in the ledger. It is a
+   note, not a charge, so for answered queries a background worker records it after the answer
+   has gone; failures and cancellations are recorded before the error is raised.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import hashlib
-import secrets
 import logging
+import secrets
 import threading
 from collections import OrderedDict
 from concurrent.futures import ThreadPoolExecutor
@@ -31,7 +35,7 @@ import sqlglot.expressions as exp
 from proxy import noise
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
 from proxy.backend import Backend, QueryControl
-from proxy.errors import INVALID_PARAMETER_VALUE, HushError
+from proxy.errors import INTERNAL_ERROR, INVALID_PARAMETER_VALUE, QUERY_CANCELED, HushError
 from proxy.ledger import Ledger
 from proxy.policy import ColumnPolicy, Policies
 from proxy.sql.analyse import analyse
@@ -168,7 +172,7 @@ class Engine:
 
     def parameter_types(self, analyst: str, tree: exp.Expression) -> list[str | None]:
         """Types of untyped ``$n`` parameters from the columns they are compared with."""
-        return parameter_types(tree, self.policies, analyst)
+        return parameter_types(tree, self.policies)
 
     def epsilon_for(self, epsilon: Decimal | str | None) -> Decimal:
         """The epsilon a query runs with: the session's, else the policy default; validated."""
@@ -177,6 +181,7 @@ class Engine:
         return parse_epsilon(chosen, defaults.largest_epsilon_per_query)
 
     def remaining(self, analyst: str) -> Decimal:
+        """Epsilon ``analyst`` may still spend, from the ledger; HushError 42501 if unknown."""
         return self.ledger.remaining(analyst)
 
     def explain(self, analyst: str, statement: str | exp.Expression, *,
@@ -225,11 +230,11 @@ class Engine:
                         if prepared.rewritten.needs_salt else None)
             true_rows = self.backend.run(prepared.rewritten.sql, control, settings)
             if len(true_rows) != len(prepared.cells):
-                raise HushError("XX000", "the backend returned an unexpected result shape")
+                raise HushError(INTERNAL_ERROR, "the backend returned an unexpected result shape")
             answer = self._release(prepared, eps, true_rows, charge)
             outcome = "answered"
         except HushError as error:
-            if error.sqlstate == "57014":
+            if error.sqlstate == QUERY_CANCELED:
                 outcome = "cancelled"
             raise
         finally:
@@ -302,8 +307,8 @@ def _show(value: Fraction | Decimal | int) -> str:
     """A readable exact-ish rendering of a scale or bound."""
     if isinstance(value, Fraction):
         value = Decimal(value.numerator) / Decimal(value.denominator)
-    text = f"{value:.6g}" if isinstance(value, Decimal) and value != value.to_integral_value() else str(value)
-    return text
+    return f"{value:.6g}" if isinstance(value, Decimal) and value != value.to_integral_value() \
+        else str(value)
 
 
 def _output_type(plan: Plan, output: Output) -> ColumnType:
@@ -340,6 +345,7 @@ def _output_value(plan: Plan, output: Output, cell: tuple[Any, ...], measures: l
 
 def _accuracy(plan: Plan, output: Output, epsilon: Decimal, sensitivities: tuple[int, ...],
               scales: list[Fraction], bounds: list[int], noisy: list[list[int]]) -> Accuracy:
+    """How noisy one aggregate output is, in the column's own units (epsilon is the query's)."""
     share = epsilon / len(plan.measures)
     first = output.measures[0]
     unit = _measure_unit(plan, plan.measures[first])

@@ -27,7 +27,7 @@ Why it is shaped like this:
 - A trigger refuses any update that raises ``spent`` above its budget or cap (SQLSTATE 23514):
   a last line of defence against a bug here or a hand-written update, not the normal path.
 
-This module and ``proxy.backend`` are the only ones that talk to PostgreSQL.
+This module and ``proxy.backend`` are the only ones the engine reaches PostgreSQL through.
 """
 
 from __future__ import annotations

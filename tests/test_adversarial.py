@@ -13,7 +13,6 @@ with a fixed salt, as in tests/test_rewrite.py.
 
 from __future__ import annotations
 
-import textwrap
 from decimal import Decimal
 from fractions import Fraction
 from pathlib import Path

@@ -34,21 +34,15 @@ import sqlglot
 import sqlglot.errors
 import sqlglot.expressions as exp
 
-from proxy.errors import (INSUFFICIENT_PRIVILEGE, PROGRAM_LIMIT_EXCEEDED, SYNTAX_ERROR,
-                          UNDEFINED_COLUMN, UNDEFINED_FUNCTION, UNDEFINED_TABLE, HushError,
-                          refused)
+from proxy.errors import (AMBIGUOUS_COLUMN, DATATYPE_MISMATCH, GROUPING_ERROR,
+                          INSUFFICIENT_PRIVILEGE, INVALID_COLUMN_REFERENCE, INVALID_LIMIT,
+                          INVALID_OFFSET, PROGRAM_LIMIT_EXCEEDED, SYNTAX_ERROR, UNDEFINED_COLUMN,
+                          UNDEFINED_FUNCTION, UNDEFINED_TABLE, HushError, refused)
 from proxy.policy import ColumnPolicy, Policies, TablePolicy
 from proxy.sql.domains import domain_size
-from proxy.sql.filters import (DATATYPE_MISMATCH, GROUPING_ERROR, KIND_TYPE, Typed, chain_operands,
-                               check_filter, date_node, literal, only_args, refuse_expression,
-                               unify, unparen)
+from proxy.sql.filters import (KIND_TYPE, Typed, chain_operands, check_filter, date_node, literal,
+                               only_args, refuse_expression, unify, unparen)
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
-
-# SQLSTATE codes not (yet) in proxy.errors (PostgreSQL Appendix A, "PostgreSQL Error Codes").
-INVALID_COLUMN_REFERENCE = "42P10"
-AMBIGUOUS_COLUMN = "42702"
-INVALID_LIMIT = "2201W"
-INVALID_OFFSET = "2201X"
 
 BUCKETS = ("day", "week", "month", "quarter", "year")
 

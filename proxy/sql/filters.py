@@ -59,12 +59,9 @@ from typing import Callable, Iterable, Sequence
 
 import sqlglot.expressions as exp
 
-from proxy.errors import SYNTAX_ERROR, UNDEFINED_FUNCTION, HushError, refused
+from proxy.errors import (DATATYPE_MISMATCH, GROUPING_ERROR, SYNTAX_ERROR, UNDEFINED_FUNCTION,
+                          HushError, refused)
 from proxy.policy import ColumnPolicy
-
-# SQLSTATE codes not (yet) in proxy.errors (PostgreSQL Appendix A, "PostgreSQL Error Codes").
-DATATYPE_MISMATCH = "42804"
-GROUPING_ERROR = "42803"
 
 # Analysis types of expressions. "string" is an untyped quoted literal (PostgreSQL's unknown),
 # which takes the type of what it meets; "null" is the NULL literal.

@@ -18,7 +18,7 @@ _COMPARISONS = (exp.EQ, exp.NEQ, exp.GT, exp.GTE, exp.LT, exp.LTE, exp.Between, 
                 exp.Like, exp.ILike)
 
 
-def parameter_types(tree: exp.Expression, policies: Policies, analyst: str) -> list[str | None]:
+def parameter_types(tree: exp.Expression, policies: Policies) -> list[str | None]:
     """One PostgreSQL type name per ``$1..$n`` of ``tree`` (None where the context says nothing).
 
     Must hold: ``tree`` is one parsed statement. Grants are not checked here (analysis does).

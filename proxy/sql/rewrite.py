@@ -30,9 +30,11 @@ One individual may own many rows, in many cells. The rewrite
    ORDER BY md5(individual, cell, salt))`` with a fresh random salt per query); the choice
    depends only on that individual's own cells and on randomness independent of the data;
 3. clamps each partial count to ``[0, r]`` and each partial sum to
-   ``[r * min(lo, 0), r * max(hi, 0)]`` (in step units; the interval holds 0 so a partial sum is
-   never pushed away from zero);
-4. sums the capped partials over individuals.
+   ``[r * min(lo, 0), r * max(hi, 0)]`` (in step units, or in column units for numeric columns,
+   whose partial sums stay in column units until the cell is done; the interval holds 0 so a
+   partial sum is never pushed away from zero);
+4. sums the capped partials over individuals (then, for numeric columns, converts the cell's
+   total to step units once).
 Rows whose individual column is NULL belong to no identifiable individual, so no cap could be
 enforced on the person they belong to; they are not counted. (Kept as one group, they would
 also break step 2: md5 of a NULL is NULL, so their choice of cells would follow the executor's
@@ -55,7 +57,7 @@ from decimal import Decimal
 import sqlglot.expressions as exp
 
 from proxy.policy import ColumnPolicy, TablePolicy, date_range
-from proxy.sql.domains import domain_size, domain_values
+from proxy.sql.domains import cell_count, domain_size, domain_values
 from proxy.sql.plan import GroupKey, Measure, Plan
 
 
@@ -81,10 +83,7 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
     values are summed exactly and turned into step units once per cell instead of per row.
     """
     policy = plan.table
-    sizes = [domain_size(_key_column(policy, k), k.bucket) for k in plan.keys]
-    cells = 1
-    for size in sizes:
-        cells *= size
+    cells = cell_count([domain_size(_key_column(policy, k), k.bucket) for k in plan.keys])
     if policy.individual is None:
         tree = _row_table_query(plan, exact_columns)
         groups_kept = None

@@ -4,7 +4,7 @@ Layers, data flowing one way: ``codec`` (bytes <-> typed messages, no I/O) -> ``
 connection and transaction state tables) -> ``session`` (settings, prepared statements, portals;
 calls the engine) -> ``server`` (asyncio sockets). ``types`` encodes values, ``auth`` does
 SCRAM-SHA-256, ``statements`` splits and recognises statements, ``settings`` lists what SET
-accepts. Entry points for the command line: ``serve``, ``run_server``, ``start_in_thread``.
+accepts, ``catalog`` answers catalog questions from data-free mirror databases. Entry points for the command line: ``serve``, ``run_server``, ``start_in_thread``.
 """
 
 from __future__ import annotations

@@ -57,8 +57,8 @@ from psycopg.types.string import TextLoader
 from psycopg_pool import ConnectionPool
 from sqlglot import exp
 
-from proxy.errors import (FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, PROGRAM_LIMIT_EXCEEDED,
-                          QUERY_CANCELED, HushError)
+from proxy.errors import (FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, INTERNAL_ERROR,
+                          PROGRAM_LIMIT_EXCEEDED, QUERY_CANCELED, HushError)
 from proxy.dsn import with_database
 from proxy.policy import ColumnPolicy, Policies
 from proxy.wire import statements, types
@@ -327,7 +327,6 @@ def _matching(tokens: Sequence[Token], open_at: int) -> int:
 def _check_call(tokens: Sequence[Token], i: int, name: str) -> None:
     """Raises unless the call at i is to an allowed function, unqualified or qualified by a
     catalog schema, with a listed setting name where it takes one."""
-    tok = tokens[i]
     if _is_op(tokens[i - 1] if i else None, "."):
         qualifier = tokens[i - 2] if i >= 2 else None
         if qualifier is None or qualifier.kind not in ("word", "ident") \
@@ -719,14 +718,14 @@ class Catalog:
         """A mirror error for the client: its SQLSTATE and message where they can only be
         about the query itself (syntax, names, privileges, bad input), else a generic line.
         No row of data can be in them: the mirror has none."""
-        state = state or "XX000"
+        state = state or INTERNAL_ERROR
         if state == QUERY_CANCELED:
             return HushError(QUERY_CANCELED, "canceling statement due to statement timeout",
                              hint=f"Catalog questions must finish within {self.timeout_ms} ms.")
         if state[:2] in _QUERY_ERROR_CLASSES:
             return HushError(state, message or "the catalog query failed", hint=hint)
-        return HushError(state if state[:2] == "53" else "XX000", "the catalog query failed",
-                         hint=CATALOG_HINT)
+        return HushError(state if state[:2] == "53" else INTERNAL_ERROR,
+                         "the catalog query failed", hint=CATALOG_HINT)
 
     def _pool_for(self, analyst: str, sql_text: str) -> ConnectionPool:
         """The mirror pool for this analyst, once the text has passed the checks."""
@@ -736,8 +735,8 @@ class Catalog:
         try:
             check_catalog_text(sql_text)
         except HushError as err:
-            log.info("catalog refused analyst=%s sqlstate=%s: %s", analyst[:64], err.sqlstate,
-                     err.message[:120])
+            # By SQLSTATE only: the message can quote a literal of the query.
+            log.info("catalog refused analyst=%s sqlstate=%s", analyst[:64], err.sqlstate)
             raise
         database = self.mirrors.get(analyst)
         if database is None:

@@ -18,6 +18,8 @@ import struct
 from dataclasses import dataclass, field
 from typing import ClassVar, Union
 
+from proxy.errors import CHARACTER_NOT_IN_REPERTOIRE, PROTOCOL_VIOLATION
+
 PROTOCOL_3_0 = 196608  # 3 << 16
 SSL_REQUEST_CODE = 80877103  # 1234 << 16 | 5679
 GSSENC_REQUEST_CODE = 80877104  # 1234 << 16 | 5680
@@ -31,13 +33,12 @@ DEFAULT_MAX_MESSAGE_BYTES = 1 << 20
 _I16 = struct.Struct("!h")
 _U16 = struct.Struct("!H")
 _I32 = struct.Struct("!i")
-_HEADER = struct.Struct("!ci")
 
 
 class ProtocolError(Exception):
     """The byte stream broke the protocol; the connection cannot continue (SQLSTATE 08P01)."""
 
-    sqlstate = "08P01"
+    sqlstate = PROTOCOL_VIOLATION
 
     def __init__(self, message: str) -> None:
         super().__init__(message)
@@ -54,7 +55,7 @@ class CharacterEncodingError(Exception):
     The message boundary is intact, so unlike ``ProtocolError`` the connection may go on.
     """
 
-    sqlstate = "22021"
+    sqlstate = CHARACTER_NOT_IN_REPERTOIRE
 
     def __init__(self, message: str, kind: type | None = None) -> None:
         super().__init__(message)
@@ -509,10 +510,6 @@ class FrontendReader:
         self._startup = True
         self._broken = False
 
-    @property
-    def in_startup(self) -> bool:
-        return self._startup
-
     def feed(self, data: bytes) -> None:
         """Appends bytes received from the client."""
         self._buf += data
@@ -705,7 +702,6 @@ FIELD_CODE = "C"
 FIELD_MESSAGE = "M"
 FIELD_DETAIL = "D"
 FIELD_HINT = "H"
-FIELD_POSITION = "P"
 
 
 @dataclass(frozen=True, slots=True)

@@ -27,8 +27,8 @@ import time
 from concurrent.futures import ThreadPoolExecutor
 from typing import Any, Awaitable, Callable, TypeVar
 
-from proxy.errors import (INVALID_AUTHORIZATION, INVALID_PASSWORD, PROTOCOL_VIOLATION,
-                          TOO_MANY_CONNECTIONS, HushError)
+from proxy.errors import (ADMIN_SHUTDOWN, INVALID_AUTHORIZATION, INVALID_PASSWORD,
+                          PROTOCOL_VIOLATION, TOO_MANY_CONNECTIONS, HushError)
 from proxy.wire import auth, codec, states
 from proxy.wire.session import Session, error_response, internal_error, log_internal
 from proxy.wire.states import Act, ConnectionMachine, Event
@@ -41,7 +41,6 @@ AUTH_TIMEOUT_SECONDS = 60.0
 READ_CHUNK = 64 * 1024
 FLUSH_AT_BYTES = 256 * 1024
 SHUTDOWN_GRACE_SECONDS = 5.0
-ADMIN_SHUTDOWN = "57P01"  # admin_shutdown (PostgreSQL Appendix A)
 
 T = TypeVar("T")
 
@@ -62,7 +61,6 @@ class Connection:
         self.machine = ConnectionMachine()
         self.out = codec.MessageBatch()
         self.session: Session | None = None
-        self.user: str | None = None  # once authenticated
         self.claimed: str | None = None  # the name given at startup, for the log
         self.tls = False
         self.gone = False
@@ -79,15 +77,21 @@ class Connection:
                 return msg
             if self.gone:
                 raise ClientGone
-            try:
-                data = await self.reader.read(READ_CHUNK)
-            except (ConnectionError, OSError):
-                data = b""
+            data = await self._receive()
             if not data:
-                self.gone = True
                 self.parser.check_eof()
                 raise ClientGone
             self.parser.feed(data)
+
+    async def _receive(self) -> bytes:
+        """Up to READ_CHUNK bytes from the socket; b"" (with ``gone`` set) once it has closed."""
+        try:
+            data = await self.reader.read(READ_CHUNK)
+        except (ConnectionError, OSError):
+            data = b""
+        if not data:
+            self.gone = True
+        return data
 
     def _send(self, *messages: Any) -> None:
         for m in messages:
@@ -106,12 +110,8 @@ class Connection:
         """While a query runs: keep reading (pipelined messages wait in the parser) so that a
         client closing its socket is noticed; returns when it has gone."""
         while self.parser.buffered() <= self.server.max_message_bytes:
-            try:
-                data = await self.reader.read(READ_CHUNK)
-            except (ConnectionError, OSError):
-                data = b""
+            data = await self._receive()
             if not data:
-                self.gone = True
                 return
             self.parser.feed(data)
         await asyncio.Event().wait()  # enough buffered: stop reading, wait to be cancelled
@@ -264,7 +264,6 @@ class Connection:
         except auth.AuthenticationFailed:
             self.machine.step(Event.AUTH_FAILED)
             raise failed from None
-        self.user = user
         session = Session(self.server.engine, user, catalog=self.server.catalog,
                           executor=self.server.executor, database=params.get("database", ""))
         try:

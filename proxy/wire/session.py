@@ -27,18 +27,18 @@ from sqlglot import exp
 from proxy.answer import Answer
 from proxy.engine import QueryControl, parse_epsilon
 from proxy.errors import (DUPLICATE_CURSOR, DUPLICATE_PREPARED_STATEMENT, FEATURE_NOT_SUPPORTED,
-                          INTERNAL_ERROR, INVALID_CURSOR_NAME, INVALID_SQL_STATEMENT_NAME,
-                          PROGRAM_LIMIT_EXCEEDED, PROTOCOL_VIOLATION, QUERY_CANCELED, HushError)
+                          IN_FAILED_SQL_TRANSACTION, INTERNAL_ERROR, INVALID_CURSOR_NAME,
+                          INVALID_PARAMETER_VALUE, INVALID_SAVEPOINT, INVALID_SQL_STATEMENT_NAME,
+                          NO_ACTIVE_SQL_TRANSACTION, PROGRAM_LIMIT_EXCEEDED, PROTOCOL_VIOLATION,
+                          QUERY_CANCELED, SUCCESSFUL_COMPLETION, HushError)
 from proxy.wire import codec, settings, statements, types
-from proxy.wire.states import TransactionMachine, TxEvent, TxStatus, TxStep
+from proxy.wire.states import FAILED_BLOCK_HINT, TransactionMachine, TxEvent, TxStatus, TxStep
 from proxy.wire.statements import (DeallocateStatement, DiscardStatement, EmptyStatement,
                                    ExplainStatement, NoopStatement, QueryStatement,
                                    ResetStatement, SetStatement, ShowStatement, Statement,
                                    TransactionStatement)
 
 log = logging.getLogger("hushql.wire")
-
-INVALID_SAVEPOINT = "3B001"  # invalid_savepoint_specification (PostgreSQL Appendix A)
 
 CATALOG_HINT = "hushql answers aggregate queries over the tables in your policy."
 
@@ -97,7 +97,7 @@ def answer_notice(answer: Answer) -> codec.NoticeResponse:
                          f"answers{scale}")
     detail = "; ".join(parts) if parts else None
     return codec.NoticeResponse.build(
-        "NOTICE", "00000", message, detail=detail,
+        "NOTICE", SUCCESSFUL_COMPLETION, message, detail=detail,
         hint="The figures carry deliberate random noise; SET hushql.epsilon changes the trade "
              "between cost and accuracy." if parts else None)
 
@@ -479,10 +479,7 @@ class Session:
         if isinstance(st, ShowStatement):
             return _show_shape(st)
         if isinstance(st, ExplainStatement):
-            target = tree if tree is not None else st.query.text
-            answer = await self._blocking(self.engine.explain, self.analyst, target,
-                                          epsilon=self._epsilon())
-            return types.ResultShape.of(answer.columns)
+            return types.ResultShape.of((await self._explain(st, tree)).columns)
         if isinstance(st, QueryStatement):
             if to_catalog:
                 describe = getattr(self.catalog, "describe", None)
@@ -523,7 +520,7 @@ class Session:
         """Raises 25P02 when a failed transaction block refuses this statement."""
         event = _tx_event(st)
         if self.tx.status is TxStatus.FAILED and self.tx.peek(event).refuse is not None:
-            raise HushError(*self.tx.peek(event).refuse, hint=_FAILED_HINT)
+            raise HushError(*self.tx.peek(event).refuse, hint=FAILED_BLOCK_HINT)
 
     async def _run(self, st: Statement, tree: exp.Expression | None, values: list[Any],
                    to_catalog: bool) -> Outcome:
@@ -533,8 +530,8 @@ class Session:
         step = self.tx.step(TxEvent.OUTSIDE_BLOCK_ONLY if isinstance(st, DiscardStatement)
                             and st.all else TxEvent.STATEMENT)
         if step.refuse is not None:
-            raise HushError(*step.refuse, hint=_FAILED_HINT if step.next is TxStatus.FAILED
-                            and step.refuse[0] == "25P02" else None)
+            raise HushError(*step.refuse, hint=FAILED_BLOCK_HINT if step.next is TxStatus.FAILED
+                            and step.refuse[0] == IN_FAILED_SQL_TRANSACTION else None)
         if isinstance(st, EmptyStatement):
             return Outcome(None, empty=True)
         if isinstance(st, QueryStatement):
@@ -542,9 +539,7 @@ class Session:
                 return await self._catalog(st, values)
             return await self._answer(tree if tree is not None else st.text)
         if isinstance(st, ExplainStatement):
-            target = tree if tree is not None else st.query.text
-            answer = await self._blocking(self.engine.explain, self.analyst, target,
-                                          epsilon=self._epsilon())
+            answer = await self._explain(st, tree)
             return Outcome(types.ResultShape.of(answer.columns), list(answer.rows), "EXPLAIN")
         if isinstance(st, SetStatement):
             return self._set(st)
@@ -574,6 +569,13 @@ class Session:
         if isinstance(st, NoopStatement):
             return Outcome(None, tag=st.tag)
         raise TypeError(f"unhandled statement {type(st).__name__}")
+
+    async def _explain(self, st: ExplainStatement, tree: exp.Expression | None) -> Answer:
+        """The engine's EXPLAIN of ``st`` (of its bound tree when given); plans and charges
+        nothing."""
+        target = tree if tree is not None else st.query.text
+        return await self._blocking(self.engine.explain, self.analyst, target,
+                                    epsilon=self._epsilon())
 
     async def _answer(self, target: str | exp.Expression) -> Outcome:
         epsilon = self._epsilon()
@@ -718,7 +720,8 @@ class Session:
         if st.local:
             if self.tx.status is TxStatus.IDLE:
                 notices.append(codec.NoticeResponse.build(
-                    "WARNING", "25P01", "SET LOCAL can only be used in transaction blocks"))
+                    "WARNING", NO_ACTIVE_SQL_TRANSACTION,
+                    "SET LOCAL can only be used in transaction blocks"))
                 self._assign_checked_only(key, st.value)
                 return Outcome(None, tag="SET", notices=notices)
             self._local_undo.setdefault(key, self.values[key])
@@ -756,9 +759,6 @@ class Session:
         if key == settings.EPSILON and not self.values[key]:
             return format(Decimal(self.engine.policies.defaults.epsilon_per_query), "f")
         return self.values[key]
-
-
-_FAILED_HINT = "Send ROLLBACK to end the failed transaction block."
 
 
 def _show_shape(st: ShowStatement) -> types.ResultShape:
@@ -808,7 +808,7 @@ def _options_pairs(options: str) -> list[tuple[str, str]]:
             raise HushError(FEATURE_NOT_SUPPORTED, "startup options other than -c name=value "
                             "are not supported")
         if "=" not in w:
-            raise HushError("22023", "startup option needs the form name=value")
+            raise HushError(INVALID_PARAMETER_VALUE, "startup option needs the form name=value")
         name, value = w.split("=", 1)
         pairs.append((name.replace("-", "_"), value))
         i += 1

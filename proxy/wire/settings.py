@@ -207,9 +207,6 @@ SETTINGS: Mapping[str, Setting] = {s.name.lower(): s for s in (
     Setting(REMAINING, "", None, False, "Epsilon left in this analyst's budget."),
 )}
 
-# Names with their own handling in the session (validated against policies, or computed).
-PRIVACY_SETTINGS = frozenset({EPSILON, REMAINING})
-
 # SHOW accepts a few multi-word spellings of the same settings (SQL standard forms).
 ALIASES: Mapping[str, str] = {
     "time zone": "timezone",

@@ -21,11 +21,10 @@ import sqlglot
 from sqlglot import exp
 from sqlglot.errors import ParseError, TokenError
 
-from proxy.errors import FEATURE_NOT_SUPPORTED, SYNTAX_ERROR, HushError
+from proxy.errors import FEATURE_NOT_SUPPORTED, SYNTAX_ERROR, UNDEFINED_PARAMETER, HushError
 from proxy.wire import types
 from proxy.wire.states import TxEvent
 
-UNDEFINED_PARAMETER = "42P02"  # undefined_parameter (PostgreSQL Appendix A)
 MAX_PARAMETERS = 65535  # the protocol counts parameters in an Int16 (PostgreSQL's own limit)
 
 # --------------------------------------------------------------------------- lexer
@@ -312,7 +311,6 @@ def _setting_value(c: _Cursor) -> str:
 
 
 def _parse_set(c: _Cursor) -> Statement:
-    local = False
     scope = c.word("SESSION", "LOCAL")
     if scope == "SESSION" and c.word("CHARACTERISTICS"):
         return NoopStatement("SET")

@@ -21,13 +21,9 @@ from dataclasses import dataclass
 from enum import Enum
 from typing import Mapping
 
-from proxy.errors import PROTOCOL_VIOLATION, HushError
+from proxy.errors import (ACTIVE_SQL_TRANSACTION, IN_FAILED_SQL_TRANSACTION,
+                          NO_ACTIVE_SQL_TRANSACTION, PROTOCOL_VIOLATION, HushError)
 from proxy.wire import codec
-
-# SQLSTATEs of transaction state (PostgreSQL Appendix A, class 25).
-ACTIVE_SQL_TRANSACTION = "25001"
-NO_ACTIVE_SQL_TRANSACTION = "25P01"
-IN_FAILED_SQL_TRANSACTION = "25P02"
 
 FAILED_BLOCK_MESSAGE = "current transaction is aborted, commands ignored until end of transaction block"
 FAILED_BLOCK_HINT = "Send ROLLBACK to end the failed transaction block."
@@ -252,11 +248,6 @@ TRANSACTIONS: Mapping[tuple[TxStatus, TxEvent], TxStep] = {
     (_T, TxEvent.STATEMENT_FAILED): TxStep(_E),
     (_E, TxEvent.STATEMENT_FAILED): TxStep(_E),
 }
-
-
-def refuses(status: TxStatus, event: TxEvent) -> bool:
-    """Whether the event would be refused in this status (e.g. statements in a failed block)."""
-    return TRANSACTIONS[status, event].refuse is not None
 
 
 class TransactionMachine:

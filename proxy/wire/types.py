@@ -21,13 +21,10 @@ from psycopg.adapt import Transformer
 from psycopg.pq import Format
 from sqlglot import exp
 
-from proxy.errors import FEATURE_NOT_SUPPORTED, HushError
+from proxy.errors import (CHARACTER_NOT_IN_REPERTOIRE, FEATURE_NOT_SUPPORTED,
+                          INVALID_BINARY_REPRESENTATION, INVALID_PARAMETER_VALUE,
+                          INVALID_TEXT_REPRESENTATION, PROTOCOL_VIOLATION, HushError)
 from proxy.wire import codec
-
-# SQLSTATEs of bad parameter data (PostgreSQL Appendix A, class 22).
-INVALID_TEXT_REPRESENTATION = "22P02"
-INVALID_BINARY_REPRESENTATION = "22P03"
-CHARACTER_NOT_IN_REPERTOIRE = "22021"
 
 # Type OIDs (pg_type.dat of PostgreSQL; these are fixed across versions).
 UNKNOWN = 0
@@ -238,8 +235,8 @@ class ResultShape:
         if len(result_formats) == 1:
             return (result_formats[0],) * n
         if len(result_formats) != n:
-            raise HushError("08P01", f"bind message has {len(result_formats)} result formats "
-                                     f"but query has {n} columns")
+            raise HushError(PROTOCOL_VIOLATION, f"bind message has {len(result_formats)} "
+                            f"result formats but query has {n} columns")
         return tuple(result_formats)
 
     def description(self, formats: Sequence[int]) -> codec.RowDescription:
@@ -358,11 +355,13 @@ def literal(value: Any, position: int) -> exp.Expression:
         return _number(str(abs(value)), value < 0)
     if isinstance(value, Decimal):
         if not value.is_finite():
-            raise HushError("22023", f"parameter ${position} is not a finite number")
+            raise HushError(INVALID_PARAMETER_VALUE,
+                            f"parameter ${position} is not a finite number")
         return _number(format(abs(value), "f"), value.is_signed())
     if isinstance(value, float):
         if not math.isfinite(value):
-            raise HushError("22023", f"parameter ${position} is not a finite number")
+            raise HushError(INVALID_PARAMETER_VALUE,
+                            f"parameter ${position} is not a finite number")
         return _number(repr(abs(value)), math.copysign(1.0, value) < 0)
     if isinstance(value, str):
         return exp.Literal.string(value)
