@@ -75,3 +75,39 @@ def test_hash_password_makes_a_verifier_that_verifies() -> None:
     assert verifier.startswith("SCRAM-SHA-256$4096:")
     assert verify_password("a long passphrase", verifier)
     assert not verify_password("another", verifier)
+
+
+def test_serve_takes_its_settings_from_the_environment_and_logs_no_values(demo_dsn: str) -> None:
+    import signal
+    import time
+
+    import psycopg
+
+    from proxy.localpg import free_port
+
+    port = free_port()
+    env = {**os.environ, "HUSHQL_POLICIES": str(ROOT / "policies"), "HUSHQL_BACKEND": demo_dsn,
+           "HUSHQL_LISTEN": f"127.0.0.1:{port}"}
+    server = subprocess.Popen([sys.executable, "-m", "proxy.cli", "serve", "--pool-size", "2"],
+                              cwd=ROOT, env=env, stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 60
+        while True:
+            try:
+                conn = psycopg.connect(host="127.0.0.1", port=port, user="planner",
+                                       password="planner-demo", dbname="hushql_demo",
+                                       connect_timeout=2)
+                break
+            except psycopg.OperationalError:
+                assert server.poll() is None and time.monotonic() < deadline
+                time.sleep(0.2)
+        with conn:
+            rows = conn.execute("SELECT district, COUNT(*) FROM households GROUP BY district").fetchall()
+        assert [r[0] for r in rows] == ["Northbank", "Old Mill", "Harbourside"]
+    finally:
+        server.send_signal(signal.SIGTERM)
+        _, log = server.communicate(timeout=30)
+    assert server.returncode == 0
+    assert "answer analyst=planner epsilon=0.1 outcome=ok" in log
+    # One line per connection and per answer, and never a value or the statement.
+    assert "SELECT" not in log and "Northbank" not in log and "Traceback" not in log
