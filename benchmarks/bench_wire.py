@@ -22,7 +22,6 @@ from __future__ import annotations
 import argparse
 import asyncio
 import os
-import re
 import shutil
 import socket
 import statistics
@@ -46,6 +45,8 @@ from rich.table import Table
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
+from benchmarks.common import generous_policies  # noqa: E402
+
 from proxy.demo import PLANNER_PASSWORD  # noqa: E402
 from proxy.dsn import with_database  # noqa: E402
 from proxy.localpg import free_port, start_local_postgres  # noqa: E402
@@ -53,7 +54,6 @@ from proxy.localpg import free_port, start_local_postgres  # noqa: E402
 DP_QUERY = "SELECT district, COUNT(*) FROM households GROUP BY district"
 EXACT_QUERY = "SELECT district, COUNT(*) FROM utility.households GROUP BY district"
 ANALYST = "planner"
-GENEROUS = "1000000.0"  # epsilon: far more than any run spends (0.1 per query)
 WARMUP_PER_CLIENT = 5
 CONNECT_TIMEOUT_S = 30.0
 LEVEL_TIME_LIMIT_S = 120.0  # one concurrency level, one side, is abandoned after this
@@ -64,17 +64,6 @@ TARGET_RSS_MB = 200.0
 
 
 # ---- set-up ---------------------------------------------------------------------------------
-
-def generous_policies(folder: Path) -> Path:
-    """A copy of the demo policies in ``folder`` with every analyst budget and table cap raised
-    to GENEROUS, so repeated benchmark queries never run out; returns the copy's path."""
-    target = folder / "policies"
-    shutil.copytree(ROOT / "policies", target)
-    budget_line = re.compile(r"^(\s*(?:budget|cap)\s*=\s*)[0-9.]+", re.MULTILINE)
-    for path in [target / "access.toml", *sorted((target / "tables").glob("*.toml"))]:
-        path.write_text(budget_line.sub(rf"\g<1>{GENEROUS}", path.read_text()))
-    return target
-
 
 def create_database(admin_dsn: str) -> tuple[str, str]:
     """A new database on ``admin_dsn``'s server; returns (its name, its DSN)."""

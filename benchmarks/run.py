@@ -28,6 +28,7 @@ from rich.table import Table
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
+from benchmarks.common import generous_policies  # noqa: E402
 from proxy.engine import Engine  # noqa: E402
 from proxy.policy import load_policies  # noqa: E402
 from proxy.sql.analyse import analyse  # noqa: E402
@@ -71,18 +72,12 @@ def load_bench_table(dsn: str, rows: int) -> None:
 
 
 def policies_with_bench(folder: Path) -> Path:
-    import shutil
-
-    target = folder / "policies"
-    shutil.copytree(ROOT / "policies", target)
+    """The demo policies with generous budgets, plus the one-million-row table for planner."""
+    target = generous_policies(folder)
     (target / "tables" / "meters.toml").write_text(BENCH_TABLE)
-    access = (target / "access.toml").read_text()
-    access = access.replace('tables = ["households", "readings"]',
-                            'tables = ["households", "readings", "meters"]', 1)
-    access = access.replace("budget = 3.0", "budget = 100000.0", 1)
-    (target / "access.toml").write_text(access)
-    for path in (target / "tables").glob("*.toml"):
-        path.write_text(path.read_text().replace("cap = 20.0", "cap = 100000.0"))
+    access = target / "access.toml"
+    access.write_text(access.read_text().replace(
+        'tables = ["households", "readings"]', 'tables = ["households", "readings", "meters"]', 1))
     return target
 
 

@@ -1,0 +1,21 @@
+"""Set-up shared by the benchmark scripts."""
+
+from __future__ import annotations
+
+import re
+import shutil
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+GENEROUS = "1000000.0"  # epsilon: far more than any benchmark run spends (0.1 per query)
+
+
+def generous_policies(folder: Path) -> Path:
+    """A copy of the demo policies in ``folder`` with every analyst budget and table cap raised
+    to GENEROUS, so repeated benchmark queries never run out; returns the copy's path."""
+    target = folder / "policies"
+    shutil.copytree(ROOT / "policies", target)
+    budget_line = re.compile(r"^(\s*(?:budget|cap)\s*=\s*)[0-9.]+", re.MULTILINE)
+    for path in [target / "access.toml", *sorted((target / "tables").glob("*.toml"))]:
+        path.write_text(budget_line.sub(rf"\g<1>{GENEROUS}", path.read_text()))
+    return target
