@@ -21,6 +21,7 @@ from rich.console import Console
 from rich.table import Table
 
 from proxy.errors import CANNOT_CONNECT, CONFIG_FILE_ERROR, HushError
+from proxy.ledger_cli import add_ledger_command, run_ledger
 
 DEFAULT_LISTEN = "127.0.0.1:7432"
 
@@ -93,6 +94,7 @@ def _parser() -> argparse.ArgumentParser:
 
     commands.add_parser("hash-password",
                         help="read a password and print its SCRAM-SHA-256 verifier")
+    add_ledger_command(commands)
     return parser
 
 
@@ -245,6 +247,7 @@ _COMMANDS = {
     "ask": _run_ask,
     "check": _run_check,
     "hash-password": _run_hash_password,
+    "ledger": run_ledger,
 }
 
 if __name__ == "__main__":

@@ -32,6 +32,7 @@ This module and ``proxy.backend`` are the only ones the engine reaches PostgreSQ
 
 from __future__ import annotations
 
+import getpass
 import hashlib
 import re
 from collections.abc import Iterator
@@ -205,6 +206,144 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         $body$
         """,
     )),
+    # Budgets become audited events, and every charge and event joins one hash chain (see the
+    # "Budget events" and "Tamper evidence" notes in the module docstring).
+    ("budget events; tamper-evident hash chain over charges and budget events", (
+        """
+        ALTER TABLE {schema}.analyst_budgets ADD COLUMN policy_budget numeric
+        """,
+        "UPDATE {schema}.analyst_budgets SET policy_budget = budget",
+        "COMMENT ON COLUMN {schema}.analyst_budgets.policy_budget IS "
+        "'the budget access.toml last set; budget = this + grants + renewals'",
+        """
+        CREATE TABLE {schema}.budget_events (
+            id            bigserial PRIMARY KEY,
+            at            timestamptz NOT NULL DEFAULT now(),
+            kind          text NOT NULL CHECK (kind IN ('import', 'grant', 'change', 'renewal')),
+            subject_kind  text NOT NULL CHECK (subject_kind IN ('analyst', 'table')),
+            subject       text NOT NULL,
+            previous      numeric,
+            amount        numeric,
+            reason        text NOT NULL,
+            actor         text NOT NULL,
+            chain_seq     bigint UNIQUE,
+            prev_hash     text,
+            row_hash      text
+        )
+        """,
+        "COMMENT ON COLUMN {schema}.budget_events.amount IS "
+        "'import, change: the new budget or cap (NULL: no cap); grant, renewal: epsilon added'",
+        "CREATE INDEX budget_events_by_subject ON {schema}.budget_events (subject, at)",
+        """
+        CREATE TABLE {schema}.chain_head (
+            only_row  boolean PRIMARY KEY DEFAULT true CHECK (only_row),
+            seq       bigint NOT NULL,
+            hash      text NOT NULL
+        )
+        """,
+        "INSERT INTO {schema}.chain_head (seq, hash) VALUES (0, repeat('0', 64))",
+        """
+        ALTER TABLE {schema}.charges ADD COLUMN chain_seq bigint UNIQUE,
+            ADD COLUMN prev_hash text, ADD COLUMN row_hash text
+        """,
+        # What each chained row's hash covers, as canonical text independent of session
+        # settings (time as epoch seconds, numbers as numeric text, JSON escaping).
+        """
+        CREATE FUNCTION {schema}.charge_content(c {schema}.charges) RETURNS text
+        LANGUAGE sql IMMUTABLE AS $body$
+            SELECT jsonb_build_array('charge', c.id, extract(epoch FROM c.reserved_at),
+                                     c.analyst, c.tables, c.epsilon, c.statement,
+                                     c.fingerprint)::text
+        $body$
+        """,
+        """
+        CREATE FUNCTION {schema}.budget_event_content(e {schema}.budget_events) RETURNS text
+        LANGUAGE sql IMMUTABLE AS $body$
+            SELECT jsonb_build_array('budget event', e.id, extract(epoch FROM e.at), e.kind,
+                                     e.subject_kind, e.subject, e.previous, e.amount,
+                                     e.reason, e.actor)::text
+        $body$
+        """,
+        # Takes the head's row lock last (after any budget rows), links, advances the head.
+        """
+        CREATE FUNCTION {schema}.chain_next(content text, OUT seq bigint, OUT prev text,
+                                            OUT hash text)
+        LANGUAGE plpgsql AS $body$
+        BEGIN
+            SELECT h.seq + 1, h.hash INTO seq, prev FROM {schema}.chain_head h FOR UPDATE;
+            hash := encode(sha256(convert_to(prev || E'\n' || content, 'UTF8')), 'hex');
+            UPDATE {schema}.chain_head SET seq = chain_next.seq, hash = chain_next.hash;
+        END
+        $body$
+        """,
+        """
+        CREATE FUNCTION {schema}.chain_charge() RETURNS trigger
+        LANGUAGE plpgsql AS $body$
+        BEGIN
+            SELECT n.seq, n.prev, n.hash INTO NEW.chain_seq, NEW.prev_hash, NEW.row_hash
+              FROM {schema}.chain_next({schema}.charge_content(NEW)) n;
+            RETURN NEW;
+        END
+        $body$
+        """,
+        """
+        CREATE FUNCTION {schema}.chain_budget_event() RETURNS trigger
+        LANGUAGE plpgsql AS $body$
+        BEGIN
+            SELECT n.seq, n.prev, n.hash INTO NEW.chain_seq, NEW.prev_hash, NEW.row_hash
+              FROM {schema}.chain_next({schema}.budget_event_content(NEW)) n;
+            RETURN NEW;
+        END
+        $body$
+        """,
+        # Charges made before this version join the chain in the order they were made.
+        """
+        DO $body$
+        DECLARE
+            old record;
+        BEGIN
+            FOR old IN SELECT * FROM {schema}.charges ORDER BY id LOOP
+                UPDATE {schema}.charges c SET chain_seq = n.seq, prev_hash = n.prev,
+                       row_hash = n.hash
+                  FROM {schema}.chain_next({schema}.charge_content(old)) n
+                 WHERE c.id = old.id;
+            END LOOP;
+        END
+        $body$
+        """,
+        """
+        CREATE TRIGGER chained BEFORE INSERT ON {schema}.charges
+        FOR EACH ROW EXECUTE FUNCTION {schema}.chain_charge()
+        """,
+        """
+        CREATE TRIGGER chained BEFORE INSERT ON {schema}.budget_events
+        FOR EACH ROW EXECUTE FUNCTION {schema}.chain_budget_event()
+        """,
+        # A grant: locks the analyst's row, adds, records the event (chain head last).
+        """
+        CREATE FUNCTION {schema}.grant_budget(analyst_name text, amount numeric,
+                                              why text, who text) RETURNS numeric
+        LANGUAGE plpgsql AS $body$
+        DECLARE
+            before numeric;
+            after numeric;
+        BEGIN
+            SELECT budget INTO before FROM {schema}.analyst_budgets
+             WHERE analyst = analyst_name FOR UPDATE;
+            IF NOT FOUND THEN
+                RAISE EXCEPTION 'hushql ledger: no analyst %', analyst_name
+                    USING ERRCODE = 'no_data_found';
+            END IF;
+            UPDATE {schema}.analyst_budgets SET budget = budget + amount, updated_at = now()
+             WHERE analyst = analyst_name RETURNING budget INTO after;
+            INSERT INTO {schema}.budget_events
+                   (kind, subject_kind, subject, previous, amount, reason, actor)
+            VALUES ('grant', 'analyst', analyst_name, before, amount, why, who);
+            RETURN after;
+        END
+        $body$
+        """,
+    )),
 ]
 
 SCHEMA_VERSION = len(_MIGRATIONS)
@@ -305,10 +444,17 @@ class Ledger:
                 f"program's {SCHEMA_VERSION}; upgrade hushql before using this ledger")
         return version
 
-    def sync_budgets(self, policies: Policies) -> None:
-        """Set each analyst's budget and each table's cap from ``policies``; spending is kept.
+    def sync_budgets(self, policies: Policies, *, source: str = "access.toml",
+                     actor: str | None = None) -> list[str]:
+        """Bring budgets and caps in line with ``policies`` through audited events; return one
+        line per analyst or table whose budget is now below what it has already spent.
 
-        Rows of analysts or tables no longer in the policy are kept (their charges refer to them).
+        A budget appears in the ledger as an 'import' event; a policy that later changes it
+        adds a 'change' event that moves the budget by the policy's difference, so grants and
+        renewals made in the ledger are kept. Nothing is written when nothing changed. Spending
+        and history are never touched; rows no longer in the policy are kept. ``source`` names
+        the policy (folder and digest) in each event's reason; ``actor`` defaults to the
+        operating-system user.
         """
         analysts = sorted((name, a.budget) for name, a in policies.analysts.items())
         tables = sorted((name, t.budget.cap if t.budget is not None else None)
@@ -316,13 +462,46 @@ class Ledger:
         for _, value in analysts + tables:
             if value is not None:
                 _check_decimal(value, "a budget")
-        with self._transaction() as conn:
-            # Sorted, like reserve's locks, so a sync never deadlocks with a reservation.
-            with conn.cursor() as cur:
-                if analysts:
-                    cur.executemany(self._sql.upsert_analyst, analysts)
-                if tables:
-                    cur.executemany(self._sql.upsert_table, tables)
+        who = actor or _os_user()
+        with self._transaction() as conn, conn.cursor() as cur:
+            # Every existing row is locked first, in reserve's order (analysts, then tables,
+            # codepoint order), so that the chain head, locked by the first event, comes last.
+            cur.execute(self._sql.lock_analysts, [[n for n, _ in analysts]])
+            known_analysts = {row[0]: row[1:] for row in cur.fetchall()}
+            cur.execute(self._sql.lock_tables, [[n for n, _ in tables]])
+            known_tables = {row[0]: row[1] for row in cur.fetchall()}
+            for name, budget in analysts:
+                if name not in known_analysts:
+                    cur.execute(self._sql.insert_analyst, [name, budget, budget])
+                    cur.execute(self._sql.event, ["import", "analyst", name, None, budget,
+                                                  f"imported from {source}", who])
+                    continue
+                old_policy, current = known_analysts[name]
+                old_policy = current if old_policy is None else old_policy
+                if old_policy != budget:
+                    cur.execute(self._sql.change_analyst, [budget, old_policy, budget, name])
+                    cur.execute(self._sql.event, ["change", "analyst", name, old_policy, budget,
+                                                  f"changed by {source}", who])
+            for name, cap in tables:
+                if name not in known_tables:
+                    cur.execute(self._sql.insert_table, [name, cap])
+                    cur.execute(self._sql.event, ["import", "table", name, None, cap,
+                                                  f"imported from {source}", who])
+                elif known_tables[name] != cap:
+                    cur.execute(self._sql.change_table, [cap, name])
+                    cur.execute(self._sql.event, ["change", "table", name, known_tables[name],
+                                                  cap, f"changed by {source}", who])
+        return self.overspent()
+
+    def overspent(self) -> list[str]:
+        """One line per analyst or table whose budget or cap is below what it has spent (a
+        policy lowered it); such an account or table answers no further queries."""
+        with self._connection() as conn:
+            rows = conn.execute(self._sql.overspent).fetchall()
+        return [f"{kind} {name}: {'budget' if kind == 'analyst' else 'cap'} {_show(limit)} is "
+                f"below the {_show(spent)} already spent; it answers no further queries until "
+                f"{'more is granted' if kind == 'analyst' else 'the cap is raised'}"
+                for kind, name, limit, spent in rows]
 
     def reserve(self, analyst: str, tables: list[str], epsilon: Decimal, statement: str,
                 fingerprint: str) -> Reservation:
@@ -438,6 +617,15 @@ def _refused(refusal: str, name: str, limit: Decimal | None, left: Decimal | Non
     if refusal == "unknown table":
         return _unknown_table(name)
     assert limit is not None and left is not None
+    if left < 0:
+        # A policy lowered the budget or cap below what was already spent: no epsilon helps.
+        what = f"analyst {name}'s budget" if refusal == "analyst budget" else f"table {name}'s cap"
+        return HushError(
+            BUDGET_EXHAUSTED,
+            f"{what} of {_show(limit)} is below the {_show(limit - left)} already spent, "
+            "after a policy change; no further queries are answered",
+            "ask an administrator to grant more budget (hushql ledger grant) or to restore the "
+            "policy's previous value")
     if refusal == "analyst budget":
         return HushError(
             BUDGET_EXHAUSTED,
@@ -484,20 +672,44 @@ class _Statements:
             # GREATEST skips NULLs, so "no cap" must stay NULL explicitly.
             "SELECT CASE WHEN cap IS NOT NULL THEN greatest(cap - spent, 0) END "
             f"FROM {s}.table_budgets WHERE table_name = %s")
-        self.upsert_analyst = (
-            f"INSERT INTO {s}.analyst_budgets AS a (analyst, budget) VALUES (%s, %s) "
-            "ON CONFLICT (analyst) DO UPDATE SET budget = EXCLUDED.budget, updated_at = now() "
-            "WHERE a.budget IS DISTINCT FROM EXCLUDED.budget")
-        self.upsert_table = (
-            f"INSERT INTO {s}.table_budgets AS t (table_name, cap) VALUES (%s, %s) "
-            "ON CONFLICT (table_name) DO UPDATE SET cap = EXCLUDED.cap, updated_at = now() "
-            "WHERE t.cap IS DISTINCT FROM EXCLUDED.cap")
+        self.lock_analysts = (
+            f"SELECT analyst, policy_budget, budget FROM {s}.analyst_budgets "
+            "WHERE analyst = ANY (%s::text[]) ORDER BY analyst COLLATE \"C\" FOR UPDATE")
+        self.lock_tables = (
+            f"SELECT table_name, cap FROM {s}.table_budgets "
+            "WHERE table_name = ANY (%s::text[]) ORDER BY table_name COLLATE \"C\" FOR UPDATE")
+        self.insert_analyst = (
+            f"INSERT INTO {s}.analyst_budgets (analyst, budget, policy_budget) VALUES (%s, %s, %s)")
+        # Moves the budget by the policy's difference (keeping grants), never below zero.
+        self.change_analyst = (
+            f"UPDATE {s}.analyst_budgets SET budget = greatest(budget + (%s - %s), 0), "
+            "policy_budget = %s, updated_at = now() WHERE analyst = %s")
+        self.insert_table = f"INSERT INTO {s}.table_budgets (table_name, cap) VALUES (%s, %s)"
+        self.change_table = (
+            f"UPDATE {s}.table_budgets SET cap = %s, updated_at = now() WHERE table_name = %s")
+        self.event = (
+            f"INSERT INTO {s}.budget_events "
+            "(kind, subject_kind, subject, previous, amount, reason, actor) "
+            "VALUES (%s, %s, %s, %s, %s, %s, %s)")
+        self.overspent = (
+            f"SELECT 'analyst', analyst, budget, spent FROM {s}.analyst_budgets "
+            "WHERE spent > budget "
+            f"UNION ALL SELECT 'table', table_name, cap, spent FROM {s}.table_budgets "
+            "WHERE cap IS NOT NULL AND spent > cap ORDER BY 1, 2")
 
 
 def _advisory_key(schema: str) -> int:
     """A stable signed 64-bit advisory-lock key for migrating ``schema``."""
     digest = hashlib.sha256(f"hushql ledger schema {schema}".encode()).digest()
     return int.from_bytes(digest[:8], "big", signed=True)
+
+
+def _os_user() -> str:
+    """The operating-system account running this process, for the events it records."""
+    try:
+        return getpass.getuser()
+    except (KeyError, OSError):
+        return "unknown"
 
 
 def _check_decimal(value: object, what: str) -> None:
