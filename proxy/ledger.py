@@ -300,7 +300,7 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         """
         DO $body$
         DECLARE
-            old record;
+            old {schema}.charges;
         BEGIN
             FOR old IN SELECT * FROM {schema}.charges ORDER BY id LOOP
                 UPDATE {schema}.charges c SET chain_seq = n.seq, prev_hash = n.prev,
