@@ -92,15 +92,16 @@ def _cumulative_chart(history: list[HistoryRow], budgets: dict[str, Decimal]) ->
             limit[row.analyst].append((row.at, _budget_after(limit[row.analyst], row)))
     figure, axes = plt.subplots(figsize=(8, 3.6))
     colours = plt.rcParams["axes.prop_cycle"].by_key()["color"]
+    end = max((row.at for row in history), default=None)
     for index, name in enumerate(sorted(budgets)):
         colour = colours[index % len(colours)]
         points = spent.get(name, [])
-        if points:
-            axes.step([p[0] for p in points], [float(p[1]) for p in points], where="post",
-                      color=colour, linewidth=2, label=f"{name} spent")
+        if points and end is not None:
+            axes.step([p[0] for p in points] + [end], [float(p[1]) for p in points] +
+                      [float(points[-1][1])], where="post", color=colour, linewidth=2,
+                      label=f"{name} spent")
         steps = limit.get(name, [])
-        if steps:
-            end = max([steps[-1][0]] + [p[0] for p in points])
+        if steps and end is not None:
             axes.step([s[0] for s in steps] + [end], [float(s[1]) for s in steps] +
                       [float(budgets[name])], where="post", color=colour, linestyle="--",
                       linewidth=1, label=f"{name} budget")
