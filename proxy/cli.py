@@ -48,8 +48,9 @@ def _parser() -> argparse.ArgumentParser:
     commands = parser.add_subparsers(dest="command", required=True)
 
     def engine_flags(command: argparse.ArgumentParser) -> None:
-        command.add_argument("--policies", default=_default_policies(),
-                             help="policy folder with access.toml and tables/ (HUSHQL_POLICIES)")
+        command.add_argument("--policies", default=os.environ.get("HUSHQL_POLICIES"),
+                             help="policy folder with access.toml and tables/ (HUSHQL_POLICIES); "
+                                  "required")
         command.add_argument("--backend", default=os.environ.get("HUSHQL_BACKEND"),
                              help="DSN of the database holding the tables (HUSHQL_BACKEND)")
         command.add_argument("--ledger", default=os.environ.get("HUSHQL_LEDGER"),
@@ -80,6 +81,7 @@ def _parser() -> argparse.ArgumentParser:
     serve.add_argument("--tls-key", type=Path, help="PEM private key for TLS")
     serve.add_argument("--max-connections", type=int, default=200)
     serve.add_argument("--max-message-bytes", type=int, default=1 << 20)
+    serve.set_defaults(allow_demo_accounts=False)  # only `hushql demo` serves the demo accounts
 
     ask = commands.add_parser("ask", help="answer one query through the engine, no network")
     engine_flags(ask)
@@ -91,6 +93,9 @@ def _parser() -> argparse.ArgumentParser:
 
     check = commands.add_parser("check", help="validate a policy folder")
     check.add_argument("directory", nargs="?", default=_default_policies())
+    check.add_argument("--backend", help="also check each source, column and type against this "
+                                         "database, and budgets against its ledger")
+    check.add_argument("--ledger", help="ledger DSN for the budget check (default: --backend)")
 
     commands.add_parser("hash-password",
                         help="read a password and print its SCRAM-SHA-256 verifier")
@@ -127,6 +132,10 @@ def _need_backend(args: argparse.Namespace) -> str:
 def _load(args: argparse.Namespace):
     from proxy.policy import PolicyError, load_policies
 
+    if not args.policies:
+        raise HushError(CONFIG_FILE_ERROR, "no policy folder named",
+                        hint="pass --policies DIR or set HUSHQL_POLICIES (`hushql demo` serves "
+                             "the bundled demo policies)")
     try:
         return load_policies(args.policies)
     except PolicyError as error:
@@ -137,7 +146,8 @@ def _load(args: argparse.Namespace):
 def _run_check(args: argparse.Namespace, console: Console) -> int:
     from proxy.policy_report import check_command
 
-    return check_command(args.directory, console=console)
+    return check_command(args.directory, console=console, backend=args.backend,
+                         ledger=args.ledger)
 
 
 def _run_hash_password(args: argparse.Namespace, console: Console) -> int:
@@ -197,6 +207,10 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
     from proxy.wire.server import run_server
 
     policies = _load(args)
+    from proxy.safe_config import refuse_unsafe_serving
+
+    refuse_unsafe_serving(policies, _need_backend(args),
+                          allow_demo_accounts=args.allow_demo_accounts)
     context = None
     if args.tls_cert or args.tls_key:
         if not (args.tls_cert and args.tls_key):
@@ -236,7 +250,7 @@ def _run_demo(args: argparse.Namespace, console: Console) -> int:
         namespace = argparse.Namespace(policies=args.policies, backend=backend_dsn,
                                        ledger=None, pool_size=16, listen=args.listen,
                                        tls_cert=None, tls_key=None, max_connections=200,
-                                       max_message_bytes=1 << 20)
+                                       max_message_bytes=1 << 20, allow_demo_accounts=True)
         _run_serve(namespace, console)
     return run_demo(args.backend, args.data_dir, Path(args.policies), args.listen, serve)
 

@@ -110,7 +110,10 @@ class Engine:
         self._exact: dict[str, frozenset[str]] = {}
         # Records answered outcomes after the answer is released, in order, on one thread.
         self._notes = ThreadPoolExecutor(max_workers=1, thread_name_prefix="hushql-outcomes")
-        ledger.sync_budgets(policies)
+        from proxy.safe_config import policy_source
+
+        for line in ledger.sync_budgets(policies, source=policy_source(policies)):
+            log.warning("budget below spending: %s", line)
 
     @classmethod
     def connect(cls, policies: Policies, backend_dsn: str, ledger_dsn: str | None = None, *,

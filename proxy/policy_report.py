@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import psycopg
 from rich.console import Console
 from rich.table import Table
 
@@ -19,20 +20,43 @@ from proxy.sql.domains import domain_size
 _MOST_VALUES_SHOWN = 8
 
 
-def check_command(directory: str | Path, console: Console | None = None) -> int:
+def check_command(directory: str | Path, console: Console | None = None, *,
+                  backend: str | None = None, ledger: str | None = None) -> int:
     """Check ``directory``; print the summary (exit code 0) or every problem (exit code 1).
 
+    With ``backend``, also check each source, column and type against that database, and each
+    budget and cap against the ledger (``ledger``, else the backend's schema hushql).
     With no ``console`` the summary goes to stdout and problems to stderr.
     """
+    err = console or Console(stderr=True)
     try:
         policies = load_policies(directory)
     except PolicyError as error:
-        err = console or Console(stderr=True)
-        for line in error.problems:
-            err.print(line, markup=False, emoji=False, highlight=False, soft_wrap=True)
+        _print_problems(err, error.problems)
         return 1
+    if backend:
+        from proxy.safe_config import backend_problems, budget_problems
+
+        try:
+            problems = backend_problems(policies, backend) + \
+                budget_problems(policies, ledger or backend)
+        except psycopg.Error as error:
+            problems = [f"(backend): the backend or ledger could not be checked "
+                        f"({type(error).__name__})"]
+        if problems:
+            _print_problems(err, problems)
+            return 1
     print_summary(policies, console or Console())
+    if backend:
+        (console or Console()).print("The backend answers every table, column and type; the "
+                                     "ledger's budgets stay above what is spent.",
+                                     highlight=False)
     return 0
+
+
+def _print_problems(console: Console, problems: list[str]) -> None:
+    for line in problems:
+        console.print(line, markup=False, emoji=False, highlight=False, soft_wrap=True)
 
 
 def print_summary(policies: Policies, console: Console) -> None:

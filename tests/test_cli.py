@@ -16,9 +16,29 @@ ROOT = Path(__file__).resolve().parent.parent
 
 
 def hushql(*args: str, env: dict[str, str] | None = None, stdin: str | None = None):
+    """Run the command with the demo policies named through HUSHQL_POLICIES unless ``env``
+    says otherwise."""
     return subprocess.run([sys.executable, "-m", "proxy.cli", *args], capture_output=True,
                           text=True, input=stdin, timeout=120, cwd=ROOT,
-                          env={**os.environ, "COLUMNS": "200", **(env or {})})
+                          env={**os.environ, "COLUMNS": "200",
+                               "HUSHQL_POLICIES": str(ROOT / "policies"), **(env or {})})
+
+
+def own_policies(folder: Path, passwords: dict[str, str]) -> Path:
+    """A copy of the demo policies in ``folder`` with new verifiers for ``passwords``
+    (every account of the copy gets one)."""
+    import re
+    import shutil
+
+    from proxy.wire.auth import make_verifier
+
+    shutil.copytree(ROOT / "policies", folder)
+    access = (folder / "access.toml").read_text()
+    for name, password in passwords.items():
+        access = re.sub(rf'(\[(?:analysts|admins)\.{name}\]\npassword = )"[^"]*"',
+                        lambda m: m.group(1) + f'"{make_verifier(password)}"', access)
+    (folder / "access.toml").write_text(access)
+    return folder
 
 
 @pytest.fixture(scope="module")
@@ -77,7 +97,8 @@ def test_hash_password_makes_a_verifier_that_verifies() -> None:
     assert not verify_password("another", verifier)
 
 
-def test_serve_takes_its_settings_from_the_environment_and_logs_no_values(demo_dsn: str) -> None:
+def test_serve_takes_its_settings_from_the_environment_and_logs_no_values(
+        demo_dsn: str, tmp_path: Path) -> None:
     import signal
     import time
 
@@ -86,7 +107,10 @@ def test_serve_takes_its_settings_from_the_environment_and_logs_no_values(demo_d
     from proxy.localpg import free_port
 
     port = free_port()
-    env = {**os.environ, "HUSHQL_POLICIES": str(ROOT / "policies"), "HUSHQL_BACKEND": demo_dsn,
+    policies = own_policies(tmp_path / "policies", {"planner": "planner-secret-1",
+                                                    "researcher": "researcher-secret-2",
+                                                    "auditor": "auditor-secret-3"})
+    env = {**os.environ, "HUSHQL_POLICIES": str(policies), "HUSHQL_BACKEND": demo_dsn,
            "HUSHQL_LISTEN": f"127.0.0.1:{port}"}
     server = subprocess.Popen([sys.executable, "-m", "proxy.cli", "serve", "--pool-size", "2"],
                               cwd=ROOT, env=env, stderr=subprocess.PIPE, text=True)
@@ -95,7 +119,7 @@ def test_serve_takes_its_settings_from_the_environment_and_logs_no_values(demo_d
         while True:
             try:
                 conn = psycopg.connect(host="127.0.0.1", port=port, user="planner",
-                                       password="planner-demo", dbname="hushql_demo",
+                                       password="planner-secret-1", dbname="hushql_demo",
                                        connect_timeout=2)
                 break
             except psycopg.OperationalError:
@@ -109,5 +133,77 @@ def test_serve_takes_its_settings_from_the_environment_and_logs_no_values(demo_d
         _, log = server.communicate(timeout=30)
     assert server.returncode == 0
     assert "answer analyst=planner epsilon=0.1 outcome=ok" in log
+    # Start-up names the policy set in force: its folder and a digest of its files.
+    from proxy.safe_config import policy_digest
+    assert f"policies: {policies.resolve()} (digest {policy_digest(policies)[:16]})" in log
     # One line per connection and per answer, and never a value or the statement.
     assert "SELECT" not in log and "Northbank" not in log and "Traceback" not in log
+
+
+def test_serve_and_ask_need_their_policies_named(demo_dsn: str) -> None:
+    for command in (["serve"], ["ask", "--as", "planner", "SELECT COUNT(*) FROM households"]):
+        done = hushql(*command, "--backend", demo_dsn, env={"HUSHQL_POLICIES": ""})
+        assert done.returncode == 1, done.stdout + done.stderr
+        assert "no policy folder named" in done.stdout and "--policies" in done.stdout
+        assert "Traceback" not in done.stderr
+
+
+def test_serve_refuses_the_demo_passwords_and_tables_the_backend_cannot_answer(
+        demo_dsn: str, tmp_path: Path) -> None:
+    done = hushql("serve", "--backend", demo_dsn)  # the bundled demo policies
+    assert done.returncode == 1 and "Traceback" not in done.stderr
+    for account in ("analysts.planner", "analysts.researcher", "admins.auditor"):
+        assert f"access.toml: {account}.password: accepts a password published with the demo" \
+            in done.stdout
+    # A verifier made anew (another salt) for a published password is refused just the same.
+    reused = own_policies(tmp_path / "reused", {"planner": "planner-demo"})
+    assert "analysts.planner.password" in hushql("serve", "--policies", str(reused),
+                                                 "--backend", demo_dsn).stdout
+    # Own passwords, but a misspelt source: refused at start, before any analyst pays.
+    policies = own_policies(tmp_path / "typo", {"planner": "p-1", "researcher": "r-2",
+                                                "auditor": "a-3"})
+    readings = policies / "tables" / "readings.toml"
+    readings.write_text(readings.read_text().replace("utility.meter_readings",
+                                                     "utility.meter_reading"))
+    typo = hushql("serve", "--policies", str(policies), "--backend", demo_dsn)
+    assert typo.returncode == 1 and "password" not in typo.stdout
+    assert "tables/readings.toml: source: utility.meter_reading is not a table or view" \
+        in typo.stdout
+
+
+def test_check_with_a_backend_names_each_wrong_source_column_and_type(demo_dsn: str,
+                                                                       tmp_path: Path) -> None:
+    import shutil
+
+    assert hushql("check", "policies", "--backend", demo_dsn).returncode == 0
+    folder = tmp_path / "policies"
+    shutil.copytree(ROOT / "policies", folder)
+    households = folder / "tables" / "households.toml"
+    text = households.read_text()
+    assert "[columns.district]" in text and "[columns.has_garden]" in text
+    text = text.replace("[columns.district]", "[columns.distrct]")
+    # has_garden is boolean in the backend: declaring it a category is a type problem.
+    text = text.replace('[columns.has_garden]\nkind = "boolean"',
+                        '[columns.has_garden]\nkind = "category"\nvalues = ["yes", "no"]')
+    households.write_text(text)
+    done = hushql("check", str(folder), "--backend", demo_dsn)
+    assert done.returncode == 1, done.stdout
+    assert "tables/households.toml: columns.distrct: utility.households has no such column" \
+        in done.stdout
+    assert "tables/households.toml: columns.has_garden: kind category does not fit the " \
+        "backend's type boolean" in done.stdout
+
+
+def test_check_reports_a_budget_lowered_below_spending(demo_dsn: str, tmp_path: Path) -> None:
+    import shutil
+
+    assert hushql("ask", "--as", "researcher", "--epsilon", "0.5", "--backend", demo_dsn,
+                  "SELECT COUNT(*) FROM households").returncode == 0
+    folder = tmp_path / "policies"
+    shutil.copytree(ROOT / "policies", folder)
+    access = folder / "access.toml"
+    access.write_text(access.read_text().replace("budget = 1.0", "budget = 0.2"))
+    done = hushql("check", str(folder), "--backend", demo_dsn)
+    assert done.returncode == 1
+    assert "access.toml: analysts.researcher.budget: the ledger's budget would become" \
+        in done.stdout and "below the" in done.stdout
