@@ -218,7 +218,10 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
         context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
         context.load_cert_chain(str(args.tls_cert), str(args.tls_key))
     engine = Engine.connect(policies, _need_backend(args), args.ledger, pool_size=args.pool_size)
-    catalog = _catalog(policies, args)
+    from proxy.wire.ledger_relations import LedgerRelations
+
+    # Administrators' read-only ledger relations in front of the catalog.
+    catalog = LedgerRelations(policies, args.ledger or args.backend, _catalog(policies, args))
     host, port = args.listen
     try:
         run_server(engine, host=host, port=port, ssl_context=context,
@@ -226,8 +229,7 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
                    max_message_bytes=args.max_message_bytes,
                    max_connections=args.max_connections, catalog=catalog)
     finally:
-        if catalog is not None:
-            catalog.close()
+        catalog.close()
         engine.close()
     return 0
 

@@ -344,6 +344,24 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         $body$
         """,
     )),
+    # What administrators read through the proxy (with hushql.charges itself); read-only
+    # through a role that may select these and nothing else (proxy.wire.ledger_relations).
+    ("administrators' relations: budgets, grants, populations", (
+        """
+        CREATE VIEW {schema}.budgets AS
+        SELECT analyst, budget, spent, greatest(budget - spent, 0) AS remaining, updated_at
+          FROM {schema}.analyst_budgets
+        """,
+        """
+        CREATE VIEW {schema}.grants AS
+        SELECT id, at, kind, subject_kind, subject, previous, amount, reason, actor
+          FROM {schema}.budget_events
+        """,
+        """
+        CREATE VIEW {schema}.populations AS
+        SELECT table_name AS name, cap, spent, updated_at FROM {schema}.table_budgets
+        """,
+    )),
 ]
 
 SCHEMA_VERSION = len(_MIGRATIONS)
