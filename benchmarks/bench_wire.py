@@ -45,9 +45,8 @@ from rich.table import Table
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from benchmarks.common import generous_policies  # noqa: E402
+from benchmarks.common import BENCH_PASSWORD, generous_policies  # noqa: E402
 
-from proxy.demo import PLANNER_PASSWORD  # noqa: E402
 from proxy.dsn import with_database  # noqa: E402
 from proxy.localpg import free_port, start_local_postgres  # noqa: E402
 
@@ -413,7 +412,7 @@ def main() -> None:
                 proxy = start_proxy_subprocess(policies, dsn, args.pool_size, max_connections,
                                                folder / "proxy.log", args.profile)
         params = conninfo_to_dict(dsn)
-        through = Target(proxy.host, proxy.port, ANALYST, PLANNER_PASSWORD, "hushql_demo",
+        through = Target(proxy.host, proxy.port, ANALYST, BENCH_PASSWORD, "hushql_demo",
                          DP_QUERY, None if args.in_process else proxy.pid)
         direct = Target(str(params.get("host", "127.0.0.1")), int(params.get("port", 5432)),
                         str(params.get("user", "postgres")), params.get("password"),
