@@ -49,10 +49,13 @@ class AnalystPolicy(_Strict):
     password: str
     budget: Decimal
     tables: list[str] = Field(default_factory=list)
+    # A disabled account cannot log in or be charged; its budget and history stay in the ledger.
+    disabled: bool = False
 
 
 class AdminPolicy(_Strict):
     password: str
+    disabled: bool = False
 
 
 class AccessPolicy(_Strict):

@@ -72,7 +72,8 @@ def print_summary(policies: Policies, console: Console) -> None:
     for name in sorted(policies.tables):
         console.print(_columns_table(policies.tables[name], d.most_cells))
     console.print(_analysts_table(policies))
-    admins = ", ".join(sorted(policies.admins)) or "none"
+    admins = ", ".join(name + (" (disabled)" if policies.admins[name].disabled else "")
+                       for name in sorted(policies.admins)) or "none"
     console.print(f"Administrators: {admins}", markup=False, highlight=False)
 
 
@@ -142,5 +143,6 @@ def _analysts_table(policies: Policies) -> Table:
         view.add_column(heading, overflow="fold")
     for name in sorted(policies.analysts):
         analyst = policies.analysts[name]
-        view.add_row(name, str(analyst.budget), ", ".join(analyst.tables) or "none")
+        view.add_row(name + (" (disabled)" if analyst.disabled else ""), str(analyst.budget),
+                     ", ".join(analyst.tables) or "none")
     return view

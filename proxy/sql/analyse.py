@@ -87,8 +87,9 @@ def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -
     modified. Nothing here reads data or touches a database.
     """
     analyst_policy = policies.analysts.get(analyst)
-    if analyst_policy is None:
-        raise HushError(INSUFFICIENT_PRIVILEGE, f'role "{analyst}" is not an analyst',
+    if analyst_policy is None or analyst_policy.disabled:
+        raise HushError(INSUFFICIENT_PRIVILEGE, f'role "{analyst}" is not an analyst' +
+                        (" (disabled)" if analyst_policy is not None else ""),
                         "connect as an analyst account listed in access.toml")
     try:
         tree = _parse(statement) if isinstance(statement, str) else statement

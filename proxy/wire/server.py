@@ -404,7 +404,7 @@ class WireServer:
         unusable (then the exchange runs against a stand-in and fails like a wrong password)."""
         policies = self.engine.policies
         account = policies.analysts.get(user) or policies.admins.get(user)
-        if account is None:
+        if account is None or account.disabled:
             return None
         try:
             return auth.parse_verifier(account.password)
