@@ -114,6 +114,10 @@ class Engine:
 
         for line in ledger.sync_budgets(policies, source=policy_source(policies)):
             log.warning("budget below spending: %s", line)
+        from proxy.renewal import RenewalSchedule
+
+        self._renewals = RenewalSchedule(policies, ledger)
+        self._renewals.apply_due()
 
     @classmethod
     def connect(cls, policies: Policies, backend_dsn: str, ledger_dsn: str | None = None, *,
@@ -222,6 +226,7 @@ class Engine:
                epsilon: Decimal | None = None, control: QueryControl | None = None) -> Answer:
         """Plan, reserve, run, noise and release one statement. Raises HushError."""
         prepared = self.prepare(analyst, statement)
+        self._renewals.apply_due()  # a clock comparison except at a period boundary
         eps = self.epsilon_for(epsilon)
         plan = prepared.plan
         text = statement if isinstance(statement, str) else statement.sql(dialect="postgres")

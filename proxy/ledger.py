@@ -32,6 +32,7 @@ This module and ``proxy.backend`` are the only ones the engine reaches PostgreSQ
 
 from __future__ import annotations
 
+import datetime as dt
 import getpass
 import hashlib
 import re
@@ -511,6 +512,31 @@ class Ledger:
                                                   cap, f"changed by {source}", who])
         return self.overspent()
 
+    def renew(self, analyst: str, budget: Decimal, period_start: dt.datetime,
+              reason: str) -> bool:
+        """Top ``analyst``'s remaining budget up to ``budget`` with a 'renewal' event, unless
+        the analyst was imported since ``period_start`` or a renewal with this ``reason`` (which
+        names the period) exists; True when renewed.
+
+        Under the analyst's row lock, so concurrent proxies renew a period once. A renewal that
+        adds nothing (the budget is still full) is recorded too: it marks the period as renewed.
+        """
+        _check_decimal(budget, "a budget")
+        with self._transaction() as conn:
+            row = conn.execute(self._sql.lock_analyst, [analyst]).fetchone()
+            if row is None:
+                return False
+            current, spent = row
+            done = conn.execute(self._sql.renewed_since,
+                                [analyst, period_start, reason]).fetchone()
+            if done is not None and done[0]:
+                return False
+            amount = max(budget - (current - spent), Decimal(0))
+            conn.execute(self._sql.add_budget, [amount, analyst])
+            conn.execute(self._sql.event, ["renewal", "analyst", analyst, current, amount,
+                                           reason, _os_user()])
+        return True
+
     def overspent(self) -> list[str]:
         """One line per analyst or table whose budget or cap is below what it has spent (a
         policy lowered it); such an account or table answers no further queries."""
@@ -702,6 +728,16 @@ class _Statements:
         self.change_analyst = (
             f"UPDATE {s}.analyst_budgets SET budget = greatest(budget + (%s - %s), 0), "
             "policy_budget = %s, updated_at = now() WHERE analyst = %s")
+        self.lock_analyst = (
+            f"SELECT budget, spent FROM {s}.analyst_budgets WHERE analyst = %s FOR UPDATE")
+        # Renewed for a period: a renewal naming it (its reason), or an import during it.
+        self.renewed_since = (
+            f"SELECT EXISTS (SELECT 1 FROM {s}.budget_events WHERE subject_kind = 'analyst' "
+            "AND subject = %s AND ((kind = 'import' AND at >= %s) "
+            "OR (kind = 'renewal' AND reason = %s)))")
+        self.add_budget = (
+            f"UPDATE {s}.analyst_budgets SET budget = budget + %s, updated_at = now() "
+            "WHERE analyst = %s")
         self.insert_table = f"INSERT INTO {s}.table_budgets (table_name, cap) VALUES (%s, %s)"
         self.change_table = (
             f"UPDATE {s}.table_budgets SET cap = %s, updated_at = now() WHERE table_name = %s")

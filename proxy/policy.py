@@ -51,6 +51,8 @@ class AnalystPolicy(_Strict):
     tables: list[str] = Field(default_factory=list)
     # A disabled account cannot log in or be charged; its budget and history stay in the ledger.
     disabled: bool = False
+    # The remaining budget is topped up to ``budget`` at the start of each such period (UTC).
+    renew_every: Literal["day", "week", "month", "quarter", "year"] | None = None
 
 
 class AdminPolicy(_Strict):

@@ -15,6 +15,7 @@ from rich.console import Console
 from rich.table import Table
 
 from proxy.policy import ColumnPolicy, Policies, PolicyError, TablePolicy, date_range, load_policies
+from proxy.renewal import guarantee_note
 from proxy.sql.domains import domain_size
 
 _MOST_VALUES_SHOWN = 8
@@ -143,6 +144,9 @@ def _analysts_table(policies: Policies) -> Table:
         view.add_column(heading, overflow="fold")
     for name in sorted(policies.analysts):
         analyst = policies.analysts[name]
-        view.add_row(name + (" (disabled)" if analyst.disabled else ""), str(analyst.budget),
+        budget = str(analyst.budget)
+        if analyst.renew_every is not None:
+            budget += f" ({guarantee_note(analyst.budget, analyst.renew_every)})"
+        view.add_row(name + (" (disabled)" if analyst.disabled else ""), budget,
                      ", ".join(analyst.tables) or "none")
     return view
