@@ -222,6 +222,7 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
 
     # Administrators' read-only ledger relations in front of the catalog.
     catalog = LedgerRelations(policies, args.ledger or args.backend, _catalog(policies, args))
+    _reload_on_sighup(args, engine, catalog)
     host, port = args.listen
     try:
         run_server(engine, host=host, port=port, ssl_context=context,
@@ -232,6 +233,19 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
         catalog.close()
         engine.close()
     return 0
+
+
+def _reload_on_sighup(args: argparse.Namespace, engine, relations) -> None:
+    """SIGHUP re-reads the policy folder (see proxy.reload)."""
+    import signal
+
+    from proxy.reload import PolicyReloader
+
+    reloader = PolicyReloader(args.policies, args.backend, engine, relations,
+                              lambda policies: _catalog(policies, args),
+                              allow_demo_accounts=args.allow_demo_accounts)
+    if hasattr(signal, "SIGHUP"):  # not on Windows
+        signal.signal(signal.SIGHUP, reloader.reload_in_background)
 
 
 def _catalog(policies, args: argparse.Namespace):

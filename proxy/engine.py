@@ -128,6 +128,23 @@ class Engine:
         ledger = Ledger(ledger_dsn or backend_dsn, pool_size=max(2, pool_size))
         return cls(policies, backend, ledger)
 
+    def reload(self, policies: Policies) -> None:
+        """Serve ``policies`` from now on: budgets synced as audited events first, then the
+        policies swapped and the plans of the old ones dropped. Queries already planned finish
+        under the policies they were planned with."""
+        from proxy.renewal import RenewalSchedule
+        from proxy.safe_config import policy_source
+
+        for line in self.ledger.sync_budgets(policies, source=policy_source(policies)):
+            log.warning("budget below spending: %s", line)
+        renewals = RenewalSchedule(policies, self.ledger)
+        renewals.apply_due()
+        with self._cache_lock:
+            self.policies = policies
+            self._renewals = renewals
+            self._cache.clear()
+            self._exact.clear()
+
     def close(self) -> None:
         """Record pending outcomes, then close the pools."""
         self._notes.shutdown(wait=True)

@@ -124,6 +124,13 @@ class LedgerRelations:
             conn.execute(sql.SQL("GRANT SELECT ON {} TO {}").format(
                 sql.SQL(", ").join(sql.Identifier(SCHEMA, r) for r in sorted(RELATIONS)), role))
 
+    def replace(self, policies: Policies, inner: Any) -> Any:
+        """Serve ``policies``' administrators and delegate to ``inner`` from now on; returns
+        the catalog replaced (for the caller to close)."""
+        old, self.inner = self.inner, inner
+        self._admins = frozenset(policies.admins)
+        return old
+
     # ---- routing (called by the session) ------------------------------------------------
 
     def is_catalog_query(self, tree: exp.Expression) -> bool:
