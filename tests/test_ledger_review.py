@@ -307,3 +307,33 @@ def test_near_exhausted_budgets_stand_out(fresh_dsn: str, spent_ledger: Ledger) 
     researcher = next(line for line in lines if "researcher" in line)
     planner = next(line for line in lines if "planner" in line)
     assert "\x1b[1;31m" in researcher and "\x1b[1;31m" not in planner
+
+
+def test_after_a_demo_session_of_two_analysts_the_ledger_shows_their_spending(
+        fresh_dsn: str, tmp_path: Path) -> None:
+    from proxy.demo import load_scenario
+    from proxy.engine import Engine
+    from proxy.policy import load_policies
+
+    load_scenario(fresh_dsn, households=300, progress=False)
+    engine = Engine.connect(load_policies(ROOT / "policies"), fresh_dsn, pool_size=2)
+    try:
+        engine.answer("planner", "SELECT district, COUNT(*) FROM households GROUP BY district",
+                      epsilon=D("0.25"))
+        engine.answer("planner", "SELECT COUNT(*) FROM readings")
+        engine.answer("researcher", "SELECT has_garden, COUNT(*) FROM households "
+                                    "GROUP BY has_garden", epsilon=D("0.3"))
+    finally:
+        engine.close()
+    summary = hushql("ledger", "--ledger", fresh_dsn)
+    assert summary.returncode == 0, summary.stderr
+    rows = {cells[0]: cells[1:6] for cells in (
+        [c.strip() for c in line.split("│")[1:-1]] for line in summary.stdout.splitlines()
+        if line.startswith("│")) if cells}
+    assert rows["planner"] == ["3.0", "0.35", "2.65", "2", "0"]
+    assert rows["researcher"] == ["1.0", "0.3", "0.7", "1", "0"]
+    assert rows["households"][:3] == ["20.0", "0.55", "19.45"]
+    assert rows["readings"][:3] == ["20.0", "0.1", "19.9"]
+    report = tmp_path / "report.html"
+    done = hushql("ledger", "--ledger", fresh_dsn, "report", "--out", str(report))
+    assert done.returncode == 0 and report.read_text().count("<svg") == 3
