@@ -481,7 +481,7 @@ class Ledger:
         for _, value in analysts + tables:
             if value is not None:
                 _check_decimal(value, "a budget")
-        who = actor or _os_user()
+        who = actor or os_user()
         with self._transaction() as conn, conn.cursor() as cur:
             # Every existing row is locked first, in reserve's order (analysts, then tables,
             # codepoint order), so that the chain head, locked by the first event, comes last.
@@ -534,7 +534,7 @@ class Ledger:
             amount = max(budget - (current - spent), Decimal(0))
             conn.execute(self._sql.add_budget, [amount, analyst])
             conn.execute(self._sql.event, ["renewal", "analyst", analyst, current, amount,
-                                           reason, _os_user()])
+                                           reason, os_user()])
         return True
 
     def overspent(self) -> list[str]:
@@ -758,7 +758,7 @@ def _advisory_key(schema: str) -> int:
     return int.from_bytes(digest[:8], "big", signed=True)
 
 
-def _os_user() -> str:
+def os_user() -> str:
     """The operating-system account running this process, for the events it records."""
     try:
         return getpass.getuser()

@@ -22,7 +22,7 @@ from rich.console import Console
 from rich.table import Table
 
 from proxy.errors import CANNOT_CONNECT, INVALID_PARAMETER_VALUE, HushError
-from proxy.ledger import _os_user
+from proxy.ledger import os_user
 from proxy.ledger_review import NEAR_EXHAUSTED, HistoryRow, LedgerReview, near_exhausted
 
 
@@ -102,7 +102,7 @@ def _grant(review: LedgerReview, args: argparse.Namespace, console: Console) -> 
     except InvalidOperation:
         raise HushError(INVALID_PARAMETER_VALUE, f"invalid epsilon {args.epsilon!r}",
                         hint="a positive decimal number such as 1.5") from None
-    budget = review.grant(args.analyst, epsilon, args.reason, _os_user())
+    budget = review.grant(args.analyst, epsilon, args.reason, os_user())
     console.print(f"granted {_num(epsilon)} to {args.analyst}; budget now {_num(budget)}",
                   highlight=False)
     return 0

@@ -5,6 +5,7 @@ from __future__ import annotations
 import datetime as dt
 from collections.abc import Iterator
 from decimal import Decimal
+from pathlib import Path
 
 import pytest
 
@@ -74,9 +75,8 @@ def test_without_renew_every_nothing_renews(ledger: Ledger) -> None:
     assert ledger.remaining("planner") == D("0.5")
 
 
-def test_check_states_what_renewal_means_for_the_guarantee(tmp_path) -> None:  # type: ignore[no-untyped-def]
+def test_check_states_what_renewal_means_for_the_guarantee(tmp_path: Path) -> None:
     import shutil
-    from pathlib import Path
 
     from rich.console import Console
 

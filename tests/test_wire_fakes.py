@@ -47,7 +47,7 @@ class FakeEngine:
             defaults=SimpleNamespace(epsilon_per_query=Decimal("0.1"),
                                      largest_epsilon_per_query=Decimal("1.0"), most_cells=10000),
             analysts={ANALYST: SimpleNamespace(password=make_verifier(PASSWORD), budget=budget,
-                                               tables=["households"])},
+                                               tables=["households"], disabled=False)},
             admins={})
         self.budget = budget
         self.spent = Decimal(0)

@@ -216,7 +216,8 @@ class LedgerRelations:
             log.error("ledger relations query failed: %s", type(error).__name__)
             raise HushError(INTERNAL_ERROR, "the ledger could not answer") from None
         if len(rows) > self._max_rows:
-            raise HushError(PROGRAM_LIMIT_EXCEEDED, f"the answer has more than {self._max_rows} rows",
+            raise HushError(PROGRAM_LIMIT_EXCEEDED,
+                            f"the answer has more than {self._max_rows} rows",
                             hint="narrow the query")
         decoders = [_decoder(c.type_code) for c in described]
         values = [tuple(v if v is None or d is None else d(v) for v, d in zip(row, decoders))
