@@ -22,6 +22,7 @@ from sqlglot import exp
 from sqlglot.errors import ParseError, TokenError
 
 from proxy.errors import FEATURE_NOT_SUPPORTED, SYNTAX_ERROR, UNDEFINED_PARAMETER, HushError
+from proxy.sql.filters import mark_written_names
 from proxy.wire import types
 from proxy.wire.states import TxEvent
 
@@ -524,7 +525,7 @@ def _parse_tree(text: str) -> exp.Expression:
     trees = [t for t in trees if t is not None]
     if len(trees) != 1:
         raise HushError(SYNTAX_ERROR, "syntax error: expected one statement")
-    return trees[0]
+    return mark_written_names(trees[0], text)  # refusals quote function names as written
 
 
 def _sqlglot_error(exc: Exception) -> HushError:
