@@ -167,8 +167,10 @@ def _load(args: argparse.Namespace):
     try:
         return load_policies(args.policies)
     except PolicyError as error:
+        from proxy.demo import hushql_command
+
         raise HushError(CONFIG_FILE_ERROR, "the policy folder has problems:\n" + "\n".join(error.problems),
-                        hint=f"run `hushql check {args.policies}`") from None
+                        hint=f"run `{hushql_command()} check {args.policies}`") from None
 
 
 def _run_check(args: argparse.Namespace, console: Console) -> int:

@@ -296,7 +296,8 @@ def run_demo(backend: str | None, data_dir: Path | None, policies_dir: Path,
             server = start_local_postgres(folder)
         except LocalServerError as error:  # no binaries, or initdb / the server failed
             _say(err, f"hushql demo: {error}")
-            _say(err, "Or point the demo at a server you have: hushql demo --backend DSN")
+            _say(err, f"Or point the demo at a server you have: {hushql_command()} demo "
+                      "--backend DSN")
             return 1
     try:
         with _stop_on_sigterm():
