@@ -125,3 +125,41 @@ def wait_for_port(port: int, demo: subprocess.Popen[str]) -> None:
         except OSError:
             time.sleep(0.2)
     raise AssertionError("the demo never listened")
+
+
+@pytest.mark.skipif(not HUSHQL.is_file(), reason="hushql is not installed beside this Python")
+def test_no_serve_prints_a_serve_line_that_serves_what_was_loaded(fresh_dsn: str,
+                                                                  tmp_path: Path) -> None:
+    import re
+
+    import psycopg
+
+    port = free_port()
+    done = subprocess.run([str(HUSHQL), "demo", "--no-serve", "--backend", fresh_dsn,
+                           "--households", "40", "--listen", f"127.0.0.1:{port}"],
+                          cwd=ROOT, capture_output=True, text=True, timeout=180,
+                          env={**os.environ, "HUSHQL_BACKEND": "", "HUSHQL_POLICIES": ""})
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "postgresql://" not in done.stdout.replace(fresh_dsn, "")  # no URL: nothing listens
+    lines = done.stdout.splitlines()
+    opening = next(i for i, line in enumerate(lines) if "try these" in line)
+    closing = next(i for i in range(opening + 1, len(lines)) if set(lines[i]) == {RULE})
+    banner = lines[opening + 1:closing]
+    exports = [line for line in banner if line.startswith("export ")]
+    [serve] = [line for line in banner if " serve --listen " in line]
+    said = re.search(r"connect to database (\S+) as planner / (\S+)", serve)
+    assert said and said.group(1) == fresh_dsn.rsplit("/", 1)[1]
+    server = subprocess.Popen(["sh", "-c", "\n".join([*exports, f"exec {serve}"])],
+                              cwd=tmp_path, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                              text=True, env={"PATH": plain_path(), "HOME": str(tmp_path)})
+    try:
+        wait_for_port(port, server)
+        with psycopg.connect(host="127.0.0.1", port=port, dbname=said.group(1), user="planner",
+                             password=said.group(2)) as conn:
+            rows = conn.execute("SELECT district, COUNT(*) FROM households "
+                                "GROUP BY district").fetchall()
+        assert [row[0] for row in rows] == ["Northbank", "Old Mill", "Harbourside"]
+    finally:
+        server.send_signal(signal.SIGTERM)
+        _, log = server.communicate(timeout=30)
+    assert server.returncode == 0 and "Traceback" not in log
