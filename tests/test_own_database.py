@@ -9,7 +9,8 @@ from proxy.wire.catalog import Catalog
 from proxy.wire.own_database import replace_pg_database
 from tests.test_catalog import backend, catalog  # noqa: F401 - the fixtures
 
-# What psql 15 sends for \l (psql's describe.c, listAllDbs, as captured from psql 15.20).
+# Modelled on what psql 15 sends for \l (psql's describe.c, listAllDbs; written from memory and
+# shortened). tests/test_demo_banner.py runs the real \l through psql when it is installed.
 PSQL_LIST_DATABASES = """SELECT
   d.datname as "Name",
   pg_catalog.pg_get_userbyid(d.datdba) as "Owner",

@@ -181,7 +181,8 @@ _TEXT_OVERRIDES: dict[int, Callable[[Any], bytes]] = {FLOAT8: _float_text, FLOAT
 
 
 def _json_text(v: str) -> bytes:
-    # A json value travels as its text in both formats (PostgreSQL's json_send sends the text);
+    # A json value travels as its text in both formats (PostgreSQL's json_send sends the text
+    # as is: from memory of src/backend/utils/adt/json.c; jsonb alone adds a version byte);
     # psycopg's json dumper would encode a str as a JSON string instead.
     return v.encode("utf-8")
 
