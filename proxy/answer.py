@@ -13,7 +13,8 @@ from fractions import Fraction
 from typing import Literal, Union
 
 # PostgreSQL type names the proxy may return; the wire front maps them to type OIDs.
-ColumnType = Literal["text", "bigint", "integer", "numeric", "double precision", "date", "boolean"]
+ColumnType = Literal["text", "bigint", "integer", "numeric", "double precision", "date", "boolean",
+                     "json"]
 
 Value = Union[str, int, Decimal, float, _dt.date, bool, None]
 

@@ -13,14 +13,17 @@ import getpass
 import logging
 import os
 import sys
-from decimal import Decimal
+from decimal import Decimal, InvalidOperation
 from pathlib import Path
 from typing import Sequence
 
 from rich.console import Console
+from rich.markup import escape
 from rich.table import Table
 
-from proxy.errors import CANNOT_CONNECT, CONFIG_FILE_ERROR, HushError
+from proxy import preflight
+from proxy.errors import (CANNOT_CONNECT, CONFIG_FILE_ERROR, INVALID_PARAMETER_VALUE,
+                          HushError)
 from proxy.ledger_cli import add_ledger_command, run_ledger
 
 DEFAULT_LISTEN = "127.0.0.1:7432"
@@ -70,7 +73,10 @@ def _parser() -> argparse.ArgumentParser:
     demo.add_argument("--listen", type=_listen, default=_listen(DEFAULT_LISTEN),
                       help=f"address to serve on (default {DEFAULT_LISTEN})")
     demo.add_argument("--no-serve", action="store_true",
-                      help="load the scenario and stop, without serving")
+                      help="load the scenario without serving it, and print how to serve it")
+    demo.add_argument("--households", type=int, default=3000,
+                      help="households to invent, each with a year of daily readings "
+                           "(default 3000)")
 
     serve = commands.add_parser("serve", help="serve the proxy to SQL clients")
     engine_flags(serve)
@@ -114,9 +120,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return _COMMANDS[args.command](args, console)
     except HushError as error:
-        console.print(f"[red]ERROR {error.sqlstate}[/red]: {error.message}", highlight=False)
+        # Never wrapped: one line for what failed and one for what to do, as they paste.
+        console.print(f"[red]ERROR {error.sqlstate}[/red]: {escape(error.message)}", highlight=False,
+                      soft_wrap=True)
         if error.hint:
-            console.print(f"HINT: {error.hint}", highlight=False)
+            console.print(f"HINT: {error.hint}", highlight=False, soft_wrap=True, markup=False)
         return 1
     except KeyboardInterrupt:
         return 130
@@ -129,6 +137,37 @@ def _need_backend(args: argparse.Namespace) -> str:
     return args.backend
 
 
+def _connect(policies, args: argparse.Namespace, *, pool_size: int):
+    """The engine over ``args.backend`` and ``args.ledger``, each checked to answer first so that
+    an unreachable one is one line, not a pool's timeout."""
+    import psycopg
+
+    from proxy.engine import Engine
+
+    backend = _need_backend(args)
+    preflight.check_reachable(backend, "backend", "--backend or HUSHQL_BACKEND")
+    if args.ledger:
+        preflight.check_reachable(args.ledger, "ledger", "--ledger or HUSHQL_LEDGER")
+    try:
+        return Engine.connect(policies, backend, args.ledger, pool_size=pool_size)
+    except psycopg.Error as error:  # e.g. the ledger schema cannot be created
+        raise HushError(CANNOT_CONNECT, "cannot open the backend and ledger databases: "
+                        + preflight.first_line(error),
+                        hint="the role needs to read the tables and, for the ledger, to create "
+                             "schema hushql (or give --ledger a database where it may)") from None
+
+
+def _epsilon(text: str | None) -> Decimal | None:
+    """``--epsilon`` as a Decimal (the engine checks its range); None when not given."""
+    if not text:
+        return None
+    try:
+        return Decimal(text)
+    except InvalidOperation:
+        raise HushError(INVALID_PARAMETER_VALUE, f"invalid epsilon {text[:40]!r}",
+                        hint="write a decimal number such as --epsilon 0.25") from None
+
+
 def _load(args: argparse.Namespace):
     from proxy.policy import PolicyError, load_policies
 
@@ -139,8 +178,10 @@ def _load(args: argparse.Namespace):
     try:
         return load_policies(args.policies)
     except PolicyError as error:
+        from proxy.demo import hushql_command
+
         raise HushError(CONFIG_FILE_ERROR, "the policy folder has problems:\n" + "\n".join(error.problems),
-                        hint=f"run `hushql check {args.policies}`") from None
+                        hint=f"run `{hushql_command()} check {args.policies}`") from None
 
 
 def _run_check(args: argparse.Namespace, console: Console) -> int:
@@ -168,11 +209,9 @@ def _run_hash_password(args: argparse.Namespace, console: Console) -> int:
 
 
 def _run_ask(args: argparse.Namespace, console: Console) -> int:
-    from proxy.engine import Engine
-
-    engine = Engine.connect(_load(args), _need_backend(args), args.ledger, pool_size=2)
+    epsilon = _epsilon(args.epsilon)
+    engine = _connect(_load(args), args, pool_size=2)
     try:
-        epsilon = Decimal(args.epsilon) if args.epsilon else None
         if args.explain:
             answer = engine.explain(args.analyst, args.sql, epsilon=epsilon)
         else:
@@ -201,34 +240,30 @@ def print_answer(answer, console: Console, *, show_cost: bool = True) -> None:
 
 
 def _run_serve(args: argparse.Namespace, console: Console) -> int:
-    import ssl
-
-    from proxy.engine import Engine
     from proxy.wire.server import run_server
 
     policies = _load(args)
     from proxy.safe_config import refuse_unsafe_serving
-
-    refuse_unsafe_serving(policies, _need_backend(args),
-                          allow_demo_accounts=args.allow_demo_accounts)
-    context = None
-    if args.tls_cert or args.tls_key:
-        if not (args.tls_cert and args.tls_key):
-            raise HushError(CONFIG_FILE_ERROR, "TLS needs both --tls-cert and --tls-key")
-        context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
-        context.load_cert_chain(str(args.tls_cert), str(args.tls_key))
-    engine = Engine.connect(policies, _need_backend(args), args.ledger, pool_size=args.pool_size)
     from proxy.wire.ledger_relations import LedgerRelations
 
+    context = preflight.tls_context(args.tls_cert, args.tls_key)
+    host, port = args.listen
+    preflight.check_can_listen(host, port)
+    refuse_unsafe_serving(policies, _need_backend(args),
+                          allow_demo_accounts=args.allow_demo_accounts)
+    engine = _connect(policies, args, pool_size=args.pool_size)
     # Administrators' read-only ledger relations in front of the catalog.
     catalog = LedgerRelations(policies, args.ledger or args.backend, _catalog(policies, args))
     _reload_on_sighup(args, engine, catalog)
-    host, port = args.listen
     try:
         run_server(engine, host=host, port=port, ssl_context=context,
                    engine_threads=max(32, 2 * args.pool_size),
                    max_message_bytes=args.max_message_bytes,
                    max_connections=args.max_connections, catalog=catalog)
+    except OSError as error:  # the port was taken between the check and the bind
+        if not preflight.is_listen_error(error):
+            raise
+        raise preflight.listen_error(host, port, error) from None
     finally:
         catalog.close()
         engine.close()
@@ -260,15 +295,17 @@ def _catalog(policies, args: argparse.Namespace):
 def _run_demo(args: argparse.Namespace, console: Console) -> int:
     from proxy.demo import run_demo
 
+    if not args.no_serve:  # before initdb and loading, which take a while
+        preflight.check_can_listen(*args.listen)
+
     def serve(backend_dsn: str) -> None:
-        if args.no_serve:
-            return
         namespace = argparse.Namespace(policies=args.policies, backend=backend_dsn,
                                        ledger=None, pool_size=16, listen=args.listen,
                                        tls_cert=None, tls_key=None, max_connections=200,
                                        max_message_bytes=1 << 20, allow_demo_accounts=True)
         _run_serve(namespace, console)
-    return run_demo(args.backend, args.data_dir, Path(args.policies), args.listen, serve)
+    return run_demo(args.backend, args.data_dir, Path(args.policies), args.listen,
+                    None if args.no_serve else serve, households=args.households)
 
 
 _COMMANDS = {

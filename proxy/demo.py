@@ -19,6 +19,7 @@ from __future__ import annotations
 import datetime as dt
 import shlex
 import signal
+import sys
 import threading
 import time
 from collections.abc import Callable, Iterator
@@ -33,7 +34,7 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
 from proxy.dsn import with_database  # noqa: F401 - re-exported for callers of the demo
-from proxy.localpg import LocalServer, NoPostgresError, start_local_postgres
+from proxy.localpg import LocalServer, LocalServerError, start_local_postgres
 from proxy.policy import PolicyError, load_policies
 
 # The demo's accounts. These passwords are public (written here and printed by `hushql demo`);
@@ -263,16 +264,23 @@ EXAMPLE_QUERIES: list[tuple[str, str, str]] = [
 
 def run_demo(backend: str | None, data_dir: Path | None, policies_dir: Path,
              listen: tuple[str, int] | None, serve_callback: Callable[[str], None] | None = None,
-             *, console: Console | None = None) -> int:
+             *, console: Console | None = None, households: int = 3000) -> int:
     """``hushql demo``: check the policies, load the scenario, print how to query it, then serve.
 
     With no ``backend``, starts a private PostgreSQL in ``data_dir`` (default
     ``.hushql/demo-postgres``) and creates database hushql_demo in it. Calls
-    ``serve_callback(backend_dsn)`` if given (it blocks), else waits for Ctrl-C. Returns the
-    exit code: 0 after a clean stop, 1 when the policies are broken or no server can be had.
+    ``serve_callback(backend_dsn)`` if given (it blocks; the banner then shows how to connect
+    to ``listen``). Without it the banner shows how to serve what was loaded on ``listen``, and
+    a private server is kept running until Ctrl-C, so that the printed commands can use it.
+    Returns the exit code: 0 after a clean stop, 1 when the policies are broken or no server
+    can be had.
     """
     out = console or Console()
     err = console or Console(stderr=True)
+    if not 1 <= households <= LAST_ACCOUNT - FIRST_ACCOUNT + 1:
+        _say(err, f"hushql demo: --households must be between 1 and "
+                  f"{LAST_ACCOUNT - FIRST_ACCOUNT + 1}")
+        return 1
     try:
         load_policies(policies_dir)
     except PolicyError as error:
@@ -286,9 +294,10 @@ def run_demo(backend: str | None, data_dir: Path | None, policies_dir: Path,
         _say(out, f"Starting a private PostgreSQL in {folder} ...")
         try:
             server = start_local_postgres(folder)
-        except NoPostgresError as error:
+        except LocalServerError as error:  # no binaries, or initdb / the server failed
             _say(err, f"hushql demo: {error}")
-            _say(err, "Or point the demo at a server you have: hushql demo --backend DSN")
+            _say(err, f"Or point the demo at a server you have: {hushql_command()} demo "
+                      "--backend DSN")
             return 1
     try:
         with _stop_on_sigterm():
@@ -297,18 +306,23 @@ def run_demo(backend: str | None, data_dir: Path | None, policies_dir: Path,
                     backend = _ensure_database(server.dsn, DEMO_DATABASE)
                 assert backend is not None
                 started = time.perf_counter()
-                counts = load_scenario(backend)
+                counts = load_scenario(backend, households=households)
                 seconds = time.perf_counter() - started
+                database = _database_name(backend)
             except psycopg.Error as error:
-                _say(err, f"hushql demo: cannot load the scenario into the backend: {error}")
+                _say(err, "hushql demo: cannot load the scenario into the backend: "
+                          + (str(error).strip().splitlines() or [type(error).__name__])[0])
+                _say(err, "Check --backend: the database must exist and the role may create "
+                          "schema utility in it.")
                 return 1
             _say(out, f"Loaded {counts['households']:,} households and {counts['readings']:,} "
                      f"readings in {seconds:.1f} s.")
-            _print_examples(out, backend, policies_dir, listen)
+            _print_examples(out, backend, policies_dir, listen, database,
+                            serving=serve_callback is not None)
             if serve_callback is not None:
                 serve_callback(backend)
-            else:
-                _say(out, "Press Ctrl-C to stop.")
+            elif server is not None:
+                _say(out, "The private PostgreSQL runs until Ctrl-C.")
                 threading.Event().wait()
     except KeyboardInterrupt:
         pass
@@ -324,24 +338,56 @@ def _say(console: Console, text: str) -> None:
     console.print(text, markup=False, emoji=False, highlight=False, soft_wrap=True)
 
 
+def hushql_command() -> str:
+    """How to run this same hushql from any shell and folder: the console script beside this
+    Python (a virtual environment's bin/, not necessarily on PATH), else ``python -m``."""
+    script = Path(sys.executable).absolute().parent / "hushql"
+    if script.is_file():
+        return _shell_quote(str(script))
+    return f"{_shell_quote(str(Path(sys.executable).absolute()))} -m proxy.cli"
+
+
+def client_host(host: str) -> str:
+    """The host a client on this machine connects to for a server listening on ``host``
+    (a wildcard address means loopback), bracketed when it is an IPv6 address."""
+    host = {"0.0.0.0": "127.0.0.1", "::": "::1", "": "127.0.0.1"}.get(host, host)
+    return f"[{host}]" if ":" in host else host
+
+
 def _print_examples(out: Console, backend: str, policies_dir: Path,
-                    listen: tuple[str, int] | None) -> None:
-    """The commands to try, one per line and never wrapped, so they paste into a shell as is."""
+                    listen: tuple[str, int] | None, database: str, *, serving: bool) -> None:
+    """The commands to try, one per line and never wrapped, so they paste into a shell as is.
+
+    Every path is absolute and hushql is named by its full path, so the lines work from any
+    folder in a shell where the virtual environment is not activated. A psql URL is printed
+    only when the demo serves; otherwise the command that serves what was loaded.
+    """
+    hushql = hushql_command()
     lines = [f"export HUSHQL_BACKEND={_shell_quote(backend)}",
-             f"export HUSHQL_POLICIES={_shell_quote(str(policies_dir))}"]
-    lines += [f"hushql ask --as {who} {_shell_quote(query)}" + (f"    # {note}" if note else "")
+             f"export HUSHQL_POLICIES={_shell_quote(str(policies_dir.absolute()))}"]
+    lines += [f"{hushql} ask --as {who} {_shell_quote(query)}" + (f"    # {note}" if note else "")
               for who, query, note in EXAMPLE_QUERIES]
+    planner = dict(demo_accounts())["planner"]
     if listen is not None:
         host, port = listen
-        planner = dict(demo_accounts())["planner"]
-        lines += [f"psql {_shell_quote(f'postgresql://planner:{planner}@{host}:{port}/{DEMO_DATABASE}')}"
-                  "    # the demo's invented planner account"]
+        if serving:
+            url = f"postgresql://planner:{planner}@{client_host(host)}:{port}/{database}"
+            lines.append(f"psql {_shell_quote(url)}    # the demo's invented planner account")
+        else:
+            lines.append(f"{hushql} serve --listen {_shell_quote(f'{host}:{port}')}"
+                         f"    # then connect to database {database} as planner / {planner}")
     out.rule("hushql demo: try these")
     for line in lines:
         _say(out, line)
     _say(out, "Accounts (invented, for this demo only): "
          + ", ".join(f"{name} / {password}" for name, password in demo_accounts()))
     out.rule()
+
+
+def _database_name(dsn: str) -> str:
+    """The name of the database ``dsn`` connects to, as the server reports it."""
+    with psycopg.connect(dsn) as conn:
+        return conn.info.dbname
 
 
 def _shell_quote(text: str) -> str:

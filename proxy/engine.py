@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
+import json
 import logging
 import secrets
 import threading
@@ -30,6 +31,8 @@ from decimal import Decimal, InvalidOperation
 from fractions import Fraction
 from typing import Any
 
+import sqlglot
+import sqlglot.errors
 import sqlglot.expressions as exp
 
 from proxy import noise
@@ -209,8 +212,9 @@ class Engine:
         return self.ledger.remaining(analyst)
 
     def explain(self, analyst: str, statement: str | exp.Expression, *,
-                epsilon: Decimal | None = None) -> Answer:
-        """A two-column table describing the plan, its sensitivities and noise; charges nothing."""
+                epsilon: Decimal | None = None, form: str = "text") -> Answer:
+        """The plan, its sensitivities and noise, charging nothing: a two-column table (``form``
+        "text"), or one JSON document with the same items (``form`` "json")."""
         prepared = self.prepare(analyst, statement)
         eps = self.epsilon_for(epsilon)
         plan, rewritten = prepared.plan, prepared.rewritten
@@ -233,9 +237,8 @@ class Engine:
                          f"{_show(scale * Fraction(unit))}, "
                          f"95% bound ±{_show(noise.bound95(scale) * unit)}"))
         rows.append(("backend sql", rewritten.sql))
-        return Answer(columns=[OutputColumn("item", "text"), OutputColumn("value", "text")],
-                      rows=rows, epsilon=Decimal(0), remaining=self.ledger.remaining(analyst),
-                      accuracy=[], tables=[plan.table.table])
+        return _explain_answer(rows, form, remaining=self.ledger.remaining(analyst),
+                               table=plan.table.table)
 
     # ---- answering ---------------------------------------------------------------------------
 
@@ -308,6 +311,38 @@ class Engine:
 
 
 # ---- pure helpers ----------------------------------------------------------------------------
+
+def _explain_answer(items: list[tuple[Value, ...]], form: str, *, remaining: Decimal,
+                    table: str) -> Answer:
+    """EXPLAIN's (item, value) pairs formatted for people: as a table whose backend SQL is
+    pretty-printed one line per row, or (form "json") as one row and one json column named
+    QUERY PLAN, as PostgreSQL answers EXPLAIN (FORMAT JSON), holding an object of the items."""
+    pairs = [(str(item), "" if value is None else str(value)) for item, value in items]
+    pretty = [(item, _pretty_sql(value) if item == "backend sql" else value)
+              for item, value in pairs]
+    if form == "json":
+        document = json.dumps(dict(pretty), indent=2)
+        return Answer(columns=[OutputColumn("QUERY PLAN", "json")], rows=[(document,)],
+                      epsilon=Decimal(0), remaining=remaining, accuracy=[], tables=[table])
+    if form != "text":
+        raise HushError(INVALID_PARAMETER_VALUE, f"EXPLAIN format {form[:20]} is not supported",
+                        hint="use text or json")
+    rows: list[tuple[Value, ...]] = []
+    for item, value in pretty:
+        lines = value.splitlines() or [""]
+        rows += [(item, lines[0])] + [("", line) for line in lines[1:]]
+    return Answer(columns=[OutputColumn("item", "text"), OutputColumn("value", "text")],
+                  rows=rows, epsilon=Decimal(0), remaining=remaining, accuracy=[],
+                  tables=[table])
+
+
+def _pretty_sql(text: str) -> str:
+    """Backend SQL over several lines (sqlglot's pretty printer); as it was if it cannot."""
+    try:
+        return sqlglot.parse_one(text, read="postgres").sql(dialect="postgres", pretty=True)
+    except sqlglot.errors.SqlglotError:
+        return text
+
 
 def _cell_values(plan: Plan) -> list[tuple[Any, ...]]:
     """Key values of every cell, in the backend's (domain) order."""

@@ -21,7 +21,11 @@ from pathlib import Path
 from typing import Callable
 
 
-class NoPostgresError(RuntimeError):
+class LocalServerError(RuntimeError):
+    """The private server could not be had; the message says why, in a line or a few."""
+
+
+class NoPostgresError(LocalServerError):
     """Neither server binaries nor the pgserver wheel are available."""
 
 
@@ -104,15 +108,19 @@ def _start_from_binaries(binaries: Path, data_dir: Path, port: int) -> LocalServ
     run = lambda *args: subprocess.run(  # noqa: E731 - one place that sets user and output
         [str(a) for a in args], check=True, capture_output=True, text=True, **drop)
     if not (pgdata / "PG_VERSION").exists():
-        run(binaries / "initdb", "-D", pgdata, "-U", "postgres", "--auth=trust",
-            "--encoding=UTF8", "--locale=C.UTF-8" if _has_c_utf8() else "--no-locale")
+        try:
+            run(binaries / "initdb", "-D", pgdata, "-U", "postgres", "--auth=trust",
+                "--encoding=UTF8", "--locale=C.UTF-8" if _has_c_utf8() else "--no-locale")
+        except subprocess.CalledProcessError as error:
+            raise LocalServerError(f"initdb failed in {data_dir}: "
+                                   f"{(error.stderr or '').strip()[-1000:]}") from None
     options = f"-h 127.0.0.1 -p {port} -k {data_dir} -c fsync=on -c listen_addresses=127.0.0.1"
     log = data_dir / "server.log"
     try:
         run(binaries / "pg_ctl", "-D", pgdata, "-l", log, "-o", options, "-w", "-t", "60", "start")
     except subprocess.CalledProcessError as error:
         tail = log.read_text(errors="replace")[-2000:] if log.exists() else error.stderr
-        raise RuntimeError(f"PostgreSQL did not start in {data_dir}:\n{tail}") from None
+        raise LocalServerError(f"PostgreSQL did not start in {data_dir}:\n{tail}") from None
     dsn = f"postgresql://postgres@127.0.0.1:{port}/postgres"
 
     def stop() -> None:
@@ -143,4 +151,4 @@ def _wait_ready(port: int, timeout: float = 30.0) -> None:
                 return
         except OSError:
             time.sleep(0.1)
-    raise RuntimeError(f"PostgreSQL on port {port} did not accept connections in {timeout} s")
+    raise LocalServerError(f"PostgreSQL on port {port} did not accept connections in {timeout} s")

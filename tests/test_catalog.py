@@ -192,7 +192,6 @@ REFUSED = [
     "SELECT pg_stat_get_live_tuples(1259)",
     "SELECT * FROM pg_locks",
     "SELECT * FROM pg_settings",
-    "SELECT datname FROM pg_database",
     "SELECT rolpassword FROM pg_authid",
     "SELECT pg_read_file('PG_VERSION')",
     "SELECT * FROM pg_ls_dir('.')",

@@ -99,7 +99,8 @@ class FakeEngine:
                     Accuracy("avg_occupants", eps, None, None, None, "a ratio of noisy values")]
         return Answer(list(COLUMNS), list(ROWS), eps, remaining, accuracy, ["households"])
 
-    def explain(self, analyst: str, statement: Any, *, epsilon: Decimal | None = None) -> Answer:
+    def explain(self, analyst: str, statement: Any, *, epsilon: Decimal | None = None,
+                form: str = "text") -> Answer:
         self._accept(statement)
         eps = epsilon if epsilon is not None else Decimal("0.1")
         return Answer([OutputColumn("item", "text"), OutputColumn("value", "text")],

@@ -41,7 +41,8 @@ from proxy.errors import (AMBIGUOUS_COLUMN, DATATYPE_MISMATCH, GROUPING_ERROR,
 from proxy.policy import ColumnPolicy, Policies, TablePolicy
 from proxy.sql.domains import domain_size
 from proxy.sql.filters import (KIND_TYPE, Typed, chain_operands, check_filter, date_node, literal,
-                               only_args, refuse_expression, unify, unparen)
+                               mark_written_names, only_args, refuse_expression, unify, unparen,
+                               written_name, written_sql)
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
 
 BUCKETS = ("day", "week", "month", "quarter", "year")
@@ -49,7 +50,8 @@ BUCKETS = ("day", "week", "month", "quarter", "year")
 SHAPE_HINT = ("hushql answers read-only aggregate queries: SELECT <group keys>, COUNT(*) | COUNT(col) "
               "| SUM(col) | AVG(col) FROM <table> [WHERE ...] [GROUP BY <keys>] [HAVING ...] "
               "[ORDER BY ...] [LIMIT n] [OFFSET n]")
-SELECT_HINT = ("select group keys and the aggregates COUNT(*), COUNT(col), SUM(col), AVG(col); "
+SELECT_HINT = ("select group keys (columns with a declared domain, or date_trunc('month', "
+               "<date column>)) and the aggregates COUNT(*), COUNT(col), SUM(col), AVG(col); "
                "do arithmetic on the answers in your client")
 HAVING_HINT = ("HAVING accepts aggregates, group keys, literals, comparisons, BETWEEN, IN, "
                "IS [NOT] NULL, AND/OR/NOT and + - *")
@@ -117,7 +119,7 @@ def _parse(text: str) -> exp.Expression:
     if len(trees) > 1:
         raise refused("several statements in one query string are not accepted",
                       "send one SELECT statement at a time")
-    return trees[0]
+    return mark_written_names(trees[0], text)
 
 
 def _as_select(tree: exp.Expression) -> exp.Select:
@@ -326,8 +328,7 @@ class _Analysis:
     # aggregates ----------------------------------------------------------------------------
     def _aggregate(self, node: exp.AggFunc) -> _Aggregate:
         if not isinstance(node, _ACCEPTED_AGGREGATES):
-            name = node.sql_name().lower()
-            raise refused(f"the aggregate {name}() is not accepted",
+            raise refused(f"the aggregate {written_name(node)}() is not accepted",
                           "accepted aggregates: COUNT(*), COUNT(col), SUM(col), AVG(col)"
                           + (", COUNT(DISTINCT <individual column>)" if self.table.individual else ""))
         only_args(node, ("this", "big_int"), f"{node.sql_name()}()", SELECT_HINT)
@@ -677,7 +678,7 @@ def _holds_aggregate(node: exp.Expression) -> bool:
 
 def _short(node: exp.Expression) -> str:
     try:
-        text = node.sql(dialect="postgres")
+        text = written_sql(node)
     except Exception:  # the generator may not know every node; the message need not quote it
         return node.key
     return text if len(text) <= 60 else text[:57] + "..."

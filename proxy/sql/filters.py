@@ -85,7 +85,10 @@ DATE_UNITS = frozenset({"year", "quarter", "month", "week", "day", "dow", "isodo
                         "isoyear"})
 _ISO_DATE = re.compile(r"\d{4}-\d{2}-\d{2}")
 _TRAILING_BACKSLASHES = re.compile(r"\\+$")
+_WORD = re.compile(r"[A-Za-z_][A-Za-z0-9_$]*")
+_WRITTEN = "hushql_written"  # the meta key mark_written_names sets
 
+CAST_HINT = "compare columns with literals of their own type; dates as 'YYYY-MM-DD'"
 WHERE_HINT = ("WHERE accepts listed columns, literals, = <> < <= > >=, BETWEEN, IN (literal list), "
               "LIKE/ILIKE 'pattern', IS [NOT] NULL, AND/OR/NOT, + - * on numbers, and the functions "
               "lower, upper, length, trim, coalesce and extract(<unit> FROM <date column>)")
@@ -261,13 +264,14 @@ def refuse_expression(node: exp.Expression, clause: str, hint: str) -> HushError
                          "aggregates belong in the select list, HAVING or ORDER BY")
     if isinstance(node, (exp.Div, exp.IntDiv, exp.Mod)):
         return refused("division and modulo are not accepted: they fail when some row holds a zero",
-                       "compare instead: write x > 2 * y rather than x / y > 2; " + hint)
+                       "compare instead: write x > 2 * y rather than x / y > 2; " + hint
+                       if clause == "WHERE" else hint)
     if isinstance(node, (exp.Pow, exp.Sqrt, exp.Cbrt, exp.Ln, exp.Log, exp.Exp)):
         return refused("exponents, roots and logarithms are not accepted: they fail on some row values",
                        hint)
     if isinstance(node, (exp.Cast, exp.TryCast)):
-        return refused("casts are not accepted: a cast can fail on one row's value",
-                       "compare columns with literals of their own type; dates as 'YYYY-MM-DD'")
+        return refused(f"casts are not accepted in {clause}: a cast can fail on one row's value",
+                       CAST_HINT if clause == "WHERE" else hint)
     if isinstance(node, (exp.Placeholder, exp.Parameter)):
         return refused("parameters are not accepted", "write literal values into the statement")
     if isinstance(node, exp.Star) or (isinstance(node, exp.Column) and isinstance(node.this, exp.Star)):
@@ -285,13 +289,31 @@ def refuse_expression(node: exp.Expression, clause: str, hint: str) -> HushError
     if isinstance(node, (exp.Case, exp.If)):
         return refused(f"CASE is not accepted in {clause}", hint)
     if isinstance(node, exp.Func) and not isinstance(node, exp.Binary):
-        return HushError(UNDEFINED_FUNCTION, f"function {_function_name(node)}() is not accepted in {clause}",
-                         FUNCTION_HINT)
+        # Functions are accepted in WHERE only; elsewhere the clause's own hint says what is.
+        return HushError(UNDEFINED_FUNCTION, f"{written_call(node)} is not accepted in {clause}",
+                         FUNCTION_HINT if clause == "WHERE" else hint)
     return refused(f"the expression {_snippet(node)} is not accepted in {clause}", hint)
 
 
-def _function_name(node: exp.Func) -> str:
-    """The name PostgreSQL would show: sqlglot's own class names differ (now() is CurrentTimestamp)."""
+def mark_written_names(tree: exp.Expression, text: str) -> exp.Expression:
+    """Note on each function call of a tree just parsed from ``text`` its name as written, so
+    that refusals quote it (sqlglot normalises: now() becomes CurrentTimestamp). Returns the tree.
+
+    Only ``meta`` changes; trees copied from it keep the notes.
+    """
+    for node in tree.walk():
+        if isinstance(node, exp.Func) and "start" in node.meta and "end" in node.meta:
+            written = text[node.meta["start"]:node.meta["end"] + 1]
+            if _WORD.fullmatch(written):
+                node.meta[_WRITTEN] = written
+    return tree
+
+
+def written_name(node: exp.Func) -> str:
+    """A function's name as the analyst wrote it (lower case, as PostgreSQL shows names): the
+    parse-time note, else the name PostgreSQL's own spelling gives."""
+    if _WRITTEN in node.meta:
+        return str(node.meta[_WRITTEN]).lower()
     if isinstance(node, exp.Anonymous):
         return node.name.lower()
     try:
@@ -300,9 +322,40 @@ def _function_name(node: exp.Func) -> str:
         return node.sql_name().lower()
 
 
+def written_call(node: exp.Func) -> str:
+    """How a refusal names a call: "function now()" when written with parentheses, the bare
+    keyword ("current_date") for SQL's parameterless forms."""
+    name = written_name(node)
+    if _WRITTEN in node.meta or isinstance(node, exp.Anonymous) or any(
+            value not in (None, False, []) for value in node.args.values()):
+        return f"function {name}()"
+    return name
+
+
+def written_sql(node: exp.Expression) -> str:
+    """``node`` as PostgreSQL text, with calls that sqlglot renamed (now() is rendered
+    CURRENT_TIMESTAMP, date_part() EXTRACT) under the names written. Raises what the
+    generator raises for a node it does not know."""
+    def restore(current: exp.Expression) -> exp.Expression:
+        written = current.meta.get(_WRITTEN) if isinstance(current, exp.Func) else None
+        if written is None or _rendered_name(current) == written.lower():
+            return current
+        arguments: list[exp.Expression] = []
+        for value in current.args.values():
+            arguments += [v for v in (value if isinstance(value, list) else [value])
+                          if isinstance(v, exp.Expression)]
+        return exp.Anonymous(this=written, expressions=arguments)
+
+    return node.transform(restore).sql(dialect="postgres")
+
+
+def _rendered_name(node: exp.Func) -> str:
+    return node.sql(dialect="postgres").split("(", 1)[0].strip().lower()
+
+
 def _snippet(node: exp.Expression) -> str:
     try:
-        text = node.sql(dialect="postgres")
+        text = written_sql(node)
     except Exception:  # the generator may not know every node; the message need not quote it
         return f"of kind {node.key}"
     return f'"{text[:57]}..."' if len(text) > 60 else f'"{text}"'

@@ -61,7 +61,7 @@ from proxy.errors import (FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, INTERNA
                           PROGRAM_LIMIT_EXCEEDED, QUERY_CANCELED, HushError)
 from proxy.dsn import with_database
 from proxy.policy import ColumnPolicy, Policies
-from proxy.wire import statements, types
+from proxy.wire import own_database, statements, types
 from proxy.wire.statements import Token
 
 __all__ = ["Catalog", "build_catalog", "is_catalog_tree", "claims_text", "check_catalog_text",
@@ -88,7 +88,8 @@ CATALOG_SCHEMAS = frozenset({"pg_catalog", "information_schema"})
 # SQLAlchemy, asyncpg and pg8000 read. pg_roles is here because psql's \d reads it (role names
 # are readable by every PostgreSQL user by design and say nothing about the data). Left out on
 # purpose: statistics (pg_stat*, pg_statio*, pg_statistic, pg_stats), other databases
-# (pg_database, pg_db_role_setting, pg_shdescription, pg_tablespace), server state and files
+# (pg_db_role_setting, pg_shdescription, pg_tablespace; pg_database is named only to be
+# replaced by the proxy's own row, see proxy.wire.own_database), server state and files
 # (pg_settings, pg_file_settings, pg_hba_file_rules, pg_locks, pg_prepared_xacts,
 # pg_prepared_statements, pg_cursors, pg_replication*, pg_subscription, pg_available_extension*,
 # pg_config, pg_shmem_allocations, pg_backend_memory_contexts), passwords (pg_authid,
@@ -238,7 +239,8 @@ def check_catalog_text(text: str) -> None:
             _check_call(tokens, i, name)
         elif _after_as(tokens, i):
             continue  # an alias of the query's own: "... AS pg_get_expr_1"
-        elif name.startswith("pg_") and name != "pg_catalog" and name not in ALLOWED_RELATIONS:
+        elif name.startswith("pg_") and name not in ("pg_catalog", own_database.RELATION) \
+                and name not in ALLOWED_RELATIONS:
             raise _refuse(f"relation {name}" if name not in ALLOWED_FUNCTIONS
                           else f"{name} without a call")
         elif name in _SETTING_FUNCTIONS or name.startswith(_NEVER_BARE):
@@ -623,8 +625,11 @@ class Catalog:
 
     def __init__(self, policies: Policies, *, admin_dsn: str = "",
                  mirrors: dict[str, str] | None = None, unavailable: str | None = None,
-                 timeout_ms: int = STATEMENT_TIMEOUT_MS, max_rows: int = MAX_ROWS) -> None:
+                 timeout_ms: int = STATEMENT_TIMEOUT_MS, max_rows: int = MAX_ROWS,
+                 database: str = "") -> None:
         self.policies = policies
+        self.database = database  # the one name pg_database shows (proxy.wire.own_database)
+        self._database_columns: list[str] | None = None
         self.admin_dsn = admin_dsn
         self.mirrors = dict(mirrors or {})
         self.unavailable = unavailable
@@ -652,7 +657,7 @@ class Catalog:
         with self._transaction(analyst, sql_text) as conn:
             # A server-side cursor: one statement only, and at most max_rows + 1 fetched.
             with psycopg.RawServerCursor(conn, "hushql_catalog_answer") as cur:
-                cur.execute(sql_text, list(params))
+                cur.execute(self._runnable(conn, sql_text), list(params))
                 described = list(cur.description or [])
                 rows = cur.fetchmany(self.max_rows + 1)
         if len(rows) > self.max_rows:
@@ -682,7 +687,7 @@ class Catalog:
         """The mirror's description (a libpq result) of the checked text, prepared unnamed in
         the catalog transaction; raises HushError with the mirror's refusal."""
         with self._transaction(analyst, sql_text) as conn:
-            result = conn.pgconn.prepare(b"", sql_text.encode())
+            result = conn.pgconn.prepare(b"", self._runnable(conn, sql_text).encode())
             if result.status == ExecStatus.COMMAND_OK:
                 result = conn.pgconn.describe_prepared(b"")
         if result.status != ExecStatus.COMMAND_OK:
@@ -693,6 +698,15 @@ class Catalog:
                               field(DiagnosticField.MESSAGE_PRIMARY),
                               field(DiagnosticField.MESSAGE_HINT))
         return result
+
+    def _runnable(self, conn: psycopg.Connection[Any], sql_text: str) -> str:
+        """The checked text as the mirror runs it: pg_database narrowed to one row."""
+        if not own_database.names_pg_database(sql_text):
+            return sql_text
+        if self._database_columns is None:
+            self._database_columns = [row[0] for row in conn.execute(own_database.COLUMNS_QUERY)]
+        subquery = own_database.own_database_subquery(self._database_columns, self.database)
+        return own_database.replace_pg_database(sql_text, subquery)
 
     @contextmanager
     def _transaction(self, analyst: str, sql_text: str) -> Iterator[psycopg.Connection[Any]]:
@@ -826,5 +840,5 @@ def build_catalog(policies: Policies, backend_dsn: str) -> Catalog:
         return Catalog(policies, unavailable="Ask the administrator to check the catalog "
                                              "mirror (see the server log).")
     log.info("catalog mirrors ready: %d for %d accounts", len(names), len(grants))
-    return Catalog(policies, admin_dsn=backend_dsn,
+    return Catalog(policies, admin_dsn=backend_dsn, database=database,
                    mirrors={account: names[tables] for account, tables in grants.items()})

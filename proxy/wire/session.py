@@ -575,7 +575,7 @@ class Session:
         nothing."""
         target = tree if tree is not None else st.query.text
         return await self._blocking(self.engine.explain, self.analyst, target,
-                                    epsilon=self._epsilon())
+                                    epsilon=self._epsilon(), form=st.format)
 
     async def _answer(self, target: str | exp.Expression) -> Outcome:
         epsilon = self._epsilon()

@@ -22,6 +22,7 @@ from sqlglot import exp
 from sqlglot.errors import ParseError, TokenError
 
 from proxy.errors import FEATURE_NOT_SUPPORTED, SYNTAX_ERROR, UNDEFINED_PARAMETER, HushError
+from proxy.sql.filters import mark_written_names
 from proxy.wire import types
 from proxy.wire.states import TxEvent
 
@@ -170,6 +171,7 @@ class QueryStatement:
 class ExplainStatement:
     text: str
     query: QueryStatement
+    format: str = "text"  # one of EXPLAIN_FORMATS
 
 
 @dataclass(frozen=True)
@@ -465,17 +467,21 @@ def _parse_transaction(first: str, c: _Cursor) -> Statement:
 
 
 def _parse_explain(c: _Cursor, text: str) -> Statement:
-    analyze = False
+    """EXPLAIN [ANALYZE] [VERBOSE] query, or EXPLAIN (option [value], ...) query.
+
+    Every option is honoured or refused, never ignored: FORMAT TEXT or JSON chooses the output,
+    ANALYZE may only be off (it would run the query), and the others describe PostgreSQL's
+    own planner (costs, buffers, timing...), which hushql's EXPLAIN does not show.
+    """
+    options: dict[str, str] = {}
     if c.op("("):
         while True:
             opt = c.expect_word()
-            value = True
+            value = "true"
             tok = c.peek()
             if tok is not None and not (tok.kind == "op" and tok.value in ",)"):
-                v = _setting_value(c)
-                value = v.lower() not in ("false", "off", "0", "no")
-            if opt == "ANALYZE" or opt == "ANALYSE":
-                analyze = value
+                value = _setting_value(c).lower()
+            options["ANALYZE" if opt == "ANALYSE" else opt] = value
             if c.op(")"):
                 break
             if not c.op(","):
@@ -485,14 +491,27 @@ def _parse_explain(c: _Cursor, text: str) -> Statement:
             w = c.word("ANALYZE", "ANALYSE", "VERBOSE")
             if w is None:
                 break
-            analyze = analyze or w in ("ANALYZE", "ANALYSE")
-    if analyze:
+            options["ANALYZE" if w == "ANALYSE" else w] = "true"
+    if options.pop("ANALYZE", "false") not in _OFF:
         raise HushError(FEATURE_NOT_SUPPORTED, "EXPLAIN ANALYZE is not supported: it would run "
                         "the query", hint="Use EXPLAIN without ANALYZE; it charges nothing.")
+    form = options.pop("FORMAT", "text")
+    if form not in EXPLAIN_FORMATS:
+        raise HushError(FEATURE_NOT_SUPPORTED, f"EXPLAIN format {form[:20]} is not supported",
+                        hint="Use EXPLAIN (FORMAT TEXT) or EXPLAIN (FORMAT JSON).")
+    if options:
+        raise HushError(FEATURE_NOT_SUPPORTED, f"EXPLAIN option {next(iter(options))} is not "
+                        "supported: hushql's EXPLAIN shows the rewrite, sensitivities and noise, "
+                        "not PostgreSQL's plan", hint="Use EXPLAIN, EXPLAIN (FORMAT TEXT) or "
+                        "EXPLAIN (FORMAT JSON).")
     inner = c.rest_text()
     if not inner:
         raise c.error()
-    return ExplainStatement(text, query_statement(inner))
+    return ExplainStatement(text, query_statement(inner), form)
+
+
+EXPLAIN_FORMATS = ("text", "json")
+_OFF = ("false", "off", "0", "no")
 
 
 def _parse_discard(c: _Cursor) -> Statement:
@@ -524,7 +543,7 @@ def _parse_tree(text: str) -> exp.Expression:
     trees = [t for t in trees if t is not None]
     if len(trees) != 1:
         raise HushError(SYNTAX_ERROR, "syntax error: expected one statement")
-    return trees[0]
+    return mark_written_names(trees[0], text)  # refusals quote function names as written
 
 
 def _sqlglot_error(exc: Exception) -> HushError:

@@ -45,6 +45,7 @@ TIME = 1083
 TIMESTAMP = 1114
 TIMESTAMPTZ = 1184
 NUMERIC = 1700
+JSON = 114
 
 TEXT_FORMAT = 0
 BINARY_FORMAT = 1
@@ -153,7 +154,7 @@ def _as_str(v: Any) -> str:
 _COERCE: dict[int, Callable[[Any], Any]] = {
     INT8: _as_int, INT4: _as_int, INT2: _as_int, NUMERIC: _as_decimal, FLOAT8: _as_float,
     FLOAT4: _as_float, BOOL: _as_bool, DATE: _as_date, TEXT: _as_str, VARCHAR: _as_str,
-    NAME: _as_str,
+    NAME: _as_str, JSON: _as_str,
 }
 
 
@@ -179,6 +180,16 @@ _TEXT_OVERRIDES: dict[int, Callable[[Any], bytes]] = {FLOAT8: _float_text, FLOAT
                                                       NUMERIC: _numeric_text}
 
 
+def _json_text(v: str) -> bytes:
+    # A json value travels as its text in both formats (PostgreSQL's json_send sends the text
+    # as is: from memory of src/backend/utils/adt/json.c; jsonb alone adds a version byte);
+    # psycopg's json dumper would encode a str as a JSON string instead.
+    return v.encode("utf-8")
+
+
+_ANY_FORMAT_OVERRIDES: dict[int, Callable[[Any], bytes]] = {JSON: _json_text}
+
+
 class ColumnEncoder:
     """Encodes the values of one result column in one format, via psycopg's dumpers."""
 
@@ -188,7 +199,8 @@ class ColumnEncoder:
         self._oid = TEXT if wtype.as_text else wtype.oid
         self._coerce = _as_str if wtype.as_text else _COERCE.get(wtype.oid)
         self._format = Format.BINARY if fmt == BINARY_FORMAT else Format.TEXT
-        self._override = _TEXT_OVERRIDES.get(self._oid) if fmt == TEXT_FORMAT else None
+        self._override = _ANY_FORMAT_OVERRIDES.get(self._oid) or (
+            _TEXT_OVERRIDES.get(self._oid) if fmt == TEXT_FORMAT else None)
         self._dumpers: dict[type, Any] = {}
 
     def encode(self, value: Any) -> bytes | None:

@@ -1,0 +1,39 @@
+"""The analysts' summary of accepted SQL, written from the analyser's own hints.
+
+The README's list of what is accepted is the output of ``accepted_sql_markdown`` (a test compares
+the two), so the guide says exactly what the analyser's hints say and cannot drift from them.
+"""
+
+from __future__ import annotations
+
+from proxy.sql.analyse import (BUCKETS, HAVING_HINT, LIMIT_HINT, ORDER_HINT, SELECT_HINT,
+                               SHAPE_HINT)
+from proxy.sql.filters import FUNCTION_HINT, WHERE_HINT
+
+GROUP_BY_HINT = ("GROUP BY accepts columns with a declared domain (category, integer and boolean "
+                 "columns, date columns with a bucket) and date_trunc('<"
+                 + "|".join(BUCKETS) + ">', <date column>); every declared value is a cell")
+
+# (what, the analyser's own words for what it accepts there)
+ACCEPTED: tuple[tuple[str, str], ...] = (
+    ("Statement", SHAPE_HINT),
+    ("Select list", SELECT_HINT),
+    ("WHERE", WHERE_HINT),
+    ("Functions", FUNCTION_HINT + " (functions only in WHERE)"),
+    ("GROUP BY", GROUP_BY_HINT),
+    ("HAVING", HAVING_HINT + " (applied to the noisy answer, free)"),
+    ("ORDER BY", ORDER_HINT + " (applied to the noisy answer, free)"),
+    ("LIMIT, OFFSET", LIMIT_HINT),
+)
+
+
+def accepted_sql_markdown() -> str:
+    """One Markdown list item per clause: what the analyser accepts there (``<`` and ``*``
+    escaped, so that <table> is not read as HTML nor COUNT(*) as emphasis)."""
+    return "\n".join(f"- **{what}**: {_escaped(text)}." for what, text in ACCEPTED)
+
+
+def _escaped(text: str) -> str:
+    for special in ("\\", "<", "*", "_"):
+        text = text.replace(special, "\\" + special)
+    return text
