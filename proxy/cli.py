@@ -77,7 +77,8 @@ def _parser() -> argparse.ArgumentParser:
                        help=f"HOST:PORT to listen on (HUSHQL_LISTEN, default {DEFAULT_LISTEN})")
     serve.add_argument("--tls-cert", type=Path, help="PEM certificate for TLS")
     serve.add_argument("--tls-key", type=Path, help="PEM private key for TLS")
-    serve.add_argument("--max-connections", type=int, default=200)
+    serve.add_argument("--max-connections", type=int, default=None,
+                       help="sessions at once (default: most_sessions in access.toml)")
     serve.add_argument("--max-message-bytes", type=int, default=1 << 20)
 
     ask = commands.add_parser("ask", help="answer one query through the engine, no network")
@@ -208,7 +209,8 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
         run_server(engine, host=host, port=port, ssl_context=context,
                    engine_threads=max(32, 2 * args.pool_size),
                    max_message_bytes=args.max_message_bytes,
-                   max_connections=args.max_connections, catalog=catalog)
+                   limits=policies.access.connections, max_connections=args.max_connections,
+                   catalog=catalog)
     finally:
         if catalog is not None:
             catalog.close()
@@ -233,7 +235,7 @@ def _run_demo(args: argparse.Namespace, console: Console) -> int:
             return
         namespace = argparse.Namespace(policies=args.policies, backend=backend_dsn,
                                        ledger=None, pool_size=16, listen=args.listen,
-                                       tls_cert=None, tls_key=None, max_connections=200,
+                                       tls_cert=None, tls_key=None, max_connections=None,
                                        max_message_bytes=1 << 20)
         _run_serve(namespace, console)
     return run_demo(args.backend, args.data_dir, Path(args.policies), args.listen, serve)
