@@ -146,7 +146,6 @@ class Prepared:
     param_types: tuple[int, ...]
     to_catalog: bool = False
     shape: types.ResultShape | None | bool = False  # False: not described yet
-    cost: int = 0  # refusal units taken at Parse, given back when it first runs well
 
 
 @dataclass
@@ -231,14 +230,19 @@ class Session:
         try:
             if isinstance(message, codec.Query):
                 return await self.simple_query(message.sql), False
-            if isinstance(message, codec.Parse):
-                return await self.parse(message), False
+            if isinstance(message, (codec.Parse, codec.Describe, codec.Execute)):
+                # Work that may end in a refusal: admitted, then given back if it succeeds.
+                cost = await self._admit(self._text_of(message))
+                if isinstance(message, codec.Parse):
+                    replies = await self.parse(message)
+                elif isinstance(message, codec.Describe):
+                    replies = await self.describe(message)
+                else:
+                    replies = await self.execute(message)
+                self._give_back(cost)
+                return replies, False
             if isinstance(message, codec.Bind):
                 return self.bind(message), False
-            if isinstance(message, codec.Describe):
-                return await self.describe(message), False
-            if isinstance(message, codec.Execute):
-                return await self.execute(message), False
             if isinstance(message, codec.Close):
                 return self.close(message), False
             if isinstance(message, codec.Sync):
@@ -320,7 +324,6 @@ class Session:
             raise HushError(DUPLICATE_PREPARED_STATEMENT,
                             f'prepared statement "{msg.name}" already exists',
                             hint="Close or DEALLOCATE it first, or use another name.")
-        cost = await self._admit(msg.sql)
         st = statements.only_statement(await self._split(msg.sql))
         self._check_block(st)
         to_catalog = self._route(st)
@@ -336,7 +339,7 @@ class Session:
         else:
             suggested = await self._suggested_types(tree, msg.param_oids, count, to_catalog)
         param_types = statements.infer_parameter_types(tree, msg.param_oids, count, suggested)
-        self.statements[msg.name] = Prepared(st, param_types, to_catalog, cost=cost)
+        self.statements[msg.name] = Prepared(st, param_types, to_catalog)
         return [codec.ParseComplete()]
 
     # ---- refused work ---------------------------------------------------------------------
@@ -360,6 +363,20 @@ class Session:
                          f"{guard.ceil_seconds(wait)} seconds. Shorter statements cost less; "
                          "EXPLAIN shows whether one is accepted.")
         return self.refusals.take(self.analyst, text)
+
+    def _text_of(self, message: codec.Parse | codec.Describe | codec.Execute) -> str:
+        """The statement text a message works on ("" when it names nothing known)."""
+        if isinstance(message, codec.Parse):
+            return message.sql
+        prepared: Prepared | None = None
+        if isinstance(message, codec.Describe) and message.kind == "S":
+            prepared = self.statements.get(message.name)
+        else:
+            name = message.name if isinstance(message, codec.Describe) else message.portal
+            portal = self.portals.get(name)
+            prepared = portal.prepared if portal is not None else None
+        st = prepared.statement if prepared is not None else None
+        return st.text if isinstance(st, (QueryStatement, ExplainStatement)) else ""
 
     def _give_back(self, cost: int) -> None:
         if self.refusals is not None and cost:
@@ -457,8 +474,6 @@ class Session:
             self._check_block(prepared.statement)
             portal.outcome = await self._run(prepared.statement, portal.tree, portal.values,
                                              prepared.to_catalog)
-            self._give_back(prepared.cost)
-            prepared.cost = 0
             out += portal.outcome.notices
         outcome = portal.outcome
         if outcome.empty:
