@@ -91,6 +91,7 @@ def _parser() -> argparse.ArgumentParser:
 
     check = commands.add_parser("check", help="validate a policy folder")
     check.add_argument("directory", nargs="?", default=_default_policies())
+    check.add_argument("--backend", help="also check the backend role at this DSN")
 
     commands.add_parser("hash-password",
                         help="read a password and print its SCRAM-SHA-256 verifier")
@@ -136,7 +137,7 @@ def _load(args: argparse.Namespace):
 def _run_check(args: argparse.Namespace, console: Console) -> int:
     from proxy.policy_report import check_command
 
-    return check_command(args.directory, console=console)
+    return check_command(args.directory, console=console, backend=args.backend)
 
 
 def _run_hash_password(args: argparse.Namespace, console: Console) -> int:

@@ -3,7 +3,9 @@
 On success a summary for the people who sign policies off: each table with its source, who one
 individual is and the caps, each column with its kind and domain, then the analysts with their
 budgets and grants, and the administrators. On failure nothing but the problems, one
-``file: key: problem`` line each, so that editors and scripts can jump to them.
+``file: key: problem`` line each, so that editors and scripts can jump to them. With a backend
+DSN it also warns about the backend role's powers (a superuser can read files and other
+sessions' queries; hushql needs only to read the policy tables and keep its ledger).
 """
 
 from __future__ import annotations
@@ -19,10 +21,12 @@ from proxy.sql.domains import domain_size
 _MOST_VALUES_SHOWN = 8
 
 
-def check_command(directory: str | Path, console: Console | None = None) -> int:
+def check_command(directory: str | Path, console: Console | None = None,
+                  backend: str | None = None) -> int:
     """Check ``directory``; print the summary (exit code 0) or every problem (exit code 1).
 
-    With no ``console`` the summary goes to stdout and problems to stderr.
+    With no ``console`` the summary goes to stdout and problems to stderr. With ``backend``,
+    warnings about the backend role follow the summary (exit code 1 if it cannot be reached).
     """
     try:
         policies = load_policies(directory)
@@ -32,7 +36,40 @@ def check_command(directory: str | Path, console: Console | None = None) -> int:
             err.print(line, markup=False, emoji=False, highlight=False, soft_wrap=True)
         return 1
     print_summary(policies, console or Console())
+    if backend is not None:
+        try:
+            warnings = backend_warnings(backend)
+        except ConnectionError as error:
+            (console or Console(stderr=True)).print(f"backend: cannot connect ({error})",
+                                                    markup=False)
+            return 1
+        for line in warnings:
+            (console or Console()).print(f"warning: {line}", markup=False, highlight=False)
     return 0
+
+
+def backend_warnings(dsn: str) -> list[str]:
+    """What is needlessly powerful about the role hushql connects to the backend as; raises
+    ConnectionError (naming only the error's type) when the backend cannot be asked."""
+    import psycopg
+
+    try:
+        with psycopg.connect(dsn, connect_timeout=10) as conn:
+            row = conn.execute("SELECT current_user, rolsuper, rolbypassrls FROM pg_roles "
+                               "WHERE rolname = current_user").fetchone()
+    except psycopg.Error as error:
+        raise ConnectionError(type(error).__name__) from None
+    if row is None:
+        return []
+    role, superuser, bypass = row
+    found = []
+    if superuser:
+        found.append(f'the backend role "{role}" is a superuser: a mistake anywhere could read '
+                     "files or other sessions' queries; give hushql a role that may only read "
+                     "the policy tables (and create its ledger and catalog mirrors)")
+    elif bypass:
+        found.append(f'the backend role "{role}" bypasses row-level security')
+    return found
 
 
 def print_summary(policies: Policies, console: Console) -> None:

@@ -111,3 +111,32 @@ def test_serve_takes_its_settings_from_the_environment_and_logs_no_values(demo_d
     assert "answer analyst=planner epsilon=0.1 outcome=ok" in log
     # One line per connection and per answer, and never a value or the statement.
     assert "SELECT" not in log and "Northbank" not in log and "Traceback" not in log
+
+
+def test_check_warns_when_the_backend_role_is_a_superuser(pg_server_dsn: str) -> None:
+    import psycopg
+    from psycopg.conninfo import conninfo_to_dict, make_conninfo
+
+    with psycopg.connect(pg_server_dsn) as conn:  # the test server's admin role
+        superuser = conn.execute("SELECT rolsuper FROM pg_roles "
+                                 "WHERE rolname = current_user").fetchone()[0]
+    done = hushql("check", "policies", "--backend", pg_server_dsn)
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert ("is a superuser" in done.stdout) == superuser
+    if superuser:  # the same server, as a role with no powers: no warning
+        role = "hushql_check_plain"
+        with psycopg.connect(pg_server_dsn, autocommit=True) as conn:
+            conn.execute(f"DROP ROLE IF EXISTS {role}")
+            conn.execute(f"CREATE ROLE {role} LOGIN PASSWORD 'plain-check'")
+        try:
+            params = conninfo_to_dict(pg_server_dsn)
+            params.update(user=role, password="plain-check")
+            plain = hushql("check", "policies", "--backend", make_conninfo(**params))
+            assert plain.returncode == 0, plain.stdout + plain.stderr
+            assert "warning" not in plain.stdout
+        finally:
+            with psycopg.connect(pg_server_dsn, autocommit=True) as conn:
+                conn.execute(f"DROP ROLE IF EXISTS {role}")
+    unreachable = hushql("check", "policies", "--backend",
+                         "postgresql://nobody@127.0.0.1:1/none?connect_timeout=2")
+    assert unreachable.returncode == 1 and "cannot connect" in unreachable.stdout
