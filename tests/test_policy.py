@@ -350,12 +350,18 @@ def test_a_malformed_key_is_reported_once_and_the_rest_still_checked(policies: P
 
 # --- [connections] --------------------------------------------------------------------------------
 
+def set_connections(root: Path, lines: str) -> None:
+    """Replaces the demo's [connections] table (the last in access.toml) by ``lines``."""
+    text = (root / A).read_text()
+    text = text[:text.index("[connections]")] if "[connections]" in text else text
+    (root / A).write_text(text + f"\n[connections]\n{lines}\n")
+
+
 def test_connection_limits_have_safe_defaults_and_can_be_set(policies: Path) -> None:
     defaults = load_policies(policies).access.connections
     assert defaults.login_timeout_seconds == 10 and defaults.admin_sessions_kept >= 1
-    with (policies / A).open("a") as handle:
-        handle.write("\n[connections]\nmost_sessions = 20\nadmin_sessions_kept = 2\n"
-                     "login_timeout_seconds = 2.5\n")
+    set_connections(policies, "most_sessions = 20\nadmin_sessions_kept = 2\n"
+                              "login_timeout_seconds = 2.5")
     limits = load_policies(policies).access.connections
     assert (limits.most_sessions, limits.admin_sessions_kept) == (20, 2)
     assert limits.login_timeout_seconds == Decimal("2.5")
@@ -381,6 +387,5 @@ def test_connection_limits_have_safe_defaults_and_can_be_set(policies: Path) -> 
 ])
 def test_connection_limit_problems_name_their_key(policies: Path, lines: str,
                                                   expected: list[str]) -> None:
-    with (policies / A).open("a") as handle:
-        handle.write(f"\n[connections]\n{lines}\n")
+    set_connections(policies, lines)
     assert problems(policies) == expected

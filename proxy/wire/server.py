@@ -39,6 +39,7 @@ log = logging.getLogger("hushql.wire")
 READ_CHUNK = 64 * 1024
 FLUSH_AT_BYTES = 256 * 1024
 SHUTDOWN_GRACE_SECONDS = 5.0
+SWITCH_INTERVAL_SECONDS = 0.0005
 
 T = TypeVar("T")
 
@@ -505,6 +506,11 @@ def run_server(engine: Any, **kwargs: Any) -> None:
     if not logging.getLogger().handlers:
         logging.basicConfig(stream=sys.stderr, level=logging.INFO,
                             format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    # While a long statement is parsed on the parse lane (session.py), the event loop and the
+    # engine threads wait for the GIL up to the switch interval at each hand-over; a tenth of
+    # Python's default 5 ms keeps a flood of long statements from multiplying everyone else's
+    # latency (benchmarks/bench_flood.py, flood without the refusal allowance).
+    sys.setswitchinterval(SWITCH_INTERVAL_SECONDS)
 
     async def main() -> None:
         loop = asyncio.get_running_loop()
