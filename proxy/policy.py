@@ -68,7 +68,7 @@ class Connections(_Strict):
     most_sessions: WholeNumber = 200
     admin_sessions_kept: WholeNumber = 3
     most_logins_in_progress: WholeNumber = 256
-    most_logins_in_progress_per_address: WholeNumber = 16
+    most_logins_in_progress_per_address: WholeNumber = 32
     login_timeout_seconds: Decimal = Decimal(10)
     failed_logins_allowed: WholeNumber = 10  # per address and per account, before waiting
     seconds_per_failed_login: Decimal = Decimal(3)  # one more failure allowed after each
