@@ -87,7 +87,8 @@ def _parser() -> argparse.ArgumentParser:
                        help=f"HOST:PORT to listen on (HUSHQL_LISTEN, default {DEFAULT_LISTEN})")
     serve.add_argument("--tls-cert", type=Path, help="PEM certificate for TLS")
     serve.add_argument("--tls-key", type=Path, help="PEM private key for TLS")
-    serve.add_argument("--max-connections", type=int, default=200)
+    serve.add_argument("--max-connections", type=int, default=None,
+                       help="sessions at once (default: most_sessions in access.toml)")
     serve.add_argument("--max-message-bytes", type=int, default=1 << 20)
     serve.set_defaults(allow_demo_accounts=False)  # only `hushql demo` serves the demo accounts
 
@@ -261,7 +262,8 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
         run_server(engine, host=host, port=port, ssl_context=context,
                    engine_threads=max(32, 2 * args.pool_size),
                    max_message_bytes=args.max_message_bytes,
-                   max_connections=args.max_connections, catalog=catalog)
+                   limits=policies.access.connections, max_connections=args.max_connections,
+                   catalog=catalog)
     except OSError as error:  # the port was taken between the check and the bind
         if not preflight.is_listen_error(error):
             raise
@@ -303,7 +305,7 @@ def _run_demo(args: argparse.Namespace, console: Console) -> int:
     def serve(backend_dsn: str) -> None:
         namespace = argparse.Namespace(policies=args.policies, backend=backend_dsn,
                                        ledger=None, pool_size=16, listen=args.listen,
-                                       tls_cert=None, tls_key=None, max_connections=200,
+                                       tls_cert=None, tls_key=None, max_connections=None,
                                        max_message_bytes=1 << 20, allow_demo_accounts=True)
         _run_serve(namespace, console)
     if args.no_load and not args.backend:

@@ -60,8 +60,30 @@ class AdminPolicy(_Strict):
     disabled: bool = False
 
 
+class Connections(_Strict):
+    """What the wire front lets clients hold and try (``[connections]`` in access.toml).
+
+    Logged-in sessions are counted against ``most_sessions``, of which ``admin_sessions_kept``
+    only administrators may take. Connections still logging in are counted apart (in total and
+    per client address) and must finish within ``login_timeout_seconds``. Failed logins and
+    refused statements cost tokens from buckets that refill over time (see
+    proxy/wire/guard.py).
+    """
+
+    most_sessions: WholeNumber = 200
+    admin_sessions_kept: WholeNumber = 3
+    most_logins_in_progress: WholeNumber = 256
+    most_logins_in_progress_per_address: WholeNumber = 32
+    login_timeout_seconds: Decimal = Decimal(10)
+    failed_logins_allowed: WholeNumber = 10  # per address and per account, before waiting
+    seconds_per_failed_login: Decimal = Decimal(3)  # one more failure allowed after each
+    refusals_allowed: WholeNumber = 60  # refusal units per account, before waiting
+    seconds_per_refusal: Decimal = Decimal("0.5")  # one unit back after each
+
+
 class AccessPolicy(_Strict):
     defaults: Defaults = Field(default_factory=Defaults)
+    connections: Connections = Field(default_factory=Connections)
     analysts: dict[str, AnalystPolicy] = Field(default_factory=dict)
     admins: dict[str, AdminPolicy] = Field(default_factory=dict)
 
@@ -394,6 +416,8 @@ def _access_problems(access: AccessPolicy, table_names: set[str]) -> list[tuple[
                       f"{d.largest_epsilon_per_query}"))
     if d.most_cells < 1:
         found.append(("defaults.most_cells", "must be a positive integer"))
+    found += [(f"connections.{key}", problem)
+              for key, problem in _connection_problems(access.connections)]
     accounts = [("analysts", n, a.password) for n, a in access.analysts.items()]
     accounts += [("admins", n, a.password) for n, a in access.admins.items()]
     for section, name, password in accounts:
@@ -412,6 +436,30 @@ def _access_problems(access: AccessPolicy, table_names: set[str]) -> list[tuple[
             if table not in table_names:
                 found.append((f"analysts.{name}.tables",
                               f"{table!r} has no policy file in tables/"))
+    return found
+
+
+def _connection_problems(c: Connections) -> list[tuple[str, str]]:
+    """Meaning checks for ``[connections]``; keys are relative to the table."""
+    found: list[tuple[str, str]] = []
+    for key in ("most_sessions", "most_logins_in_progress",
+                "most_logins_in_progress_per_address", "failed_logins_allowed",
+                "refusals_allowed"):
+        if getattr(c, key) < 1:
+            found.append((key, "must be a positive integer"))
+    if c.admin_sessions_kept < 0:
+        found.append(("admin_sessions_kept", "must not be negative"))
+    elif c.admin_sessions_kept >= c.most_sessions >= 1:
+        found.append(("admin_sessions_kept", f"{c.admin_sessions_kept} leaves no session for "
+                                             f"analysts out of most_sessions {c.most_sessions}"))
+    if c.most_logins_in_progress_per_address > c.most_logins_in_progress >= 1:
+        found.append(("most_logins_in_progress_per_address",
+                      f"is above most_logins_in_progress {c.most_logins_in_progress}"))
+    for key, most in (("login_timeout_seconds", 600), ("seconds_per_failed_login", 3600),
+                      ("seconds_per_refusal", 3600)):
+        value = getattr(c, key)
+        if not value.is_finite() or not 0 < value <= most:
+            found.append((key, f"must be above 0 and at most {most}"))
     return found
 
 

@@ -3,7 +3,9 @@
 On success a summary for the people who sign policies off: each table with its source, who one
 individual is and the caps, each column with its kind and domain, then the analysts with their
 budgets and grants, and the administrators. On failure nothing but the problems, one
-``file: key: problem`` line each, so that editors and scripts can jump to them.
+``file: key: problem`` line each, so that editors and scripts can jump to them. With a backend
+DSN it also warns about the backend role's powers (a superuser can read files and other
+sessions' queries; hushql needs only to read the policy tables and keep its ledger).
 """
 
 from __future__ import annotations
@@ -35,9 +37,15 @@ def check_command(directory: str | Path, console: Console | None = None, *,
     except PolicyError as error:
         _print_problems(err, error.problems)
         return 1
+    warnings: list[str] = []
     if backend:
         from proxy.safe_config import backend_problems, budget_problems
 
+        try:
+            warnings = backend_warnings(backend)
+        except ConnectionError as error:
+            err.print(f"backend: cannot connect ({error})", markup=False)
+            return 1
         try:
             problems = backend_problems(policies, backend) + \
                 budget_problems(policies, ledger or backend)
@@ -52,12 +60,38 @@ def check_command(directory: str | Path, console: Console | None = None, *,
         (console or Console()).print("The backend answers every table, column and type; the "
                                      "ledger's budgets stay above what is spent.",
                                      highlight=False)
+        for line in warnings:
+            (console or Console()).print(f"warning: {line}", markup=False, highlight=False)
     return 0
 
 
 def _print_problems(console: Console, problems: list[str]) -> None:
     for line in problems:
         console.print(line, markup=False, emoji=False, highlight=False, soft_wrap=True)
+
+
+def backend_warnings(dsn: str) -> list[str]:
+    """What is needlessly powerful about the role hushql connects to the backend as; raises
+    ConnectionError (naming only the error's type) when the backend cannot be asked."""
+    import psycopg
+
+    try:
+        with psycopg.connect(dsn, connect_timeout=10) as conn:
+            row = conn.execute("SELECT current_user, rolsuper, rolbypassrls FROM pg_roles "
+                               "WHERE rolname = current_user").fetchone()
+    except psycopg.Error as error:
+        raise ConnectionError(type(error).__name__) from None
+    if row is None:
+        return []
+    role, superuser, bypass = row
+    found = []
+    if superuser:
+        found.append(f'the backend role "{role}" is a superuser: a mistake anywhere could read '
+                     "files or other sessions' queries; give hushql a role that may only read "
+                     "the policy tables (and create its ledger and catalog mirrors)")
+    elif bypass:
+        found.append(f'the backend role "{role}" bypasses row-level security')
+    return found
 
 
 def print_summary(policies: Policies, console: Console) -> None:

@@ -104,7 +104,8 @@ def running_proxy(backend_dsn: str, *, policies_dir: Path = DEMO_POLICIES,
     catalog = build_catalog(policies, backend_dsn)
     try:
         assert catalog.unavailable is None, catalog.unavailable
-        host, port, stop = start_in_thread(engine, catalog=catalog)
+        host, port, stop = start_in_thread(engine, catalog=catalog,
+                                           limits=policies.access.connections)
         try:
             yield RunningProxy(host, port, backend_dsn, dict(demo_accounts()), engine, catalog,
                                policies)

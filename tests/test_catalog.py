@@ -133,8 +133,11 @@ def test_mirrors_are_reused_and_rebuilt_when_tampered(catalog: Catalog, backend:
 # ---------------------------------------------------------------- the role
 
 def test_queries_run_as_an_unprivileged_role(catalog: Catalog, backend: str) -> None:
-    assert rows(catalog, "planner", "SELECT current_user, current_setting('is_superuser'), "
-                "current_setting('transaction_read_only')") == [(ROLE, "off", "on")]
+    # Straight through the catalog's transaction: what clients ask is personalised (below).
+    with catalog._transaction("planner", "SELECT 1") as conn:
+        assert conn.execute("SELECT current_user, current_setting('is_superuser'), "
+                            "current_setting('transaction_read_only')").fetchone() \
+            == (ROLE, "off", "on")
     with psycopg.connect(backend) as conn:
         flags = conn.execute(
             "SELECT rolsuper, rolcanlogin, rolcreatedb, rolcreaterole, rolreplication, "
@@ -390,3 +393,69 @@ def test_layout_types_follow_policy_kinds() -> None:
     assert [(c.name, c.type) for c in layout[0].columns] == [
         ("household_id", "integer"), ("district", "text"), ("reading_date", "date"),
         ("litres", "numeric")]
+
+
+# ---------------------------------------------------------------- bounded, and nothing needless
+
+def test_catalog_answers_are_bounded_in_bytes(catalog: Catalog) -> None:
+    # No function that makes large text at all: a recursive CTE doubling a string with ||,
+    # up to 8 MiB in one value.
+    with pytest.raises(HushError) as caught:
+        catalog.run("planner", "WITH RECURSIVE r(s, n) AS (SELECT 'xy'::text, 1 UNION ALL "
+                    "SELECT s || s, n + 1 FROM r WHERE n < 23) SELECT s FROM r", [])
+    assert caught.value.sqlstate == "54000" and str(catalog.max_bytes) in caught.value.message
+    strict = Catalog(catalog.policies, admin_dsn=catalog.admin_dsn, mirrors=catalog.mirrors,
+                     max_bytes=1000)
+    try:
+        # The shape that built a 78 MB value, smaller: one row of an aggregated series.
+        with pytest.raises(HushError) as caught:
+            strict.run("planner", "SELECT array_agg(g) FROM generate_series(1, 1000) g", [])
+        assert caught.value.sqlstate == "54000"
+        # Many small rows add up the same way.
+        assert len(rows(strict, "planner", "SELECT g FROM generate_series(1, 100) g")) == 100
+        with pytest.raises(HushError) as caught:
+            strict.run("planner", "SELECT g FROM generate_series(1, 1000) g", [])
+        assert caught.value.sqlstate == "54000"
+    finally:
+        strict.close()
+
+
+def test_bounded_answers_keep_their_columns_and_order(catalog: Catalog, backend: str) -> None:
+    query = ("SELECT c.relname, c.relname AS again, c.relkind FROM pg_catalog.pg_class c "
+             "WHERE c.relname LIKE 'pg_%' ORDER BY c.relname DESC LIMIT 7 -- a trailing comment")
+    columns, got = catalog.run("planner", query, [])
+    assert [name for name, _ in columns] == ["relname", "again", "relkind"]
+    with psycopg.connect(with_database(backend, catalog.mirrors["planner"])) as conn:
+        assert got == conn.execute(query).fetchall()
+
+
+def test_the_catalog_tells_the_proxy_and_the_analyst_not_the_backend(catalog: Catalog) -> None:
+    columns, got = catalog.run("planner", "SELECT version(), pg_catalog.version() AS v, "
+                               "current_user, session_user, current_role, user, "
+                               "current_setting('server_version'), "
+                               "current_setting('is_superuser', true)", [])
+    assert [name for name, _ in columns] == ["version", "v", "current_user", "session_user",
+                                             "current_role", "user", "current_setting",
+                                             "current_setting"]
+    assert got == [(catalog_module.VERSION_STRING, catalog_module.VERSION_STRING, "planner",
+                    "planner", "planner", "planner", "15.0 (hushql)", "off")]
+    assert "hushql" in catalog_module.VERSION_STRING
+    assert catalog_module.VERSION_STRING.startswith("PostgreSQL 15.0 ")  # what drivers parse
+    assert rows(catalog, "researcher", "SELECT * FROM version()") == [
+        (catalog_module.VERSION_STRING,)]
+    assert rows(catalog, "researcher", "SELECT rolname FROM pg_catalog.pg_roles "
+                "WHERE rolname = current_user") == []  # the analyst is no backend role
+
+
+@pytest.mark.parametrize("text, expected", [
+    ("SELECT 1 AS user", "SELECT 1 AS user"),  # a column label, not the keyword
+    ("SELECT t.user FROM t", "SELECT t.user FROM t"),
+    ('SELECT "current_user"()', """SELECT (SELECT 'o''neil'::name AS "current_user")"""),
+    ("SELECT current_setting('search_path')", "SELECT current_setting('search_path')"),
+    ("SELECT lower(version())",
+     "SELECT lower((SELECT 'V'::text AS \"version\"))"),
+])
+def test_personalise_replaces_only_identity_questions(text: str, expected: str,
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(catalog_module, "VERSION_STRING", "V")
+    assert catalog_module.personalise(text, "o'neil") == expected

@@ -207,3 +207,40 @@ def test_check_reports_a_budget_lowered_below_spending(demo_dsn: str, tmp_path: 
     assert done.returncode == 1
     assert "access.toml: analysts.researcher.budget: the ledger's budget would become" \
         in done.stdout and "below the" in done.stdout
+
+
+def test_check_warns_when_the_backend_role_is_a_superuser(demo_dsn: str) -> None:
+    import psycopg
+    from psycopg.conninfo import conninfo_to_dict, make_conninfo
+
+    with psycopg.connect(demo_dsn) as conn:  # the test server's admin role
+        superuser = conn.execute("SELECT rolsuper FROM pg_roles "
+                                 "WHERE rolname = current_user").fetchone()[0]
+    done = hushql("check", "policies", "--backend", demo_dsn)
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert ("is a superuser" in done.stdout) == superuser
+    if superuser:  # the same server, as a role with no powers: no warning
+        role = "hushql_check_plain"
+        with psycopg.connect(demo_dsn, autocommit=True) as conn:
+            conn.execute(f"DROP OWNED BY {role}" if conn.execute(
+                "SELECT 1 FROM pg_roles WHERE rolname = %s", [role]).fetchone() else "SELECT 1")
+            conn.execute(f"DROP ROLE IF EXISTS {role}")
+            conn.execute(f"CREATE ROLE {role} LOGIN PASSWORD 'plain-check'")
+            # What a reading role needs for the check: the tables, and the ledger's budgets.
+            for (schema,) in conn.execute("SELECT nspname FROM pg_namespace WHERE nspname IN "
+                                          "('utility', 'hushql')").fetchall():
+                conn.execute(f"GRANT USAGE ON SCHEMA {schema} TO {role}")
+                conn.execute(f"GRANT SELECT ON ALL TABLES IN SCHEMA {schema} TO {role}")
+        try:
+            params = conninfo_to_dict(demo_dsn)
+            params.update(user=role, password="plain-check")
+            plain = hushql("check", "policies", "--backend", make_conninfo(**params))
+            assert plain.returncode == 0, plain.stdout + plain.stderr
+            assert "warning" not in plain.stdout
+        finally:
+            with psycopg.connect(demo_dsn, autocommit=True) as conn:
+                conn.execute(f"DROP OWNED BY {role}")
+                conn.execute(f"DROP ROLE IF EXISTS {role}")
+    unreachable = hushql("check", "policies", "--backend",
+                         "postgresql://nobody@127.0.0.1:1/none?connect_timeout=2")
+    assert unreachable.returncode == 1 and "cannot connect" in unreachable.stdout

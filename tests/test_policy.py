@@ -346,3 +346,46 @@ def test_a_malformed_key_is_reported_once_and_the_rest_still_checked(policies: P
     assert [line.split(": ")[1] for line in found] == ["columns.litres.step",
                                                        "individual.rows_cap"]
     assert found[1] == f"{R}: individual.rows_cap: must be a positive integer"
+
+
+# --- [connections] --------------------------------------------------------------------------------
+
+def set_connections(root: Path, lines: str) -> None:
+    """Replaces the demo's [connections] table (the last in access.toml) by ``lines``."""
+    text = (root / A).read_text()
+    text = text[:text.index("[connections]")] if "[connections]" in text else text
+    (root / A).write_text(text + f"\n[connections]\n{lines}\n")
+
+
+def test_connection_limits_have_safe_defaults_and_can_be_set(policies: Path) -> None:
+    defaults = load_policies(policies).access.connections
+    assert defaults.login_timeout_seconds == 10 and defaults.admin_sessions_kept >= 1
+    set_connections(policies, "most_sessions = 20\nadmin_sessions_kept = 2\n"
+                              "login_timeout_seconds = 2.5")
+    limits = load_policies(policies).access.connections
+    assert (limits.most_sessions, limits.admin_sessions_kept) == (20, 2)
+    assert limits.login_timeout_seconds == Decimal("2.5")
+
+
+@pytest.mark.parametrize(("lines", "expected"), [
+    ("most_sessions = 0", [f"{A}: connections.most_sessions: must be a positive integer"]),
+    ("most_sessions = 4\nadmin_sessions_kept = 4",
+     [f"{A}: connections.admin_sessions_kept: 4 leaves no session for analysts out of "
+      "most_sessions 4"]),
+    ("most_logins_in_progress = 8\nmost_logins_in_progress_per_address = 9",
+     [f"{A}: connections.most_logins_in_progress_per_address: is above "
+      "most_logins_in_progress 8"]),
+    ("login_timeout_seconds = 0", [f"{A}: connections.login_timeout_seconds: must be above 0 "
+                                   "and at most 600"]),
+    ("seconds_per_refusal = 7200", [f"{A}: connections.seconds_per_refusal: must be above 0 "
+                                    "and at most 3600"]),
+    ("seconds_per_refusal = nan", [f"{A}: connections.seconds_per_refusal: "
+                                   "Input should be a finite number"]),
+    ("failed_logins_allowed = 2.0", [f"{A}: connections.failed_logins_allowed: "
+                                     "Input should be a valid integer"]),
+    ("most_connections = 5", [f"{A}: connections.most_connections: unknown key"]),
+])
+def test_connection_limit_problems_name_their_key(policies: Path, lines: str,
+                                                  expected: list[str]) -> None:
+    set_connections(policies, lines)
+    assert problems(policies) == expected

@@ -196,6 +196,8 @@ class RawClient:
 
         self.send(codec.StartupMessage({"user": user, "database": "demo"}).encode())
         sasl = self.receive()
+        if isinstance(sasl, codec.ErrorResponse):  # refused before any exchange
+            return [sasl]
         assert isinstance(sasl, codec.AuthenticationSASL)
         client = scramp.ScramClient(list(sasl.mechanisms), user, password)
         self.send(codec.SASLInitialResponse("SCRAM-SHA-256",

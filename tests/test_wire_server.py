@@ -16,6 +16,7 @@ from pathlib import Path
 import psycopg
 import pytest
 
+from proxy.policy import Connections
 from proxy.wire import codec
 from proxy.wire.server import start_in_thread
 from tests.test_wire_fakes import ANALYST, PASSWORD, FakeEngine, RawClient, dsn
@@ -191,7 +192,8 @@ def test_pipelined_extended_batch_and_utf8_errors(server) -> None:
 
 
 def test_connection_limit(engine: FakeEngine) -> None:
-    host, port, stop = start_in_thread(engine, max_connections=2)
+    host, port, stop = start_in_thread(engine, limits=Connections(most_sessions=2,
+                                                                  admin_sessions_kept=0))
     try:
         address = (host, port)
         first = psycopg.connect(dsn(address))

@@ -28,6 +28,17 @@ that holds the data:
   objects, locks, server activity, transaction ids and other databases are refused with 42501
   and a hint. The query runs through a server-side cursor (one statement only) and at most
   ``MAX_ROWS`` rows come back.
+- **Bounded answers.** Function allow-lists cannot bound the size of a value (``||`` in a
+  recursive CTE doubles a string without calling anything), so the size is checked where the
+  value is made: the query runs wrapped so that PostgreSQL keeps a running total of the text
+  size of the rows it sends and fails the query, before sending the row that passes
+  ``MAX_BYTES``, with an error the catalog turns into 54000. The proxy therefore never holds
+  more than ``MAX_BYTES`` of one answer's text, and at most ``MOST_AT_ONCE`` answers are
+  fetched at a time in the whole process.
+- **No needless facts about the backend.** ``version()``, ``current_user``, ``session_user``,
+  ``current_role``, ``user`` and ``current_setting`` of the version or superuser settings are
+  replaced, in the text sent to the mirror, by literals: the proxy's version string, the
+  analyst's name, and ``off``.
 - **Routing.** ``is_catalog_query`` is True only when every relation a query names is a catalog
   relation, a CTE or a function; any policy table name (``SELECT * FROM households LIMIT 0``)
   sends the query to the engine, which refuses raw rows. Because a mirror holds no rows, a
@@ -57,15 +68,17 @@ from psycopg.types.string import TextLoader
 from psycopg_pool import ConnectionPool
 from sqlglot import exp
 
+from proxy import __version__
 from proxy.errors import (FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, INTERNAL_ERROR,
-                          PROGRAM_LIMIT_EXCEEDED, QUERY_CANCELED, HushError)
+                          PROGRAM_LIMIT_EXCEEDED, QUERY_CANCELED, TOO_MANY_CONNECTIONS,
+                          HushError)
 from proxy.dsn import with_database
 from proxy.policy import ColumnPolicy, Policies
-from proxy.wire import own_database, statements, types
+from proxy.wire import own_database, settings, statements, types
 from proxy.wire.statements import Token
 
 __all__ = ["Catalog", "build_catalog", "is_catalog_tree", "claims_text", "check_catalog_text",
-           "mirror_layout", "ROLE"]
+           "mirror_layout", "personalise", "bounded", "ROLE"]
 
 log = logging.getLogger("hushql.catalog")
 
@@ -75,7 +88,14 @@ MIRROR_PREFIX = "hushql_mirror_"
 LAYOUT_VERSION = 1
 STATEMENT_TIMEOUT_MS = 3000
 MAX_ROWS = 100_000
+# The largest catalog answer, in bytes of PostgreSQL's text for its rows. What the supported
+# clients read is far smaller: all of pg_proc is some 0.5 MB (measured on PostgreSQL 15).
+MAX_BYTES = 4 * 1024 * 1024
 POOL_SIZE = 4
+# Catalog answers being fetched at once in the process, whatever the mirror; others wait up
+# to WAIT_SECONDS for their turn.
+MOST_AT_ONCE = 4
+WAIT_SECONDS = 10.0
 
 CATALOG_HINT = ("Catalog questions are answered from an empty copy of your granted tables; "
                 "sizes, statistics, files and server activity are not available.")
@@ -389,6 +409,93 @@ def claims_text(text: str, policy_tables: Iterable[str]) -> bool:
     return any(n in CATALOG_SCHEMAS or n.startswith("pg_") for n in names)
 
 
+# ----------------------------------------------------------------------------- what is told
+
+# version() as the proxy tells it: the "PostgreSQL major.minor" prefix clients parse, then
+# the proxy's own name and version instead of the backend's build.
+VERSION_STRING = f"PostgreSQL {settings.SERVER_VERSION.split()[0]} (hushql {__version__})"
+_IDENTITY = ("current_user", "session_user", "current_role", "user")
+# Settings current_setting() answers from the proxy rather than the mirror's server.
+_TOLD_SETTINGS = {"server_version": settings.SERVER_VERSION,
+                  "server_version_num": settings.SERVER_VERSION_NUM, "is_superuser": "off"}
+
+
+def _literal(value: str, sql_type: str, column: str) -> str:
+    """A scalar subquery standing for a value: it keeps the column name a call would give
+    (PostgreSQL names a scalar subquery's column after its one target). The value is quoted
+    with standard_conforming_strings on, as every mirror connection sets."""
+    if "\x00" in value:
+        raise HushError(FEATURE_NOT_SUPPORTED, "this account name cannot be shown")
+    quoted = "'" + value.replace("'", "''") + "'"
+    return f'(SELECT {quoted}::{sql_type} AS "{column}")'
+
+
+def personalise(text: str, analyst: str) -> str:
+    """``text`` with every question about the backend's identity replaced by the proxy's
+    answer: version(), the role functions and keywords (as the analyst's name), and
+    current_setting of the version and superuser settings. Runs on checked text."""
+    tokens = statements.tokenize(text)
+    edits: list[tuple[int, int, str]] = []
+    i = 0
+    while i < len(tokens):
+        first = i
+        if _is_word_or_ident(tokens[i], "pg_catalog") and i + 2 < len(tokens) \
+                and _is_op(tokens[i + 1], ".") and tokens[i + 2].kind in ("word", "ident"):
+            i += 2
+        tok = tokens[i]
+        name = tok.value.lower() if tok.kind in ("word", "ident") else ""
+        qualified = i > 0 and _is_op(tokens[i - 1], ".") and first == i
+        value: str | None = None
+        end = i
+        if name and not qualified and _is_op(tokens[i + 1] if i + 1 < len(tokens) else None,
+                                              "("):
+            close = _matching(tokens, i + 1)
+            args = tokens[i + 2:close]
+            if name == "version" and not args:
+                value = _literal(VERSION_STRING, "text", "version")
+            elif name in _IDENTITY and not args:
+                value = _literal(analyst, "name", name)
+            elif name == "current_setting" and args and args[0].kind == "string" \
+                    and args[0].value.lower() in _TOLD_SETTINGS \
+                    and (len(args) == 1 or _is_op(args[1], ",")):
+                value = _literal(_TOLD_SETTINGS[args[0].value.lower()], "text",
+                                 "current_setting")
+            end = close
+        elif tok.kind == "word" and name in _IDENTITY and first == i and not qualified \
+                and not (i > 0 and _is_word(tokens[i - 1], "AS")):
+            value = _literal(analyst, "name", name)
+        if value is not None:
+            if first > 0 and _is_word(tokens[first - 1], "FROM", "JOIN", "LATERAL"):
+                value += f' AS "{name}"'  # a FROM item needs an alias (PostgreSQL 15)
+            edits.append((tokens[first].start, tokens[end].end, value))
+            i = end
+        i += 1
+    for start, stop, value in reversed(edits):
+        text = text[:start] + value + text[stop:]
+    return text
+
+
+def _is_word_or_ident(tok: Token, value: str) -> bool:
+    return tok.kind in ("word", "ident") and tok.value.lower() == value
+
+
+# The running total of the answer's text size, and the error that stops it (a cast that
+# cannot succeed, built from the row so that the planner cannot fold it in advance).
+_SIZE_COLUMN = "hushql_answer_bytes"
+_TOO_LARGE = "bytes: hushql catalog answer too large"
+
+
+def bounded(text: str, most_bytes: int) -> str:
+    """The query wrapped so that the mirror fails it, before sending the row that brings the
+    answer's text above ``most_bytes``; the wrapper adds one last column (the running size)
+    that ``Catalog.run`` drops. Rows keep their order: the window has no ORDER BY of its own
+    and PostgreSQL keeps the subquery's order through it."""
+    return (f"SELECT w.* FROM (SELECT q.*, sum(octet_length(q::text)) OVER (ROWS UNBOUNDED "
+            f"PRECEDING) AS {_SIZE_COLUMN} FROM (\n{text}\n) AS q) AS w WHERE CASE WHEN "
+            f"w.{_SIZE_COLUMN} > {int(most_bytes)} THEN (w.{_SIZE_COLUMN}::text || "
+            f"' {_TOO_LARGE}')::int > 0 ELSE true END")
+
+
 # ----------------------------------------------------------------------------- mirror layout
 
 
@@ -626,7 +733,7 @@ class Catalog:
     def __init__(self, policies: Policies, *, admin_dsn: str = "",
                  mirrors: dict[str, str] | None = None, unavailable: str | None = None,
                  timeout_ms: int = STATEMENT_TIMEOUT_MS, max_rows: int = MAX_ROWS,
-                 database: str = "") -> None:
+                 max_bytes: int = MAX_BYTES, database: str = "") -> None:
         self.policies = policies
         self.database = database  # the one name pg_database shows (proxy.wire.own_database)
         self._database_columns: list[str] | None = None
@@ -635,6 +742,8 @@ class Catalog:
         self.unavailable = unavailable
         self.timeout_ms = timeout_ms
         self.max_rows = max_rows
+        self.max_bytes = max_bytes
+        self._at_once = threading.BoundedSemaphore(MOST_AT_ONCE)
         self._policy_tables = frozenset(policies.tables)
         self._pools: dict[str, ConnectionPool] = {}
         self._lock = threading.Lock()
@@ -652,14 +761,22 @@ class Catalog:
     def run(self, analyst: str, sql_text: str, params: Sequence[Any] = ()
             ) -> tuple[list[tuple[str, int | str]], list[tuple[Any, ...]]]:
         """Runs one checked catalog SELECT in the analyst's mirror: (columns, rows). Raises
-        HushError (42501 refused, 54000 too many rows, 57014 timeout, or the mirror's own
-        error about the query)."""
-        with self._transaction(analyst, sql_text) as conn:
-            # A server-side cursor: one statement only, and at most max_rows + 1 fetched.
-            with psycopg.RawServerCursor(conn, "hushql_catalog_answer") as cur:
-                cur.execute(self._runnable(conn, sql_text), list(params))
-                described = list(cur.description or [])
-                rows = cur.fetchmany(self.max_rows + 1)
+        HushError (42501 refused, 54000 too many rows or bytes, 53300 too many at once, 57014
+        timeout, or the mirror's own error about the query)."""
+        if not self._at_once.acquire(timeout=WAIT_SECONDS):
+            raise HushError(TOO_MANY_CONNECTIONS, "too many catalog questions at once",
+                            hint="Try again in a moment.")
+        try:
+            with self._transaction(analyst, sql_text) as conn:
+                # A server-side cursor: one statement only, and at most max_rows + 1 fetched.
+                with psycopg.RawServerCursor(conn, "hushql_catalog_answer") as cur:
+                    cur.execute(bounded(self._runnable(conn, personalise(sql_text, analyst)),
+                                        self.max_bytes),
+                                list(params))
+                    described = list(cur.description or [])[:-1]
+                    rows = [row[:-1] for row in cur.fetchmany(self.max_rows + 1)]
+        finally:
+            self._at_once.release()
         if len(rows) > self.max_rows:
             raise HushError(PROGRAM_LIMIT_EXCEEDED, "the catalog answer has more than "
                             f"{self.max_rows} rows", hint="Narrow the catalog query.")
@@ -687,7 +804,8 @@ class Catalog:
         """The mirror's description (a libpq result) of the checked text, prepared unnamed in
         the catalog transaction; raises HushError with the mirror's refusal."""
         with self._transaction(analyst, sql_text) as conn:
-            result = conn.pgconn.prepare(b"", self._runnable(conn, sql_text).encode())
+            result = conn.pgconn.prepare(
+                b"", self._runnable(conn, personalise(sql_text, analyst)).encode())
             if result.status == ExecStatus.COMMAND_OK:
                 result = conn.pgconn.describe_prepared(b"")
         if result.status != ExecStatus.COMMAND_OK:
@@ -733,6 +851,9 @@ class Catalog:
         about the query itself (syntax, names, privileges, bad input), else a generic line.
         No row of data can be in them: the mirror has none."""
         state = state or INTERNAL_ERROR
+        if _TOO_LARGE in (message or ""):
+            return HushError(PROGRAM_LIMIT_EXCEEDED, f"the catalog answer is larger than "
+                             f"{self.max_bytes} bytes", hint="Narrow the catalog query.")
         if state == QUERY_CANCELED:
             return HushError(QUERY_CANCELED, "canceling statement due to statement timeout",
                              hint=f"Catalog questions must finish within {self.timeout_ms} ms.")

@@ -388,6 +388,11 @@ def _format_codes(b: _Body, what: str) -> tuple[int, ...]:
     return codes
 
 
+# Type bytes of the typed frontend messages (protocol chapter, "Message Formats"); any other is
+# refused as soon as its header arrives, without waiting for the body it announces.
+FRONTEND_TYPES = frozenset(b"QPBDCESHXpFdcf")
+
+
 def _parse_typed_frontend(type_byte: bytes, body: bytes) -> FrontendMessage:
     """Decodes one typed frontend message body; raises ProtocolError or CharacterEncodingError."""
     if type_byte == b"Q":
@@ -544,6 +549,10 @@ class FrontendReader:
             if isinstance(msg, StartupMessage):
                 self._startup = False
             return msg
+        if not buf:
+            return None
+        if buf[0] not in FRONTEND_TYPES:
+            raise ProtocolError(f"invalid frontend message type {buf[0]}")
         if len(buf) < 5:
             return None
         type_byte = bytes(buf[0:1])

@@ -29,18 +29,17 @@ from typing import Any, Awaitable, Callable, TypeVar
 
 from proxy.errors import (ADMIN_SHUTDOWN, INVALID_AUTHORIZATION, INVALID_PASSWORD,
                           PROTOCOL_VIOLATION, TOO_MANY_CONNECTIONS, HushError)
-from proxy.wire import auth, codec, states
+from proxy.policy import Connections
+from proxy.wire import auth, codec, guard, states
 from proxy.wire.session import Session, error_response, internal_error, log_internal
 from proxy.wire.states import Act, ConnectionMachine, Event
 
 log = logging.getLogger("hushql.wire")
 
-# PostgreSQL's authentication_timeout default (one minute, value from memory): a connection
-# must finish startup and authentication within it, so idle sockets cannot hold slots.
-AUTH_TIMEOUT_SECONDS = 60.0
 READ_CHUNK = 64 * 1024
 FLUSH_AT_BYTES = 256 * 1024
 SHUTDOWN_GRACE_SECONDS = 5.0
+SWITCH_INTERVAL_SECONDS = 0.0005
 
 T = TypeVar("T")
 
@@ -62,6 +61,8 @@ class Connection:
         self.out = codec.MessageBatch()
         self.session: Session | None = None
         self.claimed: str | None = None  # the name given at startup, for the log
+        self.address = guard.address_key(writer.get_extra_info("peername"))
+        self.evicted = False  # dropped to make room for a newer login
         self.tls = False
         self.gone = False
         self.process_id = 0
@@ -144,13 +145,21 @@ class Connection:
 
     # ---- lifetime -------------------------------------------------------------------------
 
+    def evict(self) -> None:
+        """Ends a login in progress to make room for a newer one (see guard.ConnectionGate)."""
+        self.evicted = True
+        task = self.server._connections.get(self)
+        if task is not None:
+            task.cancel()
+
     async def run(self) -> None:
         """Serves the connection to its end; never raises."""
         started = time.monotonic()
         peer = self.writer.get_extra_info("peername")
         outcome = "closed"
         try:
-            authenticated = await asyncio.wait_for(self._startup(), AUTH_TIMEOUT_SECONDS)
+            authenticated = await asyncio.wait_for(
+                self._startup(), float(self.server.limits.login_timeout_seconds))
             if authenticated:
                 outcome = "ended"
                 await self._serve()
@@ -169,9 +178,15 @@ class Connection:
             outcome = f"refused {err.sqlstate}"
             await self._fatal(err)
         except asyncio.CancelledError:
-            outcome = "server shutting down"
-            await self._fatal(HushError(ADMIN_SHUTDOWN,
-                                        "terminating connection due to administrator command"))
+            if self.evicted:
+                outcome = "dropped for a newer login"
+                await self._fatal(HushError(
+                    TOO_MANY_CONNECTIONS, "too many connections are logging in from this "
+                    "address", hint="Finish logging in promptly, or try again."))
+            else:
+                outcome = "server shutting down"
+                await self._fatal(HushError(
+                    ADMIN_SHUTDOWN, "terminating connection due to administrator command"))
         except Exception as exc:
             outcome = "internal error"
             log_internal("connection", exc)
@@ -232,18 +247,22 @@ class Connection:
                                      "no user name specified in the startup packet",
                                      hint="Connect with user=<your analyst account>."),
                            "no user name")
-        if self.server.active > self.server.max_connections:
-            raise _Refused(HushError(TOO_MANY_CONNECTIONS, "too many connections",
-                                     hint="Try again later, or close idle connections."),
-                           "too many connections")
+        failed = _Refused(HushError(INVALID_PASSWORD,
+                                    f'password authentication failed for user "{user}"'),
+                          "authentication failed")
+        # Known and unknown names alike: the throttle never looks the account up.
+        wait = self.server.logins.wait(self.address, user)
+        if wait > 0:
+            failed.error.hint = (f"Too many failed logins from this address or for this "
+                                 f"account; try again in {guard.ceil_seconds(wait)} seconds.")
+            failed.outcome = "login throttled"
+            raise failed
+        self.server.logins.start(self.address, user)
         verifier = self.server.verifier_for(user)
         exchange = auth.ScramExchange(user, verifier)
         self._send(codec.AuthenticationSASL((auth.MECHANISM,)))
         self.machine.step(Event.AUTH_STARTED)
         await self._flush()
-        failed = _Refused(HushError(INVALID_PASSWORD,
-                                    f'password authentication failed for user "{user}"'),
-                          "authentication failed")
         msg = await self._read()
         self.machine.step(states.event_of(msg))
         initial = codec.SASLInitialResponse.parse(msg.data)
@@ -264,8 +283,17 @@ class Connection:
         except auth.AuthenticationFailed:
             self.machine.step(Event.AUTH_FAILED)
             raise failed from None
+        self.server.logins.succeeded(self.address, user)
+        # Counted as PostgreSQL counts reserved slots: once the account is known for sure.
+        refusal = self.server.gate.session_refusal(self.server.is_admin(user))
+        if refusal is not None:
+            raise _Refused(HushError(TOO_MANY_CONNECTIONS, refusal,
+                                     hint="Try again later, or close idle connections."),
+                           "too many connections")
+        self.server.gate.open_session(self)
         session = Session(self.server.engine, user, catalog=self.server.catalog,
-                          executor=self.server.executor, database=params.get("database", ""))
+                          executor=self.server.executor, database=params.get("database", ""),
+                          refusals=self.server.refusals)
         try:
             session.apply_startup(params)
         except HushError as err:
@@ -330,6 +358,18 @@ class _Refused(Exception):
         self.outcome = outcome
 
 
+def _limits(limits: Connections | None, max_connections: int | None) -> Connections:
+    """The connection limits: the policy's ``[connections]`` (defaults when None), with
+    ``max_connections`` (a command-line override) replacing most_sessions; the sessions kept
+    for administrators then shrink, if need be, to leave analysts at least one."""
+    limits = limits if limits is not None else Connections()
+    if max_connections is None:
+        return limits
+    return limits.model_copy(update={
+        "most_sessions": max_connections,
+        "admin_sessions_kept": max(0, min(limits.admin_sessions_kept, max_connections - 1))})
+
+
 def _peer(peer: Any) -> str:
     if isinstance(peer, tuple) and len(peer) >= 2:
         return f"{peer[0]}:{peer[1]}"
@@ -341,14 +381,17 @@ class WireServer:
 
     def __init__(self, engine: Any, *, ssl_context: ssl.SSLContext | None = None,
                  max_message_bytes: int = codec.DEFAULT_MAX_MESSAGE_BYTES,
-                 max_connections: int = 200, catalog: Any = None,
-                 engine_threads: int = 32) -> None:
+                 limits: Connections | None = None, max_connections: int | None = None,
+                 catalog: Any = None, engine_threads: int = 32) -> None:
         # sqlglot logs statements it cannot fully parse, text and all; they may hold values.
         logging.getLogger("sqlglot").setLevel(logging.ERROR)
         self.engine = engine
         self.ssl_context = ssl_context
         self.max_message_bytes = max_message_bytes
-        self.max_connections = max_connections
+        self.limits = _limits(limits, max_connections)
+        self.gate: guard.ConnectionGate[Connection] = guard.ConnectionGate(self.limits)
+        self.logins = guard.LoginThrottle(self.limits)
+        self.refusals = guard.RefusalAllowance(self.limits)
         self.catalog = catalog
         self.executor = ThreadPoolExecutor(max_workers=engine_threads,
                                            thread_name_prefix="hushql-engine")
@@ -377,9 +420,12 @@ class WireServer:
         task = asyncio.current_task()
         assert task is not None
         self._connections[conn] = task
+        for older in self.gate.arrive(conn, conn.address):
+            older.evict()
         await conn.run()
 
     def _forget(self, conn: Connection) -> None:
+        self.gate.leave(conn)
         self._connections.pop(conn, None)
         if self._by_pid.get(conn.process_id) is conn:
             del self._by_pid[conn.process_id]
@@ -398,6 +444,9 @@ class WireServer:
         pack = struct.Struct("!i").pack
         if hmac.compare_digest(pack(conn.secret_key), pack(secret_key)):
             conn.session.cancel("user")
+
+    def is_admin(self, user: str) -> bool:
+        return user in self.engine.policies.admins
 
     def verifier_for(self, user: str) -> auth.Verifier | None:
         """The account's verifier (analysts, then administrators), or None when unknown or
@@ -433,11 +482,12 @@ class WireServer:
 async def serve(engine: Any, *, host: str = "127.0.0.1", port: int = 7432,
                 ssl_context: ssl.SSLContext | None = None,
                 max_message_bytes: int = codec.DEFAULT_MAX_MESSAGE_BYTES,
-                max_connections: int = 200, catalog: Any = None,
-                ready: asyncio.Event | None = None, engine_threads: int = 32) -> None:
+                limits: Connections | None = None, max_connections: int | None = None,
+                catalog: Any = None, ready: asyncio.Event | None = None,
+                engine_threads: int = 32) -> None:
     """Serves the PostgreSQL protocol until cancelled; sets ``ready`` once listening."""
     server = WireServer(engine, ssl_context=ssl_context, max_message_bytes=max_message_bytes,
-                        max_connections=max_connections, catalog=catalog,
+                        limits=limits, max_connections=max_connections, catalog=catalog,
                         engine_threads=engine_threads)
     bound_host, bound_port = await server.start(host, port)
     log.info("listening on %s:%d tls=%s", bound_host, bound_port,
@@ -456,6 +506,11 @@ def run_server(engine: Any, **kwargs: Any) -> None:
     if not logging.getLogger().handlers:
         logging.basicConfig(stream=sys.stderr, level=logging.INFO,
                             format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    # While a long statement is parsed on the parse lane (session.py), the event loop and the
+    # engine threads wait for the GIL up to the switch interval at each hand-over; a tenth of
+    # Python's default 5 ms keeps a flood of long statements from multiplying everyone else's
+    # latency (benchmarks/bench_flood.py, flood without the refusal allowance).
+    sys.setswitchinterval(SWITCH_INTERVAL_SECONDS)
 
     async def main() -> None:
         loop = asyncio.get_running_loop()

@@ -6,8 +6,14 @@ runs in an executor so one analyst's slow query never holds up the event loop, a
 query can be cancelled from outside (CancelRequest, statement_timeout, a vanished client).
 
 What the engine sees: for a statement without parameters, its own text (the engine caches plans
-by text); with parameters, a copy of the parsed tree in which every ``$n`` has been replaced by a
-literal node built from the decoded value. Parameter values are never pasted into SQL text.
+by text) or, above ``statements.MAX_CACHED_TEXT``, its tree (so a long text is parsed once);
+with parameters, a copy of the parsed tree in which every ``$n`` has been replaced by a literal
+node built from the decoded value. Parameter values are never pasted into SQL text.
+
+Refused work costs time: before a Query or Parse is read, the account's refusal allowance
+(``guard.RefusalAllowance``) must be able to pay for the text; the cost comes back when the
+statement succeeds. Texts longer than ``INLINE_PARSE_BYTES`` are read on one parse thread, so a
+long statement never stops the event loop and long statements never compete with each other.
 """
 
 from __future__ import annotations
@@ -17,7 +23,7 @@ import functools
 import logging
 import threading
 import traceback
-from concurrent.futures import Executor
+from concurrent.futures import Executor, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from decimal import Decimal
 from typing import Any, Callable, Sequence
@@ -26,21 +32,29 @@ from sqlglot import exp
 
 from proxy.answer import Answer
 from proxy.engine import QueryControl, parse_epsilon
-from proxy.errors import (DUPLICATE_CURSOR, DUPLICATE_PREPARED_STATEMENT, FEATURE_NOT_SUPPORTED,
+from proxy.errors import (BUDGET_EXHAUSTED, DUPLICATE_CURSOR, DUPLICATE_PREPARED_STATEMENT, FEATURE_NOT_SUPPORTED,
                           IN_FAILED_SQL_TRANSACTION, INTERNAL_ERROR, INVALID_CURSOR_NAME,
                           INVALID_PARAMETER_VALUE, INVALID_SAVEPOINT, INVALID_SQL_STATEMENT_NAME,
                           NO_ACTIVE_SQL_TRANSACTION, PROGRAM_LIMIT_EXCEEDED, PROTOCOL_VIOLATION,
                           QUERY_CANCELED, SUCCESSFUL_COMPLETION, HushError)
-from proxy.wire import codec, settings, statements, types
+from proxy.wire import codec, guard, settings, statements, types
 from proxy.wire.states import FAILED_BLOCK_HINT, TransactionMachine, TxEvent, TxStatus, TxStep
 from proxy.wire.statements import (DeallocateStatement, DiscardStatement, EmptyStatement,
                                    ExplainStatement, NoopStatement, QueryStatement,
-                                   ResetStatement, SetStatement, ShowStatement, Statement,
-                                   TransactionStatement)
+                                   RefusedStatement, ResetStatement, SetStatement,
+                                   ShowStatement, Statement, TransactionStatement)
 
 log = logging.getLogger("hushql.wire")
 
 CATALOG_HINT = "hushql answers aggregate queries over the tables in your policy."
+
+# Texts up to this size are split on the event loop (about 5 ms of sqlglot work at most:
+# benchmarks/bench_flood.py); longer ones on the parse lane, one at a time for the process.
+INLINE_PARSE_BYTES = 1024
+_PARSE_LANE = ThreadPoolExecutor(max_workers=1, thread_name_prefix="hushql-parse")
+# A statement the refusal allowance cannot pay for waits at most this long (reading nothing),
+# then is refused with 53400 and the time still to wait.
+LONGEST_REFUSAL_WAIT_SECONDS = 5.0
 
 # Functions and schemas that mark a query about the catalog rather than the data.
 _CATALOG_SCHEMAS = frozenset({"pg_catalog", "information_schema"})
@@ -159,8 +173,10 @@ class Session:
     """
 
     def __init__(self, engine: Any, analyst: str, *, catalog: Any = None,
-                 executor: Executor | None = None, database: str = "") -> None:
+                 executor: Executor | None = None, database: str = "",
+                 refusals: guard.RefusalAllowance | None = None) -> None:
         self.engine = engine
+        self.refusals = refusals
         self.analyst = analyst
         self.database = database or analyst
         self.catalog = catalog
@@ -214,14 +230,19 @@ class Session:
         try:
             if isinstance(message, codec.Query):
                 return await self.simple_query(message.sql), False
-            if isinstance(message, codec.Parse):
-                return await self.parse(message), False
+            if isinstance(message, (codec.Parse, codec.Describe, codec.Execute)):
+                # Work that may end in a refusal: admitted, then given back if it succeeds.
+                cost = await self._admit(self._text_of(message))
+                if isinstance(message, codec.Parse):
+                    replies = await self.parse(message)
+                elif isinstance(message, codec.Describe):
+                    replies = await self.describe(message)
+                else:
+                    replies = await self.execute(message)
+                self._give_back(cost)
+                return replies, False
             if isinstance(message, codec.Bind):
                 return self.bind(message), False
-            if isinstance(message, codec.Describe):
-                return await self.describe(message), False
-            if isinstance(message, codec.Execute):
-                return await self.execute(message), False
             if isinstance(message, codec.Close):
                 return self.close(message), False
             if isinstance(message, codec.Sync):
@@ -261,14 +282,17 @@ class Session:
         """All statements of one Query message; the first error ends the message."""
         out: list[Any] = []
         try:
-            parsed = statements.split(sql)
+            cost = await self._admit(sql)
+            parsed = await self._split(sql)
             if not parsed:
+                self._give_back(cost)
                 return [codec.EmptyQueryResponse()] + self.ready()
             # Like PostgreSQL, a syntax error anywhere means nothing in the message runs.
             routes = [self._route(st) for st in parsed]
             for st, to_catalog in zip(parsed, routes):
                 outcome = await self._run(st, None, [], to_catalog)
                 out += self._frame_all(outcome)
+            self._give_back(cost)
         except HushError as err:
             self._statement_failed()
             out.append(error_response(err))
@@ -300,7 +324,7 @@ class Session:
             raise HushError(DUPLICATE_PREPARED_STATEMENT,
                             f'prepared statement "{msg.name}" already exists',
                             hint="Close or DEALLOCATE it first, or use another name.")
-        st = statements.single(msg.sql)
+        st = statements.only_statement(await self._split(msg.sql))
         self._check_block(st)
         to_catalog = self._route(st)
         tree = statements.statement_tree(st)
@@ -317,6 +341,57 @@ class Session:
         param_types = statements.infer_parameter_types(tree, msg.param_oids, count, suggested)
         self.statements[msg.name] = Prepared(st, param_types, to_catalog)
         return [codec.ParseComplete()]
+
+    # ---- refused work ---------------------------------------------------------------------
+
+    async def _admit(self, text: str) -> int:
+        """Waits (reading nothing) until the account's refusal allowance can pay for ``text``,
+        then takes its cost; returns the cost, given back when the statement succeeds. Raises
+        53400 when the wait would be longer than LONGEST_REFUSAL_WAIT_SECONDS."""
+        if self.refusals is None:
+            return 0
+        wait = self.refusals.wait(self.analyst, text)
+        if wait > 0:
+            await asyncio.sleep(min(wait, LONGEST_REFUSAL_WAIT_SECONDS))
+            wait = self.refusals.wait(self.analyst, text)
+            if wait > 0:
+                log.info("statement refused analyst=%s outcome=refusal allowance spent",
+                         self.analyst)
+                raise HushError(
+                    BUDGET_EXHAUSTED, "too many refused statements from this account",
+                    hint=f"Refused statements cost no epsilon but cost time: wait "
+                         f"{guard.ceil_seconds(wait)} seconds. Shorter statements cost less; "
+                         "EXPLAIN shows whether one is accepted.")
+        return self.refusals.take(self.analyst, text)
+
+    def _text_of(self, message: codec.Parse | codec.Describe | codec.Execute) -> str:
+        """The statement text a message works on ("" when it names nothing known)."""
+        if isinstance(message, codec.Parse):
+            return message.sql
+        prepared: Prepared | None = None
+        if isinstance(message, codec.Describe) and message.kind == "S":
+            prepared = self.statements.get(message.name)
+        else:
+            name = message.name if isinstance(message, codec.Describe) else message.portal
+            portal = self.portals.get(name)
+            prepared = portal.prepared if portal is not None else None
+        st = prepared.statement if prepared is not None else None
+        return st.text if isinstance(st, (QueryStatement, ExplainStatement)) else ""
+
+    def _give_back(self, cost: int) -> None:
+        if self.refusals is not None and cost:
+            self.refusals.give_back(self.analyst, cost)
+
+    async def _split(self, text: str) -> tuple[Statement, ...]:
+        """``statements.split``, on the parse lane when the text is long."""
+        if len(text) <= INLINE_PARSE_BYTES:
+            return statements.split(text)
+        loop = asyncio.get_running_loop()
+        try:
+            return await loop.run_in_executor(_PARSE_LANE, statements.split, text)
+        except RecursionError:
+            raise HushError(PROGRAM_LIMIT_EXCEEDED, "the statement is nested too deeply",
+                            hint="Write a flatter statement.") from None
 
     async def _suggested_types(self, tree: exp.Expression | None, declared: Sequence[int],
                                count: int, to_catalog: bool) -> list[int | None]:
@@ -534,10 +609,12 @@ class Session:
                             and step.refuse[0] == IN_FAILED_SQL_TRANSACTION else None)
         if isinstance(st, EmptyStatement):
             return Outcome(None, empty=True)
+        if isinstance(st, RefusedStatement):
+            raise st.error
         if isinstance(st, QueryStatement):
             if to_catalog:
                 return await self._catalog(st, values)
-            return await self._answer(tree if tree is not None else st.text)
+            return await self._answer(tree if tree is not None else _target(st))
         if isinstance(st, ExplainStatement):
             answer = await self._explain(st, tree)
             return Outcome(types.ResultShape.of(answer.columns), list(answer.rows), "EXPLAIN")
@@ -573,7 +650,7 @@ class Session:
     async def _explain(self, st: ExplainStatement, tree: exp.Expression | None) -> Answer:
         """The engine's EXPLAIN of ``st`` (of its bound tree when given); plans and charges
         nothing."""
-        target = tree if tree is not None else st.query.text
+        target = tree if tree is not None else _target(st.query)
         return await self._blocking(self.engine.explain, self.analyst, target,
                                     epsilon=self._epsilon(), form=st.format)
 
@@ -759,6 +836,14 @@ class Session:
         if key == settings.EPSILON and not self.values[key]:
             return format(Decimal(self.engine.policies.defaults.epsilon_per_query), "f")
         return self.values[key]
+
+
+def _target(st: QueryStatement) -> str | exp.Expression:
+    """What the engine gets for a statement without parameters: its text, which the engine's
+    plan cache is keyed by, or, for a text too long to cache, the tree already parsed."""
+    if st.tree is not None and len(st.text) > statements.MAX_CACHED_TEXT:
+        return st.tree
+    return st.text
 
 
 def _show_shape(st: ShowStatement) -> types.ResultShape:
