@@ -22,6 +22,7 @@ from rich.table import Table
 
 from proxy.errors import CANNOT_CONNECT, CONFIG_FILE_ERROR, HushError
 from proxy.ledger_cli import add_ledger_command, run_ledger
+from proxy.mirrors import add_mirrors_command, run_mirrors
 
 DEFAULT_LISTEN = "127.0.0.1:7432"
 
@@ -81,6 +82,9 @@ def _parser() -> argparse.ArgumentParser:
     serve.add_argument("--tls-key", type=Path, help="PEM private key for TLS")
     serve.add_argument("--max-connections", type=int, default=200)
     serve.add_argument("--max-message-bytes", type=int, default=1 << 20)
+    serve.add_argument("--mirror-admin", default=os.environ.get("HUSHQL_MIRROR_ADMIN"),
+                       help="DSN allowed to create the catalog mirrors at start "
+                            "(HUSHQL_MIRROR_ADMIN); without it, `hushql mirrors` makes them")
     serve.set_defaults(allow_demo_accounts=False)  # only `hushql demo` serves the demo accounts
 
     ask = commands.add_parser("ask", help="answer one query through the engine, no network")
@@ -100,6 +104,7 @@ def _parser() -> argparse.ArgumentParser:
     commands.add_parser("hash-password",
                         help="read a password and print its SCRAM-SHA-256 verifier")
     add_ledger_command(commands)
+    add_mirrors_command(commands)
     return parser
 
 
@@ -249,12 +254,11 @@ def _reload_on_sighup(args: argparse.Namespace, engine, relations) -> None:
 
 
 def _catalog(policies, args: argparse.Namespace):
-    """The data-free catalog mirror, when that module is present."""
-    try:
-        from proxy.wire.catalog import build_catalog
-    except ImportError:
-        return None
-    return build_catalog(policies, args.backend)
+    """The data-free catalog mirrors: made at start only with --mirror-admin (see
+    proxy.mirrors), else those an administrator made."""
+    from proxy.mirrors import serving_catalog
+
+    return serving_catalog(policies, args.backend, args.mirror_admin)
 
 
 def _run_demo(args: argparse.Namespace, console: Console) -> int:
@@ -266,7 +270,8 @@ def _run_demo(args: argparse.Namespace, console: Console) -> int:
         namespace = argparse.Namespace(policies=args.policies, backend=backend_dsn,
                                        ledger=None, pool_size=16, listen=args.listen,
                                        tls_cert=None, tls_key=None, max_connections=200,
-                                       max_message_bytes=1 << 20, allow_demo_accounts=True)
+                                       max_message_bytes=1 << 20, allow_demo_accounts=True,
+                                       mirror_admin=backend_dsn)
         _run_serve(namespace, console)
     return run_demo(args.backend, args.data_dir, Path(args.policies), args.listen, serve)
 
@@ -278,6 +283,7 @@ _COMMANDS = {
     "check": _run_check,
     "hash-password": _run_hash_password,
     "ledger": run_ledger,
+    "mirrors": run_mirrors,
 }
 
 if __name__ == "__main__":
