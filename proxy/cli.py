@@ -25,6 +25,7 @@ from proxy import preflight
 from proxy.errors import (CANNOT_CONNECT, CONFIG_FILE_ERROR, INVALID_PARAMETER_VALUE,
                           HushError)
 from proxy.ledger_cli import add_ledger_command, run_ledger
+from proxy.mirrors import add_mirrors_command, run_mirrors
 
 DEFAULT_LISTEN = "127.0.0.1:7432"
 
@@ -90,6 +91,9 @@ def _parser() -> argparse.ArgumentParser:
     serve.add_argument("--max-connections", type=int, default=None,
                        help="sessions at once (default: most_sessions in access.toml)")
     serve.add_argument("--max-message-bytes", type=int, default=1 << 20)
+    serve.add_argument("--mirror-admin", default=os.environ.get("HUSHQL_MIRROR_ADMIN"),
+                       help="DSN allowed to create the catalog mirrors at start "
+                            "(HUSHQL_MIRROR_ADMIN); without it, `hushql mirrors` makes them")
     serve.set_defaults(allow_demo_accounts=False)  # only `hushql demo` serves the demo accounts
 
     ask = commands.add_parser("ask", help="answer one query through the engine, no network")
@@ -109,6 +113,7 @@ def _parser() -> argparse.ArgumentParser:
     commands.add_parser("hash-password",
                         help="read a password and print its SCRAM-SHA-256 verifier")
     add_ledger_command(commands)
+    add_mirrors_command(commands)
     return parser
 
 
@@ -288,12 +293,11 @@ def _reload_on_sighup(args: argparse.Namespace, engine, relations) -> None:
 
 
 def _catalog(policies, args: argparse.Namespace):
-    """The data-free catalog mirror, when that module is present."""
-    try:
-        from proxy.wire.catalog import build_catalog
-    except ImportError:
-        return None
-    return build_catalog(policies, args.backend)
+    """The data-free catalog mirrors: made at start only with --mirror-admin (see
+    proxy.mirrors), else those an administrator made."""
+    from proxy.mirrors import serving_catalog
+
+    return serving_catalog(policies, args.backend, args.mirror_admin)
 
 
 def _run_demo(args: argparse.Namespace, console: Console) -> int:
@@ -306,7 +310,8 @@ def _run_demo(args: argparse.Namespace, console: Console) -> int:
         namespace = argparse.Namespace(policies=args.policies, backend=backend_dsn,
                                        ledger=None, pool_size=16, listen=args.listen,
                                        tls_cert=None, tls_key=None, max_connections=None,
-                                       max_message_bytes=1 << 20, allow_demo_accounts=True)
+                                       max_message_bytes=1 << 20, allow_demo_accounts=True,
+                                       mirror_admin=backend_dsn)
         _run_serve(namespace, console)
     if args.no_load and not args.backend:
         raise HushError(CONFIG_FILE_ERROR, "--no-load serves a scenario loaded before, so it "
@@ -323,6 +328,7 @@ _COMMANDS = {
     "check": _run_check,
     "hash-password": _run_hash_password,
     "ledger": run_ledger,
+    "mirrors": run_mirrors,
 }
 
 if __name__ == "__main__":
