@@ -57,7 +57,7 @@ from decimal import Decimal
 import sqlglot.expressions as exp
 
 from proxy.policy import ColumnPolicy, TablePolicy, date_range
-from proxy.sql.domains import cell_count, domain_size, domain_values
+from proxy.sql.domains import cell_count, integer_division, key_size, key_values
 from proxy.sql.plan import GroupKey, Measure, Plan
 
 
@@ -83,8 +83,13 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
     values are summed exactly and turned into step units once per cell instead of per row.
     """
     policy = plan.table
-    cells = cell_count([domain_size(_key_column(policy, k), k.bucket) for k in plan.keys])
-    if policy.individual is None:
+    cells = cell_count([key_size(_key_column(policy, k), k) for k in plan.keys])
+    if cells == 0:  # the WHERE leaves some key no value: no cell, nothing to read
+        tree = _no_cells(plan)
+        groups_kept = None
+        factor = 1
+        rows_cap = 1 if policy.individual is None else policy.individual.rows_cap
+    elif policy.individual is None:
         tree = _row_table_query(plan, exact_columns)
         groups_kept = None
         factor = 1
@@ -99,6 +104,13 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
     return Rewritten(sql=tree.sql(dialect="postgres"), sensitivities=sensitivities,
                      cells=cells, groups_kept=groups_kept,
                      needs_salt=groups_kept is not None and groups_kept < cells)
+
+
+def _no_cells(plan: Plan) -> exp.Select:
+    """A query of the answer's shape (ordinals, then measures) returning no row."""
+    columns = [f"i{j}" for j in range(len(plan.keys))] + [f"m{n}" for n in range(len(plan.measures))]
+    return exp.Select().select(*[exp.alias_(_num(0), name, copy=False) for name in columns],
+                               copy=False).where(exp.false(), copy=False)
 
 
 def _unit_sensitivity(policy: TablePolicy, measure: Measure, rows_cap: int) -> int:
@@ -146,6 +158,8 @@ def _literal(value: object) -> exp.Expression:
         return _num(value)
     if isinstance(value, dt.date):
         return exp.cast(exp.Literal.string(value.isoformat()), "date", copy=False)
+    if isinstance(value, Decimal):
+        return _decimal(value)
     return exp.Literal.string(str(value))
 
 
@@ -169,19 +183,46 @@ def _key_column(policy: TablePolicy, key: GroupKey) -> ColumnPolicy:
 
 
 def _key_expression(policy: TablePolicy, key: GroupKey) -> exp.Expression:
-    """The per-row value a key groups by: the column, or its date bucket as a date.
+    """The per-row value a key groups by (see ``proxy.sql.keys``): the column itself, or its
+    bucket, computed only for rows whose column lies in its declared domain (others become NULL
+    and match no cell), so that no bucket function meets a value it could fail on. A CASE key
+    gives the index of its label, matched to the label list's ordinals."""
+    if key.form == "column":
+        return _col(key.column)
+    column = policy.columns[key.column]
+    value = _col(key.column)
+    if key.form == "date_trunc":
+        stamp = exp.cast(value, "timestamp", copy=False)  # without time zone: no DST midnights
+        bucket: exp.Expression = exp.cast(exp.Anonymous(this="date_trunc", expressions=[
+            exp.Literal.string(key.unit), stamp]), "date", copy=False)
+    elif key.form == "extract":
+        bucket = exp.Extract(this=exp.var(key.unit.upper()), expression=value)  # type: ignore[union-attr]
+    elif key.form == "width_bucket":
+        low, high, count = key.arguments
+        bucket = exp.Anonymous(this="width_bucket", expressions=[
+            exp.cast(value, "numeric", copy=False), _decimal(low), _decimal(high), _num(int(count))])
+    elif key.form == "floor":
+        width = key.arguments[0]
+        numerator = value if integer_division(column, key) else exp.cast(value, "numeric", copy=False)
+        bucket = exp.Mul(this=exp.Anonymous(this="floor", expressions=[
+            exp.Div(this=numerator, expression=_decimal(width), typed=True)]), expression=_decimal(width))
+    else:
+        bucket = exp.Case(ifs=[exp.If(this=branch.copy(), true=_num(choice))
+                               for branch, choice in zip(key.branches, key.choices)],
+                          default=_num(key.choices[-1]))
+    return exp.Case(ifs=[exp.If(this=_inside_domain(key.column, column), true=bucket)])
 
-    Dates are bucketed only inside the declared range (others become NULL and match no cell),
-    so date_trunc never sees a date it could fail on.
-    """
-    column = _col(key.column)
-    if key.bucket is None:
-        return column
-    start, end = date_range(policy.columns[key.column])
-    inside = exp.Between(this=_col(key.column), low=_literal(start), high=_literal(end))
-    trunc = exp.cast(exp.Anonymous(this="date_trunc",
-                                   expressions=[exp.Literal.string(key.bucket), column]), "date", copy=False)
-    return exp.Case(ifs=[exp.If(this=inside, true=trunc)])
+
+def _inside_domain(name: str, column: ColumnPolicy) -> exp.Expression:
+    """True exactly for values in the column's declared domain (NULL and NaN are outside)."""
+    if column.kind == "category":
+        return exp.In(this=_col(name), expressions=[exp.Literal.string(v) for v in column.values or []])
+    if column.kind == "boolean":
+        return exp.Not(this=exp.Is(this=_col(name), expression=exp.Null()))
+    if column.kind == "date":
+        start, end = date_range(column)
+        return exp.Between(this=_col(name), low=_literal(start), high=_literal(end))
+    return exp.Between(this=_col(name), low=_decimal(column.low), high=_decimal(column.high))
 
 
 def _in_column_units(column: ColumnPolicy, name: str, exact: frozenset[str]) -> bool:
@@ -243,12 +284,14 @@ def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
 
 
 def _domain_source(policy: TablePolicy, key: GroupKey, index: int) -> exp.Expression:
-    """A FROM item ``d<index>(i, v)`` listing the declared values of a key with ordinals."""
+    """A FROM item ``d<index>(i, v)`` listing a key's values with ordinals (a CASE key's values
+    are its label ordinals); must hold: the key has at least one value."""
     column = _key_column(policy, key)
     alias = exp.TableAlias(this=exp.to_identifier(f"d{index}"),
                            columns=[exp.to_identifier("i"), exp.to_identifier("v")])
-    if column.kind == "integer" and key.bucket is None:
-        low, high = (int(v) for v in column.range)  # type: ignore[union-attr]
+    values = key_values(column, key)
+    if isinstance(values, range) and len(values) > 1:
+        low, high = values[0], values[-1]
         series = exp.Anonymous(this="generate_series", expressions=[_num(low), _num(high)])
         inner = exp.Select().select(
             exp.alias_(exp.Sub(this=exp.column("v"), expression=_num(low)), "i", copy=False),
@@ -256,15 +299,15 @@ def _domain_source(policy: TablePolicy, key: GroupKey, index: int) -> exp.Expres
             exp.Table(this=series, alias=exp.TableAlias(this=exp.to_identifier("s"),
                                                           columns=[exp.to_identifier("v")])), copy=False)
         return exp.Subquery(this=inner, alias=alias)
-    rows = [exp.Tuple(expressions=[_num(i), _literal(v)])
-            for i, v in enumerate(domain_values(column, key.bucket))]
+    rows = [exp.Tuple(expressions=[_num(i), _num(i) if key.form == "case" else _literal(v)])
+            for i, v in enumerate(values)]
     return exp.Values(expressions=rows, alias=alias)
 
 
 def _key_matches(key: GroupKey, policy: TablePolicy, grouped: exp.Expression,
                  domain_value: exp.Expression) -> exp.Expression:
     """Join condition between a grouped key and a domain value; categories compare as text."""
-    if _key_column(policy, key).kind == "category":
+    if key.form == "column" and _key_column(policy, key).kind == "category":
         grouped = exp.cast(grouped, "text", copy=False)
     return exp.EQ(this=grouped, expression=domain_value)
 
