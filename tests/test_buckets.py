@@ -179,6 +179,17 @@ REFERENCES = [
      "count(*)", AGE),
     ("SELECT floor(weight / 12.5) * 12.5 AS band, COUNT(*) FROM people GROUP BY band",
      "floor(weight / 12.5) * 12.5", "count(*)", WEIGHT),
+    # buckets in WHERE count the rows inside the column's declared domain, as keys do
+    ("SELECT ward, COUNT(*) FROM people WHERE date_trunc('month', admitted) = '2026-03-01' "
+     "GROUP BY ward", "ward", "count(*)",
+     f"ward IN ('north', 'south', 'east') AND {ADMITTED} AND date_trunc('month', admitted) = '2026-03-01'"),
+    ("SELECT smoker, COUNT(*) FROM people WHERE width_bucket(weight, 0, 100, 4) = 2 "
+     "AND floor(age / 10) * 10 IN (30, 50) GROUP BY smoker", "smoker", "count(*)",
+     f"smoker IS NOT NULL AND {WEIGHT} AND {AGE} AND width_bucket(weight, 0, 100, 4) = 2 "
+     "AND floor(age / 10) * 10 IN (30, 50)"),
+    ("SELECT ward, COUNT(*) FROM people WHERE CASE WHEN age < 18 THEN 'minor' END = 'minor' "
+     "GROUP BY ward", "ward", "count(*)",
+     f"ward IN ('north', 'south', 'east') AND {AGE} AND age < 18"),
     (f"SELECT {SIZE}, extract(quarter FROM admitted), COUNT(*) FROM people GROUP BY 1, 2",
      (SIZE, "extract(quarter FROM admitted)"), "count(*)", f"{AGE} AND {ADMITTED}"),
 ]
@@ -209,3 +220,21 @@ def test_buckets_on_a_table_of_individuals_run_and_stay_below_the_exact_counts(c
         "SELECT extract(month FROM visited), count(*) FROM clinic.visits "
         "WHERE visited BETWEEN '2026-01-01' AND '2026-12-31' GROUP BY 1").fetchall())
     assert all(0 < got[(m,)][0] <= exact_counts[m] for m in range(1, 13))
+
+
+def test_explain_shows_each_key_and_its_cells(clinic, module_dsn: str) -> None:
+    from proxy.backend import Backend
+    from proxy.engine import Engine
+    from proxy.ledger import Ledger
+
+    _, policies = clinic
+    engine = Engine(policies, Backend(module_dsn, pool_size=1), Ledger(module_dsn, schema="buckets_explain"))
+    try:
+        explained = dict(engine.explain(
+            "tester", "SELECT admitted, width_bucket(weight, 0, 100, 4), COUNT(*) FROM people "
+                      "WHERE admitted BETWEEN '2026-03-02' AND '2026-03-08' GROUP BY 1, 2").rows)
+    finally:
+        engine.close()
+    assert explained["cells"] == "42"
+    assert explained["key admitted"] == "7 values: 2026-03-02 .. 2026-03-08, narrowed by WHERE"
+    assert explained["key width_bucket(weight, 0, 100, 4)"] == "6 values: 0 .. 5"

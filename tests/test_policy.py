@@ -121,6 +121,11 @@ CASES = [
     pytest.param(H, "range = [1, 8]", "range = [8, 1]",
                  f"{H}: columns.occupants.range: lower bound 8 is above upper bound 1",
                  id="integer-range-not-ordered"),
+    pytest.param(R, 'range = ["2026-01-01", "2026-12-31"]',
+                 'range = ["2026-01-01", "2026-12-31"]\nbucket = "month"',
+                 f"{R}: columns.reading_date.bucket: no longer used: GROUP BY on a date column now "
+                 "groups by day, as written; delete this key, and write date_trunc('month', "
+                 "<column>) in queries for coarser cells", id="retired-date-bucket"),
     pytest.param(R, 'range = ["2026-01-01", "2026-12-31"]', 'range = ["2026-12-31", "2026-01-01"]',
                  f"{R}: columns.reading_date.range: lower bound 2026-12-31 is above upper bound "
                  "2026-01-01", id="date-range-not-ordered"),

@@ -35,10 +35,10 @@ from fractions import Fraction
 import sqlglot.expressions as exp
 
 from proxy.errors import DATATYPE_MISMATCH, UNDEFINED_FUNCTION, HushError, refused
-from proxy.policy import ColumnPolicy, TablePolicy
-from proxy.sql.domains import EXTRACT_FIELDS, TRUNC_UNITS
-from proxy.sql.filters import (ColumnResolver, Typed, chain_operands, check_filter, iso_date,
-                               literal, only_args, unparen)
+from proxy.policy import ColumnPolicy, TablePolicy, date_range
+from proxy.sql.domains import EXTRACT_FIELDS, TRUNC_UNITS, integer_division, key_type
+from proxy.sql.filters import (BucketReader, ColumnResolver, Typed, chain_operands, check_filter,
+                               date_node, iso_date, literal, number_node, only_args, unparen)
 from proxy.sql.plan import GroupKey, Label, Narrowing
 
 BUCKET_HINT = ("GROUP BY accepts columns with a declared domain, date_trunc('<unit>', d), "
@@ -380,3 +380,105 @@ def _equal_to(values: list[object], column: ColumnPolicy) -> Narrowing:
     if column.kind == "number":
         return Narrowing(low=min(values), high=max(values))  # type: ignore[type-var]
     return Narrowing(values=frozenset(values))
+
+
+# ---- the per-row expression --------------------------------------------------------------------
+
+def key_expression(key: GroupKey, column: ColumnPolicy, *, ordinals: bool) -> exp.Expression:
+    """The bucket of one row, as backend SQL: ``CASE WHEN <column in its declared domain> THEN
+    <bucket> END``, so that rows outside the domain (NULL, NaN, out of range) give NULL and no
+    bucket function ever sees a value it could fail on. With ``ordinals`` a CASE key gives the
+    index of its label (matched to the label list's ordinals), else the label itself.
+
+    Must hold: ``key.form`` is not "column".
+    """
+    value = _quoted(key.column)
+    if key.form == "date_trunc":
+        stamp = exp.cast(value, "timestamp", copy=False)  # without time zone: no DST midnights
+        bucket: exp.Expression = exp.cast(exp.Anonymous(this="date_trunc", expressions=[
+            exp.Literal.string(key.unit), stamp]), "date", copy=False)
+    elif key.form == "extract":
+        bucket = exp.Extract(this=exp.var(key.unit.upper()), expression=value)  # type: ignore[union-attr]
+    elif key.form == "width_bucket":
+        low, high, count = key.arguments
+        bucket = exp.Anonymous(this="width_bucket", expressions=[
+            exp.cast(value, "numeric", copy=False), number_node(low), number_node(high),
+            number_node(count)])
+    elif key.form == "floor":
+        width = key.arguments[0]
+        numerator = value if integer_division(column, key) else exp.cast(value, "numeric", copy=False)
+        bucket = exp.Mul(this=exp.Anonymous(this="floor", expressions=[
+            exp.Div(this=numerator, expression=number_node(width), typed=True)]),
+            expression=number_node(width))
+    elif key.form == "case":
+        results = [number_node(choice) if ordinals else _label_node(key.labels[choice])
+                   for choice in key.choices]
+        bucket = exp.Case(ifs=[exp.If(this=branch.copy(), true=result)
+                               for branch, result in zip(key.branches, results)],
+                          default=results[-1])
+    else:
+        raise ValueError(f"a {key.form} key is the column itself")
+    return exp.Case(ifs=[exp.If(this=_inside_domain(key.column, column), true=bucket)])
+
+
+def _quoted(name: str) -> exp.Column:
+    return exp.Column(this=exp.to_identifier(name, quoted=True))
+
+
+def _label_node(label: Label) -> exp.Expression:
+    if label is None:
+        return exp.Null()
+    if isinstance(label, bool):
+        return exp.Boolean(this=label)
+    if isinstance(label, Decimal):
+        return number_node(label)
+    return exp.Literal.string(label)
+
+
+def _inside_domain(name: str, column: ColumnPolicy) -> exp.Expression:
+    """True exactly for values in the column's declared domain (NULL and NaN are outside)."""
+    if column.kind == "category":
+        return exp.In(this=_quoted(name), expressions=[exp.Literal.string(v) for v in column.values or []])
+    if column.kind == "boolean":
+        return exp.Not(this=exp.Is(this=_quoted(name), expression=exp.Null()))
+    if column.kind == "date":
+        start, end = date_range(column)
+        return exp.Between(this=_quoted(name), low=date_node(start.isoformat()),
+                           high=date_node(end.isoformat()))
+    return exp.Between(this=_quoted(name), low=number_node(column.low), high=number_node(column.high))
+
+
+# ---- buckets in WHERE --------------------------------------------------------------------------
+
+_WHERE_FORMS = (exp.TimestampTrunc, exp.DateTrunc, exp.WidthBucket, exp.Case)
+_FAMILY = {"text": "text", "integer": "number", "numeric": "number", "double precision": "number",
+           "date": "date", "boolean": "boolean"}
+
+
+def bucket_reader(table: TablePolicy, resolve: ColumnResolver) -> BucketReader:
+    """A reader of bucket expressions inside a WHERE (see ``filters.check_filter``): the guarded
+    bucket, typed, for date_trunc, CASE, width_bucket and floor(x / w) * w; None otherwise
+    (extract stays with the filter checker, which accepts it on any date)."""
+    def read(node: exp.Expression) -> Typed | None:
+        if not isinstance(node, _WHERE_FORMS) and _floor_parts(node) is None:
+            return None
+        key, name, _ = read_key(node, resolve)
+        assert key is not None  # only column keys can lack a domain
+        column = table.columns[name]
+        built = key_expression(key, column, ordinals=False)
+        family = _FAMILY[key_type(column, key)]
+        if family == "number":
+            # |bucket| is at most the count + 1, or the column's bound plus one width.
+            largest = (key.arguments[2] + 1 if key.form == "width_bucket" else
+                       max(abs(Decimal(column.low)), abs(Decimal(column.high))) + key.arguments[0]
+                       if key.form == "floor" else
+                       max((abs(label) for label in key.labels if isinstance(label, Decimal)),
+                           default=Decimal(0)))
+            digits = max(1, largest.adjusted() + 1) if largest else 1
+            # Met by another non-literal number, a bucket compares and computes as NUMERIC:
+            # floor over integers is double precision, which a NUMERIC operand would overflow.
+            return Typed(built, family, digits=digits,
+                         as_numeric=lambda: exp.cast(built.copy(), "numeric", copy=False),
+                         as_bounded=lambda: exp.cast(built.copy(), "numeric", copy=False))
+        return Typed(built, family)
+    return read

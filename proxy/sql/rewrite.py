@@ -56,8 +56,9 @@ from decimal import Decimal
 
 import sqlglot.expressions as exp
 
-from proxy.policy import ColumnPolicy, TablePolicy, date_range
-from proxy.sql.domains import cell_count, integer_division, key_size, key_values
+from proxy.policy import ColumnPolicy, TablePolicy
+from proxy.sql.domains import cell_count, key_size, key_values
+from proxy.sql.keys import key_expression
 from proxy.sql.plan import GroupKey, Measure, Plan
 
 
@@ -183,46 +184,11 @@ def _key_column(policy: TablePolicy, key: GroupKey) -> ColumnPolicy:
 
 
 def _key_expression(policy: TablePolicy, key: GroupKey) -> exp.Expression:
-    """The per-row value a key groups by (see ``proxy.sql.keys``): the column itself, or its
-    bucket, computed only for rows whose column lies in its declared domain (others become NULL
-    and match no cell), so that no bucket function meets a value it could fail on. A CASE key
-    gives the index of its label, matched to the label list's ordinals."""
+    """The per-row value a key groups by: the column, or its guarded bucket (NULL outside the
+    declared domain, matching no cell); a CASE key gives its label's ordinal (``keys``)."""
     if key.form == "column":
         return _col(key.column)
-    column = policy.columns[key.column]
-    value = _col(key.column)
-    if key.form == "date_trunc":
-        stamp = exp.cast(value, "timestamp", copy=False)  # without time zone: no DST midnights
-        bucket: exp.Expression = exp.cast(exp.Anonymous(this="date_trunc", expressions=[
-            exp.Literal.string(key.unit), stamp]), "date", copy=False)
-    elif key.form == "extract":
-        bucket = exp.Extract(this=exp.var(key.unit.upper()), expression=value)  # type: ignore[union-attr]
-    elif key.form == "width_bucket":
-        low, high, count = key.arguments
-        bucket = exp.Anonymous(this="width_bucket", expressions=[
-            exp.cast(value, "numeric", copy=False), _decimal(low), _decimal(high), _num(int(count))])
-    elif key.form == "floor":
-        width = key.arguments[0]
-        numerator = value if integer_division(column, key) else exp.cast(value, "numeric", copy=False)
-        bucket = exp.Mul(this=exp.Anonymous(this="floor", expressions=[
-            exp.Div(this=numerator, expression=_decimal(width), typed=True)]), expression=_decimal(width))
-    else:
-        bucket = exp.Case(ifs=[exp.If(this=branch.copy(), true=_num(choice))
-                               for branch, choice in zip(key.branches, key.choices)],
-                          default=_num(key.choices[-1]))
-    return exp.Case(ifs=[exp.If(this=_inside_domain(key.column, column), true=bucket)])
-
-
-def _inside_domain(name: str, column: ColumnPolicy) -> exp.Expression:
-    """True exactly for values in the column's declared domain (NULL and NaN are outside)."""
-    if column.kind == "category":
-        return exp.In(this=_col(name), expressions=[exp.Literal.string(v) for v in column.values or []])
-    if column.kind == "boolean":
-        return exp.Not(this=exp.Is(this=_col(name), expression=exp.Null()))
-    if column.kind == "date":
-        start, end = date_range(column)
-        return exp.Between(this=_col(name), low=_literal(start), high=_literal(end))
-    return exp.Between(this=_col(name), low=_decimal(column.low), high=_decimal(column.high))
+    return key_expression(key, policy.columns[key.column], ordinals=True)
 
 
 def _in_column_units(column: ColumnPolicy, name: str, exact: frozenset[str]) -> bool:
