@@ -886,6 +886,8 @@ def test_width_bucket_and_floor_keys():
 
 
 BUCKET_REFUSALS = [
+    ("SELECT COUNT(*) FROM households GROUP BY CASE "
+     + " ".join(f"WHEN occupants = {i} THEN {i}" for i in range(65)) + " END", "0A000"),
     ("SELECT COUNT(*) FROM households GROUP BY CASE WHEN occupants > 2 AND has_garden THEN 'a' END", "0A000"),
     ("SELECT COUNT(*) FROM households GROUP BY CASE WHEN occupants > 2 THEN district END", "0A000"),
     ("SELECT COUNT(*) FROM households GROUP BY CASE WHEN occupants > 2 THEN 'a' ELSE 1 END", "42804"),

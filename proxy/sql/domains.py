@@ -333,7 +333,7 @@ def key_label(key: GroupKey) -> str:
 def describe_key(column: ColumnPolicy, key: GroupKey) -> str:
     """How many cells a key has and which, and whether the WHERE narrowed them."""
     size = key_size(column, key)
-    narrowed = ", narrowed by WHERE" if key.within is not None else ""
+    narrowed = ", narrowed by WHERE" if key.within is not None and key.form != "case" else ""
     if size == 0:
         return f"no values{narrowed}"
     values = key_values(column, key) if size <= 100_000 else None

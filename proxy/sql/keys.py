@@ -44,9 +44,8 @@ from proxy.sql.plan import GroupKey, Label, Narrowing
 BUCKET_HINT = ("GROUP BY accepts columns with a declared domain, date_trunc('<unit>', d), "
                "extract(<field> FROM d), CASE WHEN <condition on one column> THEN <literal> ... END, "
                "width_bucket(x, low, high, n) and floor(x / w) * w")
-# PostgreSQL's names for expression columns without an alias.
-_DEFAULT_NAMES = {"date_trunc": "date_trunc", "extract": "extract", "case": "case",
-                  "width_bucket": "width_bucket", "floor": "?column?"}
+# WHEN branches one CASE key may have: each is tested on every row, so this bounds its work.
+MOST_CASE_BRANCHES = 64
 _COMPARISONS = (exp.EQ, exp.LT, exp.LTE, exp.GT, exp.GTE)
 _MIRRORED = {exp.EQ: exp.EQ, exp.LT: exp.GT, exp.LTE: exp.GTE, exp.GT: exp.LT, exp.GTE: exp.LTE}
 
@@ -190,6 +189,10 @@ def _case(node: exp.Case, resolve: ColumnResolver) -> tuple[GroupKey, str, str]:
         return name, column
 
     subject = node.args.get("this")
+    if len(node.args.get("ifs") or []) > MOST_CASE_BRANCHES:
+        raise refused(f"a CASE group key may have at most {MOST_CASE_BRANCHES} WHEN branches "
+                      "(each is evaluated on every row)", "use width_bucket or floor(x / w) * w "
+                      "for many equal ranges, or fewer branches")
     branches: list[exp.Expression] = []
     results: list[exp.Expression | None] = []
     for branch in node.args.get("ifs") or []:
