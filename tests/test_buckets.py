@@ -222,19 +222,46 @@ def test_buckets_on_a_table_of_individuals_run_and_stay_below_the_exact_counts(c
     assert all(0 < got[(m,)][0] <= exact_counts[m] for m in range(1, 13))
 
 
-def test_explain_shows_each_key_and_its_cells(clinic, module_dsn: str) -> None:
+@pytest.fixture
+def engine(clinic, module_dsn: str, request):
     from proxy.backend import Backend
     from proxy.engine import Engine
     from proxy.ledger import Ledger
 
     _, policies = clinic
-    engine = Engine(policies, Backend(module_dsn, pool_size=1), Ledger(module_dsn, schema="buckets_explain"))
-    try:
-        explained = dict(engine.explain(
-            "tester", "SELECT admitted, width_bucket(weight, 0, 100, 4), COUNT(*) FROM people "
-                      "WHERE admitted BETWEEN '2026-03-02' AND '2026-03-08' GROUP BY 1, 2").rows)
-    finally:
-        engine.close()
+    made = Engine(policies, Backend(module_dsn, pool_size=1),
+                  Ledger(module_dsn, schema="buckets_" + request.node.name[5:30].lower()))
+    yield made
+    made.close()
+
+
+def test_explain_shows_each_key_and_its_cells(engine) -> None:
+    explained = dict(engine.explain(
+        "tester", "SELECT admitted, width_bucket(weight, 0, 100, 4), COUNT(*) FROM people "
+                  "WHERE admitted BETWEEN '2026-03-02' AND '2026-03-08' GROUP BY 1, 2").rows)
     assert explained["cells"] == "42"
     assert explained["key admitted"] == "7 values: 2026-03-02 .. 2026-03-08, narrowed by WHERE"
     assert explained["key width_bucket(weight, 0, 100, 4)"] == "6 values: 0 .. 5"
+
+
+def test_answers_carry_each_key_as_written(engine) -> None:
+    """Through the engine: a date groups by day (365 rows, not 12 months), and each bucket's
+    values and PostgreSQL type reach the answer."""
+    daily = engine.answer("tester", "SELECT admitted, COUNT(*) FROM people GROUP BY admitted",
+                          epsilon=Decimal(1))
+    assert [row[0] for row in daily.rows] == [dt.date(2026, 1, 1) + dt.timedelta(days=n)
+                                              for n in range(365)]
+    assert daily.columns[0].type == "date"
+    for sql, values, type_ in [
+            (f"SELECT {SIZE} AS size, COUNT(*) FROM people GROUP BY size", ["young", "middle", "old"], "text"),
+            ("SELECT extract(quarter FROM admitted) AS q, COUNT(*) FROM people GROUP BY q", [1, 2, 3, 4],
+             "numeric"),
+            ("SELECT width_bucket(age, 0, 100, 2) AS w, COUNT(*) FROM people GROUP BY w", [1, 2, 3],
+             "integer"),
+            ("SELECT floor(age / 50) * 50 AS f, COUNT(*) FROM people GROUP BY f", [0, 50, 100],
+             "double precision"),
+            ("SELECT date_trunc('year', admitted) AS y, COUNT(*) FROM people GROUP BY y",
+             [dt.date(2026, 1, 1)], "date")]:
+        answer = engine.answer("tester", sql, epsilon=Decimal(1))
+        assert [row[0] for row in answer.rows] == values, sql
+        assert answer.columns[0].type == type_, sql
