@@ -943,3 +943,28 @@ def test_buckets_in_where_are_guarded_by_the_declared_domain():
         text = where.sql(dialect="postgres")
         if family is not None:  # computed only inside the declared domain, NULL elsewhere
             assert text.count("CASE WHEN") >= 1 and ("BETWEEN" in text or " IN (" in text), text
+
+
+@pytest.mark.parametrize("where, key, values", [
+    ("extract(dow FROM reading_date) IN (0, 6)", "extract(dow FROM reading_date)", [0, 6]),
+    ("date_part('dow', reading_date) IN (0, 6)", "extract(dow FROM reading_date)", [0, 6]),
+    ("extract(month FROM reading_date) < 4 AND extract(month FROM reading_date) >= 2",
+     "extract(month FROM reading_date)", [2, 3]),
+    ("extract(month FROM reading_date) BETWEEN 11 AND 20", "extract(month FROM reading_date)", [11, 12]),
+    ("3 > extract(month FROM reading_date)", "extract(month FROM reading_date)", [1, 2]),
+    ("date_trunc('month', reading_date) > '2026-10-15'", "date_trunc('month', reading_date)",
+     [__import__("datetime").date(2026, m, 1) for m in (11, 12)]),
+    ("width_bucket(litres, 0, 2000, 10) >= 10", "width_bucket(litres, 0, 2000, 10)", [10, 11]),
+    ("floor(litres / 500) * 500 = 1000.0", "floor(litres / 500) * 500", [Decimal(1000)]),
+    ("CASE WHEN litres > 100 THEN 'high' END = 'high'", "CASE WHEN litres > 100 THEN 'high' END", ["high"]),
+    # No restriction: text order, OR, a different bucket of the same column.
+    ("CASE WHEN litres > 100 THEN 'high' ELSE 'low' END > 'b'",
+     "CASE WHEN litres > 100 THEN 'high' ELSE 'low' END", ["high", "low"]),
+    ("extract(dow FROM reading_date) = 0 OR extract(dow FROM reading_date) = 6",
+     "extract(dow FROM reading_date)", list(range(7))),
+    ("extract(isodow FROM reading_date) = 7", "extract(dow FROM reading_date)", list(range(7))),
+])
+def test_a_where_on_the_bucket_itself_narrows_its_cells(where: str, key: str, values: list) -> None:
+    plan = plan_of(f"SELECT {key} AS k, COUNT(*) FROM readings WHERE {where} GROUP BY k")
+    assert _values(plan) == values
+    assert _cells(plan) == [len(values)]

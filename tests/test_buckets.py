@@ -179,6 +179,9 @@ REFERENCES = [
      "count(*)", AGE),
     ("SELECT floor(weight / 12.5) * 12.5 AS band, COUNT(*) FROM people GROUP BY band",
      "floor(weight / 12.5) * 12.5", "count(*)", WEIGHT),
+    ("SELECT extract(dow FROM admitted), COUNT(*) FROM people WHERE extract(dow FROM admitted) "
+     "IN (0, 6) GROUP BY 1", "extract(dow FROM admitted)", "count(*)",
+     f"{ADMITTED} AND extract(dow FROM admitted) IN (0, 6)"),
     # buckets in WHERE count the rows inside the column's declared domain, as keys do
     ("SELECT ward, COUNT(*) FROM people WHERE date_trunc('month', admitted) = '2026-03-01' "
      "GROUP BY ward", "ward", "count(*)",

@@ -44,7 +44,8 @@ from proxy.policy import ColumnPolicy, Policies, TablePolicy
 from proxy.sql.domains import EmptyBucket, cell_count, key_size, key_type
 from proxy.sql.filters import (Typed, chain_operands, check_filter, date_node, literal,
                                only_args, refuse_expression, unify, unparen)
-from proxy.sql.keys import BUCKET_HINT, bucket_reader, is_key_expression, narrowings, read_key
+from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narrowings, read_key,
+                            restrictions)
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
 
 SHAPE_HINT = ("hushql answers read-only aggregate queries: SELECT <group keys>, COUNT(*) | COUNT(col) "
@@ -215,7 +216,9 @@ class _Analysis:
         condition = check_filter(where.this, self._column, bucket_reader(self.table, self._column)) \
             if where is not None else None
         within = narrowings(condition, self.table)
-        keys = tuple(replace(key, within=within.get(key.column)) for key in self.keys)
+        among = restrictions(where.this, self._column) if where is not None else {}
+        keys = tuple(replace(key, within=within.get(key.column), among=among.get(key))
+                     for key in self.keys)
         self._check_cells(keys)
         for item in items:
             self.outputs.append(self._select_output(item))

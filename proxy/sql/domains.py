@@ -62,6 +62,8 @@ _CYCLES = {"quarter": range(1, 5), "month": range(1, 13), "week": range(1, 54),
 _WALKED_DAYS = 4000
 # Integer ranges up to this many values are walked value by value for width_bucket and floor.
 _WALKED_INTEGERS = 10_000
+# Key domains up to this many values are filtered by the WHERE literals on the key itself.
+_WALKED_RESTRICTED = 100_000
 
 
 class EmptyBucket(ValueError):
@@ -71,6 +73,39 @@ class EmptyBucket(ValueError):
 def key_values(column: ColumnPolicy, key: GroupKey) -> Sequence[Any]:
     """The values of ``key``, in answer order (declared order, ascending, or CASE order); a
     ``range`` for a plain integer column. Must hold: analysis built the key for this column."""
+    if not _restricted(column, key):
+        return _values_within(column, key)
+    return [v for v in _values_within(column, key) if _allowed(v, key.among)]  # type: ignore[arg-type]
+
+
+def _restricted(column: ColumnPolicy, key: GroupKey) -> bool:
+    """Whether ``key.among`` is applied: only to domains small enough to walk (a larger one
+    keeps all its values, a sound superset)."""
+    return key.among is not None and _size_within(column, key) <= _WALKED_RESTRICTED
+
+
+def _allowed(value: Any, among: Narrowing) -> bool:
+    """Whether a key value meets the WHERE's literals on the key (NULL meets none of them)."""
+    if value is None:
+        return False
+    if among.values is not None and not any(
+            type(value) is type(v) and value == v or _numbers(value, v) and value == v
+            for v in among.values):
+        return False
+    try:
+        above = among.low is None or (value > among.low if among.low_open else value >= among.low)
+        below = among.high is None or (value < among.high if among.high_open else value <= among.high)
+    except TypeError:  # a bound of another type than the key's values: keep the value
+        return True
+    return above and below
+
+
+def _numbers(a: Any, b: Any) -> bool:
+    return all(isinstance(x, (int, Decimal, Fraction)) and not isinstance(x, bool) for x in (a, b))
+
+
+def _values_within(column: ColumnPolicy, key: GroupKey) -> Sequence[Any]:
+    """The key's values over its column's declared domain narrowed by ``within``."""
     form = key.form
     if form == "case":
         return list(key.labels)
@@ -104,6 +139,12 @@ def key_values(column: ColumnPolicy, key: GroupKey) -> Sequence[Any]:
 
 def key_size(column: ColumnPolicy, key: GroupKey) -> int:
     """len(key_values(...)), counted without listing the values where a domain can be large."""
+    if _restricted(column, key):
+        return len(key_values(column, key))
+    return _size_within(column, key)
+
+
+def _size_within(column: ColumnPolicy, key: GroupKey) -> int:
     if key.form == "case":
         return len(key.labels)
     if key.form == "column" and column.kind == "integer" and (
@@ -113,7 +154,7 @@ def key_size(column: ColumnPolicy, key: GroupKey) -> int:
     if key.form in ("column", "date_trunc") and column.kind == "date":
         days = _date_scope(column, key.within)
         if isinstance(days, list) or not days:
-            return len(key_values(column, key))
+            return len(_values_within(column, key))
         unit = "day" if key.form == "column" else TRUNC_UNITS[key.unit]  # type: ignore[index]
         return _date_bucket_count(days[0], days[1], unit)
     if key.form in ("width_bucket", "floor"):
@@ -121,11 +162,11 @@ def key_size(column: ColumnPolicy, key: GroupKey) -> int:
         if low > high:
             return 0
         if column.kind == "integer" and high - low < _WALKED_INTEGERS:
-            return len(key_values(column, key))
+            return len(_values_within(column, key))
         first, last = (Fraction(bucket_of(column, key, v)) for v in (low, high))
         step = Fraction(1) if key.form == "width_bucket" else Fraction(key.arguments[0])
         return int(abs(last - first) / step) + 1
-    return len(key_values(column, key))
+    return len(_values_within(column, key))
 
 
 def cell_count(sizes: Sequence[int]) -> int:
@@ -333,7 +374,8 @@ def key_label(key: GroupKey) -> str:
 def describe_key(column: ColumnPolicy, key: GroupKey) -> str:
     """How many cells a key has and which, and whether the WHERE narrowed them."""
     size = key_size(column, key)
-    narrowed = ", narrowed by WHERE" if key.within is not None and key.form != "case" else ""
+    narrowed = ", narrowed by WHERE" if (key.within is not None and key.form != "case") \
+        or _restricted(column, key) else ""
     if size == 0:
         return f"no values{narrowed}"
     values = key_values(column, key) if size <= 100_000 else None

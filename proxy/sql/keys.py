@@ -24,6 +24,10 @@ Rules of this module:
   passing the WHERE can hold, so the cells outside that bound are empty in every database and
   are left out. Anything else narrows nothing. Text is narrowed only by = and IN (its order
   depends on the collation; equality under a deterministic collation does not).
+- ``restrictions`` does the same for a conjunct comparing a bucket with literals
+  (``extract(dow FROM d) IN (0, 6)``): a row passing it has a key value meeting it (a bucket in
+  WHERE is the key's own guarded expression, or extract, whose rows outside the declared range
+  are not counted by the key), so the key's other values are empty cells and are left out.
 """
 
 from __future__ import annotations
@@ -485,3 +489,93 @@ def bucket_reader(table: TablePolicy, resolve: ColumnResolver) -> BucketReader:
                          as_bounded=lambda: exp.cast(built.copy(), "numeric", copy=False))
         return Typed(built, family)
     return read
+
+
+# ---- restrictions of bucket keys by the WHERE ----------------------------------------------------
+
+def restrictions(where: exp.Expression | None, resolve: ColumnResolver) -> dict[GroupKey, Narrowing]:
+    """The WHERE literals on each bucket expression of its top-level AND, by the key (without
+    ``within``) the expression names. ``where`` is the analyst's WHERE, already accepted by
+    ``filters.check_filter`` (so every conjunct is a valid condition)."""
+    found: dict[GroupKey, Narrowing] = {}
+    for conjunct in _conjuncts(where):
+        read = _restriction(conjunct, resolve)
+        if read is not None:
+            key, narrowing = read
+            found[key] = _both_open(found[key], narrowing) if key in found else narrowing
+    return found
+
+
+def _restriction(node: exp.Expression, resolve: ColumnResolver) -> tuple[GroupKey, Narrowing] | None:
+    if isinstance(node, _COMPARISONS):
+        kind, side, other = type(node), unparen(node.this), node.expression
+        if not _is_bucket(side):
+            kind, side, other = _MIRRORED[kind], unparen(node.expression), node.this
+        key = _bucket_key(side, resolve)
+        value = _bucket_value(other, key)
+        if key is None or value is None:
+            return None
+        if isinstance(value, str) and kind is not exp.EQ:
+            return None  # text order depends on the collation
+        return key, {exp.EQ: Narrowing(values=frozenset({value})),
+                     exp.LT: Narrowing(high=value, high_open=True), exp.LTE: Narrowing(high=value),
+                     exp.GT: Narrowing(low=value, low_open=True), exp.GTE: Narrowing(low=value)}[kind]
+    if isinstance(node, exp.Between) and not node.args.get("symmetric"):
+        key = _bucket_key(unparen(node.this), resolve)
+        low, high = (_bucket_value(node.args[a], key) for a in ("low", "high"))
+        if key is None or low is None or high is None or isinstance(low, str) or isinstance(high, str):
+            return None
+        return key, Narrowing(low=low, high=high)
+    if isinstance(node, exp.In) and not node.args.get("query"):
+        key = _bucket_key(unparen(node.this), resolve)
+        values = [_bucket_value(item, key) for item in node.expressions]
+        if key is None or any(v is None for v in values):
+            return None
+        return key, Narrowing(values=frozenset(values))
+    return None
+
+
+def _is_bucket(node: exp.Expression) -> bool:
+    return is_key_expression(node) and not isinstance(node, exp.Column)
+
+
+def _bucket_key(node: exp.Expression, resolve: ColumnResolver) -> GroupKey | None:
+    if not _is_bucket(node):
+        return None
+    try:
+        key, _, _ = read_key(node, resolve)
+    except HushError:  # accepted in WHERE but not a key (extract(epoch ...)): restricts nothing
+        return None
+    return key
+
+
+def _bucket_value(node: exp.Expression, key: GroupKey | None) -> object | None:
+    """A literal in the terms of the key's values (Fraction, date, str, bool), else None."""
+    checked = literal(unparen(node))
+    if key is None or checked is None or checked.type == "null":
+        return None
+    if checked.type == "number":
+        built = checked.node
+        text = built.this.this if isinstance(built, exp.Neg) else built.this
+        return -Fraction(Decimal(text)) if isinstance(built, exp.Neg) else Fraction(Decimal(text))
+    if key.form == "date_trunc":
+        if checked.type == "date":
+            return dt.date.fromisoformat(checked.node.this.this)
+        return iso_date(checked.string or "") if checked.type == "string" else None
+    if checked.type == "string" and key.form == "case":
+        return checked.string
+    if checked.type == "boolean" and key.form == "case":
+        return bool(checked.node.this)
+    return None
+
+
+def _both_open(a: Narrowing, b: Narrowing) -> Narrowing:
+    """Both restrictions at once, keeping which bounds are strict."""
+    low, low_open = a.low, a.low_open
+    if b.low is not None and (low is None or b.low > low or (b.low == low and b.low_open)):  # type: ignore[operator]
+        low, low_open = b.low, b.low_open
+    high, high_open = a.high, a.high_open
+    if b.high is not None and (high is None or b.high < high or (b.high == high and b.high_open)):  # type: ignore[operator]
+        high, high_open = b.high, b.high_open
+    values = b.values if a.values is None else a.values if b.values is None else a.values & b.values
+    return Narrowing(low, high, values, low_open, high_open)

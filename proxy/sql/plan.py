@@ -49,6 +49,8 @@ class Narrowing:
     low: object = None
     high: object = None
     values: frozenset[object] | None = None
+    low_open: bool = False  # the bounds exclude themselves (a strict < or >)
+    high_open: bool = False
 
 
 @dataclass(frozen=True)
@@ -64,8 +66,10 @@ class GroupKey:
       each branch and then of ELSE;
     - ``width_bucket``: ``arguments`` are (low, high, count);
     - ``floor``: ``floor(column / width) * width``, ``arguments`` is (width,).
-    ``within`` narrows the column's declared domain by the WHERE literals (set once the whole
-    query is analysed; keys are compared without it while the query is read).
+    ``within`` narrows the column's declared domain by the WHERE literals on the column, and
+    ``among`` narrows the key's own values by the WHERE literals on the key expression itself
+    (``extract(dow FROM d) IN (0, 6)``); both are set once the whole query is analysed (keys are
+    compared without them while the query is read).
     """
 
     column: str
@@ -76,6 +80,7 @@ class GroupKey:
     labels: tuple[Label, ...] = ()
     choices: tuple[int, ...] = ()
     within: Narrowing | None = None
+    among: Narrowing | None = None
 
 
 @dataclass(frozen=True)
