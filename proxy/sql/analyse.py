@@ -41,12 +41,14 @@ from proxy.errors import (AMBIGUOUS_COLUMN, DATATYPE_MISMATCH, GROUPING_ERROR,
                           INVALID_OFFSET, PROGRAM_LIMIT_EXCEEDED, SYNTAX_ERROR, UNDEFINED_COLUMN,
                           UNDEFINED_FUNCTION, UNDEFINED_TABLE, HushError, refused)
 from proxy.policy import ColumnPolicy, Policies, TablePolicy
-from proxy.sql.domains import EmptyBucket, cell_count, key_size, key_type
+from proxy.sql.domains import TRUNC_UNITS, EmptyBucket, cell_count, key_size, key_type
 from proxy.sql.filters import (Typed, chain_operands, check_filter, date_node, literal,
                                only_args, refuse_expression, unify, unparen)
 from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narrowings, read_key,
                             restrictions)
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
+
+BUCKETS = tuple(TRUNC_UNITS)  # the date_trunc units a group key accepts
 
 SHAPE_HINT = ("hushql answers read-only aggregate queries: SELECT <group keys>, COUNT(*) | COUNT(col) "
               "| SUM(col) | AVG(col) FROM <table> [WHERE ...] [GROUP BY <keys>] [HAVING ...] "

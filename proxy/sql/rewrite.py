@@ -53,11 +53,13 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass
 from decimal import Decimal
+from typing import Sequence
 
 import sqlglot.expressions as exp
 
 from proxy.policy import ColumnPolicy, TablePolicy
 from proxy.sql.domains import cell_count, key_size, key_values
+from proxy.sql.filters import date_node
 from proxy.sql.keys import key_expression
 from proxy.sql.plan import GroupKey, Measure, Plan
 
@@ -158,7 +160,7 @@ def _literal(value: object) -> exp.Expression:
     if isinstance(value, int):
         return _num(value)
     if isinstance(value, dt.date):
-        return exp.cast(exp.Literal.string(value.isoformat()), "date", copy=False)
+        return date_node(value.isoformat())  # built directly: exp.cast parses its type name
     if isinstance(value, Decimal):
         return _decimal(value)
     return exp.Literal.string(str(value))
@@ -256,18 +258,29 @@ def _domain_source(policy: TablePolicy, key: GroupKey, index: int) -> exp.Expres
     alias = exp.TableAlias(this=exp.to_identifier(f"d{index}"),
                            columns=[exp.to_identifier("i"), exp.to_identifier("v")])
     values = key_values(column, key)
-    if isinstance(values, range) and len(values) > 1:
-        low, high = values[0], values[-1]
-        series = exp.Anonymous(this="generate_series", expressions=[_num(low), _num(high)])
+    first = values[0]
+    if len(values) > 1 and isinstance(first, (int, dt.date)) and not isinstance(first, bool) \
+            and _consecutive(values):
+        # Consecutive integers or days: v = first + i over generate_series(0, n - 1), rather
+        # than a VALUES list of every value (date + integer is a date in PostgreSQL).
+        series = exp.Anonymous(this="generate_series", expressions=[_num(0), _num(len(values) - 1)])
         inner = exp.Select().select(
-            exp.alias_(exp.Sub(this=exp.column("v"), expression=_num(low)), "i", copy=False),
-            exp.column("v"), copy=False).from_(
+            exp.column("i"), exp.alias_(exp.Add(this=_literal(first), expression=exp.column("i")),
+                                         "v", copy=False), copy=False).from_(
             exp.Table(this=series, alias=exp.TableAlias(this=exp.to_identifier("s"),
-                                                          columns=[exp.to_identifier("v")])), copy=False)
+                                                          columns=[exp.to_identifier("i")])), copy=False)
         return exp.Subquery(this=inner, alias=alias)
     rows = [exp.Tuple(expressions=[_num(i), _num(i) if key.form == "case" else _literal(v)])
             for i, v in enumerate(values)]
     return exp.Values(expressions=rows, alias=alias)
+
+
+def _consecutive(values: Sequence[object]) -> bool:
+    """Whether the values step by exactly one (integer or day) from first to last."""
+    if isinstance(values, range):
+        return values.step == 1
+    step = 1 if isinstance(values[0], int) else dt.timedelta(days=1)
+    return all(b - a == step for a, b in zip(values, values[1:]))  # type: ignore[operator]
 
 
 def _key_matches(key: GroupKey, policy: TablePolicy, grouped: exp.Expression,
