@@ -42,7 +42,7 @@ from proxy.errors import INTERNAL_ERROR, INVALID_PARAMETER_VALUE, QUERY_CANCELED
 from proxy.ledger import Ledger
 from proxy.policy import ColumnPolicy, Policies
 from proxy.sql.analyse import analyse
-from proxy.sql.domains import domain_values
+from proxy.sql.domains import describe_key, key_label, key_type, key_values
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
 from proxy.sql.postprocess import postprocess
@@ -224,6 +224,8 @@ class Engine:
             ("protected unit", f"individual ({plan.table.individual.column})"
              if plan.table.individual else "row"),
             ("cells", str(rewritten.cells)),
+            *[(f"key {key_label(key)}", describe_key(plan.table.columns[key.column], key))
+              for key in plan.keys],
             ("epsilon", str(eps)),
             ("epsilon per measure", f"{share:.6g}"),
         ]
@@ -348,7 +350,7 @@ def _cell_values(plan: Plan) -> list[tuple[Any, ...]]:
     """Key values of every cell, in the backend's (domain) order."""
     cells: list[tuple[Any, ...]] = [()]
     for key in plan.keys:
-        values = domain_values(plan.table.columns[key.column], key.bucket)
+        values = key_values(plan.table.columns[key.column], key)
         cells = [cell + (value,) for cell in cells for value in values]
     return cells
 
@@ -374,9 +376,7 @@ def _show(value: Fraction | Decimal | int) -> str:
 def _output_type(plan: Plan, output: Output) -> ColumnType:
     if output.kind == "key":
         key = plan.keys[output.key]  # type: ignore[index]
-        kind = plan.table.columns[key.column].kind
-        return {"category": "text", "integer": "integer", "boolean": "boolean",
-                "date": "date"}[kind]  # type: ignore[return-value]
+        return key_type(plan.table.columns[key.column], key)
     if output.kind == "count":
         return "bigint"
     if output.kind == "sum":

@@ -28,7 +28,6 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, Strict, ValidationError
 
-GroupBucket = Literal["day", "week", "month", "quarter", "year"]
 ColumnKind = Literal["category", "integer", "number", "date", "boolean"]
 # Counts and caps are whole numbers written as TOML integers: `true` or `4.0` is refused, not
 # silently read as 1 or 4.
@@ -107,7 +106,9 @@ class ColumnPolicy(_Strict):
     values: list[str] | None = None
     range: list[Any] | None = None
     step: Decimal | None = None
-    bucket: GroupBucket | None = None
+    # No longer used (a date column groups by day; queries write date_trunc for coarser cells).
+    # Still read, so that `hushql check` can say so with a hint rather than "unknown key".
+    bucket: str | None = None
     description: str | None = None
 
     @property
@@ -125,9 +126,9 @@ class ColumnPolicy(_Strict):
 
     @property
     def has_domain(self) -> bool:
-        """True when GROUP BY may use this column (a finite list of declared values)."""
-        return self.kind in ("category", "integer", "boolean") or (
-            self.kind == "date" and self.bucket is not None)
+        """True when GROUP BY may use this column as is (a finite list of declared values; a
+        date column has one value per day of its range)."""
+        return self.kind in ("category", "integer", "boolean", "date")
 
     @property
     def summable(self) -> bool:
@@ -296,7 +297,7 @@ _KEYS_BY_KIND: dict[str, set[str]] = {
     "category": {"values"},
     "integer": {"range"},
     "number": {"range", "step"},
-    "date": {"range", "bucket"},
+    "date": {"range"},
     "boolean": set(),
 }
 
@@ -333,7 +334,11 @@ def _column_problems(column: ColumnPolicy) -> list[tuple[str, str]]:
     """Meaning checks for one column; keys are relative to the column."""
     found: list[tuple[str, str]] = []
     allowed = _KEYS_BY_KIND[column.kind]
-    for key in ("values", "range", "step", "bucket"):
+    if column.bucket is not None:
+        found.append(("bucket", "no longer used: GROUP BY on a date column now groups by day, "
+                                "as written; delete this key, and write date_trunc('"
+                                f"{column.bucket}', <column>) in queries for coarser cells"))
+    for key in ("values", "range", "step"):
         if getattr(column, key) is not None and key not in allowed:
             found.append((key, f"not used by {_a(column.kind)} column"))
     if column.kind == "category":

@@ -18,7 +18,8 @@ from rich.table import Table
 
 from proxy.policy import ColumnPolicy, Policies, PolicyError, TablePolicy, date_range, load_policies
 from proxy.renewal import guarantee_note
-from proxy.sql.domains import domain_size
+from proxy.sql.domains import key_size
+from proxy.sql.plan import GroupKey
 
 _MOST_VALUES_SHOWN = 8
 
@@ -156,17 +157,15 @@ def _domain_text(column: ColumnPolicy) -> str:
         return "false, true"
     if column.kind == "date":
         low, high = date_range(column)
-        by = f", by {column.bucket}" if column.bucket else ""
-        return f"{low} .. {high}{by}"
+        return f"{low} .. {high}"
     return f"{column.low} .. {column.high}"
 
 
 def _grouping_text(column: ColumnPolicy, most_cells: int) -> str:
     """Whether GROUP BY may use the column, and with how many cells."""
     if not column.has_domain:
-        reason = "no bucket" if column.kind == "date" else "no domain"
-        return f"no ({reason})"
-    cells = domain_size(column)
+        return "buckets only (width_bucket, floor)"
+    cells = key_size(column, GroupKey("column"))
     if cells > most_cells:
         return f"no ({cells:,} cells > most_cells)"
     return f"{cells:,} cells"

@@ -41,7 +41,6 @@ kind = "boolean"
 [columns.admitted]
 kind = "date"
 range = ["2026-01-01", "2026-12-31"]
-bucket = "quarter"
 """
 
 VISITS = """
@@ -68,7 +67,6 @@ range = [0, 60]
 [columns.visited]
 kind = "date"
 range = ["2026-01-01", "2026-12-31"]
-bucket = "month"
 
 [columns.fee]
 kind = "number"

@@ -81,7 +81,7 @@ def test_demo_policies_load_cleanly() -> None:
     litres = readings.columns["litres"]
     assert (litres.kind, litres.low, litres.high) == ("number", 0, 2000)
     assert litres.step == Decimal("0.1")
-    assert readings.columns["reading_date"].bucket == "month"
+    assert readings.columns["reading_date"].bucket is None  # a date groups by day, as written
     households = loaded.tables["households"]
     assert households.source == "utility.households" and households.individual is None
     assert set(households.columns) == {"household_id", "district", "occupants", "tariff",
@@ -121,6 +121,11 @@ CASES = [
     pytest.param(H, "range = [1, 8]", "range = [8, 1]",
                  f"{H}: columns.occupants.range: lower bound 8 is above upper bound 1",
                  id="integer-range-not-ordered"),
+    pytest.param(R, 'range = ["2026-01-01", "2026-12-31"]',
+                 'range = ["2026-01-01", "2026-12-31"]\nbucket = "month"',
+                 f"{R}: columns.reading_date.bucket: no longer used: GROUP BY on a date column now "
+                 "groups by day, as written; delete this key, and write date_trunc('month', "
+                 "<column>) in queries for coarser cells", id="retired-date-bucket"),
     pytest.param(R, 'range = ["2026-01-01", "2026-12-31"]', 'range = ["2026-12-31", "2026-01-01"]',
                  f"{R}: columns.reading_date.range: lower bound 2026-12-31 is above upper bound "
                  "2026-01-01", id="date-range-not-ordered"),
@@ -331,7 +336,7 @@ def test_check_command_summarises_the_demo_policies() -> None:
     text = buffer.getvalue()
     for expected in ("utility.households", "utility.meter_readings", "one household_id",
                      "4 groups, 31 rows each", "Northbank, Old Mill, Harbourside",
-                     "2026-01-01 .. 2026-12-31, by month", "12 cells", "0 .. 2000", "0.1",
+                     "2026-01-01 .. 2026-12-31", "365 cells", "0 .. 2000", "0.1",
                      "no (100,000 cells > most_cells)", "planner", "3.0",
                      "households, readings", "researcher", "1.0", "Administrators: auditor",
                      "2 tables, 2 analysts, 1 administrator."):

@@ -24,7 +24,8 @@ REFERENCE = ROOT / "policies" / "README.md"
 # loader still knows that that branch replaces ([individual]'s caps become most_rows and
 # population). Once both are in, these differences vanish and the comparison is exact.
 DOCUMENTED_AHEAD = {"individual.population", "individual.most_rows"}
-BEING_REPLACED = {"individual.groups_cap", "individual.rows_cap"}
+# Retired keys the loader still reads only so that `hushql check` can explain what replaced them.
+RETIRED = {"individual.groups_cap", "individual.rows_cap", "columns.<name>.bucket"}
 
 
 def model_keys(model: type[BaseModel], prefix: str = "") -> set[str]:
@@ -99,7 +100,7 @@ def test_the_reference_documents_every_key_the_loader_knows() -> None:
     known_access = model_keys(AccessPolicy)
     known_tables = model_keys(TablePolicy)
     assert access == known_access, (access ^ known_access)
-    missing = known_tables - tables - BEING_REPLACED
+    missing = known_tables - tables - RETIRED
     ahead = tables - known_tables - DOCUMENTED_AHEAD
     assert not missing, f"keys check knows that the reference lacks: {sorted(missing)}"
     assert not ahead, f"keys documented that check does not know: {sorted(ahead)}"

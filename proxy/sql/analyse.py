@@ -14,10 +14,12 @@ sqlglot's PostgreSQL dialect and must be exactly one SELECT of the accepted shap
 - aggregates: COUNT(*), COUNT(col), SUM(col) and AVG(col) of integer or number columns,
   COUNT(DISTINCT <individual column>) on tables with [individual]. Their measures are
   deduplicated (AVG(x) = SUM(x) / COUNT(x) shares the sum of x with SUM(x)).
-- keys: columns with a declared domain, and date columns bucketed with
-  date_trunc('<day|week|month|quarter|year>', col) or plainly when the policy names a bucket.
-  GROUP BY names them by column, select alias or position (PostgreSQL's resolution order:
-  input columns first). The product of the keys' domain sizes may not exceed ``most_cells``.
+- keys: columns with a declared domain (a date column groups by day) and buckets of one column
+  (date_trunc, extract/date_part, CASE over literal conditions, width_bucket, floor(x / w) * w),
+  read by ``proxy.sql.keys``. GROUP BY names them by expression, select alias or position
+  (PostgreSQL's resolution order: input columns first). Each key's values are its declared
+  domain narrowed by the WHERE literals on its column; the product of their numbers may not
+  exceed ``most_cells`` (refused with 54000 and a hint, never coarsened).
 - WHERE: checked and rebuilt by ``proxy.sql.filters`` so that no row value can raise.
 - HAVING and ORDER BY work on noisy outputs in post-processing; an aggregate or key they name
   that is not selected becomes a hidden output (an aggregate costs epsilon like any measure).
@@ -28,7 +30,7 @@ clauses, and every expression node against the forms each clause accepts.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import sqlglot
 import sqlglot.errors
@@ -39,19 +41,20 @@ from proxy.errors import (AMBIGUOUS_COLUMN, DATATYPE_MISMATCH, GROUPING_ERROR,
                           INVALID_OFFSET, PROGRAM_LIMIT_EXCEEDED, SYNTAX_ERROR, UNDEFINED_COLUMN,
                           UNDEFINED_FUNCTION, UNDEFINED_TABLE, HushError, refused)
 from proxy.policy import ColumnPolicy, Policies, TablePolicy
-from proxy.sql.domains import domain_size
+from proxy.sql.domains import TRUNC_UNITS, EmptyBucket, cell_count, key_size, key_type
 from proxy.sql.filters import (KIND_TYPE, Typed, chain_operands, check_filter, date_node, literal,
                                mark_written_names, only_args, refuse_expression, unify, unparen,
                                written_name, written_sql)
+from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narrowings, read_key,
+                            restrictions)
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
 
-BUCKETS = ("day", "week", "month", "quarter", "year")
+BUCKETS = tuple(TRUNC_UNITS)  # the date_trunc units a group key accepts
 
 SHAPE_HINT = ("hushql answers read-only aggregate queries: SELECT <group keys>, COUNT(*) | COUNT(col) "
               "| SUM(col) | AVG(col) FROM <table> [WHERE ...] [GROUP BY <keys>] [HAVING ...] "
               "[ORDER BY ...] [LIMIT n] [OFFSET n]")
-SELECT_HINT = ("select group keys (columns with a declared domain, or date_trunc('month', "
-               "<date column>)) and the aggregates COUNT(*), COUNT(col), SUM(col), AVG(col); "
+SELECT_HINT = ("select group keys (as written in GROUP BY) and the aggregates COUNT(*), COUNT(col), SUM(col), AVG(col); "
                "do arithmetic on the answers in your client")
 HAVING_HINT = ("HAVING accepts aggregates, group keys, literals, comparisons, BETWEEN, IN, "
                "IS [NOT] NULL, AND/OR/NOT and + - *")
@@ -74,12 +77,14 @@ _CLAUSE_REFUSALS = {
 _WRITES = tuple(getattr(exp, name) for name in (
     "Insert", "Update", "Delete", "Merge", "Create", "Drop", "Alter", "TruncateTable", "Copy",
     "Grant", "Revoke", "Analyze") if hasattr(exp, name))
-_TRUNCS = (exp.TimestampTrunc, exp.DateTrunc)
 _STRUCTURAL = (exp.Window, exp.Subquery, exp.Select, exp.Exists)  # refused whatever they hold
 _ACCEPTED_AGGREGATES = (exp.Count, exp.Sum, exp.Avg)
 _ASCII_LOWER = str.maketrans("ABCDEFGHIJKLMNOPQRSTUVWXYZ", "abcdefghijklmnopqrstuvwxyz")
 _PG_TYPE = {"category": "text", "integer": "integer", "number": "numeric", "date": "date",
             "boolean": "boolean"}
+# The analysis type (as in proxy.sql.filters) of a key's PostgreSQL type, for HAVING.
+_KEY_FAMILY = {"text": "text", "integer": "number", "bigint": "number", "numeric": "number",
+               "double precision": "number", "date": "date", "boolean": "boolean"}
 
 
 def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -> Plan:
@@ -211,11 +216,16 @@ class _Analysis:
                           SELECT_HINT)
         if group is not None:
             self._group_by(group, items)
-        self._check_cells()
+        where = select.args.get("where")
+        condition = check_filter(where.this, self._column, bucket_reader(self.table, self._column)) \
+            if where is not None else None
+        within = narrowings(condition, self.table)
+        among = restrictions(where.this, self._column) if where is not None else {}
+        keys = tuple(replace(key, within=within.get(key.column), among=among.get(key))
+                     for key in self.keys)
+        self._check_cells(keys)
         for item in items:
             self.outputs.append(self._select_output(item))
-        where = select.args.get("where")
-        condition = check_filter(where.this, self._column) if where is not None else None
         having_condition = self._having(having.this) if having is not None else None
         order = self._order_by(select.args.get("order"), len(items))
         limit = self._count(select.args.get("limit"), "LIMIT")
@@ -223,7 +233,7 @@ class _Analysis:
         if not self.measures:
             raise refused("the query has no aggregate", SELECT_HINT)
         return Plan(table=self.table, measures=tuple(self.measures), outputs=tuple(self.outputs),
-                    keys=tuple(self.keys), where=condition, having=having_condition,
+                    keys=keys, where=condition, having=having_condition,
                     order_by=order, limit=limit, offset=offset)
 
     # FROM ----------------------------------------------------------------------------------
@@ -301,10 +311,9 @@ class _Analysis:
         if isinstance(node, exp.AggFunc):
             aggregate = self._aggregate(node)
             return _SelectItem(alias or aggregate.name, aggregate=aggregate)
-        if isinstance(node, (exp.Column, *_TRUNCS)):
-            key, column = self._key_candidate(node)
-            return _SelectItem(alias or (column if isinstance(node, exp.Column) else "date_trunc"),
-                               key=key, column=column)
+        if is_key_expression(node) and not _holds_aggregate(node):
+            key, column, name = read_key(node, self._column)
+            return _SelectItem(alias or name, key=key, column=column)
         if literal(node) is not None:
             raise refused("constants are not accepted in the select list", SELECT_HINT)
         if _holds_aggregate(node):
@@ -384,28 +393,9 @@ class _Analysis:
 
     # group keys ----------------------------------------------------------------------------
     def _key_candidate(self, node: exp.Expression) -> tuple[GroupKey | None, str]:
-        """The key a column or date_trunc names (None when the column has no domain), and its column."""
-        if isinstance(node, exp.Column):
-            name, column = self._column(node)
-            if column.kind == "date":
-                return (GroupKey(name, column.bucket) if column.bucket else None), name
-            return (GroupKey(name) if column.has_domain else None), name
-        only_args(node, ("this", "unit", "input_type_preserved"), "date_trunc()",
-                  "write date_trunc('month', <date column>)")
-        target = unparen(node.this)
-        unit = node.args.get("unit")
-        bucket = (unit.this if isinstance(unit, exp.Literal) and unit.is_string
-                  else unit.name if isinstance(unit, exp.Var) else "").lower()
-        if bucket not in BUCKETS:
-            raise refused(f"date_trunc unit {bucket or '?'!r} is not accepted",
-                          "date_trunc takes one of " + ", ".join(BUCKETS))
-        if not isinstance(target, exp.Column):
-            raise refused("date_trunc accepts a date column", "write date_trunc('month', <date column>)")
-        name, column = self._column(target)
-        if column.kind != "date":
-            raise HushError(UNDEFINED_FUNCTION, f"date_trunc() takes a date column; {name} is {_PG_TYPE[column.kind]}",
-                            "write date_trunc('month', <date column>)")
-        return GroupKey(name, bucket), name
+        """The key an expression names (None when its column has no domain), and its column."""
+        key, column, _ = read_key(node, self._column)
+        return key, column
 
     def _group_by(self, group: exp.Group, items: list[_SelectItem]) -> None:
         only_args(group, ("expressions",), "GROUP BY", "GROUPING SETS, ROLLUP, CUBE and GROUP BY ALL "
@@ -429,16 +419,16 @@ class _Analysis:
                 matches = [item for item in items if item.name == name]
                 if matches:
                     return self._item_key(matches[0])
-        if isinstance(node, (exp.Column, *_TRUNCS)):
-            return self._key_candidate(node)
-        if isinstance(node, exp.AggFunc):
+        if isinstance(node, exp.AggFunc) or _holds_aggregate(node):
             raise HushError(GROUPING_ERROR, "aggregate functions are not allowed in GROUP BY",
                             self._groupable_hint())
         if isinstance(node, (exp.Rollup, exp.Cube, exp.GroupingSets)):
             raise refused("GROUPING SETS, ROLLUP and CUBE are not accepted", self._groupable_hint())
         if isinstance(node, (exp.Subquery, exp.Select, exp.Window)):
             raise refuse_expression(node, "GROUP BY", self._groupable_hint())
-        raise refused(f"GROUP BY accepts columns and date_trunc buckets, not {_short(node)}",
+        if is_key_expression(node):
+            return self._key_candidate(node)
+        raise refused(f"GROUP BY accepts columns and buckets of one column, not {_short(node)}",
                       self._groupable_hint())
 
     def _item_key(self, item: _SelectItem) -> tuple[GroupKey | None, str]:
@@ -456,31 +446,38 @@ class _Analysis:
 
     def _no_domain(self, name: str) -> HushError:
         column = self.table.columns[name]
-        if column.kind == "date":
-            return refused(f'date column "{name}" has no bucket in its policy and cannot be grouped as is',
-                           f"write GROUP BY date_trunc('month', {name}) (buckets: {', '.join(BUCKETS)})")
+        if column.kind == "number":
+            return refused(f'number column "{name}" has no finite list of values and cannot be '
+                           "grouped as is",
+                           f"group by its buckets, width_bucket({name}, <low>, <high>, <count>) "
+                           f"or floor({name} / <width>) * <width>; " + self._groupable_hint())
         return refused(f'column "{name}" has no declared domain and cannot be grouped',
                        self._groupable_hint())
 
     def _groupable_hint(self) -> str:
-        plain = [n for n, c in self.table.columns.items() if c.has_domain]
-        dates = [n for n, c in self.table.columns.items() if c.kind == "date"]
-        hint = "GROUP BY accepts " + (", ".join(plain) if plain else "no plain columns of this table")
-        if dates:
-            hint += f"; date columns as date_trunc('<{'|'.join(BUCKETS)}>', {dates[0]})"
-        return hint
+        plain = [n for n, c in self.table.columns.items() if c.kind != "number"]
+        return ("GROUP BY accepts " + (", ".join(plain) if plain else "no plain columns of this table")
+                + "; " + BUCKET_HINT)
 
-    def _check_cells(self) -> None:
+    def _check_cells(self, keys: tuple[GroupKey, ...]) -> None:
+        """Refuse (54000) an answer with more cells than most_cells: never coarsen silently."""
         most = self.policies.defaults.most_cells
-        cells = 1
-        for key in self.keys:
-            cells *= domain_size(self.table.columns[key.column], key.bucket)
-            if cells > most:
-                raise HushError(PROGRAM_LIMIT_EXCEEDED,
-                                f"the answer would have more than {most} cells (one per combination "
-                                "of declared group values)",
-                                "group by fewer keys, coarser date buckets, or filter in WHERE and "
-                                "group by a key with a smaller domain")
+        sizes = []
+        for key in keys:
+            try:
+                sizes.append(key_size(self.table.columns[key.column], key))
+            except EmptyBucket as error:
+                raise refused(f"{error}: PostgreSQL names that bucket in a year hushql cannot "
+                              "write", "use a finer unit") from None
+        cells = cell_count(sizes)
+        if cells > most:
+            shown = " x ".join(f"{size:,}" for size in sizes)
+            raise HushError(PROGRAM_LIMIT_EXCEEDED,
+                            f"the answer would have {cells:,} cells ({shown}), more than the "
+                            f"{most:,} allowed (one cell per combination of key values)",
+                            "narrow the keys' columns in WHERE with literals (e.g. a date range), "
+                            "group by a coarser bucket (date_trunc('month', ...), width_bucket, "
+                            "floor(x / w) * w), or group by fewer keys")
 
     # outputs named by HAVING and ORDER BY ------------------------------------------------
     def _output_for_aggregate(self, aggregate: _Aggregate) -> int:
@@ -500,7 +497,7 @@ class _Analysis:
         for position, output in enumerate(self.outputs):
             if output.kind == "key" and output.key == index:
                 return position
-        self.outputs.append(Output(column if isinstance(node, exp.Column) else "date_trunc", "key",
+        self.outputs.append(Output(read_key(node, self._column)[2], "key",
                                    key=index, column=key.column, visible=False))
         return len(self.outputs) - 1
 
@@ -508,7 +505,8 @@ class _Analysis:
         output = self.outputs[index]
         if output.kind != "key":
             return "number"
-        return KIND_TYPE[self.table.columns[self.keys[output.key].column].kind]  # type: ignore[index]
+        key = self.keys[output.key]  # type: ignore[index]
+        return _KEY_FAMILY[key_type(self.table.columns[key.column], key)]
 
     # HAVING --------------------------------------------------------------------------------
     def _having(self, node: exp.Expression) -> exp.Expression:
@@ -579,7 +577,7 @@ class _Analysis:
         if isinstance(node, exp.AggFunc):
             index = self._output_for_aggregate(self._aggregate(node))
             return Typed(_output_column(index), "number")
-        if isinstance(node, (exp.Column, *_TRUNCS)) and not (
+        if is_key_expression(node) and not _holds_aggregate(node) and not (
                 isinstance(node, exp.Column) and isinstance(node.this, exp.Star)):
             index = self._output_for_key(node)
             return Typed(_output_column(index), self._output_type(index))
@@ -633,7 +631,7 @@ class _Analysis:
             raise refuse_expression(node, "ORDER BY", ORDER_HINT)
         if isinstance(node, exp.AggFunc):
             return self._output_for_aggregate(self._aggregate(node))
-        if isinstance(node, (exp.Column, *_TRUNCS)):
+        if is_key_expression(node) and not _holds_aggregate(node):
             return self._output_for_key(node)
         if _holds_aggregate(node):
             raise refused(f"ORDER BY accepts aggregates, not expressions over them ({_short(node)})",

@@ -37,12 +37,16 @@ Comparisons mixing two non-literal numeric operands compare as NUMERIC too (a NU
 compared with a double precision one would otherwise be cast to double precision, which
 overflows above 1.8e308).
 
+Buckets (date_trunc, CASE over one column, width_bucket, floor(x / w) * w) are read by
+``proxy.sql.keys`` when the caller passes its reader: each is computed only for rows whose
+column lies in its declared domain (NULL otherwise), so that it cannot fail either.
+
 Refused (each as a HushError with a hint): division and modulo (a zero divisor), exponent and
 roots (overflow, negative operands), casts (bad text), regular expressions and SIMILAR TO
 (invalid patterns fail per row), LIKE ... ESCAPE and patterns ending in an unpaired backslash
-(PostgreSQL raises on those only when a row is evaluated), date_trunc in WHERE (it converts to
-timestamp, which fails for dates after 294276 AD), date arithmetic, subqueries, window
-functions, parameters, and anything not listed above.
+(PostgreSQL raises on those only when a row is evaluated), date_trunc without the bucket reader
+(it converts to timestamp, which fails for dates after 294276 AD), date arithmetic, subqueries,
+window functions, parameters, and anything not listed above.
 
 tests/test_analyse.py runs random accepted conditions on PostgreSQL over rows holding NULL, NaN,
 infinities, the extreme integers, 130000-digit numerics and the first and last storable dates,
@@ -97,6 +101,7 @@ FUNCTION_HINT = ("accepted functions: lower, upper, length, trim (btrim, ltrim, 
                  "aggregates: COUNT(*), COUNT(col), SUM(col), AVG(col)")
 
 ColumnResolver = Callable[[exp.Column], "tuple[str, ColumnPolicy]"]
+BucketReader = Callable[[exp.Expression], "Typed | None"]
 _NUMERIC = exp.DataType.Type.DECIMAL  # NUMERIC in PostgreSQL
 
 
@@ -125,13 +130,15 @@ class Typed:
         return self.as_bounded() if self.as_bounded else _cast_numeric(self.node)
 
 
-def check_filter(condition: exp.Expression, resolve: ColumnResolver) -> exp.Expression:
+def check_filter(condition: exp.Expression, resolve: ColumnResolver,
+                 bucket: BucketReader | None = None) -> exp.Expression:
     """Check a WHERE condition and return a rebuilt, safe copy; raise HushError when refused.
 
     ``resolve`` maps a column reference to (policy name, ColumnPolicy) or raises 42703/42P01.
-    The input tree is never modified.
+    ``bucket``, when given, reads bucket expressions (``proxy.sql.keys``): it returns the
+    checked, guarded bucket, or None for a node that is not one. The input tree is never modified.
     """
-    checked = _FilterChecker(resolve).check(condition)
+    checked = _FilterChecker(resolve, bucket).check(condition)
     if checked.type not in ("boolean", "null"):
         raise HushError(DATATYPE_MISMATCH,
                         f"argument of WHERE must be a condition, not {_TYPE_WORDS[checked.type]}",
@@ -387,8 +394,8 @@ def _cast_numeric(node: exp.Expression) -> exp.Expression:
     return exp.Cast(this=node, to=exp.DataType(this=_NUMERIC))
 
 
-def _bound_literal(value: Decimal | int) -> exp.Expression:
-    """A fresh numeric constant for a policy bound (negative bounds as unary minus)."""
+def number_node(value: Decimal | int) -> exp.Expression:
+    """A fresh numeric constant (a policy bound, a key argument; negative as unary minus)."""
     value = Decimal(value)
     node: exp.Expression = exp.Literal.number(format(abs(value), "f"))
     return exp.Neg(this=node) if value < 0 else node
@@ -405,10 +412,10 @@ def _clamped(name: str, column: ColumnPolicy) -> exp.Expression:
     """
     low, high = column.low, column.high
     return exp.Case(
-        ifs=[exp.If(this=exp.LT(this=_column_ref(name), expression=_bound_literal(low)),
-                    true=_cast_numeric(_bound_literal(low))),
-             exp.If(this=exp.GT(this=_column_ref(name), expression=_bound_literal(high)),
-                    true=_cast_numeric(_bound_literal(high)))],
+        ifs=[exp.If(this=exp.LT(this=_column_ref(name), expression=number_node(low)),
+                    true=_cast_numeric(number_node(low))),
+             exp.If(this=exp.GT(this=_column_ref(name), expression=number_node(high)),
+                    true=_cast_numeric(number_node(high)))],
         default=_cast_numeric(_column_ref(name)))
 
 
@@ -417,13 +424,18 @@ def _clamped(name: str, column: ColumnPolicy) -> exp.Expression:
 class _FilterChecker:
     """One recursive pass over a WHERE condition, building the safe copy as it goes."""
 
-    def __init__(self, resolve: ColumnResolver) -> None:
+    def __init__(self, resolve: ColumnResolver, bucket: BucketReader | None = None) -> None:
         self._resolve = resolve
+        self._bucket = bucket
 
     def check(self, node: exp.Expression) -> Typed:
         constant = literal(node)
         if constant is not None:
             return constant
+        if self._bucket is not None:
+            bucket = self._bucket(node)
+            if bucket is not None:
+                return bucket
         method = _DISPATCH.get(type(node))
         if method is None:
             raise refuse_expression(node, "WHERE", WHERE_HINT)

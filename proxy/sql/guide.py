@@ -9,10 +9,11 @@ from __future__ import annotations
 from proxy.sql.analyse import (BUCKETS, HAVING_HINT, LIMIT_HINT, ORDER_HINT, SELECT_HINT,
                                SHAPE_HINT)
 from proxy.sql.filters import FUNCTION_HINT, WHERE_HINT
+from proxy.sql.keys import BUCKET_HINT
 
-GROUP_BY_HINT = ("GROUP BY accepts columns with a declared domain (category, integer and boolean "
-                 "columns, date columns with a bucket) and date_trunc('<"
-                 + "|".join(BUCKETS) + ">', <date column>); every declared value is a cell")
+GROUP_BY_HINT = (BUCKET_HINT.replace("date_trunc('<unit>'", "date_trunc('<" + "|".join(BUCKETS)
+                                     + ">'")
+                 + "; every declared value is a cell, narrowed by the WHERE literals on its column")
 
 # (what, the analyser's own words for what it accepts there)
 ACCEPTED: tuple[tuple[str, str], ...] = (

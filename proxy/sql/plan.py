@@ -17,6 +17,7 @@ Vocabulary:
 from __future__ import annotations
 
 from dataclasses import dataclass
+from decimal import Decimal
 from typing import Literal
 
 import sqlglot.expressions as exp
@@ -35,12 +36,51 @@ class Measure:
     column: str | None = None
 
 
+KeyForm = Literal["column", "date_trunc", "extract", "case", "width_bucket", "floor"]
+Label = str | Decimal | bool | None
+
+
+@dataclass(frozen=True)
+class Narrowing:
+    """What the WHERE literals say about one column: only values in [low, high] (inclusive, in
+    the column's own type; None is unbounded) and, when ``values`` is set, only those values
+    can reach a cell. Decided from the query text alone, so the cells never depend on the data."""
+
+    low: object = None
+    high: object = None
+    values: frozenset[object] | None = None
+    low_open: bool = False  # the bounds exclude themselves (a strict < or >)
+    high_open: bool = False
+
+
 @dataclass(frozen=True)
 class GroupKey:
-    """A GROUP BY key: a column with a declared domain (``bucket`` for date columns)."""
+    """A GROUP BY key: a total function of one column whose values are a finite list known from
+    the policy and the query text (``proxy.sql.domains`` lists them).
+
+    - ``column``: the column itself (category, integer, boolean, or date by day);
+    - ``date_trunc``: ``unit`` is the truncation unit of a date column;
+    - ``extract``: ``unit`` is the field of a date column (extract and date_part);
+    - ``case``: ``branches`` are the checked WHEN conditions over the column, ``labels`` the
+      distinct results in order of first appearance (None: NULL), ``choices`` the label index of
+      each branch and then of ELSE;
+    - ``width_bucket``: ``arguments`` are (low, high, count);
+    - ``floor``: ``floor(column / width) * width``, ``arguments`` is (width,).
+    ``within`` narrows the column's declared domain by the WHERE literals on the column, and
+    ``among`` narrows the key's own values by the WHERE literals on the key expression itself
+    (``extract(dow FROM d) IN (0, 6)``); both are set once the whole query is analysed (keys are
+    compared without them while the query is read).
+    """
 
     column: str
-    bucket: str | None = None
+    form: KeyForm = "column"
+    unit: str | None = None
+    arguments: tuple[Decimal, ...] = ()
+    branches: tuple[exp.Expression, ...] = ()
+    labels: tuple[Label, ...] = ()
+    choices: tuple[int, ...] = ()
+    within: Narrowing | None = None
+    among: Narrowing | None = None
 
 
 @dataclass(frozen=True)

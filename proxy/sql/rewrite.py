@@ -53,11 +53,14 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass
 from decimal import Decimal
+from typing import Sequence
 
 import sqlglot.expressions as exp
 
-from proxy.policy import ColumnPolicy, TablePolicy, date_range
-from proxy.sql.domains import cell_count, domain_size, domain_values
+from proxy.policy import ColumnPolicy, TablePolicy
+from proxy.sql.domains import cell_count, key_size, key_values
+from proxy.sql.filters import date_node
+from proxy.sql.keys import key_expression
 from proxy.sql.plan import GroupKey, Measure, Plan
 
 
@@ -83,8 +86,13 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
     values are summed exactly and turned into step units once per cell instead of per row.
     """
     policy = plan.table
-    cells = cell_count([domain_size(_key_column(policy, k), k.bucket) for k in plan.keys])
-    if policy.individual is None:
+    cells = cell_count([key_size(_key_column(policy, k), k) for k in plan.keys])
+    if cells == 0:  # the WHERE leaves some key no value: no cell, nothing to read
+        tree = _no_cells(plan)
+        groups_kept = None
+        factor = 1
+        rows_cap = 1 if policy.individual is None else policy.individual.rows_cap
+    elif policy.individual is None:
         tree = _row_table_query(plan, exact_columns)
         groups_kept = None
         factor = 1
@@ -99,6 +107,13 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
     return Rewritten(sql=tree.sql(dialect="postgres"), sensitivities=sensitivities,
                      cells=cells, groups_kept=groups_kept,
                      needs_salt=groups_kept is not None and groups_kept < cells)
+
+
+def _no_cells(plan: Plan) -> exp.Select:
+    """A query of the answer's shape (ordinals, then measures) returning no row."""
+    columns = [f"i{j}" for j in range(len(plan.keys))] + [f"m{n}" for n in range(len(plan.measures))]
+    return exp.Select().select(*[exp.alias_(_num(0), name, copy=False) for name in columns],
+                               copy=False).where(exp.false(), copy=False)
 
 
 def _unit_sensitivity(policy: TablePolicy, measure: Measure, rows_cap: int) -> int:
@@ -145,7 +160,9 @@ def _literal(value: object) -> exp.Expression:
     if isinstance(value, int):
         return _num(value)
     if isinstance(value, dt.date):
-        return exp.cast(exp.Literal.string(value.isoformat()), "date", copy=False)
+        return date_node(value.isoformat())  # built directly: exp.cast parses its type name
+    if isinstance(value, Decimal):
+        return _decimal(value)
     return exp.Literal.string(str(value))
 
 
@@ -169,19 +186,11 @@ def _key_column(policy: TablePolicy, key: GroupKey) -> ColumnPolicy:
 
 
 def _key_expression(policy: TablePolicy, key: GroupKey) -> exp.Expression:
-    """The per-row value a key groups by: the column, or its date bucket as a date.
-
-    Dates are bucketed only inside the declared range (others become NULL and match no cell),
-    so date_trunc never sees a date it could fail on.
-    """
-    column = _col(key.column)
-    if key.bucket is None:
-        return column
-    start, end = date_range(policy.columns[key.column])
-    inside = exp.Between(this=_col(key.column), low=_literal(start), high=_literal(end))
-    trunc = exp.cast(exp.Anonymous(this="date_trunc",
-                                   expressions=[exp.Literal.string(key.bucket), column]), "date", copy=False)
-    return exp.Case(ifs=[exp.If(this=inside, true=trunc)])
+    """The per-row value a key groups by: the column, or its guarded bucket (NULL outside the
+    declared domain, matching no cell); a CASE key gives its label's ordinal (``keys``)."""
+    if key.form == "column":
+        return _col(key.column)
+    return key_expression(key, policy.columns[key.column], ordinals=True)
 
 
 def _in_column_units(column: ColumnPolicy, name: str, exact: frozenset[str]) -> bool:
@@ -243,28 +252,41 @@ def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
 
 
 def _domain_source(policy: TablePolicy, key: GroupKey, index: int) -> exp.Expression:
-    """A FROM item ``d<index>(i, v)`` listing the declared values of a key with ordinals."""
+    """A FROM item ``d<index>(i, v)`` listing a key's values with ordinals (a CASE key's values
+    are its label ordinals); must hold: the key has at least one value."""
     column = _key_column(policy, key)
     alias = exp.TableAlias(this=exp.to_identifier(f"d{index}"),
                            columns=[exp.to_identifier("i"), exp.to_identifier("v")])
-    if column.kind == "integer" and key.bucket is None:
-        low, high = (int(v) for v in column.range)  # type: ignore[union-attr]
-        series = exp.Anonymous(this="generate_series", expressions=[_num(low), _num(high)])
+    values = key_values(column, key)
+    first = values[0]
+    if len(values) > 1 and isinstance(first, (int, dt.date)) and not isinstance(first, bool) \
+            and _consecutive(values):
+        # Consecutive integers or days: v = first + i over generate_series(0, n - 1), rather
+        # than a VALUES list of every value (date + integer is a date in PostgreSQL).
+        series = exp.Anonymous(this="generate_series", expressions=[_num(0), _num(len(values) - 1)])
         inner = exp.Select().select(
-            exp.alias_(exp.Sub(this=exp.column("v"), expression=_num(low)), "i", copy=False),
-            exp.column("v"), copy=False).from_(
+            exp.column("i"), exp.alias_(exp.Add(this=_literal(first), expression=exp.column("i")),
+                                         "v", copy=False), copy=False).from_(
             exp.Table(this=series, alias=exp.TableAlias(this=exp.to_identifier("s"),
-                                                          columns=[exp.to_identifier("v")])), copy=False)
+                                                          columns=[exp.to_identifier("i")])), copy=False)
         return exp.Subquery(this=inner, alias=alias)
-    rows = [exp.Tuple(expressions=[_num(i), _literal(v)])
-            for i, v in enumerate(domain_values(column, key.bucket))]
+    rows = [exp.Tuple(expressions=[_num(i), _num(i) if key.form == "case" else _literal(v)])
+            for i, v in enumerate(values)]
     return exp.Values(expressions=rows, alias=alias)
+
+
+def _consecutive(values: Sequence[object]) -> bool:
+    """Whether the values step by exactly one (integer or day) from first to last."""
+    if isinstance(values, range):
+        return values.step == 1
+    step = 1 if isinstance(values[0], int) else dt.timedelta(days=1)
+    return all(b - a == step for a, b in zip(values, values[1:]))  # type: ignore[operator]
 
 
 def _key_matches(key: GroupKey, policy: TablePolicy, grouped: exp.Expression,
                  domain_value: exp.Expression) -> exp.Expression:
     """Join condition between a grouped key and a domain value; categories compare as text."""
-    if _key_column(policy, key).kind == "category":
+    if key.form == "column" and _key_column(policy, key).kind == "category":
         grouped = exp.cast(grouped, "text", copy=False)
     return exp.EQ(this=grouped, expression=domain_value)
 
