@@ -79,6 +79,11 @@ def _parser() -> argparse.ArgumentParser:
     serve.add_argument("--tls-key", type=Path, help="PEM private key for TLS")
     serve.add_argument("--max-connections", type=int, default=200)
     serve.add_argument("--max-message-bytes", type=int, default=1 << 20)
+    serve.add_argument("--workers", type=int, default=0,
+                       help="serving processes sharing the port; --pool-size is divided among "
+                            "them (default: one per core)")
+    serve.add_argument("--worker-memory-mb", type=int, default=1024,
+                       help="a worker above this resident size is replaced (default 1024)")
 
     ask = commands.add_parser("ask", help="answer one query through the engine, no network")
     engine_flags(ask)
@@ -193,6 +198,7 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
 
     from proxy.engine import Engine
     from proxy.wire.server import run_server
+    from proxy.wire.workers import default_workers
 
     policies = _load(args)
     context = None
@@ -201,6 +207,9 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
             raise HushError(CONFIG_FILE_ERROR, "TLS needs both --tls-cert and --tls-key")
         context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
         context.load_cert_chain(str(args.tls_cert), str(args.tls_key))
+    workers = args.workers or default_workers()
+    if workers > 1:
+        return _run_workers(args, policies, context, workers)
     engine = Engine.connect(policies, _need_backend(args), args.ledger, pool_size=args.pool_size)
     catalog = _catalog(policies, args)
     host, port = args.listen
@@ -213,6 +222,25 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
         if catalog is not None:
             catalog.close()
         engine.close()
+    return 0
+
+
+def _run_workers(args: argparse.Namespace, policies, context, workers: int) -> int:
+    """``serve`` with several processes (proxy.wire.workers): the catalog mirrors are built
+    here, before forking; each worker opens its engine with its share of ``--pool-size``."""
+    from proxy.engine import Engine
+    from proxy.wire.workers import WorkerSetup, run_workers
+
+    backend = _need_backend(args)
+    share = max(2, -(-args.pool_size // workers))
+    catalog = _catalog(policies, args)
+    setup = WorkerSetup(
+        make_engine=lambda: Engine.connect(policies, backend, args.ledger, pool_size=share),
+        server_options=dict(ssl_context=context, engine_threads=max(32, 2 * share),
+                            max_message_bytes=args.max_message_bytes,
+                            max_connections=args.max_connections, catalog=catalog),
+        workers=workers, memory_limit_bytes=args.worker_memory_mb << 20)
+    run_workers(setup, *args.listen)
     return 0
 
 
@@ -234,7 +262,7 @@ def _run_demo(args: argparse.Namespace, console: Console) -> int:
         namespace = argparse.Namespace(policies=args.policies, backend=backend_dsn,
                                        ledger=None, pool_size=16, listen=args.listen,
                                        tls_cert=None, tls_key=None, max_connections=200,
-                                       max_message_bytes=1 << 20)
+                                       max_message_bytes=1 << 20, workers=1)
         _run_serve(namespace, console)
     return run_demo(args.backend, args.data_dir, Path(args.policies), args.listen, serve)
 

@@ -32,7 +32,7 @@ from typing import Any
 
 import sqlglot.expressions as exp
 
-from proxy import noise
+from proxy import faults, noise
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
 from proxy.backend import Backend, QueryControl
 from proxy.errors import INTERNAL_ERROR, INVALID_PARAMETER_VALUE, QUERY_CANCELED, HushError
@@ -226,6 +226,7 @@ class Engine:
                                                 prepared.fingerprint)
         outcome = "failed"
         try:
+            faults.pause("after-reserve")
             settings = ({PICK_SALT_SETTING: secrets.token_hex(16)}
                         if prepared.rewritten.needs_salt else None)
             true_rows = self.backend.run(prepared.rewritten.sql, control, settings)

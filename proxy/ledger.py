@@ -45,6 +45,7 @@ from psycopg_pool import ConnectionPool, PoolTimeout
 
 from proxy.errors import (
     BUDGET_EXHAUSTED,
+    CONNECTION_FAILURE,
     INSUFFICIENT_PRIVILEGE,
     INTERNAL_ERROR,
     INVALID_PARAMETER_VALUE,
@@ -210,6 +211,9 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
 SCHEMA_VERSION = len(_MIGRATIONS)
 """The ledger schema version this program creates and understands."""
 
+# How long a call waits for a pooled connection before failing closed (08006): as in
+# proxy.backend, short enough that a database outage is reported within seconds.
+BORROW_TIMEOUT_SECONDS = 10.0
 _UNAVAILABLE_HINT = "try again shortly; if it persists, tell an administrator"
 
 
@@ -417,7 +421,7 @@ def _borrow(pool: ConnectionPool, *, transaction: bool) -> Iterator[psycopg.Conn
     the block roll the transaction back and pass through unchanged.
     """
     try:
-        with pool.connection(timeout=30) as conn:
+        with pool.connection(timeout=BORROW_TIMEOUT_SECONDS) as conn:
             if transaction:
                 with conn.transaction():
                     yield conn
@@ -426,8 +430,22 @@ def _borrow(pool: ConnectionPool, *, transaction: bool) -> Iterator[psycopg.Conn
     except psycopg.errors.LockNotAvailable as error:
         raise HushError(INTERNAL_ERROR, "the privacy ledger is busy; nothing was run",
                         _UNAVAILABLE_HINT) from error
-    except (PoolTimeout, psycopg.OperationalError) as error:
+    except PoolTimeout as error:
         raise _unavailable() from error
+    except psycopg.OperationalError as error:
+        # The server may have restarted under the pool: drop every idle connection it broke,
+        # so the next call connects afresh instead of failing on another stale one.
+        _discard_broken(pool)
+        raise _unavailable() from error
+
+
+def _discard_broken(pool: ConnectionPool) -> None:
+    """Asks the pool to test its idle connections and replace the broken ones (in the
+    pool's own worker threads); never raises."""
+    try:
+        pool.check()
+    except Exception:
+        pass
 
 
 def _refused(refusal: str, name: str, limit: Decimal | None, left: Decimal | None,
@@ -464,7 +482,8 @@ def _unknown_table(name: str) -> HushError:
 
 
 def _unavailable() -> HushError:
-    return HushError(INTERNAL_ERROR, "the privacy ledger is unavailable; nothing was run",
+    """Connection-failure class (08006): clients and pools treat it as "retry later"."""
+    return HushError(CONNECTION_FAILURE, "the privacy ledger is unavailable; nothing was run",
                      _UNAVAILABLE_HINT)
 
 
