@@ -18,6 +18,7 @@ import psycopg
 from psycopg_pool import ConnectionPool, PoolTimeout
 
 from proxy import faults
+from proxy.pooling import RECONNECT_GIVE_UP_SECONDS, check_idle
 from proxy.errors import CONNECTION_FAILURE, INTERNAL_ERROR, QUERY_CANCELED, HushError
 
 log = logging.getLogger("hushql.backend")
@@ -74,7 +75,9 @@ class Backend:
         self.dsn = dsn
         self._timeout = statement_timeout_ms
         self._pool = ConnectionPool(dsn, min_size=1, max_size=pool_size, open=False,
-                                    configure=self._configure, name="hushql-backend")
+                                    configure=self._configure, check=check_idle,
+                                    reconnect_timeout=RECONNECT_GIVE_UP_SECONDS,
+                                    name="hushql-backend")
         self._pool.open(wait=True, timeout=open_timeout)
 
     def _configure(self, connection: psycopg.Connection[Any]) -> None:

@@ -52,6 +52,7 @@ from proxy.errors import (
     UNDEFINED_TABLE,
     HushError,
 )
+from proxy.pooling import RECONNECT_GIVE_UP_SECONDS, check_idle
 
 if TYPE_CHECKING:
     from proxy.policy import Policies
@@ -252,6 +253,7 @@ class Ledger:
         self._sql = _Statements(schema)
         self._pool = ConnectionPool(
             dsn, min_size=1, max_size=pool_size, open=False, configure=self._configure,
+            check=check_idle, reconnect_timeout=RECONNECT_GIVE_UP_SECONDS,
             kwargs={"application_name": "hushql-ledger"}, name=f"hushql-ledger-{schema}")
         try:
             self._pool.open(wait=True, timeout=30)
