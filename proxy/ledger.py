@@ -522,6 +522,21 @@ class Ledger:
         if not row or not row[0]:
             raise ValueError(f"charge {charge_id} is unknown or already finished")
 
+    def finish_many(self, charge_ids: list[int], outcome: str) -> int:
+        """``finish`` for several charges in one transaction and one round trip (the outcomes
+        of answers released together); returns how many were recorded (unknown or finished
+        ones are skipped). Raises ValueError for an unknown outcome."""
+        if outcome not in OUTCOMES:
+            raise ValueError(f"outcome must be one of {', '.join(OUTCOMES)}, not {outcome!r}")
+        if not charge_ids:
+            return 0
+        with self._connection() as conn:
+            with conn.pipeline(), conn.transaction():
+                cursors = [conn.execute(self._sql.finish, [charge_id, outcome])
+                           for charge_id in charge_ids]
+            rows = [cursor.fetchone() for cursor in cursors]
+        return sum(1 for row in rows if row and row[0])
+
     def remaining(self, analyst: str) -> Decimal:
         """Epsilon the analyst may still spend (never negative); HushError 42501 if unknown."""
         return self._analyst_value(self._sql.remaining, analyst)
