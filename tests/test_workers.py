@@ -159,6 +159,22 @@ def test_a_killed_worker_is_replaced_and_the_port_keeps_answering(
     assert served.process.returncode == 0
 
 
+def test_a_worker_above_the_memory_limit_is_replaced_and_its_sessions_finish(
+        demo_dsn: str, tmp_path: Path) -> None:
+    """With a 1 MB limit every worker is over it: each is replaced within a check period, while
+    a session it already holds keeps working (the old worker drains) and newcomers are served."""
+    _reset_ledger(demo_dsn)
+    with serving(demo_dsn, tmp_path / "serve.log", workers=2,
+                 extra=("--worker-memory-mb", "1")) as served:
+        with served.connect(autocommit=True) as held:
+            assert held.execute(QUERY).fetchone() is not None
+            served.wait_for_log("above the limit; replacing it", count=2, timeout=20)
+            assert held.execute(QUERY).fetchone() is not None
+        with served.connect(autocommit=True) as newcomer:
+            assert newcomer.execute(QUERY).fetchone() is not None
+    assert served.process.returncode == 0
+
+
 def test_two_serve_processes_on_one_ledger_never_overspend_nor_lose_a_charge(
         demo_dsn: str, tmp_path: Path) -> None:
     """Two `hushql serve` processes, one ledger, 64 clients at once, all as the planner (budget
