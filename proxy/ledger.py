@@ -581,8 +581,8 @@ class Ledger:
 def _borrow(pool: ConnectionPool, *, transaction: bool) -> Iterator[psycopg.Connection[Any]]:
     """A pooled connection, optionally inside one transaction that commits when the block ends.
 
-    An unreachable, broken or locked-up ledger becomes HushError XX000 with a plain message:
-    failing closed, since no answer may go out without its charge. (A failure at COMMIT may still
+    An unreachable or broken ledger becomes HushError 08006 (connection failure: clients may
+    retry), a locked-up one XX000, each with a plain message: failing closed, since no answer may go out without its charge. (A failure at COMMIT may still
     have recorded the charge; it then stands, which errs on the safe side.) HushErrors raised in
     the block roll the transaction back and pass through unchanged.
     """

@@ -112,12 +112,15 @@ def test_workers_share_one_port_and_cancels_reach_the_query_wherever_they_land(
     is cancelled from a new connection that either worker may accept. All must end with 57014
     well before the 20 s: a cancel that landed on the other worker was forwarded."""
     _reset_ledger(demo_dsn)
-    with serving(demo_dsn, tmp_path / "serve.log", workers=2, pool_size=18,
+    with serving(demo_dsn, tmp_path / "serve.log", workers=2, pool_size=36,
                  env={"HUSHQL_TEST_FAULTS": "during-query=20"}) as served:
         served.wait_for_log("serving (pid", count=2)
-        conns = [served.connect() for _ in range(8)]
+        conns = [served.connect() for _ in range(4)]
+        # The kernel picks the worker; connect until both hold some (at most 16 in all).
+        while len({slot_of(c.info.backend_pid) for c in conns}) < 2 and len(conns) < 16:
+            conns.append(served.connect())
         slots = {slot_of(c.info.backend_pid) for c in conns}
-        assert slots == {0, 1}, f"8 connections all went to slot(s) {slots}"
+        assert slots == {0, 1}, f"{len(conns)} connections all went to slot(s) {slots}"
         started = time.monotonic()
 
         def ask_then_cancelled(conn: psycopg.Connection) -> str | None:
