@@ -125,7 +125,10 @@ def start_proxy_subprocess(policies: Path, backend: str, pool_size: int, max_con
         command += ["-m", "cProfile", "-o", str(profile)]
     command += ["-m", "proxy.cli", "serve", "--policies", str(policies), "--backend", backend,
                 "--listen", f"127.0.0.1:{port}", "--pool-size", str(pool_size),
-                "--max-connections", str(max_connections)]
+                "--max-connections", str(max_connections),
+                # One process: its CPU time per answer is read from /proc below, and the
+                # figures stay comparable with earlier runs (bench_load.py runs several).
+                "--workers", "1"]
     log = open(log_path, "wb")  # noqa: SIM115 (closed by stop)
     child = subprocess.Popen(command, cwd=ROOT, stdout=log, stderr=subprocess.STDOUT)
 

@@ -15,11 +15,27 @@ import threading
 from typing import Any
 
 import psycopg
-from psycopg_pool import ConnectionPool
+from psycopg_pool import ConnectionPool, PoolTimeout
 
-from proxy.errors import INTERNAL_ERROR, QUERY_CANCELED, HushError
+from proxy import faults
+from proxy.pooling import RECONNECT_GIVE_UP_SECONDS, check_idle
+from proxy.errors import CONNECTION_FAILURE, INTERNAL_ERROR, QUERY_CANCELED, HushError
 
 log = logging.getLogger("hushql.backend")
+
+# How long a query waits for a pooled connection: long enough for any queue at full load, short
+# enough that a client learns of a database outage within seconds rather than hanging.
+BORROW_TIMEOUT_SECONDS = 10.0
+_ASK_ADMIN = "ask an administrator to check the table's policy and source"
+# SQLSTATEs of a server that is going away or not yet back (PostgreSQL Appendix A, classes 08
+# and 57P0x); a lost socket has none.
+_GONE_STATES = ("57P01", "57P02", "57P03")
+
+
+def _connection_lost(error: psycopg.OperationalError) -> bool:
+    """True when the error means the connection or the server went away, not the query failed."""
+    state = error.sqlstate
+    return state is None or state in _GONE_STATES or state.startswith("08")
 
 
 class QueryControl:
@@ -59,7 +75,9 @@ class Backend:
         self.dsn = dsn
         self._timeout = statement_timeout_ms
         self._pool = ConnectionPool(dsn, min_size=1, max_size=pool_size, open=False,
-                                    configure=self._configure, name="hushql-backend")
+                                    configure=self._configure, check=check_idle,
+                                    reconnect_timeout=RECONNECT_GIVE_UP_SECONDS,
+                                    name="hushql-backend")
         self._pool.open(wait=True, timeout=open_timeout)
 
     def _configure(self, connection: psycopg.Connection[Any]) -> None:
@@ -79,14 +97,19 @@ class Backend:
         ``settings`` are set on the session just before the query (set_config(..., false)); every
         query that reads one sets it first, so a value left on a pooled connection is never used.
 
-        Raises HushError 57014 when cancelled, XX000 on any other failure (no backend text).
+        Raises HushError 57014 when cancelled, 08006 when the server is gone or unreachable (no
+        connection within ``BORROW_TIMEOUT_SECONDS``), XX000 on any other failure (no backend
+        text).
         """
         try:
-            with self._pool.connection() as connection:
+            with self._pool.connection(timeout=BORROW_TIMEOUT_SECONDS) as connection:
                 if control is not None and not control._attach(connection):
                     raise HushError(QUERY_CANCELED, "canceling statement due to user request")
                 try:
                     with connection.cursor() as cursor:
+                        delay = faults.seconds("during-query")  # test-only, else None
+                        if delay is not None:
+                            cursor.execute("SELECT pg_sleep(%s)", (delay,))
                         for name, value in (settings or {}).items():
                             cursor.execute("SELECT set_config(%s, %s, false)", (name, value))
                         cursor.execute(sql, prepare=False)
@@ -102,11 +125,30 @@ class Backend:
             log.warning("backend query timed out: %s", type(error).__name__)
             raise HushError(QUERY_CANCELED, "canceling statement due to statement timeout",
                             hint="the query took longer than the proxy allows") from None
+        except (PoolTimeout, psycopg.OperationalError) as error:
+            if not isinstance(error, PoolTimeout) and not _connection_lost(error):
+                log.error("backend query failed: %s", type(error).__name__)
+                raise HushError(INTERNAL_ERROR, "the backend could not run the query",
+                                hint=_ASK_ADMIN) from None
+            # The server went away (restart, shutdown, network): drop the pool's idle
+            # connections it broke, so that queries work again as soon as it is back.
+            log.warning("backend unavailable: %s", type(error).__name__)
+            if not isinstance(error, PoolTimeout):
+                self._discard_broken()
+            raise HushError(CONNECTION_FAILURE, "the database is unavailable or too busy; the "
+                            "query did not complete", hint="try again shortly") from None
         except Exception as error:
             # Logged for the operator by class only; the text might quote a row value.
             log.error("backend query failed: %s", type(error).__name__)
             raise HushError(INTERNAL_ERROR, "the backend could not run the query",
-                            hint="ask an administrator to check the table's policy and source") from None
+                            hint=_ASK_ADMIN) from None
+
+    def _discard_broken(self) -> None:
+        """Has the pool test its idle connections and replace the broken ones; never raises."""
+        try:
+            self._pool.check()
+        except Exception:
+            log.debug("pool check failed", exc_info=True)
 
     def column_types(self, relation: str) -> dict[str, str]:
         """Column name -> PostgreSQL type name of a backend relation (schema-qualified or not)."""

@@ -95,6 +95,11 @@ def _parser() -> argparse.ArgumentParser:
                        help="DSN allowed to create the catalog mirrors at start "
                             "(HUSHQL_MIRROR_ADMIN); without it, `hushql mirrors` makes them")
     serve.set_defaults(allow_demo_accounts=False)  # only `hushql demo` serves the demo accounts
+    serve.add_argument("--workers", type=int, default=0,
+                       help="serving processes sharing the port; --pool-size is divided among "
+                            "them (default: one per core)")
+    serve.add_argument("--worker-memory-mb", type=int, default=1024,
+                       help="a worker above this resident size is replaced (default 1024)")
 
     ask = commands.add_parser("ask", help="answer one query through the engine, no network")
     engine_flags(ask)
@@ -249,6 +254,7 @@ def print_answer(answer, console: Console, *, show_cost: bool = True) -> None:
 
 def _run_serve(args: argparse.Namespace, console: Console) -> int:
     from proxy.wire.server import run_server
+    from proxy.wire.workers import default_workers
 
     policies = _load(args)
     from proxy.safe_config import refuse_unsafe_serving
@@ -259,6 +265,9 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
     preflight.check_can_listen(host, port)
     refuse_unsafe_serving(policies, _need_backend(args),
                           allow_demo_accounts=args.allow_demo_accounts)
+    workers = args.workers or default_workers()
+    if workers > 1:
+        return _run_workers(args, policies, context, workers)
     engine = _connect(policies, args, pool_size=args.pool_size)
     # Administrators' read-only ledger relations in front of the catalog.
     catalog = LedgerRelations(policies, args.ledger or args.backend, _catalog(policies, args))
@@ -292,6 +301,39 @@ def _reload_on_sighup(args: argparse.Namespace, engine, relations) -> None:
         signal.signal(signal.SIGHUP, reloader.reload_in_background)
 
 
+def _run_workers(args: argparse.Namespace, policies, context, workers: int) -> int:
+    """``serve`` with several processes (proxy.wire.workers): the catalog mirrors are built
+    here, before forking; each worker opens its engine with its share of ``--pool-size``.
+    SIGHUP replaces every worker with one serving the policy folder as it now is, if it passes
+    the start-up checks (proxy.reload.load_checked)."""
+    from proxy.engine import Engine
+    from proxy.reload import load_checked
+    from proxy.wire.ledger_relations import LedgerRelations
+    from proxy.wire.workers import WorkerSetup, run_workers
+
+    backend = _need_backend(args)
+    share = max(2, -(-args.pool_size // workers))
+
+    def setup_for(policies) -> WorkerSetup:
+        # Administrators' ledger relations in front of the catalog, built before forking (they
+        # and the catalog open their connections lazily, in each worker).
+        catalog = LedgerRelations(policies, args.ledger or backend, _catalog(policies, args))
+        return WorkerSetup(
+            make_engine=lambda: Engine.connect(policies, backend, args.ledger, pool_size=share),
+            server_options=dict(ssl_context=context, engine_threads=max(32, 2 * share),
+                                max_message_bytes=args.max_message_bytes,
+                                limits=policies.access.connections,
+                                max_connections=args.max_connections, catalog=catalog),
+            workers=workers, memory_limit_bytes=args.worker_memory_mb << 20, renew=renew)
+
+    def renew() -> WorkerSetup | None:
+        fresh = load_checked(args.policies, backend, args.allow_demo_accounts)
+        return None if fresh is None else setup_for(fresh)
+
+    run_workers(setup_for(policies), *args.listen)
+    return 0
+
+
 def _catalog(policies, args: argparse.Namespace):
     """The data-free catalog mirrors: made at start only with --mirror-admin (see
     proxy.mirrors), else those an administrator made."""
@@ -311,7 +353,7 @@ def _run_demo(args: argparse.Namespace, console: Console) -> int:
                                        ledger=None, pool_size=16, listen=args.listen,
                                        tls_cert=None, tls_key=None, max_connections=None,
                                        max_message_bytes=1 << 20, allow_demo_accounts=True,
-                                       mirror_admin=backend_dsn)
+                                       mirror_admin=backend_dsn, workers=1)
         _run_serve(namespace, console)
     if args.no_load and not args.backend:
         raise HushError(CONFIG_FILE_ERROR, "--no-load serves a scenario loaded before, so it "

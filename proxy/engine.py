@@ -35,7 +35,7 @@ import sqlglot
 import sqlglot.errors
 import sqlglot.expressions as exp
 
-from proxy import noise
+from proxy import faults, noise
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
 from proxy.backend import Backend, QueryControl
 from proxy.errors import INTERNAL_ERROR, INVALID_PARAMETER_VALUE, QUERY_CANCELED, HushError
@@ -113,6 +113,8 @@ class Engine:
         self._exact: dict[str, frozenset[str]] = {}
         # Records answered outcomes after the answer is released, in order, on one thread.
         self._notes = ThreadPoolExecutor(max_workers=1, thread_name_prefix="hushql-outcomes")
+        self._answered: list[int] = []  # charges whose 'answered' note is not yet recorded
+        self._answered_lock = threading.Lock()
         from proxy.safe_config import policy_source
 
         for line in ledger.sync_budgets(policies, source=policy_source(policies)):
@@ -256,6 +258,7 @@ class Engine:
                                                 prepared.fingerprint)
         outcome = "failed"
         try:
+            faults.pause("after-reserve")
             settings = ({PICK_SALT_SETTING: secrets.token_hex(16)}
                         if prepared.rewritten.needs_salt else None)
             true_rows = self.backend.run(prepared.rewritten.sql, control, settings)
@@ -270,10 +273,31 @@ class Engine:
         finally:
             if outcome == "answered":
                 # A note, not a charge (the charge is durable already): off the answer's path.
-                self._notes.submit(self._finish, charge, outcome)
+                self._note_answered(charge)
             else:
                 self._finish(charge, outcome)
         return dataclasses.replace(answer, remaining=remaining)
+
+    def _note_answered(self, charge: int) -> None:
+        """Queues an 'answered' note; the notes thread records all queued notes in one round
+        trip, so under load the notes cost the ledger one transaction per batch of answers."""
+        with self._answered_lock:
+            self._answered.append(charge)
+            first = len(self._answered) == 1
+        if first:
+            self._notes.submit(self._record_answered)
+
+    def _record_answered(self) -> None:
+        with self._answered_lock:
+            charges, self._answered = self._answered, []
+        try:
+            recorded = self.ledger.finish_many(charges, "answered")
+        except Exception:
+            log.exception("could not record the outcome of %d charges", len(charges))
+            return
+        if recorded != len(charges):
+            log.warning("%d of %d answered charges were unknown or already finished",
+                        len(charges) - recorded, len(charges))
 
     def _finish(self, charge: int, outcome: str) -> None:
         """Record the outcome of a charge; a failure to record it loses only the note."""

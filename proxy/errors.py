@@ -31,6 +31,7 @@ DUPLICATE_CURSOR = "42P03"
 TOO_MANY_CONNECTIONS = "53300"
 INVALID_AUTHORIZATION = "28000"
 SUCCESSFUL_COMPLETION = "00000"  # the code a NOTICE carries
+CONNECTION_FAILURE = "08006"  # the backend or ledger database went away; nothing was run
 CANNOT_CONNECT = "08001"  # sqlclient_unable_to_establish_sqlconnection
 CONFIG_FILE_ERROR = "F0000"
 ADMIN_SHUTDOWN = "57P01"

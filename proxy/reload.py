@@ -8,6 +8,9 @@ Rules of this module:
   engine swaps its policies and drops its plans, the catalog mirrors are rebuilt for the new
   grants and administrators change with it. Both outcomes are logged.
 - The reload runs on a thread of its own, one at a time, so the server keeps answering.
+- With several workers (``serve --workers N``) the supervisor checks the new set the same way
+  (``load_checked``) and, when it passes, replaces every worker in turn: each old worker stops
+  accepting and finishes its sessions while its successor, started with the new set, accepts.
 """
 
 from __future__ import annotations
@@ -19,7 +22,7 @@ from typing import Any, Callable
 
 from proxy.engine import Engine
 from proxy.errors import HushError
-from proxy.policy import PolicyError, load_policies
+from proxy.policy import Policies, PolicyError, load_policies
 from proxy.safe_config import policy_source, refuse_unsafe_serving
 from proxy.wire.ledger_relations import LedgerRelations
 
@@ -43,15 +46,9 @@ class PolicyReloader:
     def reload(self) -> bool:
         """Load, check and apply the policy folder; False (old set kept) on any problem."""
         with self._lock:
-            log.info("reloading policies from %s", self._directory)
-            try:
-                policies = load_policies(self._directory)
-                refuse_unsafe_serving(policies, self._backend,
-                                      allow_demo_accounts=self._allow_demo)
-            except PolicyError as error:
-                return self._refused(error.problems)
-            except HushError as error:
-                return self._refused(error.message.splitlines()[1:] or [error.message])
+            policies = load_checked(self._directory, self._backend, self._allow_demo)
+            if policies is None:
+                return False
             try:
                 catalog = self._build_catalog(policies)
                 self._engine.reload(policies)
@@ -69,7 +66,27 @@ class PolicyReloader:
 
     @staticmethod
     def _refused(problems: list[str]) -> bool:
-        for line in problems:
-            log.error("policy reload refused: %s", line)
-        log.error("policy reload refused; the previous policies stay in force")
+        _log_refusal(problems)
         return False
+
+
+def load_checked(directory: str | Path, backend_dsn: str, allow_demo_accounts: bool = False
+                 ) -> Policies | None:
+    """The policy folder if it passes every start-up check; else None, each problem logged."""
+    log.info("reloading policies from %s", directory)
+    try:
+        policies = load_policies(directory)
+        refuse_unsafe_serving(policies, backend_dsn, allow_demo_accounts=allow_demo_accounts)
+    except PolicyError as error:
+        _log_refusal(error.problems)
+        return None
+    except HushError as error:
+        _log_refusal(error.message.splitlines()[1:] or [error.message])
+        return None
+    return policies
+
+
+def _log_refusal(problems: list[str]) -> None:
+    for line in problems:
+        log.error("policy reload refused: %s", line)
+    log.error("policy reload refused; the previous policies stay in force")

@@ -1,0 +1,252 @@
+"""Load test: many analysts at once through ``hushql serve --workers N``, checked against the
+ledger.
+
+    .venv/bin/python benchmarks/bench_load.py [--backend ADMIN_DSN] [--clients 32]
+        [--seconds 10] [--workers N] [--pool-size 16]
+
+Loads the demo into a database of its own on ``--backend``'s server (default
+``HUSHQL_TEST_DSN``; dropped at the end) and serves it with a copy of the demo policies whose
+budgets no run exhausts, except the researcher's, which is ``RESEARCHER_BUDGET`` so that its
+later queries are refused for budget (53400). ``--clients`` asyncpg connections (half planner,
+half researcher) send a fixed mix for ``--seconds``:
+
+- accepted: ``SELECT COUNT(*) FROM households WHERE occupants = k``, k varying (charged 0.1);
+- refused by the analysis: a query for raw rows (0A000, charged nothing);
+- refused for want of a grant: the researcher asking readings (42501).
+
+Then the same accepted query straight to PostgreSQL, with as many clients for as long, for the
+ratio. It prints throughput, latency percentiles, answers by SQLSTATE, and the ledger's totals
+checked against the clients' own counts: every answer a client received must have a charge row,
+and every charge row an answer (or an error the client saw after its charge). Nothing is
+asserted about speed; a mismatch in the books exits 1.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import collections
+import os
+import re
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+import uuid
+from dataclasses import dataclass, field
+from decimal import Decimal
+from pathlib import Path
+
+import psycopg
+from psycopg import sql
+from psycopg.conninfo import conninfo_to_dict
+from rich.console import Console
+from rich.table import Table
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+from benchmarks.bench_wire import drop_catalog_mirrors  # noqa: E402
+from benchmarks.common import generous_policies  # noqa: E402
+
+from proxy.demo import demo_accounts, load_scenario  # noqa: E402
+from proxy.dsn import with_database  # noqa: E402
+from proxy.localpg import free_port  # noqa: E402
+from proxy.wire.workers import default_workers  # noqa: E402
+
+RESEARCHER_BUDGET = "2.0"  # 20 answers at 0.1, then 53400
+EPSILON = Decimal("0.1")  # the policy default each accepted query is charged
+ACCEPTED = "SELECT COUNT(*) FROM households WHERE occupants = {k}"
+DIRECT = "SELECT COUNT(*) FROM utility.households WHERE occupants = {k}"  # the exact query
+RAW_ROWS = "SELECT household_id FROM households"
+NOT_GRANTED = "SELECT COUNT(*) FROM readings"
+MIX = ["accepted"] * 8 + ["raw rows", "not granted"]  # per client, cycled
+
+
+@dataclass
+class ClientCounts:
+    """What one client saw: latencies of answers (s), outcomes by SQLSTATE ("ok" for answers)."""
+
+    analyst: str
+    latencies: list[float] = field(default_factory=list)
+    outcomes: collections.Counter[str] = field(default_factory=collections.Counter)
+
+
+def _statement(kind: str, analyst: str, k: int) -> str:
+    if kind == "accepted":
+        return ACCEPTED.format(k=k % 8 + 1)
+    if kind == "raw rows":
+        return RAW_ROWS
+    return NOT_GRANTED if analyst == "researcher" else RAW_ROWS
+
+
+async def _client(host: str, port: int, database: str, analyst: str, password: str | None,
+                  stop_at: float, mixed: bool, index: int) -> ClientCounts:
+    import asyncpg
+
+    counts = ClientCounts(analyst)
+    conn = await asyncpg.connect(host=host, port=port, user=analyst, password=password,
+                                 database=database, ssl=False, timeout=60)
+    try:
+        n = index
+        while time.monotonic() < stop_at:
+            kind = MIX[n % len(MIX)] if mixed else "accepted"
+            text = _statement(kind, analyst, n) if mixed else DIRECT.format(k=n % 8 + 1)
+            n += 1
+            started = time.perf_counter()
+            try:
+                await conn.fetch(text)
+            except asyncpg.PostgresError as error:
+                counts.outcomes[error.sqlstate or "none"] += 1
+                continue
+            counts.latencies.append(time.perf_counter() - started)
+            counts.outcomes["ok"] += 1
+    finally:
+        await conn.close()
+    return counts
+
+
+async def _run(host: str, port: int, database: str, clients: int, seconds: float, mixed: bool,
+               users: list[tuple[str, str | None]]) -> list[ClientCounts]:
+    stop_at = time.monotonic() + seconds
+    return list(await asyncio.gather(*(
+        _client(host, port, database, *users[i % len(users)], stop_at, mixed, i)
+        for i in range(clients))))
+
+
+def _percentile(values: list[float], q: float) -> float:
+    ordered = sorted(values)
+    return ordered[min(len(ordered) - 1, int(q * len(ordered)))] if ordered else float("nan")
+
+
+def _with_researcher_budget(policies: Path) -> None:
+    access = policies / "access.toml"
+    text = access.read_text()
+    text, n = re.subn(r"(\[analysts\.researcher\][^\[]*?budget\s*=\s*)[0-9.]+",
+                      rf"\g<1>{RESEARCHER_BUDGET}", text, flags=re.S)
+    assert n == 1, "the researcher's budget line was not found"
+    access.write_text(text)
+
+
+def _books(dsn: str) -> dict[str, tuple[Decimal, int, int]]:
+    """Per analyst: spent, charge rows, charge rows that did not end 'answered' (yet)."""
+    with psycopg.connect(dsn) as conn:
+        rows = conn.execute(
+            "SELECT b.analyst, b.spent, count(c.id), count(c.id) FILTER (WHERE c.outcome IN "
+            "('failed', 'cancelled')) FROM hushql.analyst_budgets b LEFT JOIN hushql.charges c "
+            "USING (analyst) GROUP BY b.analyst, b.spent").fetchall()
+    return {a: (spent, n, failed) for a, spent, n, failed in rows}
+
+
+def _wait_for_proxy(port: int, password: str, proxy: subprocess.Popen[bytes]) -> None:
+    deadline = time.monotonic() + 60
+    while True:
+        try:
+            psycopg.connect(host="127.0.0.1", port=port, user="planner", password=password,
+                            dbname="hushql_demo", connect_timeout=2).close()
+            return
+        except psycopg.OperationalError:
+            if proxy.poll() is not None or time.monotonic() > deadline:
+                raise SystemExit("the proxy did not start") from None
+            time.sleep(0.2)
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--backend", default=os.environ.get("HUSHQL_TEST_DSN"),
+                        help="admin DSN of a PostgreSQL server (default HUSHQL_TEST_DSN)")
+    parser.add_argument("--clients", type=int, default=32)
+    parser.add_argument("--seconds", type=float, default=10.0)
+    parser.add_argument("--workers", type=int, default=default_workers())
+    parser.add_argument("--pool-size", type=int, default=16)
+    parser.add_argument("--households", type=int, default=3000)
+    args = parser.parse_args()
+    if not args.backend:
+        parser.error("give --backend or set HUSHQL_TEST_DSN")
+    console = Console(width=120)
+    passwords = dict(demo_accounts())
+    folder = Path(tempfile.mkdtemp(prefix="hushql-load-"))
+    name = f"hushql_load_{uuid.uuid4().hex[:8]}"
+    with psycopg.connect(args.backend, autocommit=True) as conn:
+        conn.execute(sql.SQL("CREATE DATABASE {}").format(sql.Identifier(name)))
+    dsn = with_database(args.backend, name)
+    policies = generous_policies(folder)
+    _with_researcher_budget(policies)
+    proxy = None
+    try:
+        load_scenario(dsn, households=args.households, progress=False)
+        port = free_port()
+        with open(folder / "serve.log", "wb") as log:
+            proxy = subprocess.Popen(
+                [sys.executable, "-m", "proxy.cli", "serve", "--workers", str(args.workers),
+                 "--policies", str(policies), "--backend", dsn, "--listen",
+                 f"127.0.0.1:{port}", "--pool-size", str(args.pool_size)],
+                cwd=ROOT, stderr=log, stdout=subprocess.DEVNULL)
+        _wait_for_proxy(port, passwords["planner"], proxy)
+        analysts = [("planner", passwords["planner"]), ("researcher", passwords["researcher"])]
+        started = time.monotonic()
+        through = asyncio.run(_run("127.0.0.1", port, "hushql_demo", args.clients, args.seconds, True,
+                                   analysts))
+        elapsed = time.monotonic() - started
+        server = conninfo_to_dict(dsn)
+        direct_started = time.monotonic()
+        direct = asyncio.run(_run(
+            str(server.get("host") or "127.0.0.1"), int(server.get("port") or 5432), name,
+            args.clients, args.seconds, False,
+            [(str(server.get("user") or "postgres"), server.get("password"))]))
+        direct_elapsed = time.monotonic() - direct_started
+        time.sleep(1.0)  # outcomes of the last answers are noted off the answer path
+        books = _books(dsn)
+    finally:
+        if proxy is not None:
+            proxy.terminate()
+            proxy.wait(30)
+        drop_catalog_mirrors(policies, dsn)
+        with psycopg.connect(args.backend, autocommit=True) as conn:
+            conn.execute(sql.SQL("DROP DATABASE IF EXISTS {} WITH (FORCE)").format(
+                sql.Identifier(name)))
+        shutil.rmtree(folder, ignore_errors=True)
+    return _report(console, args, through, elapsed, direct, direct_elapsed, books)
+
+
+def _report(console: Console, args: argparse.Namespace, through: list[ClientCounts],
+            elapsed: float, direct: list[ClientCounts], direct_elapsed: float,
+            books: dict[str, tuple[Decimal, int, int]]) -> int:
+    table = Table("", "answers/s", "p50 ms", "p95 ms", "p99 ms", "answers", "errors by SQLSTATE",
+                  title=f"{args.clients} clients for {args.seconds:.0f} s, "
+                        f"{args.workers} worker(s), pool {args.pool_size}")
+    for label, counts, seconds in (("through hushql (mix)", through, elapsed),
+                                   ("straight to PostgreSQL", direct, direct_elapsed)):
+        latencies = [x for c in counts for x in c.latencies]
+        outcomes = sum((c.outcomes for c in counts), collections.Counter())
+        errors = ", ".join(f"{state} {n}" for state, n in sorted(outcomes.items())
+                           if state != "ok") or "-"
+        table.add_row(label, f"{outcomes['ok'] / seconds:.0f}",
+                      f"{1000 * statistics.median(latencies):.2f}" if latencies else "-",
+                      f"{1000 * _percentile(latencies, 0.95):.2f}",
+                      f"{1000 * _percentile(latencies, 0.99):.2f}", str(outcomes["ok"]), errors)
+    console.print(table)
+    ok = True
+    ledger = Table("analyst", "answers seen", "charge rows", "failed/cancelled rows",
+                   "spent (ledger)", "answers x 0.1", "books", title="ledger against the clients")
+    for analyst in ("planner", "researcher"):
+        seen = sum(c.outcomes["ok"] for c in through if c.analyst == analyst)
+        spent, rows, failed = books.get(analyst, (Decimal(0), 0, 0))
+        agrees = rows == seen + failed and spent == EPSILON * rows
+        ok = ok and agrees
+        ledger.add_row(analyst, str(seen), str(rows), str(failed), str(spent),
+                       str(EPSILON * seen), "agree" if agrees else "MISMATCH")
+    console.print(ledger)
+    direct_answers = sum(c.outcomes["ok"] for c in direct)
+    if direct_answers:
+        ratio = (sum(c.outcomes["ok"] for c in through) / elapsed) / (direct_answers
+                                                                      / direct_elapsed)
+        console.print(f"answers/s through hushql / direct: {ratio:.1%} (a fifth of the mix is "
+                      "refused queries, which charge nothing and are not counted as answers)")
+    return 0 if ok else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,124 @@
+"""Group commit in the ledger: reservations committed together stay exact.
+
+What must hold: a batch charges exactly what the same reservations would charge one after
+another (never more than a budget or a cap); a refused reservation in a batch charges nothing
+and does not stop the others; concurrent reservations really are committed in batches; two
+ledgers (two processes) batching over overlapping analysts and tables never deadlock.
+"""
+
+from __future__ import annotations
+
+import random
+import threading
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+from decimal import Decimal
+
+from proxy.errors import BUDGET_EXHAUSTED, HushError
+from proxy.ledger import Ledger, _Request
+from tests.test_ledger import charge_count, make_policies, open_ledger, query  # noqa: F401
+
+D = Decimal
+
+
+def test_a_batch_checks_each_reservation_against_the_ones_before_it(
+        fresh_dsn: str, open_ledger: Callable[..., Ledger]) -> None:
+    ledger = open_ledger()
+    ledger.sync_budgets(make_policies({"planner": "0.3", "researcher": "1.0"},
+                                      {"households": "0.25", "readings": None}))
+    batch = [_Request("planner", ["households"], D("0.1"), "q1", "f"),
+             _Request("planner", ["households"], D("0.1"), "q2", "f"),
+             _Request("planner", ["households"], D("0.1"), "q3", "f"),  # cap: 0.05 left
+             _Request("nobody", [], D("0.1"), "q4", "f"),
+             _Request("planner", ["readings"], D("0.1"), "q5", "f"),  # budget: 0.1 left
+             _Request("planner", ["readings"], D("0.1"), "q6", "f"),  # budget: 0 left
+             _Request("researcher", ["readings", "households"], D("0.01"), "q7", "f")]
+    rows = ledger._reserve_together(batch)
+    refusals = [row[1] for row in rows]
+    assert refusals == [None, None, "table cap", "unknown analyst", None, "analyst budget",
+                        None]
+    assert ledger.spent("planner") == D("0.3")
+    assert ledger.spent("researcher") == D("0.01")
+    assert ledger.table_remaining("households") == D("0.04")
+    assert [r[0] for r in query(fresh_dsn, "SELECT statement FROM hushql.charges ORDER BY id")] \
+        == ["q1", "q2", "q5", "q7"]
+
+
+def test_concurrent_reservations_are_batched_and_never_overspend(
+        fresh_dsn: str, open_ledger: Callable[..., Ledger]) -> None:
+    ledger = open_ledger(pool_size=8)
+    ledger.sync_budgets(make_policies({"planner": "2.0"}, {"households": "20"}))
+    sizes: list[int] = []
+    run = ledger._group._run
+
+    def recording(requests: list[_Request]) -> list[tuple[object, ...]]:
+        sizes.append(len(requests))
+        return run(requests)
+
+    ledger._group._run = recording  # type: ignore[method-assign]
+    threads = 64
+    barrier = threading.Barrier(threads)
+
+    def reserve(_: int) -> str:
+        barrier.wait(timeout=30)
+        try:
+            ledger.reserve("planner", ["households"], D("0.1"), "SELECT 1", "f")
+            return "ok"
+        except HushError as error:
+            return error.sqlstate
+
+    with ThreadPoolExecutor(threads) as pool:
+        outcomes = list(pool.map(reserve, range(threads)))
+    assert outcomes.count("ok") == 20 and outcomes.count(BUDGET_EXHAUSTED) == 44
+    assert ledger.spent("planner") == D("2.0") and charge_count(fresh_dsn) == 20
+    assert sum(sizes) == threads
+    assert max(sizes) > 1, f"no batch held more than one reservation: {sizes}"
+
+
+def test_two_ledgers_batching_over_shared_rows_never_deadlock_nor_overspend(
+        fresh_dsn: str, open_ledger: Callable[..., Ledger]) -> None:
+    """Two ledgers with pools of their own, as two proxy processes; every reservation picks a
+    random analyst and a random non-empty set of tables, so batches overlap in every order."""
+    first, second = open_ledger(pool_size=8), open_ledger(pool_size=8)
+    analysts = {"planner": "1.5", "researcher": "1.5", "auditor": "1.5"}
+    first.sync_budgets(make_policies(analysts, {"households": "2.0", "readings": "2.0",
+                                                "tariffs": None}))
+    tables = ["households", "readings", "tariffs"]
+    chooser = random.Random(2026)
+    plans = [(chooser.choice(sorted(analysts)),
+              chooser.sample(tables, chooser.randint(1, 3))) for _ in range(240)]
+
+    def reserve(index: int) -> str:
+        analyst, wanted = plans[index]
+        ledger = (first, second)[index % 2]
+        try:
+            ledger.reserve(analyst, wanted, D("0.1"), "SELECT 1", "f")
+            return "ok"
+        except HushError as error:
+            return error.sqlstate
+
+    with ThreadPoolExecutor(32) as pool:
+        outcomes = list(pool.map(reserve, range(len(plans))))
+    assert set(outcomes) <= {"ok", BUDGET_EXHAUSTED}, set(outcomes)
+    spent = dict(query(fresh_dsn, "SELECT analyst, spent FROM hushql.analyst_budgets"))
+    table_spent = dict(query(fresh_dsn, "SELECT table_name, spent FROM hushql.table_budgets"))
+    charged = query(fresh_dsn, "SELECT analyst, tables, epsilon FROM hushql.charges")
+    assert len(charged) == outcomes.count("ok")
+    for analyst, budget in analysts.items():
+        assert spent[analyst] <= D(budget)
+        assert spent[analyst] == sum((c[2] for c in charged if c[0] == analyst), D(0))
+    for table in ("households", "readings"):
+        assert table_spent[table] <= D("2.0")
+        assert table_spent[table] == sum((c[2] for c in charged if table in c[1]), D(0))
+
+
+def test_outcomes_recorded_together_skip_unknown_and_finished_charges(
+        fresh_dsn: str, open_ledger: Callable[..., Ledger]) -> None:
+    ledger = open_ledger()
+    ledger.sync_budgets(make_policies({"planner": "1.0"}, {}))
+    ids = [ledger.reserve("planner", [], D("0.1"), f"q{i}", "f").charge_id for i in range(3)]
+    ledger.finish(ids[0], "failed")
+    assert ledger.finish_many(ids + [999_999], "answered") == 2
+    assert query(fresh_dsn, "SELECT outcome FROM hushql.charges ORDER BY id") == [
+        ("failed",), ("answered",), ("answered",)]
+    assert ledger.spent("planner") == D("0.3")  # a note never gives epsilon back
