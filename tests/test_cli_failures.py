@@ -72,7 +72,10 @@ def test_demo_on_a_busy_port_says_so_before_loading_anything(busy_port: int, fre
     import psycopg
     with psycopg.connect(fresh_dsn) as conn:
         assert conn.execute("SELECT to_regclass('utility.households')").fetchone()[0] is None
-    assert not (tmp_path / "pg").exists()  # and no initdb either
+    # Nor is a private server initialised when the demo would start one.
+    done = hushql("demo", "--listen", f"127.0.0.1:{busy_port}", "--data-dir", str(tmp_path / "pg"))
+    assert_short_failure(done, f"cannot listen on 127.0.0.1:{busy_port}")
+    assert not (tmp_path / "pg").exists()
 
 
 def test_serve_on_a_busy_port_suggests_listen(busy_port: int, module_dsn: str) -> None:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import psycopg
 import pytest
 
+from proxy.errors import HushError
 from proxy.wire.catalog import Catalog
 from proxy.wire.own_database import replace_pg_database
 from tests.test_catalog import backend, catalog  # noqa: F401 - the fixtures
@@ -60,3 +61,15 @@ def test_the_replacement_keeps_aliases_and_qualifiers() -> None:
         "SELECT pg_database.x FROM (S) AS pg_database WHERE true"
     assert replace_pg_database("SELECT 1 FROM pg_database AS d, pg_class", sub) == \
         "SELECT 1 FROM (S) AS d, pg_class"
+
+
+@pytest.mark.parametrize("query", [
+    "SELECT pg_describe_object(1262, g::oid, 0) FROM generate_series(1, 20000) AS g",
+    "SELECT pg_identify_object(1262, 5, 0)",
+])
+def test_functions_that_would_name_other_databases_are_refused(catalog: Catalog,
+                                                               query: str) -> None:
+    with pytest.raises(HushError) as caught:
+        catalog.run("planner", query, [])
+    assert caught.value.sqlstate == "42501"
+

@@ -144,7 +144,9 @@ ALLOWED_FUNCTIONS = frozenset({
     "pg_relation_is_publishable", "pg_encoding_to_char", "pg_char_to_encoding",
     "pg_get_keywords", "pg_typeof", "pg_index_column_has_property", "pg_index_has_property",
     "pg_indexam_has_property", "pg_options_to_table", "pg_column_is_updatable",
-    "pg_relation_is_updatable", "pg_describe_object", "pg_identify_object",
+    # Not pg_describe_object nor pg_identify_object: given pg_database's class they name
+    # every database on the server (tests/test_own_database.py).
+    "pg_relation_is_updatable",
     "pg_is_other_temp_schema", "pg_my_temp_schema", "pg_table_is_visible",
     "pg_type_is_visible", "pg_function_is_visible", "pg_operator_is_visible",
     "pg_opclass_is_visible", "pg_opfamily_is_visible", "pg_collation_is_visible",
