@@ -21,6 +21,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import logging
+import re
 import secrets
 import threading
 from collections import OrderedDict
@@ -70,13 +71,30 @@ class Prepared:
 MOST_EPSILON_PLACES = 12
 
 
-def parse_epsilon(value: str | Decimal | float, largest: Decimal) -> Decimal:
-    """An analyst's epsilon as an exact Decimal in (0, largest] with at most
-    ``MOST_EPSILON_PLACES`` digits after the point; raises HushError 22023 otherwise."""
-    try:
-        epsilon = value if isinstance(value, Decimal) else Decimal(str(value).strip())
-    except (InvalidOperation, ValueError):
-        epsilon = Decimal("NaN")
+# An epsilon as text: ASCII digits only (Python's Decimal would also read other scripts' digits,
+# such as '١'), plain or exponent notation, and not absurdly long.
+_EPSILON_TEXT = re.compile(r"\+?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d{1,4})?", re.ASCII)
+_LONGEST_EPSILON_TEXT = 64
+
+
+def parse_epsilon(value: str | Decimal | float, largest: Decimal,
+                  smallest: Decimal = Decimal(0)) -> Decimal:
+    """An analyst's epsilon as an exact Decimal in [smallest, largest], above 0, with at most
+    ``MOST_EPSILON_PLACES`` digits after the point; raises HushError 22023 otherwise.
+
+    ``smallest`` (access.toml ``smallest_epsilon_per_query``) makes a budget buy a bounded
+    number of queries: at most budget / smallest.
+    """
+    epsilon = Decimal("NaN")
+    if isinstance(value, Decimal):
+        epsilon = value
+    else:
+        text = str(value).strip()
+        if len(text) <= _LONGEST_EPSILON_TEXT and _EPSILON_TEXT.fullmatch(text):
+            try:
+                epsilon = Decimal(text)
+            except (InvalidOperation, ValueError):
+                pass
     if not epsilon.is_finite() or epsilon <= 0 or epsilon > largest \
             or _decimal_places(epsilon) > MOST_EPSILON_PLACES:
         shown = str(value)
@@ -84,6 +102,12 @@ def parse_epsilon(value: str | Decimal | float, largest: Decimal) -> Decimal:
                         f"invalid epsilon {shown if len(shown) <= 40 else shown[:37] + '...'}",
                         hint=f"epsilon must be a decimal number above 0 and at most {largest}, "
                              f"with at most {MOST_EPSILON_PLACES} digits after the decimal point")
+    if epsilon < smallest:
+        raise HushError(INVALID_PARAMETER_VALUE,
+                        f"epsilon {format(epsilon, 'f')} is below the smallest accepted per query",
+                        hint=f"set hushql.epsilon to at least {smallest} (smallest_epsilon_per_query "
+                             "in access.toml [defaults]): every query costs at least that much, so "
+                             "a budget buys a bounded number of queries")
     return epsilon
 
 
@@ -178,7 +202,8 @@ class Engine:
         """The epsilon a query runs with: the session's, else the policy default; validated."""
         defaults = self.policies.defaults
         chosen = defaults.epsilon_per_query if epsilon is None else epsilon
-        return parse_epsilon(chosen, defaults.largest_epsilon_per_query)
+        return parse_epsilon(chosen, defaults.largest_epsilon_per_query,
+                             defaults.smallest_epsilon_per_query)
 
     def remaining(self, analyst: str) -> Decimal:
         """Epsilon ``analyst`` may still spend, from the ledger; HushError 42501 if unknown."""

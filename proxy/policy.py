@@ -28,6 +28,8 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, Strict, ValidationError
 
+from proxy.sql.limits import Limits
+
 GroupBucket = Literal["day", "week", "month", "quarter", "year"]
 ColumnKind = Literal["category", "integer", "number", "date", "boolean"]
 # Counts and caps are whole numbers written as TOML integers: `true` or `4.0` is refused, not
@@ -42,6 +44,8 @@ class _Strict(BaseModel):
 class Defaults(_Strict):
     epsilon_per_query: Decimal = Decimal("0.1")
     largest_epsilon_per_query: Decimal = Decimal("1.0")
+    # So that a budget buys a bounded number of queries: budget / smallest at most.
+    smallest_epsilon_per_query: Decimal = Decimal("0.001")
     most_cells: WholeNumber = 10_000
 
 
@@ -59,6 +63,7 @@ class AccessPolicy(_Strict):
     defaults: Defaults = Field(default_factory=Defaults)
     analysts: dict[str, AnalystPolicy] = Field(default_factory=dict)
     admins: dict[str, AdminPolicy] = Field(default_factory=dict)
+    limits: Limits = Field(default_factory=Limits)
 
 
 class Individual(_Strict):
@@ -138,6 +143,10 @@ class Policies:
     @property
     def admins(self) -> dict[str, AdminPolicy]:
         return self.access.admins
+
+    @property
+    def limits(self) -> Limits:
+        return self.access.limits
 
 
 class PolicyError(Exception):
@@ -389,6 +398,8 @@ def _access_problems(access: AccessPolicy, table_names: set[str]) -> list[tuple[
                       f"{d.largest_epsilon_per_query}"))
     if d.most_cells < 1:
         found.append(("defaults.most_cells", "must be a positive integer"))
+    found += _smallest_epsilon_problems(d)
+    found += [(f"limits.{key}", problem) for key, problem in access.limits.problems()]
     accounts = [("analysts", n, a.password) for n, a in access.analysts.items()]
     accounts += [("admins", n, a.password) for n, a in access.admins.items()]
     for section, name, password in accounts:
@@ -408,6 +419,17 @@ def _access_problems(access: AccessPolicy, table_names: set[str]) -> list[tuple[
                 found.append((f"analysts.{name}.tables",
                               f"{table!r} has no policy file in tables/"))
     return found
+
+
+def _smallest_epsilon_problems(d: Defaults) -> list[tuple[str, str]]:
+    """smallest_epsilon_per_query is positive and no larger than the epsilons it must allow."""
+    key = "defaults.smallest_epsilon_per_query"
+    if d.smallest_epsilon_per_query <= 0:
+        return [(key, "must be positive")]
+    if d.epsilon_per_query > 0 and d.smallest_epsilon_per_query > d.epsilon_per_query:
+        return [(key, f"{d.smallest_epsilon_per_query} is above epsilon_per_query "
+                      f"{d.epsilon_per_query}")]
+    return []
 
 
 # PostgreSQL's stored form of a SCRAM-SHA-256 password, as in pg_authid.rolpassword

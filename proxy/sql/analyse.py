@@ -36,12 +36,15 @@ import sqlglot.expressions as exp
 
 from proxy.errors import (AMBIGUOUS_COLUMN, DATATYPE_MISMATCH, GROUPING_ERROR,
                           INSUFFICIENT_PRIVILEGE, INVALID_COLUMN_REFERENCE, INVALID_LIMIT,
-                          INVALID_OFFSET, PROGRAM_LIMIT_EXCEEDED, SYNTAX_ERROR, UNDEFINED_COLUMN,
-                          UNDEFINED_FUNCTION, UNDEFINED_TABLE, HushError, refused)
+                          INVALID_OFFSET, PROGRAM_LIMIT_EXCEEDED, STATEMENT_TOO_COMPLEX,
+                          SYNTAX_ERROR, UNDEFINED_COLUMN, UNDEFINED_FUNCTION, UNDEFINED_TABLE,
+                          HushError, refused)
 from proxy.policy import ColumnPolicy, Policies, TablePolicy
 from proxy.sql.domains import domain_size
 from proxy.sql.filters import (KIND_TYPE, Typed, chain_operands, check_filter, date_node, literal,
                                only_args, refuse_expression, unify, unparen)
+from proxy.sql.limits import check_statement_text, check_tree
+from proxy.sql.limits import hint as limit_hint
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
 
 BUCKETS = ("day", "week", "month", "quarter", "year")
@@ -91,12 +94,16 @@ def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -
         raise HushError(INSUFFICIENT_PRIVILEGE, f'role "{analyst}" is not an analyst',
                         "connect as an analyst account listed in access.toml")
     try:
+        if isinstance(statement, str):
+            check_statement_text(statement, policies.limits)
         tree = _parse(statement) if isinstance(statement, str) else statement
+        check_tree(tree, policies.limits)
         select = _as_select(tree)
         return _Analysis(select, policies, frozenset(analyst_policy.tables)).plan()
-    except RecursionError:
-        raise HushError(PROGRAM_LIMIT_EXCEEDED, "the statement is nested too deeply",
-                        "write a flatter statement") from None
+    except RecursionError:  # the parser's own recursion can run out before check_tree runs
+        raise HushError(STATEMENT_TOO_COMPLEX, "the statement is nested too deeply",
+                        limit_hint(policies.limits, "nesting_depth",
+                                   "write a flatter statement")) from None
 
 
 def _parse(text: str) -> exp.Expression:
@@ -212,7 +219,8 @@ class _Analysis:
         for item in items:
             self.outputs.append(self._select_output(item))
         where = select.args.get("where")
-        condition = check_filter(where.this, self._column) if where is not None else None
+        condition = (check_filter(where.this, self._column, self.policies.limits)
+                     if where is not None else None)
         having_condition = self._having(having.this) if having is not None else None
         order = self._order_by(select.args.get("order"), len(items))
         limit = self._count(select.args.get("limit"), "LIMIT")

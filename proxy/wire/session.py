@@ -31,6 +31,7 @@ from proxy.errors import (DUPLICATE_CURSOR, DUPLICATE_PREPARED_STATEMENT, FEATUR
                           INVALID_PARAMETER_VALUE, INVALID_SAVEPOINT, INVALID_SQL_STATEMENT_NAME,
                           NO_ACTIVE_SQL_TRANSACTION, PROGRAM_LIMIT_EXCEEDED, PROTOCOL_VIOLATION,
                           QUERY_CANCELED, SUCCESSFUL_COMPLETION, HushError)
+from proxy.sql.limits import check_statement_text
 from proxy.wire import codec, settings, statements, types
 from proxy.wire.states import FAILED_BLOCK_HINT, TransactionMachine, TxEvent, TxStatus, TxStep
 from proxy.wire.statements import (DeallocateStatement, DiscardStatement, EmptyStatement,
@@ -261,6 +262,7 @@ class Session:
         """All statements of one Query message; the first error ends the message."""
         out: list[Any] = []
         try:
+            check_statement_text(sql, self.engine.policies.limits)  # before any parsing
             parsed = statements.split(sql)
             if not parsed:
                 return [codec.EmptyQueryResponse()] + self.ready()
@@ -300,6 +302,7 @@ class Session:
             raise HushError(DUPLICATE_PREPARED_STATEMENT,
                             f'prepared statement "{msg.name}" already exists',
                             hint="Close or DEALLOCATE it first, or use another name.")
+        check_statement_text(msg.sql, self.engine.policies.limits)  # before any parsing
         st = statements.single(msg.sql)
         self._check_block(st)
         to_catalog = self._route(st)
@@ -705,8 +708,9 @@ class Session:
             if value is None or value == "":
                 self.values[key] = self.defaults.get(key, "")
                 return
-            largest = self.engine.policies.defaults.largest_epsilon_per_query
-            self.values[key] = format(parse_epsilon(value, largest), "f")
+            defaults = self.engine.policies.defaults
+            self.values[key] = format(parse_epsilon(value, defaults.largest_epsilon_per_query,
+                                                    defaults.smallest_epsilon_per_query), "f")
             return
         if value is None:
             settings.normalise(key, self.defaults[key])  # still refuses read-only names
