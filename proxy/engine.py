@@ -14,6 +14,17 @@ The order of steps is the privacy argument, so it lives here and only here:
 6. finish: the charge's outcome (answered, failed, cancelled) is noted in the ledger. It is a
    note, not a charge, so for answered queries a background worker records it after the answer
    has gone; failures and cancellations are recorded before the error is raised.
+
+Time. The backend query runs under the proxy's own timeout (access.toml ``[limits]
+query_timeout_ms``), never one the analyst chose: a deadline of the analyst's choosing turns
+"answered or cancelled" into a reading of how long the backend worked on the data. A query that
+hits it is still charged (it started). A table may also declare a steady answer time
+(``[timing] answer_after_ms``): its answers are released no earlier than that long after the
+engine received the query, the backend query's timeout is what is left of that time, and a
+query that needs longer ends with the same fixed error at that same moment; an error after the
+query started is held back likewise. Then answers, errors and timeouts all come at one time, and
+the time says nothing about the data (only a CancelRequest ends the wait early, at the moment
+the analyst chose).
 """
 
 from __future__ import annotations
@@ -24,6 +35,7 @@ import logging
 import re
 import secrets
 import threading
+import time
 from collections import OrderedDict
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -243,6 +255,7 @@ class Engine:
     def answer(self, analyst: str, statement: str | exp.Expression, *,
                epsilon: Decimal | None = None, control: QueryControl | None = None) -> Answer:
         """Plan, reserve, run, noise and release one statement. Raises HushError."""
+        arrived = time.monotonic()
         prepared = self.prepare(analyst, statement)
         eps = self.epsilon_for(epsilon)
         plan = prepared.plan
@@ -250,25 +263,54 @@ class Engine:
         charge, remaining = self.ledger.reserve(analyst, [plan.table.table], eps, text,
                                                 prepared.fingerprint)
         outcome = "failed"
+        steady = _steady_ms(plan)
+        failure: HushError | None = None
         try:
             settings = ({PICK_SALT_SETTING: secrets.token_hex(16)}
                         if prepared.rewritten.needs_salt else None)
-            true_rows = self.backend.run(prepared.rewritten.sql, control, settings)
+            true_rows = self._run_in_time(prepared, control, settings, arrived, steady)
             if len(true_rows) != len(prepared.cells):
                 raise HushError(INTERNAL_ERROR, "the backend returned an unexpected result shape")
             answer = self._release(prepared, eps, true_rows, charge)
             outcome = "answered"
         except HushError as error:
+            failure = error
             if error.sqlstate == QUERY_CANCELED:
                 outcome = "cancelled"
-            raise
         finally:
             if outcome == "answered":
                 # A note, not a charge (the charge is durable already): off the answer's path.
                 self._notes.submit(self._finish, charge, outcome)
             else:
                 self._finish(charge, outcome)
+        if steady is not None:  # answer or error, released at the steady time
+            _hold_until(arrived + steady / 1000, control)
+        if failure is not None:
+            raise failure
         return dataclasses.replace(answer, remaining=remaining)
+
+    def _run_in_time(self, prepared: Prepared, control: QueryControl | None,
+                     settings: dict[str, str] | None, arrived: float,
+                     steady: int | None) -> list[tuple[Any, ...]]:
+        """The backend rows, under the proxy's timeout, or under what is left of a steady
+        answer time (then a timeout is the table's fixed error)."""
+        limit = self.policies.limits.query_timeout_ms
+        if steady is None:
+            return self.backend.run(prepared.rewritten.sql, control, settings, timeout_ms=limit)
+        left = steady - int((time.monotonic() - arrived) * 1000)
+        try:
+            return self.backend.run(prepared.rewritten.sql, control, settings,
+                                    timeout_ms=max(1, min(limit, left)))
+        except HushError as error:
+            if error.sqlstate != QUERY_CANCELED or (control is not None and control.cancelled):
+                raise
+            table = prepared.plan.table.table
+            raise HushError(QUERY_CANCELED,
+                            f"no answer: table {table} answers exactly {steady} ms after a "
+                            "query arrives, and this query needed longer",
+                            hint="its epsilon stays spent; ask for fewer cells or a simpler "
+                                 "condition, or ask the data owner to lengthen "
+                                 "[timing] answer_after_ms") from None
 
     def _finish(self, charge: int, outcome: str) -> None:
         """Record the outcome of a charge; a failure to record it loses only the note."""
@@ -305,6 +347,25 @@ class Engine:
                       rows=postprocess(plan, rows), epsilon=epsilon,
                       remaining=Decimal(0), accuracy=accuracy,
                       tables=[plan.table.table], charge_id=charge)
+
+
+# ---- steady answer time ----------------------------------------------------------------------
+
+def _steady_ms(plan: Plan) -> int | None:
+    """The table's declared answer time in milliseconds, or None when it declares none."""
+    timing = plan.table.timing
+    return timing.answer_after_ms if timing is not None else None
+
+
+def _hold_until(deadline: float, control: QueryControl | None) -> None:
+    """Wait until ``deadline`` (time.monotonic); a cancel ends the wait with 57014."""
+    left = deadline - time.monotonic()
+    if left <= 0:
+        return
+    if control is None:
+        time.sleep(left)
+    elif control.wait(left):
+        raise HushError(QUERY_CANCELED, "canceling statement due to user request")
 
 
 # ---- pure helpers ----------------------------------------------------------------------------

@@ -78,6 +78,17 @@ class TableBudget(_Strict):
     cap: Decimal
 
 
+class Timing(_Strict):
+    """[timing]: answers on this table are released no earlier than ``answer_after_ms`` after
+    the query reaches the engine, and a query still running then ends with a fixed error at
+    that same time, so an answer's timing carries nothing about the data."""
+
+    answer_after_ms: WholeNumber
+
+
+LONGEST_ANSWER_AFTER_MS = 600_000
+
+
 class ColumnPolicy(_Strict):
     """One exposed column. Which keys apply depends on ``kind`` (checked after parsing)."""
 
@@ -118,6 +129,7 @@ class TablePolicy(_Strict):
     description: str = ""
     individual: Individual | None = None
     budget: TableBudget | None = None
+    timing: Timing | None = None
     columns: dict[str, ColumnPolicy]
 
     def column(self, name: str) -> ColumnPolicy | None:
@@ -308,6 +320,9 @@ def _table_problems(policy: TablePolicy) -> list[tuple[str, str]]:
             found.append(("individual.rows_cap", "must be a positive integer"))
     if policy.budget is not None and policy.budget.cap <= 0:
         found.append(("budget.cap", "must be positive"))
+    if policy.timing is not None and not 1 <= policy.timing.answer_after_ms <= LONGEST_ANSWER_AFTER_MS:
+        found.append(("timing.answer_after_ms",
+                      f"must be a whole number of milliseconds from 1 to {LONGEST_ANSWER_AFTER_MS}"))
     return found
 
 

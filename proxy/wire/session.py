@@ -3,7 +3,9 @@
 The server hands the session each message of the query phase; the session answers with the
 backend messages to send. It knows nothing of sockets: blocking work (the engine, the catalog)
 runs in an executor so one analyst's slow query never holds up the event loop, and a running
-query can be cancelled from outside (CancelRequest, statement_timeout, a vanished client).
+query can be cancelled from outside (CancelRequest, a vanished client). The analyst's
+statement_timeout is not one of them: answers run under the proxy's own time limit (see
+``settings.NOT_APPLIED``), since a deadline the analyst chooses turns answer times into answers.
 
 What the engine sees: for a statement without parameters, its own text (the engine caches plans
 by text); with parameters, a copy of the parsed tree in which every ``$n`` has been replaced by a
@@ -615,13 +617,10 @@ class Session:
             raise internal_error() from None
 
     async def _controlled(self, fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
-        """Like _blocking, with a QueryControl the session can cancel (CancelRequest, a timeout,
-        a vanished client)."""
+        """Like _blocking, with a QueryControl the session can cancel (CancelRequest, a vanished
+        client)."""
         control = QueryControl()
         self._running, self._cancel_reason = control, None
-        loop = asyncio.get_running_loop()
-        timeout_ms = settings.parse_duration_ms(self.values["statement_timeout"])
-        timer = loop.call_later(timeout_ms / 1000, self.cancel, "timeout") if timeout_ms else None
         try:
             return await self._blocking(fn, *args, control=control, **kwargs)
         except HushError as err:  # after our own cancel, say why it was cancelled
@@ -634,13 +633,9 @@ class Session:
             threading.Thread(target=control.cancel, name="hushql-cancel", daemon=True).start()
             raise
         finally:
-            if timer is not None:
-                timer.cancel()
             self._running = None
 
     def _cancelled(self) -> HushError:
-        if self._cancel_reason == "timeout":
-            return HushError(QUERY_CANCELED, "canceling statement due to statement timeout")
         return HushError(QUERY_CANCELED, "canceling statement due to user request")
 
     def cancel(self, reason: str = "user") -> None:
@@ -732,6 +727,10 @@ class Session:
         else:
             self._local_undo.pop(key, None)
         self._assign(key, st.value)
+        if key in settings.NOT_APPLIED and st.value is not None:
+            notices.append(codec.NoticeResponse.build(
+                "NOTICE", SUCCESSFUL_COMPLETION, f"{settings.SETTINGS[key].name} is accepted but "
+                "not applied", hint=settings.NOT_APPLIED_HINT))
         return Outcome(None, tag="SET", notices=notices)
 
     def _assign_checked_only(self, key: str, value: str | None) -> None:
