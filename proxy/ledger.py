@@ -26,6 +26,11 @@ Why it is shaped like this:
   race. A database whose schema is newer than this program knows is refused (``LedgerError``).
 - A trigger refuses any update that raises ``spent`` above its budget or cap (SQLSTATE 23514):
   a last line of defence against a bug here or a hand-written update, not the normal path.
+- A charge keeps a bounded excerpt of its statement (the first ``STATEMENT_EXCERPT``
+  characters) and the SHA-256 of the whole text, never the whole text: refused-for-free and
+  cheap queries must not be able to grow the ledger by megabytes each. The hash still lets an
+  auditor match a charge with a statement kept elsewhere. (Rows written before schema version 2
+  keep the full text they had; their hash was computed by the migration.)
 
 This module and ``proxy.backend`` are the only ones the engine reaches PostgreSQL through.
 """
@@ -205,7 +210,40 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         $body$
         """,
     )),
+    ("statement excerpt and hash", (
+        "ALTER TABLE {schema}.charges ADD COLUMN statement_sha256 text",
+        "UPDATE {schema}.charges "
+        "SET statement_sha256 = encode(sha256(convert_to(statement, 'UTF8')), 'hex')",
+        "COMMENT ON COLUMN {schema}.charges.statement IS "
+        "'the first characters of the statement (rows before schema version 2: all of it)'",
+        "COMMENT ON COLUMN {schema}.charges.statement_sha256 IS "
+        "'SHA-256 of the whole statement text in UTF-8, hex'",
+        # reserve_charge and the hash in one statement, so in one transaction.
+        """
+        CREATE FUNCTION {schema}.reserve_charge_hashed(
+            analyst_name text, table_names text[], amount numeric,
+            statement_excerpt text, statement_hash text, statement_fingerprint text,
+            OUT charge_id bigint, OUT refusal text, OUT refused_name text,
+            OUT refused_limit numeric, OUT refused_left numeric, OUT left_after numeric)
+        LANGUAGE plpgsql AS $body$
+        BEGIN
+            SELECT r.charge_id, r.refusal, r.refused_name, r.refused_limit, r.refused_left,
+                   r.left_after
+              INTO charge_id, refusal, refused_name, refused_limit, refused_left, left_after
+              FROM {schema}.reserve_charge(analyst_name, table_names, amount, statement_excerpt,
+                                           statement_fingerprint) AS r;
+            IF charge_id IS NOT NULL THEN
+                UPDATE {schema}.charges SET statement_sha256 = statement_hash WHERE id = charge_id;
+            END IF;
+        END
+        $body$
+        """,
+    )),
 ]
+
+
+STATEMENT_EXCERPT = 1000
+"""Characters of a statement the ledger keeps (with the SHA-256 of all of it)."""
 
 SCHEMA_VERSION = len(_MIGRATIONS)
 """The ledger schema version this program creates and understands."""
@@ -327,7 +365,8 @@ class Ledger:
     def reserve(self, analyst: str, tables: list[str], epsilon: Decimal, statement: str,
                 fingerprint: str) -> Reservation:
         """Charge ``epsilon`` to ``analyst`` and ``tables``; return the charge (its id and what
-        the analyst has left after it) once durable.
+        the analyst has left after it) once durable. The charge keeps the first
+        ``STATEMENT_EXCERPT`` characters of ``statement`` and the SHA-256 of all of it.
 
         Raises HushError 53400 (nothing charged) when the analyst's budget or a table's cap
         would be exceeded, 42501 for an analyst with no budget, 42P01 for a table the ledger does
@@ -342,7 +381,8 @@ class Ledger:
             # One statement in autocommit mode is one transaction; execute returns only after
             # the server's ReadyForQuery, which follows the (synchronous) COMMIT.
             row = conn.execute(self._sql.reserve,
-                               [analyst, names, epsilon, statement, fingerprint]).fetchone()
+                               [analyst, names, epsilon, statement[:STATEMENT_EXCERPT],
+                                statement_hash(statement), fingerprint]).fetchone()
         assert row is not None
         charge_id, refusal, name, limit, left, left_after = row
         if refusal is not None:
@@ -475,7 +515,7 @@ class _Statements:
         s = sql.Identifier(schema).as_string(None)
         self.reserve = (
             "SELECT charge_id, refusal, refused_name, refused_limit, refused_left, left_after "
-            f"FROM {s}.reserve_charge(%s, %s::text[], %s, %s, %s)")
+            f"FROM {s}.reserve_charge_hashed(%s, %s::text[], %s, %s, %s, %s)")
         self.finish = f"SELECT {s}.finish_charge(%s, %s)"
         self.remaining = (
             f"SELECT greatest(budget - spent, 0) FROM {s}.analyst_budgets WHERE analyst = %s")
@@ -492,6 +532,11 @@ class _Statements:
             f"INSERT INTO {s}.table_budgets AS t (table_name, cap) VALUES (%s, %s) "
             "ON CONFLICT (table_name) DO UPDATE SET cap = EXCLUDED.cap, updated_at = now() "
             "WHERE t.cap IS DISTINCT FROM EXCLUDED.cap")
+
+
+def statement_hash(statement: str) -> str:
+    """The SHA-256 of a statement's UTF-8 text, in hex: what a charge keeps of all of it."""
+    return hashlib.sha256(statement.encode("utf-8", "surrogatepass")).hexdigest()
 
 
 def _advisory_key(schema: str) -> int:
