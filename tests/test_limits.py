@@ -190,3 +190,29 @@ def test_set_epsilon_below_the_smallest_is_refused_by_the_session() -> None:
     assert [m.get("C") for m in out if isinstance(m, codec.ErrorResponse)] == ["22023"]
     out, _ = asyncio.run(session.handle(codec.Query("SET hushql.epsilon = 0.01")))
     assert not [m for m in out if isinstance(m, codec.ErrorResponse)]
+
+
+# ---- the plan cache ------------------------------------------------------------------------
+
+def test_the_plan_cache_is_bounded_in_memory_not_only_in_entries() -> None:
+    from types import SimpleNamespace
+
+    from proxy.engine import Engine, _plan_bytes
+
+    def engine(cache_bytes: int) -> Engine:
+        return Engine(POLICIES, SimpleNamespace(column_types=lambda source: {}),  # type: ignore[arg-type]
+                      SimpleNamespace(sync_budgets=lambda policies: None),  # type: ignore[arg-type]
+                      plan_cache_bytes=cache_bytes)
+
+    big = [BASE + " OR ".join(f"occupants * {k}.5 + {i} > {k}" for k in range(40))
+           for i in range(10, 18)]
+    one = _plan_bytes(engine(10**9).prepare("planner", big[0]))
+    assert one > 100_000  # the largest plans are heavy: this is why the bound exists
+    small, roomy = engine(3 * one), engine(10**9)
+    for sql in big:
+        small.prepare("planner", sql)
+        roomy.prepare("planner", sql)
+    assert len(small._cache) == 3 and small._cache_weight <= 3 * one
+    assert len(roomy._cache) == 8  # the companion: without the byte bound all stay
+    for made in (small, roomy):
+        made._notes.shutdown()
