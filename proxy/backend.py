@@ -3,7 +3,8 @@
 With ``proxy.ledger`` this is the only module the engine reaches PostgreSQL through (the catalog
 mirror and the demo loader keep connections of their own, for catalog questions and set-up).
 Connections are in autocommit mode with ``default_transaction_read_only`` on, so every query is
-its own read-only transaction, and carry a statement timeout. Backend error text never leaves
+its own read-only transaction, and every query runs under the timeout its caller gives (the
+proxy's own, never the analyst's), set on the connection just before it when it differs. Backend error text never leaves
 this module: callers get a HushError that says only that the query could not run, because an error message
 about a particular row would be a side channel.
 """
@@ -12,6 +13,7 @@ from __future__ import annotations
 
 import logging
 import threading
+import weakref
 from typing import Any
 
 import psycopg
@@ -48,11 +50,19 @@ class QueryControl:
     def __init__(self) -> None:
         self._lock = threading.Lock()
         self._connection: psycopg.Connection[Any] | None = None
-        self.cancelled = False
+        self._cancelled = threading.Event()
+
+    @property
+    def cancelled(self) -> bool:
+        return self._cancelled.is_set()
+
+    def wait(self, seconds: float) -> bool:
+        """Sleep up to ``seconds``, waking early on cancel(); True when cancelled."""
+        return self._cancelled.wait(max(0.0, seconds))
 
     def cancel(self) -> None:
         with self._lock:
-            self.cancelled = True
+            self._cancelled.set()
             connection = self._connection
         if connection is not None:
             try:
@@ -74,6 +84,9 @@ class Backend:
                  open_timeout: float = 30.0) -> None:
         self.dsn = dsn
         self._timeout = statement_timeout_ms
+        # The statement_timeout each pooled connection has now, so it is set only on change.
+        self._timeouts: weakref.WeakKeyDictionary[psycopg.Connection[Any], int] = \
+            weakref.WeakKeyDictionary()
         self._pool = ConnectionPool(dsn, min_size=1, max_size=pool_size, open=False,
                                     configure=self._configure, check=check_idle,
                                     reconnect_timeout=RECONNECT_GIVE_UP_SECONDS,
@@ -89,18 +102,22 @@ class Backend:
             cursor.execute(f"SET statement_timeout = {int(self._timeout)}")
             # sqlglot writes string literals with backslashes unescaped: only sound when on.
             cursor.execute("SET standard_conforming_strings = on")
+        self._timeouts[connection] = int(self._timeout)
 
     def run(self, sql: str, control: QueryControl | None = None,
-            settings: dict[str, str] | None = None) -> list[tuple[Any, ...]]:
+            settings: dict[str, str] | None = None, *,
+            timeout_ms: int | None = None) -> list[tuple[Any, ...]]:
         """Run one rewritten query and return all its rows (one per cell, so few).
 
         ``settings`` are set on the session just before the query (set_config(..., false)); every
         query that reads one sets it first, so a value left on a pooled connection is never used.
+        ``timeout_ms`` (default: the pool's) is the query's statement_timeout, set likewise.
 
-        Raises HushError 57014 when cancelled, 08006 when the server is gone or unreachable (no
+        Raises HushError 57014 when cancelled or timed out, 08006 when the server is gone or unreachable (no
         connection within ``BORROW_TIMEOUT_SECONDS``), XX000 on any other failure (no backend
         text).
         """
+        timeout = max(1, int(self._timeout if timeout_ms is None else timeout_ms))
         try:
             with self._pool.connection(timeout=BORROW_TIMEOUT_SECONDS) as connection:
                 if control is not None and not control._attach(connection):
@@ -110,8 +127,15 @@ class Backend:
                         delay = faults.seconds("during-query")  # test-only, else None
                         if delay is not None:
                             cursor.execute("SELECT pg_sleep(%s)", (delay,))
-                        for name, value in (settings or {}).items():
-                            cursor.execute("SELECT set_config(%s, %s, false)", (name, value))
+                        wanted = dict(settings or {})
+                        if self._timeouts.get(connection) != timeout:
+                            self._timeouts.pop(connection, None)  # unknown until it is set
+                            wanted["statement_timeout"] = str(timeout)
+                        if wanted:
+                            cursor.execute("SELECT " + ", ".join(
+                                ["set_config(%s, %s, false)"] * len(wanted)),
+                                [part for item in wanted.items() for part in item])
+                            self._timeouts[connection] = timeout
                         cursor.execute(sql, prepare=False)
                         return cursor.fetchall()
                 finally:
@@ -123,8 +147,9 @@ class Backend:
             if control is not None and control.cancelled:
                 raise HushError(QUERY_CANCELED, "canceling statement due to user request") from None
             log.warning("backend query timed out: %s", type(error).__name__)
-            raise HushError(QUERY_CANCELED, "canceling statement due to statement timeout",
-                            hint="the query took longer than the proxy allows") from None
+            raise HushError(QUERY_CANCELED, "canceling statement due to the proxy's statement timeout",
+                            hint=f"the proxy allows {timeout} ms per query; its epsilon stays "
+                                 "spent") from None
         except (PoolTimeout, psycopg.OperationalError) as error:
             if not isinstance(error, PoolTimeout) and not _connection_lost(error):
                 log.error("backend query failed: %s", type(error).__name__)

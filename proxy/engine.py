@@ -14,6 +14,17 @@ The order of steps is the privacy argument, so it lives here and only here:
 6. finish: the charge's outcome (answered, failed, cancelled) is noted in the ledger. It is a
    note, not a charge, so for answered queries a background worker records it after the answer
    has gone; failures and cancellations are recorded before the error is raised.
+
+Time. The backend query runs under the proxy's own timeout (access.toml ``[limits]
+query_timeout_ms``), never one the analyst chose: a deadline of the analyst's choosing turns
+"answered or cancelled" into a reading of how long the backend worked on the data. A query that
+hits it is still charged (it started). A table may also declare a steady answer time
+(``[timing] answer_after_ms``): its answers are released no earlier than that long after the
+engine received the query, the backend query's timeout is what is left of that time, and a
+query that needs longer ends with the same fixed error at that same moment; an error after the
+query started is held back likewise. Then answers, errors and timeouts all come at one time, and
+the time says nothing about the data (only a CancelRequest ends the wait early, at the moment
+the analyst chose).
 """
 
 from __future__ import annotations
@@ -22,8 +33,10 @@ import dataclasses
 import hashlib
 import json
 import logging
+import re
 import secrets
 import threading
+import time
 from collections import OrderedDict
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -73,13 +86,30 @@ class Prepared:
 MOST_EPSILON_PLACES = 12
 
 
-def parse_epsilon(value: str | Decimal | float, largest: Decimal) -> Decimal:
-    """An analyst's epsilon as an exact Decimal in (0, largest] with at most
-    ``MOST_EPSILON_PLACES`` digits after the point; raises HushError 22023 otherwise."""
-    try:
-        epsilon = value if isinstance(value, Decimal) else Decimal(str(value).strip())
-    except (InvalidOperation, ValueError):
-        epsilon = Decimal("NaN")
+# An epsilon as text: ASCII digits only (Python's Decimal would also read other scripts' digits,
+# such as '١'), plain or exponent notation, and not absurdly long.
+_EPSILON_TEXT = re.compile(r"\+?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d{1,4})?", re.ASCII)
+_LONGEST_EPSILON_TEXT = 64
+
+
+def parse_epsilon(value: str | Decimal | float, largest: Decimal,
+                  smallest: Decimal = Decimal(0)) -> Decimal:
+    """An analyst's epsilon as an exact Decimal in [smallest, largest], above 0, with at most
+    ``MOST_EPSILON_PLACES`` digits after the point; raises HushError 22023 otherwise.
+
+    ``smallest`` (access.toml ``smallest_epsilon_per_query``) makes a budget buy a bounded
+    number of queries: at most budget / smallest.
+    """
+    epsilon = Decimal("NaN")
+    if isinstance(value, Decimal):
+        epsilon = value
+    else:
+        text = str(value).strip()
+        if len(text) <= _LONGEST_EPSILON_TEXT and _EPSILON_TEXT.fullmatch(text):
+            try:
+                epsilon = Decimal(text)
+            except (InvalidOperation, ValueError):
+                pass
     if not epsilon.is_finite() or epsilon <= 0 or epsilon > largest \
             or _decimal_places(epsilon) > MOST_EPSILON_PLACES:
         shown = str(value)
@@ -87,6 +117,12 @@ def parse_epsilon(value: str | Decimal | float, largest: Decimal) -> Decimal:
                         f"invalid epsilon {shown if len(shown) <= 40 else shown[:37] + '...'}",
                         hint=f"epsilon must be a decimal number above 0 and at most {largest}, "
                              f"with at most {MOST_EPSILON_PLACES} digits after the decimal point")
+    if epsilon < smallest:
+        raise HushError(INVALID_PARAMETER_VALUE,
+                        f"epsilon {format(epsilon, 'f')} is below the smallest accepted per query",
+                        hint=f"set hushql.epsilon to at least {smallest} (smallest_epsilon_per_query "
+                             "in access.toml [defaults]): every query costs at least that much, so "
+                             "a budget buys a bounded number of queries")
     return epsilon
 
 
@@ -103,12 +139,17 @@ class Engine:
     """Answers analysts' statements from a backend, charging a ledger. Thread-safe."""
 
     def __init__(self, policies: Policies, backend: Backend, ledger: Ledger, *,
-                 plan_cache_size: int = 1024) -> None:
+                 plan_cache_size: int = 1024,
+                 plan_cache_bytes: int = 64 * 1024 * 1024) -> None:
         self.policies = policies
         self.backend = backend
         self.ledger = ledger
         self._cache: OrderedDict[tuple[str, str], Prepared] = OrderedDict()
         self._cache_size = plan_cache_size
+        # Bounded in (estimated) memory too: EXPLAIN plans for free, and the largest plans the
+        # limits accept hold about 2 MB each.
+        self._cache_bytes = plan_cache_bytes
+        self._cache_weight = 0
         self._cache_lock = threading.Lock()
         self._exact: dict[str, frozenset[str]] = {}
         # Records answered outcomes after the answer is released, in order, on one thread.
@@ -173,9 +214,12 @@ class Engine:
                             fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16])
         if key is not None:
             with self._cache_lock:
-                self._cache[key] = prepared
-                if len(self._cache) > self._cache_size:
-                    self._cache.popitem(last=False)
+                if key not in self._cache:
+                    self._cache[key] = prepared
+                    self._cache_weight += _plan_bytes(prepared)
+                while self._cache and (len(self._cache) > self._cache_size
+                                       or self._cache_weight > self._cache_bytes):
+                    self._cache_weight -= _plan_bytes(self._cache.popitem(last=False)[1])
         return prepared
 
     def _exact_columns(self, table: str) -> frozenset[str]:
@@ -207,7 +251,8 @@ class Engine:
         """The epsilon a query runs with: the session's, else the policy default; validated."""
         defaults = self.policies.defaults
         chosen = defaults.epsilon_per_query if epsilon is None else epsilon
-        return parse_epsilon(chosen, defaults.largest_epsilon_per_query)
+        return parse_epsilon(chosen, defaults.largest_epsilon_per_query,
+                             defaults.smallest_epsilon_per_query)
 
     def remaining(self, analyst: str) -> Decimal:
         """Epsilon ``analyst`` may still spend, from the ledger; HushError 42501 if unknown."""
@@ -249,6 +294,7 @@ class Engine:
     def answer(self, analyst: str, statement: str | exp.Expression, *,
                epsilon: Decimal | None = None, control: QueryControl | None = None) -> Answer:
         """Plan, reserve, run, noise and release one statement. Raises HushError."""
+        arrived = time.monotonic()
         prepared = self.prepare(analyst, statement)
         self._renewals.apply_due()  # a clock comparison except at a period boundary
         eps = self.epsilon_for(epsilon)
@@ -257,25 +303,31 @@ class Engine:
         charge, remaining = self.ledger.reserve(analyst, [plan.table.table], eps, text,
                                                 prepared.fingerprint)
         outcome = "failed"
+        steady = _steady_ms(plan)
+        failure: HushError | None = None
         try:
             faults.pause("after-reserve")
             settings = ({PICK_SALT_SETTING: secrets.token_hex(16)}
                         if prepared.rewritten.needs_salt else None)
-            true_rows = self.backend.run(prepared.rewritten.sql, control, settings)
+            true_rows = self._run_in_time(prepared, control, settings, arrived, steady)
             if len(true_rows) != len(prepared.cells):
                 raise HushError(INTERNAL_ERROR, "the backend returned an unexpected result shape")
             answer = self._release(prepared, eps, true_rows, charge)
             outcome = "answered"
         except HushError as error:
+            failure = error
             if error.sqlstate == QUERY_CANCELED:
                 outcome = "cancelled"
-            raise
         finally:
             if outcome == "answered":
                 # A note, not a charge (the charge is durable already): off the answer's path.
                 self._note_answered(charge)
             else:
                 self._finish(charge, outcome)
+        if steady is not None:  # answer or error, released at the steady time
+            _hold_until(arrived + steady / 1000, control)
+        if failure is not None:
+            raise failure
         return dataclasses.replace(answer, remaining=remaining)
 
     def _note_answered(self, charge: int) -> None:
@@ -298,6 +350,29 @@ class Engine:
         if recorded != len(charges):
             log.warning("%d of %d answered charges were unknown or already finished",
                         len(charges) - recorded, len(charges))
+
+    def _run_in_time(self, prepared: Prepared, control: QueryControl | None,
+                     settings: dict[str, str] | None, arrived: float,
+                     steady: int | None) -> list[tuple[Any, ...]]:
+        """The backend rows, under the proxy's timeout, or under what is left of a steady
+        answer time (then a timeout is the table's fixed error)."""
+        limit = self.policies.limits.query_timeout_ms
+        if steady is None:
+            return self.backend.run(prepared.rewritten.sql, control, settings, timeout_ms=limit)
+        left = steady - int((time.monotonic() - arrived) * 1000)
+        try:
+            return self.backend.run(prepared.rewritten.sql, control, settings,
+                                    timeout_ms=max(1, min(limit, left)))
+        except HushError as error:
+            if error.sqlstate != QUERY_CANCELED or (control is not None and control.cancelled):
+                raise
+            table = prepared.plan.table.table
+            raise HushError(QUERY_CANCELED,
+                            f"no answer: table {table} answers exactly {steady} ms after a "
+                            "query arrives, and this query needed longer",
+                            hint="its epsilon stays spent; ask for fewer cells or a simpler "
+                                 "condition, or ask the data owner to lengthen "
+                                 "[timing] answer_after_ms") from None
 
     def _finish(self, charge: int, outcome: str) -> None:
         """Record the outcome of a charge; a failure to record it loses only the note."""
@@ -334,6 +409,34 @@ class Engine:
                       rows=postprocess(plan, rows), epsilon=epsilon,
                       remaining=Decimal(0), accuracy=accuracy,
                       tables=[plan.table.table], charge_id=charge)
+
+
+def _plan_bytes(prepared: Prepared) -> int:
+    """An estimate of a cached plan's memory: about 600 bytes per condition node (measured with
+    tracemalloc on the largest accepted shapes), plus the backend SQL and the cells."""
+    plan = prepared.plan
+    nodes = sum(1 for clause in (plan.where, plan.having) if clause is not None
+                for _ in clause.walk())
+    return 2_000 + 600 * nodes + 2 * len(prepared.rewritten.sql) + 200 * len(prepared.cells)
+
+
+# ---- steady answer time ----------------------------------------------------------------------
+
+def _steady_ms(plan: Plan) -> int | None:
+    """The table's declared answer time in milliseconds, or None when it declares none."""
+    timing = plan.table.timing
+    return timing.answer_after_ms if timing is not None else None
+
+
+def _hold_until(deadline: float, control: QueryControl | None) -> None:
+    """Wait until ``deadline`` (time.monotonic); a cancel ends the wait with 57014."""
+    left = deadline - time.monotonic()
+    if left <= 0:
+        return
+    if control is None:
+        time.sleep(left)
+    elif control.wait(left):
+        raise HushError(QUERY_CANCELED, "canceling statement due to user request")
 
 
 # ---- pure helpers ----------------------------------------------------------------------------

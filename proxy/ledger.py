@@ -44,6 +44,11 @@ Why it is shaped like this:
   race. A database whose schema is newer than this program knows is refused (``LedgerError``).
 - A trigger refuses any update that raises ``spent`` above its budget or cap (SQLSTATE 23514):
   a last line of defence against a bug here or a hand-written update, not the normal path.
+- A charge keeps a bounded excerpt of its statement (the first ``STATEMENT_EXCERPT``
+  characters) and the SHA-256 of the whole text, never the whole text: refused-for-free and
+  cheap queries must not be able to grow the ledger by megabytes each. The hash still lets an
+  auditor match a charge with a statement kept elsewhere. (Rows written before schema version 2
+  keep the full text they had; their hash was computed by the migration.)
 
 This module and ``proxy.backend`` are the only ones the engine reaches PostgreSQL through.
 """
@@ -384,7 +389,40 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         SELECT table_name AS name, cap, spent, updated_at FROM {schema}.table_budgets
         """,
     )),
+    ("statement excerpt and hash", (
+        "ALTER TABLE {schema}.charges ADD COLUMN statement_sha256 text",
+        "UPDATE {schema}.charges "
+        "SET statement_sha256 = encode(sha256(convert_to(statement, 'UTF8')), 'hex')",
+        "COMMENT ON COLUMN {schema}.charges.statement IS "
+        "'the first characters of the statement (rows before schema version 2: all of it)'",
+        "COMMENT ON COLUMN {schema}.charges.statement_sha256 IS "
+        "'SHA-256 of the whole statement text in UTF-8, hex'",
+        # reserve_charge and the hash in one statement, so in one transaction.
+        """
+        CREATE FUNCTION {schema}.reserve_charge_hashed(
+            analyst_name text, table_names text[], amount numeric,
+            statement_excerpt text, statement_hash text, statement_fingerprint text,
+            OUT charge_id bigint, OUT refusal text, OUT refused_name text,
+            OUT refused_limit numeric, OUT refused_left numeric, OUT left_after numeric)
+        LANGUAGE plpgsql AS $body$
+        BEGIN
+            SELECT r.charge_id, r.refusal, r.refused_name, r.refused_limit, r.refused_left,
+                   r.left_after
+              INTO charge_id, refusal, refused_name, refused_limit, refused_left, left_after
+              FROM {schema}.reserve_charge(analyst_name, table_names, amount, statement_excerpt,
+                                           statement_fingerprint) AS r;
+            IF charge_id IS NOT NULL THEN
+                UPDATE {schema}.charges SET statement_sha256 = statement_hash WHERE id = charge_id;
+            END IF;
+        END
+        $body$
+        """,
+    )),
 ]
+
+
+STATEMENT_EXCERPT = 1000
+"""Characters of a statement the ledger keeps (with the SHA-256 of all of it)."""
 
 SCHEMA_VERSION = len(_MIGRATIONS)
 """The ledger schema version this program creates and understands."""
@@ -408,12 +446,13 @@ LOCK_ORDER: tuple[str, ...] = (
 
 
 class _Request(NamedTuple):
-    """One reservation, in ``reserve_charge``'s argument order."""
+    """One reservation, in ``reserve_charge_hashed``'s argument order."""
 
     analyst: str
     tables: list[str]
     epsilon: Decimal
-    statement: str
+    statement: str  # the first STATEMENT_EXCERPT characters
+    statement_sha256: str  # of the whole text
     fingerprint: str
 
 
@@ -691,7 +730,8 @@ class Ledger:
     def reserve(self, analyst: str, tables: list[str], epsilon: Decimal, statement: str,
                 fingerprint: str) -> Reservation:
         """Charge ``epsilon`` to ``analyst`` and ``tables``; return the charge (its id and what
-        the analyst has left after it) once durable.
+        the analyst has left after it) once durable. The charge keeps the first
+        ``STATEMENT_EXCERPT`` characters of ``statement`` and the SHA-256 of all of it.
 
         Raises HushError 53400 (nothing charged) when the analyst's budget or a table's cap
         would be exceeded, 42501 for an analyst with no budget, 42P01 for a table the ledger does
@@ -701,7 +741,8 @@ class Ledger:
         if not epsilon > 0:
             raise HushError(INVALID_PARAMETER_VALUE, f"epsilon must be positive, got {epsilon}",
                             "set hushql.epsilon to a positive number such as 0.1")
-        request = _Request(analyst, sorted(set(tables)), epsilon, statement, fingerprint)
+        request = _Request(analyst, sorted(set(tables)), epsilon, statement[:STATEMENT_EXCERPT],
+                           statement_hash(statement), fingerprint)
         charge_id, refusal, name, limit, left, left_after = self._group.submit(request)
         if refusal is not None:
             raise _refused(refusal, name, limit, left, epsilon)
@@ -892,7 +933,7 @@ class _Statements:
         s = sql.Identifier(schema).as_string(None)
         self.reserve = (
             "SELECT charge_id, refusal, refused_name, refused_limit, refused_left, left_after "
-            f"FROM {s}.reserve_charge(%s, %s::text[], %s, %s, %s)")
+            f"FROM {s}.reserve_charge_hashed(%s, %s::text[], %s, %s, %s, %s)")
         self.finish = f"SELECT {s}.finish_charge(%s, %s)"
         # One statement (one transaction, whose commit finish_charge makes asynchronous).
         self.finish_many = (
@@ -939,6 +980,11 @@ class _Statements:
             "WHERE spent > budget "
             f"UNION ALL SELECT 'table', table_name, cap, spent FROM {s}.table_budgets "
             "WHERE cap IS NOT NULL AND spent > cap ORDER BY 1, 2")
+
+
+def statement_hash(statement: str) -> str:
+    """The SHA-256 of a statement's UTF-8 text, in hex: what a charge keeps of all of it."""
+    return hashlib.sha256(statement.encode("utf-8", "surrogatepass")).hexdigest()
 
 
 def _advisory_key(schema: str) -> int:

@@ -28,6 +28,8 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, Strict, ValidationError
 
+from proxy.sql.limits import Limits
+
 ColumnKind = Literal["category", "integer", "number", "date", "boolean"]
 # Counts and caps are whole numbers written as TOML integers: `true` or `4.0` is refused, not
 # silently read as 1 or 4.
@@ -41,6 +43,8 @@ class _Strict(BaseModel):
 class Defaults(_Strict):
     epsilon_per_query: Decimal = Decimal("0.1")
     largest_epsilon_per_query: Decimal = Decimal("1.0")
+    # So that a budget buys a bounded number of queries: budget / smallest at most.
+    smallest_epsilon_per_query: Decimal = Decimal("0.001")
     most_cells: WholeNumber = 10_000
 
 
@@ -85,6 +89,7 @@ class AccessPolicy(_Strict):
     connections: Connections = Field(default_factory=Connections)
     analysts: dict[str, AnalystPolicy] = Field(default_factory=dict)
     admins: dict[str, AdminPolicy] = Field(default_factory=dict)
+    limits: Limits = Field(default_factory=Limits)
 
 
 class Individual(_Strict):
@@ -97,6 +102,17 @@ class Individual(_Strict):
 
 class TableBudget(_Strict):
     cap: Decimal
+
+
+class Timing(_Strict):
+    """[timing]: answers on this table are released no earlier than ``answer_after_ms`` after
+    the query reaches the engine, and a query still running then ends with a fixed error at
+    that same time, so an answer's timing carries nothing about the data."""
+
+    answer_after_ms: WholeNumber
+
+
+LONGEST_ANSWER_AFTER_MS = 600_000
 
 
 class ColumnPolicy(_Strict):
@@ -141,6 +157,7 @@ class TablePolicy(_Strict):
     description: str = ""
     individual: Individual | None = None
     budget: TableBudget | None = None
+    timing: Timing | None = None
     columns: dict[str, ColumnPolicy]
 
     def column(self, name: str) -> ColumnPolicy | None:
@@ -166,6 +183,10 @@ class Policies:
     @property
     def admins(self) -> dict[str, AdminPolicy]:
         return self.access.admins
+
+    @property
+    def limits(self) -> Limits:
+        return self.access.limits
 
 
 class PolicyError(Exception):
@@ -327,6 +348,9 @@ def _table_problems(policy: TablePolicy) -> list[tuple[str, str]]:
             found.append(("individual.rows_cap", "must be a positive integer"))
     if policy.budget is not None and policy.budget.cap <= 0:
         found.append(("budget.cap", "must be positive"))
+    if policy.timing is not None and not 1 <= policy.timing.answer_after_ms <= LONGEST_ANSWER_AFTER_MS:
+        found.append(("timing.answer_after_ms",
+                      f"must be a whole number of milliseconds from 1 to {LONGEST_ANSWER_AFTER_MS}"))
     return found
 
 
@@ -423,6 +447,8 @@ def _access_problems(access: AccessPolicy, table_names: set[str]) -> list[tuple[
         found.append(("defaults.most_cells", "must be a positive integer"))
     found += [(f"connections.{key}", problem)
               for key, problem in _connection_problems(access.connections)]
+    found += _smallest_epsilon_problems(d)
+    found += [(f"limits.{key}", problem) for key, problem in access.limits.problems()]
     accounts = [("analysts", n, a.password) for n, a in access.analysts.items()]
     accounts += [("admins", n, a.password) for n, a in access.admins.items()]
     for section, name, password in accounts:
@@ -466,6 +492,17 @@ def _connection_problems(c: Connections) -> list[tuple[str, str]]:
         if not value.is_finite() or not 0 < value <= most:
             found.append((key, f"must be above 0 and at most {most}"))
     return found
+
+
+def _smallest_epsilon_problems(d: Defaults) -> list[tuple[str, str]]:
+    """smallest_epsilon_per_query is positive and no larger than the epsilons it must allow."""
+    key = "defaults.smallest_epsilon_per_query"
+    if d.smallest_epsilon_per_query <= 0:
+        return [(key, "must be positive")]
+    if d.epsilon_per_query > 0 and d.smallest_epsilon_per_query > d.epsilon_per_query:
+        return [(key, f"{d.smallest_epsilon_per_query} is above epsilon_per_query "
+                      f"{d.epsilon_per_query}")]
+    return []
 
 
 # PostgreSQL's stored form of a SCRAM-SHA-256 password, as in pg_authid.rolpassword

@@ -47,6 +47,16 @@ def test_statement_timeout_ends_slow_queries(backend: Backend) -> None:
     assert error.value.sqlstate == "57014" and "timeout" in error.value.message
 
 
+def test_each_query_runs_under_the_timeout_its_caller_gives(backend: Backend) -> None:
+    with pytest.raises(HushError) as error:
+        backend.run("SELECT pg_sleep(1)", timeout_ms=100)
+    assert error.value.sqlstate == "57014" and "100 ms" in (error.value.hint or "")
+    # The next queries on the pool (two connections) are back under the pool's 2 s default.
+    for _ in range(4):
+        assert backend.run("SELECT current_setting('statement_timeout')") == [("2s",)]
+    assert backend.run("SELECT current_setting('statement_timeout')", timeout_ms=250) == [("250ms",)]
+
+
 def test_backend_errors_never_carry_backend_text(backend: Backend) -> None:
     # The error PostgreSQL raises here quotes the row value; the proxy must not pass it on.
     with pytest.raises(HushError) as error:

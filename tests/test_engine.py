@@ -96,7 +96,8 @@ def test_exhausted_budget_runs_nothing(make_engine, monkeypatch) -> None:
     engine = make_engine(budget="1.0", largest="1.0")
     runs: list[str] = []
     real_run = engine.backend.run
-    monkeypatch.setattr(engine.backend, "run", lambda sql, *a: runs.append(sql) or real_run(sql, *a))
+    monkeypatch.setattr(engine.backend, "run",
+                        lambda sql, *a, **k: runs.append(sql) or real_run(sql, *a, **k))
     engine.answer("tester", "SELECT COUNT(*) FROM people", epsilon=Decimal("0.75"))
     with pytest.raises(HushError) as exhausted:
         engine.answer("tester", "SELECT COUNT(*) FROM people", epsilon=Decimal("0.5"))

@@ -8,6 +8,8 @@ processes) never overspend; a lock on one analyst's row does not delay another a
 
 from __future__ import annotations
 
+import hashlib
+
 import threading
 import time
 from collections.abc import Callable, Iterator
@@ -27,6 +29,7 @@ from proxy.errors import (
     UNDEFINED_TABLE,
     HushError,
 )
+from proxy import ledger as ledger_module
 from proxy.ledger import SCHEMA_VERSION, Ledger, LedgerError
 from proxy.policy import (
     AccessPolicy,
@@ -458,3 +461,37 @@ def test_a_row_held_too_long_fails_closed(fresh_dsn: str,
     assert charge_count(fresh_dsn) == 0
     ledger.reserve("planner", [], D("0.1"), "SELECT 1", "f")  # the pool is still usable
     assert ledger.spent("planner") == D("0.1")
+
+
+# --- statement excerpt and hash -----------------------------------------------------------------
+
+def test_a_charge_keeps_an_excerpt_and_the_hash_of_the_whole_statement(
+        fresh_dsn: str, open_ledger: Callable[..., Ledger]) -> None:
+    ledger = open_ledger()
+    ledger.sync_budgets(make_policies({"planner": "3.0"}, {"households": None}))
+    long = "SELECT COUNT(*) FROM households WHERE district IN (" + ", ".join(
+        f"'district {i}'" for i in range(2000)) + ")"
+    for statement in (long, "SELECT 1"):
+        ledger.reserve("planner", ["households"], D("0.1"), statement, "fp")
+    rows = query(fresh_dsn, "SELECT statement, statement_sha256 FROM hushql.charges ORDER BY id")
+    assert rows[0] == (long[:ledger_module.STATEMENT_EXCERPT],
+                       hashlib.sha256(long.encode()).hexdigest())
+    assert rows[1] == ("SELECT 1", hashlib.sha256(b"SELECT 1").hexdigest())
+
+
+def test_the_hash_migration_fills_in_rows_written_before_it(
+        fresh_dsn: str, open_ledger: Callable[..., Ledger], monkeypatch) -> None:
+    version_one = ledger_module._MIGRATIONS[:1]
+    monkeypatch.setattr(ledger_module, "_MIGRATIONS", version_one)
+    monkeypatch.setattr(ledger_module, "SCHEMA_VERSION", 1)
+    old = open_ledger()
+    old.sync_budgets(make_policies({"planner": "3.0"}, {"households": None}))
+    old._sql.reserve = old._sql.reserve.replace("reserve_charge_hashed(%s, %s::text[], %s, %s, %s, %s)",
+                                                "reserve_charge(%s, %s::text[], %s, %s, %s)")
+    with old._connection() as conn:
+        conn.execute(old._sql.reserve, ["planner", ["households"], D("0.1"), "SELECT 2", "fp"])
+    monkeypatch.undo()
+    open_ledger()  # upgrades to the current version
+    assert query(fresh_dsn, "SELECT statement, statement_sha256 FROM hushql.charges") == [
+        ("SELECT 2", hashlib.sha256(b"SELECT 2").hexdigest())]
+    assert query(fresh_dsn, "SELECT max(version) FROM hushql.schema_version") == [(SCHEMA_VERSION,)]

@@ -20,6 +20,7 @@ from sqlglot import exp
 
 from proxy.answer import Accuracy, Answer, OutputColumn
 from proxy.errors import HushError
+from proxy.sql.limits import Limits
 from proxy.wire import codec
 from proxy.wire.auth import make_verifier
 from proxy.wire.server import start_in_thread
@@ -45,10 +46,11 @@ class FakeEngine:
     def __init__(self, budget: Decimal = Decimal("3")) -> None:
         self.policies = SimpleNamespace(
             defaults=SimpleNamespace(epsilon_per_query=Decimal("0.1"),
-                                     largest_epsilon_per_query=Decimal("1.0"), most_cells=10000),
+                                     largest_epsilon_per_query=Decimal("1.0"),
+                                     smallest_epsilon_per_query=Decimal("0.001"), most_cells=10000),
             analysts={ANALYST: SimpleNamespace(password=make_verifier(PASSWORD), budget=budget,
                                                tables=["households"], disabled=False)},
-            admins={})
+            admins={}, limits=Limits())
         self.budget = budget
         self.spent = Decimal(0)
         self.calls: list[tuple[str, Any, Decimal | None]] = []

@@ -331,12 +331,23 @@ def test_catalog_queries_go_to_the_catalog_or_are_refused(engine: FakeEngine) ->
     assert _errors(_q(_session(engine), "SELECT relname FROM pg_catalog.pg_class")) == ["0A000"]
 
 
-def test_statement_timeout_cancels_the_running_query(engine: FakeEngine) -> None:
+def test_statement_timeout_is_accepted_but_never_cancels_an_answer(engine: FakeEngine) -> None:
     s = _session(engine)
-    out = _q(s, "SET statement_timeout = 50; SELECT slow_query FROM households")
-    [err] = [m for m in out if isinstance(m, codec.ErrorResponse)]
+    out = _q(s, "SET statement_timeout = 50")
+    [notice] = [m for m in out if isinstance(m, codec.NoticeResponse)]
+    assert "not applied" in (notice.get("M") or "")
+    assert _show(s, "statement_timeout") == "50ms"
+
+    async def slow_then_cancel() -> list:
+        running = asyncio.ensure_future(s.handle(codec.Query("SELECT slow_query FROM households")))
+        await asyncio.sleep(0.3)  # six times the analyst's timeout
+        assert not engine.cancelled.is_set()
+        s.cancel()  # a CancelRequest still works
+        return (await running)[0]
+
+    [err] = [m for m in asyncio.run(slow_then_cancel()) if isinstance(m, codec.ErrorResponse)]
     assert err.get("C") == "57014" and engine.cancelled.is_set()
-    assert err.get("M") == "canceling statement due to statement timeout"
+    assert err.get("M") == "canceling statement due to user request"
 
 
 def test_function_call_is_refused(engine: FakeEngine) -> None:

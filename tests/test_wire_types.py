@@ -148,3 +148,22 @@ def test_literal_nodes(value, sql) -> None:
 def test_values_no_literal_can_carry(value) -> None:
     with pytest.raises(HushError):
         types.literal(value, 1)
+
+
+# Limits of PostgreSQL's integer and real types (its documentation, "Numeric Types"): text
+# parameters beyond them are refused with 22003 as PostgreSQL refuses them on input.
+@pytest.mark.parametrize("text, oid, accepted", [
+    (b"2147483647", types.INT4, True), (b"2147483648", types.INT4, False),
+    (b"-2147483648", types.INT4, True), (b"-2147483649", types.INT4, False),
+    (b"32767", types.INT2, True), (b"32768", types.INT2, False),
+    (b"9223372036854775807", types.INT8, True), (b"9223372036854775808", types.INT8, False),
+    (b"3.4e38", types.FLOAT4, True), (b"3.5e38", types.FLOAT4, False),
+    (b"1e308", types.FLOAT8, True)])
+def test_parameters_are_range_checked_for_their_declared_type(text: bytes, oid: int,
+                                                              accepted: bool) -> None:
+    if accepted:
+        assert types.decode_parameter(text, oid, types.TEXT_FORMAT, 1) is not None
+    else:
+        with pytest.raises(HushError) as caught:
+            types.decode_parameter(text, oid, types.TEXT_FORMAT, 1)
+        assert caught.value.sqlstate == "22003"

@@ -38,8 +38,9 @@ import sqlglot.expressions as exp
 
 from proxy.errors import (AMBIGUOUS_COLUMN, DATATYPE_MISMATCH, GROUPING_ERROR,
                           INSUFFICIENT_PRIVILEGE, INVALID_COLUMN_REFERENCE, INVALID_LIMIT,
-                          INVALID_OFFSET, PROGRAM_LIMIT_EXCEEDED, SYNTAX_ERROR, UNDEFINED_COLUMN,
-                          UNDEFINED_FUNCTION, UNDEFINED_TABLE, HushError, refused)
+                          INVALID_OFFSET, PROGRAM_LIMIT_EXCEEDED, STATEMENT_TOO_COMPLEX,
+                          SYNTAX_ERROR, UNDEFINED_COLUMN, UNDEFINED_FUNCTION, UNDEFINED_TABLE,
+                          HushError, refused)
 from proxy.policy import ColumnPolicy, Policies, TablePolicy
 from proxy.sql.domains import TRUNC_UNITS, EmptyBucket, cell_count, key_size, key_type
 from proxy.sql.filters import (KIND_TYPE, Typed, chain_operands, check_filter, date_node, literal,
@@ -47,6 +48,8 @@ from proxy.sql.filters import (KIND_TYPE, Typed, chain_operands, check_filter, d
                                written_name, written_sql)
 from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narrowings, read_key,
                             restrictions)
+from proxy.sql.limits import check_statement_text, check_tree
+from proxy.sql.limits import hint as limit_hint
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
 
 BUCKETS = tuple(TRUNC_UNITS)  # the date_trunc units a group key accepts
@@ -99,12 +102,16 @@ def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -
                         (" (disabled)" if analyst_policy is not None else ""),
                         "connect as an analyst account listed in access.toml")
     try:
+        if isinstance(statement, str):
+            check_statement_text(statement, policies.limits)
         tree = _parse(statement) if isinstance(statement, str) else statement
+        check_tree(tree, policies.limits)
         select = _as_select(tree)
         return _Analysis(select, policies, frozenset(analyst_policy.tables)).plan()
-    except RecursionError:
-        raise HushError(PROGRAM_LIMIT_EXCEEDED, "the statement is nested too deeply",
-                        "write a flatter statement") from None
+    except RecursionError:  # the parser's own recursion can run out before check_tree runs
+        raise HushError(STATEMENT_TOO_COMPLEX, "the statement is nested too deeply",
+                        limit_hint(policies.limits, "nesting_depth",
+                                   "write a flatter statement")) from None
 
 
 def _parse(text: str) -> exp.Expression:
@@ -217,8 +224,8 @@ class _Analysis:
         if group is not None:
             self._group_by(group, items)
         where = select.args.get("where")
-        condition = check_filter(where.this, self._column, bucket_reader(self.table, self._column)) \
-            if where is not None else None
+        condition = check_filter(where.this, self._column, bucket_reader(self.table, self._column),
+                                 self.policies.limits) if where is not None else None
         within = narrowings(condition, self.table)
         among = restrictions(where.this, self._column) if where is not None else {}
         keys = tuple(replace(key, within=within.get(key.column), among=among.get(key))

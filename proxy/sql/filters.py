@@ -25,9 +25,40 @@ operand is evaluated as NUMERIC, and a column used inside arithmetic stands for 
 clamped to the policy's declared range, written as
 ``CASE WHEN c < lo THEN lo WHEN c > hi THEN hi ELSE CAST(c AS NUMERIC) END`` (a CASE keeps NULL
 as NULL, unlike LEAST/GREATEST; NaN sorts above every number and so clamps to hi). With every
-operand bounded, each arithmetic result has a bound on its number of digits, and a condition
-whose bound exceeds ``MOST_DIGITS`` is refused; ordinary arithmetic is far below it. This is the
-one place where a filter sees clamped values: the same values SUM and AVG see.
+operand bounded, each arithmetic result has a bound on its number of digits before the point
+and after it (a product keeps the sum of its factors' scales, a sum the larger one; a column
+counts with its step's scale, its value rounded to it), and a condition whose bound exceeds the
+``arithmetic_digits`` limit is refused; ordinary arithmetic is far below it. This is the one
+place where a filter sees clamped values: the same values SUM and AVG see.
+
+Bounded work per row. Whether a row's condition is evaluated at all can depend on the data
+(``household_id = X AND has_garden AND <heavy>`` evaluates ``<heavy>`` on the one row that
+passes the first two tests), so the time one row's condition can take is a side channel unless
+it is bounded by a small constant, the same for every row. It is, by these steps, given the
+limits of ``proxy.sql.limits`` (checked on the text and tree before analysis) and the rules
+above:
+
+1. The rebuilt condition has at most ``expression_nodes`` nodes (plus the fixed clamping CASE
+   per column inside arithmetic), and PostgreSQL evaluates each node at most once per row: no
+   operator here loops or recurses over its operands (no subqueries, no set-returning or
+   aggregate functions, no recursion).
+2. Each node's own work is bounded by the size of its operands: comparisons, AND/OR/NOT, IS,
+   BETWEEN and extract are constant-time on fixed-size values; + - * on NUMERIC take time
+   at most quadratic in the operands' digits, which are at most ``arithmetic_digits``; an IN
+   list compares with at most ``in_list_items`` literals; lower, upper, length and trim are
+   linear in their text, and trim's set of characters and LIKE/ILIKE patterns have at most
+   ``pattern_characters`` characters (PostgreSQL's LIKE matcher gives up a failed % branch
+   instead of backtracking, so it is about pattern times text, from memory of like_match.c);
+   text literals have at most ``text_literal_characters``.
+3. Nothing can grow a value from row to row: there is no concatenation, repeat, lpad or
+   casting of text, and arithmetic results are bounded by (2).
+
+So one row costs at most nodes x (largest operand work), a constant fixed by the statement
+before anything runs: with the defaults, well under a millisecond on current hardware
+(benchmarks/bench_timing.py measures what remains). The text of a row's own values also
+counts (lower(district) is linear in the stored text); that length is the data owner's, not the
+analyst's, and the same whichever condition is asked. A table that needs more than this can
+declare a steady answer time (``[timing]``, see ``proxy.engine``).
 
 The data owner's contract, assumed here: a column's kind matches its backend type (a number
 kind backed by text would fail the cast), and text columns use a deterministic collation
@@ -63,9 +94,10 @@ from typing import Callable, Iterable, Sequence
 
 import sqlglot.expressions as exp
 
-from proxy.errors import (DATATYPE_MISMATCH, GROUPING_ERROR, SYNTAX_ERROR, UNDEFINED_FUNCTION,
-                          HushError, refused)
+from proxy.errors import (DATATYPE_MISMATCH, GROUPING_ERROR, PROGRAM_LIMIT_EXCEEDED, SYNTAX_ERROR,
+                          UNDEFINED_FUNCTION, HushError, refused)
 from proxy.policy import ColumnPolicy
+from proxy.sql.limits import DEFAULT_LIMITS, Limits, hint
 
 # Analysis types of expressions. "string" is an untyped quoted literal (PostgreSQL's unknown),
 # which takes the type of what it meets; "null" is the NULL literal.
@@ -82,8 +114,6 @@ _TYPE_HINTS = {
 
 LARGEST_LITERAL = Decimal("1e30")
 SMALLEST_LITERAL = Decimal("1e-30")
-MOST_LITERAL_DIGITS = 40
-MOST_DIGITS = 1000  # digits before the point any arithmetic result may have; NUMERIC allows 131072
 
 DATE_UNITS = frozenset({"year", "quarter", "month", "week", "day", "dow", "isodow", "doy",
                         "isoyear"})
@@ -111,7 +141,7 @@ class Typed:
 
     ``literal`` marks constants; ``string`` holds the text of an untyped quoted literal (checked
     against whatever it meets); ``digits`` bounds the digits before the point of a numeric value
-    once clamped (None: not numeric). ``as_numeric`` and ``as_bounded`` give the node cast to
+    once clamped (None: not numeric) and ``scale`` the digits after it. ``as_numeric`` and ``as_bounded`` give the node cast to
     NUMERIC, respectively cast and clamped to declared ranges, for the contexts that need them.
     """
 
@@ -120,6 +150,7 @@ class Typed:
     literal: bool = False
     string: str | None = None
     digits: int | None = None
+    scale: int = 0
     as_numeric: Callable[[], exp.Expression] | None = field(default=None, repr=False)
     as_bounded: Callable[[], exp.Expression] | None = field(default=None, repr=False)
 
@@ -131,14 +162,16 @@ class Typed:
 
 
 def check_filter(condition: exp.Expression, resolve: ColumnResolver,
-                 bucket: BucketReader | None = None) -> exp.Expression:
+                 bucket: BucketReader | None = None,
+                 limits: Limits = DEFAULT_LIMITS) -> exp.Expression:
     """Check a WHERE condition and return a rebuilt, safe copy; raise HushError when refused.
 
     ``resolve`` maps a column reference to (policy name, ColumnPolicy) or raises 42703/42P01.
     ``bucket``, when given, reads bucket expressions (``proxy.sql.keys``): it returns the
-    checked, guarded bucket, or None for a node that is not one. The input tree is never modified.
+    checked, guarded bucket, or None for a node that is not one. ``limits.arithmetic_digits``
+    bounds arithmetic results. The input tree is never modified.
     """
-    checked = _FilterChecker(resolve, bucket).check(condition)
+    checked = _FilterChecker(resolve, bucket, limits).check(condition)
     if checked.type not in ("boolean", "null"):
         raise HushError(DATATYPE_MISMATCH,
                         f"argument of WHERE must be a condition, not {_TYPE_WORDS[checked.type]}",
@@ -380,14 +413,26 @@ def _number_literal(text: str, negative: bool) -> Typed:
     except InvalidOperation:
         raise HushError(SYNTAX_ERROR, f"invalid number {text!r}", "write numbers like 12 or 12.5")
     if not value.is_finite() or abs(value) > LARGEST_LITERAL or (
-            value != 0 and abs(value) < SMALLEST_LITERAL) or len(value.as_tuple().digits) > MOST_LITERAL_DIGITS:
-        raise refused(f"the number {text} is outside the accepted literal range",
-                      "numeric literals must lie between -1e30 and 1e30, be 0 or at least 1e-30 in "
-                      f"size, and have at most {MOST_LITERAL_DIGITS} digits")
+            value != 0 and abs(value) < SMALLEST_LITERAL):
+        raise refused(f"the number {text[:40]} is outside the accepted literal range",
+                      "numeric literals must lie between -1e30 and 1e30 and be 0 or at least "
+                      "1e-30 in size")
     node: exp.Expression = exp.Literal.number(text)
     if negative:
         node = exp.Neg(this=node)
-    return Typed(node, "number", literal=True, digits=_digits(value))
+    return Typed(node, "number", literal=True, digits=_digits(value), scale=_scale(value))
+
+
+def _scale(value: Decimal | int) -> int:
+    """Digits after the point of a number as written (PostgreSQL keeps them: 1.50 has 2)."""
+    exponent = Decimal(value).as_tuple().exponent
+    assert isinstance(exponent, int)
+    return max(0, -exponent)
+
+
+def _column_scale(column: ColumnPolicy) -> int:
+    """Digits after the point a column's values keep in WHERE arithmetic: its step's, or 0."""
+    return _scale(column.step) if column.kind == "number" and column.step is not None else 0
 
 
 def _cast_numeric(node: exp.Expression) -> exp.Expression:
@@ -406,17 +451,21 @@ def _column_ref(name: str) -> exp.Column:
 
 
 def _clamped(name: str, column: ColumnPolicy) -> exp.Expression:
-    """CASE WHEN c < lo THEN lo WHEN c > hi THEN hi ELSE c END, every branch NUMERIC.
+    """CASE WHEN c < lo THEN lo WHEN c > hi THEN hi ELSE round(c, places) END, every branch
+    NUMERIC, ``places`` the column's scale (so a stored value's own scale cannot make one row's
+    arithmetic costly).
 
     The tests compare the column in its own type with the bound (coerced once, at planning).
     """
     low, high = column.low, column.high
+    rounded = exp.Round(this=_cast_numeric(_column_ref(name)),
+                        decimals=exp.Literal.number(_column_scale(column)))
     return exp.Case(
         ifs=[exp.If(this=exp.LT(this=_column_ref(name), expression=number_node(low)),
                     true=_cast_numeric(number_node(low))),
              exp.If(this=exp.GT(this=_column_ref(name), expression=number_node(high)),
                     true=_cast_numeric(number_node(high)))],
-        default=_cast_numeric(_column_ref(name)))
+        default=rounded)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -424,9 +473,11 @@ def _clamped(name: str, column: ColumnPolicy) -> exp.Expression:
 class _FilterChecker:
     """One recursive pass over a WHERE condition, building the safe copy as it goes."""
 
-    def __init__(self, resolve: ColumnResolver, bucket: BucketReader | None = None) -> None:
+    def __init__(self, resolve: ColumnResolver, bucket: BucketReader | None = None,
+                 limits: Limits = DEFAULT_LIMITS) -> None:
         self._resolve = resolve
         self._bucket = bucket
+        self._limits = limits
 
     def check(self, node: exp.Expression) -> Typed:
         constant = literal(node)
@@ -445,7 +496,7 @@ class _FilterChecker:
     def _paren(self, node: exp.Paren) -> Typed:
         inner = self.check(node.this)
         return Typed(exp.Paren(this=inner.node), inner.type, literal=inner.literal,
-                     string=inner.string, digits=inner.digits,
+                     string=inner.string, digits=inner.digits, scale=inner.scale,
                      as_numeric=lambda: exp.Paren(this=inner.numeric()),
                      as_bounded=lambda: exp.Paren(this=inner.bounded()))
 
@@ -478,7 +529,7 @@ class _FilterChecker:
         if kind != "number":
             return Typed(_column_ref(name), kind)
         digits = max(_digits(column.low), _digits(column.high))
-        return Typed(_column_ref(name), "number", digits=digits,
+        return Typed(_column_ref(name), "number", digits=digits, scale=_column_scale(column),
                      as_numeric=lambda: _cast_numeric(_column_ref(name)),
                      as_bounded=lambda: _clamped(name, column))
 
@@ -568,12 +619,19 @@ class _FilterChecker:
                                 "arithmetic is accepted on integer and number columns and numeric "
                                 "literals; compare dates with dates instead")
         a, b = left.digits or 0, right.digits or 0
-        digits = a + b if isinstance(node, exp.Mul) else max(a, b) + 1
-        if digits > MOST_DIGITS:
-            raise refused("the arithmetic in WHERE could exceed the numeric range",
-                          "use fewer or smaller factors")
+        # PostgreSQL's NUMERIC keeps every digit: a product has the sum of its factors' scales,
+        # a sum the larger one (documentation, "Arbitrary Precision Numbers"; checked on 15).
+        if isinstance(node, exp.Mul):
+            digits, scale = a + b, left.scale + right.scale
+        else:
+            digits, scale = max(a, b) + 1, max(left.scale, right.scale)
+        if digits + scale > self._limits.arithmetic_digits:
+            raise HushError(PROGRAM_LIMIT_EXCEEDED,
+                            "the arithmetic in WHERE could need too many digits",
+                            hint(self._limits, "arithmetic_digits",
+                                 "use fewer or shorter factors, or round the literals"))
         built = type(node)(this=left.bounded(), expression=right.bounded())
-        return Typed(built, "number", digits=digits, as_bounded=lambda: built)
+        return Typed(built, "number", digits=digits, scale=scale, as_bounded=lambda: built)
 
     def _negative(self, node: exp.Neg) -> Typed:
         inner = self.check(node.this)
@@ -581,7 +639,8 @@ class _FilterChecker:
             raise HushError(DATATYPE_MISMATCH, f"unary minus takes a number, not {_TYPE_WORDS[inner.type]}",
                             WHERE_HINT)
         built = exp.Neg(this=inner.bounded())
-        return Typed(built, "number", digits=inner.digits, as_bounded=lambda: built)
+        return Typed(built, "number", digits=inner.digits, scale=inner.scale,
+                     as_bounded=lambda: built)
 
     # functions -------------------------------------------------------------------------------
     def _text_argument(self, node: exp.Expression, function: str) -> Typed:
@@ -622,7 +681,7 @@ class _FilterChecker:
         if family != "number":
             return Typed(built, family)
         digits = max(i.digits or 0 for i in items)
-        return Typed(built, "number", digits=digits,
+        return Typed(built, "number", digits=digits, scale=max(i.scale for i in items),
                      as_numeric=lambda: exp.Coalesce(
                          this=items[0].node if items[0].literal else items[0].numeric(),
                          expressions=[i.node if i.literal else i.numeric() for i in items[1:]]),

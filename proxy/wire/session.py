@@ -3,7 +3,9 @@
 The server hands the session each message of the query phase; the session answers with the
 backend messages to send. It knows nothing of sockets: blocking work (the engine, the catalog)
 runs in an executor so one analyst's slow query never holds up the event loop, and a running
-query can be cancelled from outside (CancelRequest, statement_timeout, a vanished client).
+query can be cancelled from outside (CancelRequest, a vanished client). The analyst's
+statement_timeout is not one of them: answers run under the proxy's own time limit (see
+``settings.NOT_APPLIED``), since a deadline the analyst chooses turns answer times into answers.
 
 What the engine sees: for a statement without parameters, its own text (the engine caches plans
 by text) or, above ``statements.MAX_CACHED_TEXT``, its tree (so a long text is parsed once);
@@ -37,6 +39,7 @@ from proxy.errors import (BUDGET_EXHAUSTED, DUPLICATE_CURSOR, DUPLICATE_PREPARED
                           INVALID_PARAMETER_VALUE, INVALID_SAVEPOINT, INVALID_SQL_STATEMENT_NAME,
                           NO_ACTIVE_SQL_TRANSACTION, PROGRAM_LIMIT_EXCEEDED, PROTOCOL_VIOLATION,
                           QUERY_CANCELED, SUCCESSFUL_COMPLETION, HushError)
+from proxy.sql.limits import check_statement_text
 from proxy.wire import codec, guard, settings, statements, types
 from proxy.wire.states import FAILED_BLOCK_HINT, TransactionMachine, TxEvent, TxStatus, TxStep
 from proxy.wire.statements import (DeallocateStatement, DiscardStatement, EmptyStatement,
@@ -283,6 +286,7 @@ class Session:
         out: list[Any] = []
         try:
             cost = await self._admit(sql)
+            check_statement_text(sql, self.engine.policies.limits)  # before any parsing
             parsed = await self._split(sql)
             if not parsed:
                 self._give_back(cost)
@@ -324,6 +328,7 @@ class Session:
             raise HushError(DUPLICATE_PREPARED_STATEMENT,
                             f'prepared statement "{msg.name}" already exists',
                             hint="Close or DEALLOCATE it first, or use another name.")
+        check_statement_text(msg.sql, self.engine.policies.limits)  # before any parsing
         st = statements.only_statement(await self._split(msg.sql))
         self._check_block(st)
         to_catalog = self._route(st)
@@ -689,13 +694,10 @@ class Session:
             raise internal_error() from None
 
     async def _controlled(self, fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Any:
-        """Like _blocking, with a QueryControl the session can cancel (CancelRequest, a timeout,
-        a vanished client)."""
+        """Like _blocking, with a QueryControl the session can cancel (CancelRequest, a vanished
+        client)."""
         control = QueryControl()
         self._running, self._cancel_reason = control, None
-        loop = asyncio.get_running_loop()
-        timeout_ms = settings.parse_duration_ms(self.values["statement_timeout"])
-        timer = loop.call_later(timeout_ms / 1000, self.cancel, "timeout") if timeout_ms else None
         try:
             return await self._blocking(fn, *args, control=control, **kwargs)
         except HushError as err:  # after our own cancel, say why it was cancelled
@@ -708,13 +710,9 @@ class Session:
             threading.Thread(target=control.cancel, name="hushql-cancel", daemon=True).start()
             raise
         finally:
-            if timer is not None:
-                timer.cancel()
             self._running = None
 
     def _cancelled(self) -> HushError:
-        if self._cancel_reason == "timeout":
-            return HushError(QUERY_CANCELED, "canceling statement due to statement timeout")
         return HushError(QUERY_CANCELED, "canceling statement due to user request")
 
     def cancel(self, reason: str = "user") -> None:
@@ -782,8 +780,9 @@ class Session:
             if value is None or value == "":
                 self.values[key] = self.defaults.get(key, "")
                 return
-            largest = self.engine.policies.defaults.largest_epsilon_per_query
-            self.values[key] = format(parse_epsilon(value, largest), "f")
+            defaults = self.engine.policies.defaults
+            self.values[key] = format(parse_epsilon(value, defaults.largest_epsilon_per_query,
+                                                    defaults.smallest_epsilon_per_query), "f")
             return
         if value is None:
             settings.normalise(key, self.defaults[key])  # still refuses read-only names
@@ -805,6 +804,10 @@ class Session:
         else:
             self._local_undo.pop(key, None)
         self._assign(key, st.value)
+        if key in settings.NOT_APPLIED and st.value is not None:
+            notices.append(codec.NoticeResponse.build(
+                "NOTICE", SUCCESSFUL_COMPLETION, f"{settings.SETTINGS[key].name} is accepted but "
+                "not applied", hint=settings.NOT_APPLIED_HINT))
         return Outcome(None, tag="SET", notices=notices)
 
     def _assign_checked_only(self, key: str, value: str | None) -> None:

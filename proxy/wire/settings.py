@@ -5,6 +5,11 @@ and whether a change is reported to the client with ParameterStatus (the setting
 reports; clients such as JDBC and libpq read them). hushql only remembers most of them so that
 ordinary client start-up sequences succeed; none of them reaches the backend database. The
 privacy settings (``hushql.epsilon``) are validated against the policies, in the session.
+
+Time limits (``NOT_APPLIED``) are accepted, remembered and shown, but never applied: a query
+runs under the proxy's own time limit (access.toml ``[limits] query_timeout_ms``), because a
+deadline the analyst chooses turns "answered or cancelled" into a measurement of how long the
+backend took on the data. Setting one draws a NOTICE saying so.
 """
 
 from __future__ import annotations
@@ -183,10 +188,11 @@ SETTINGS: Mapping[str, Setting] = {s.name.lower(): s for s in (
             "Digits of floating-point output."),
     Setting("search_path", '"$user", public', _any_text, False, "Schema search order."),
     Setting("statement_timeout", "0", _duration, False,
-            "Cancel a query running longer than this (0: never)."),
-    Setting("lock_timeout", "0", _duration, False, "Accepted for compatibility."),
+            "Accepted, not applied: answers run under the proxy's own time limit."),
+    Setting("lock_timeout", "0", _duration, False,
+            "Accepted, not applied: answers run under the proxy's own time limit."),
     Setting("idle_in_transaction_session_timeout", "0", _duration, False,
-            "Accepted for compatibility."),
+            "Accepted, not applied: answers run under the proxy's own time limit."),
     Setting("transaction_isolation", "read committed", _choice(*_ISOLATION), False,
             "Accepted for compatibility: answers are not transactional."),
     Setting("default_transaction_isolation", "read committed", _choice(*_ISOLATION), False,
@@ -206,6 +212,12 @@ SETTINGS: Mapping[str, Setting] = {s.name.lower(): s for s in (
     Setting(EPSILON, "", None, False, "Epsilon charged per query (policy default if unset)."),
     Setting(REMAINING, "", None, False, "Epsilon left in this analyst's budget."),
 )}
+
+# Time limits a client may set but that never apply (see the module docstring).
+NOT_APPLIED = frozenset({"statement_timeout", "lock_timeout",
+                         "idle_in_transaction_session_timeout"})
+NOT_APPLIED_HINT = ("Answers run under the proxy's own time limit, the same for every analyst, "
+                    "so that whether a query finishes in time says nothing about the data.")
 
 # SHOW accepts a few multi-word spellings of the same settings (SQL standard forms).
 ALIASES: Mapping[str, str] = {

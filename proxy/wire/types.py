@@ -23,7 +23,8 @@ from sqlglot import exp
 
 from proxy.errors import (CHARACTER_NOT_IN_REPERTOIRE, FEATURE_NOT_SUPPORTED,
                           INVALID_BINARY_REPRESENTATION, INVALID_PARAMETER_VALUE,
-                          INVALID_TEXT_REPRESENTATION, PROTOCOL_VIOLATION, HushError)
+                          INVALID_TEXT_REPRESENTATION, NUMERIC_VALUE_OUT_OF_RANGE,
+                          PROTOCOL_VIOLATION, HushError)
 from proxy.wire import codec
 
 # Type OIDs (pg_type.dat of PostgreSQL; these are fixed across versions).
@@ -336,7 +337,7 @@ def decode_parameter(data: bytes | None, oid: int, fmt: int, position: int) -> A
         loader = _ADAPTERS.get_loader(oid, Format.BINARY if binary else Format.TEXT)
         if loader is None:
             raise ValueError("no loader")
-        return loader(oid).load(data)
+        return _check_range(loader(oid).load(data), oid, position)
     except HushError:
         raise
     except Exception:
@@ -347,6 +348,23 @@ def decode_parameter(data: bytes | None, oid: int, fmt: int, position: int) -> A
         raise HushError(INVALID_TEXT_REPRESENTATION,
                         f"invalid input syntax for type {type_name(oid)} in parameter "
                         f"${position}") from None
+
+
+# The values each declared numeric parameter type can hold, as PostgreSQL checks them on input
+# (22003): two's-complement integers, and IEEE 754 binary32's largest finite value for real.
+_RANGES: dict[int, tuple[int | float, int | float]] = {
+    INT2: (-2**15, 2**15 - 1), INT4: (-2**31, 2**31 - 1), INT8: (-2**63, 2**63 - 1),
+    FLOAT4: (-3.4028234663852886e38, 3.4028234663852886e38)}
+
+
+def _check_range(value: Any, oid: int, position: int) -> Any:
+    """``value`` when its declared type can hold it; HushError 22003 otherwise."""
+    bounds = _RANGES.get(oid)
+    if bounds is not None and isinstance(value, (int, float)) and not isinstance(value, bool) \
+            and math.isfinite(value) and not bounds[0] <= value <= bounds[1]:
+        raise HushError(NUMERIC_VALUE_OUT_OF_RANGE,
+                        f"parameter ${position} is out of range for type {type_name(oid)}")
+    return value
 
 
 def _number(text: str, negative: bool) -> exp.Expression:
