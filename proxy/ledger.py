@@ -12,12 +12,16 @@ Why it is shaped like this:
 - Once a query has started its charge stands, whatever happens (an error at run time can depend
   on the data): ``finish`` only records the outcome and never gives epsilon back.
 - Several proxy processes may share one ledger. Row locks (``SELECT ... FOR UPDATE``) make
-  concurrent reservations for one analyst or one table take turns, so none overspends; locks are
-  always taken in one order (the analyst's row, then the tables' rows sorted by name, codepoint
-  order) so two reservations cannot deadlock. Different analysts on different tables share no row
-  and do not wait for each other. (Every reservation on one table does take that table's row, so
-  charges to a single table serialise across analysts; that is what enforcing a table-wide cap
-  exactly costs.)
+  concurrent reservations for one analyst or one population take turns, so none overspends;
+  locks are always taken in one order (the analyst's row, then the populations' rows sorted by
+  name, codepoint order, then the tables' rows, written only under their population's lock) so
+  two reservations cannot deadlock. Different analysts on different populations share no row
+  and do not wait for each other. (Every reservation on one population does take its row, so
+  charges to it serialise across analysts; that is what enforcing a cap exactly costs.)
+- Populations: tables naming the same population protect the same people, so their spending
+  adds up against one cap (the smallest cap its tables declare); a table without an
+  ``[individual]`` section is a population of its own. Each table's own ``spent`` is kept too,
+  for the books.
 - Epsilon is ``Decimal`` in Python and ``NUMERIC`` in PostgreSQL, never a float: 0.1 charged 30
   times is exactly 3.0. Sums, differences and comparisons happen in PostgreSQL (arbitrary
   precision); Python never does arithmetic on a budget.
@@ -205,6 +209,101 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         $body$
         """,
     )),
+    ("population budgets: tables protecting the same people share one cap", (
+        """
+        CREATE TABLE {schema}.population_budgets (
+            population  text PRIMARY KEY,
+            cap         numeric CHECK (cap > 0),
+            spent       numeric NOT NULL DEFAULT 0 CHECK (spent >= 0),
+            updated_at  timestamptz NOT NULL DEFAULT now()
+        )
+        """,
+        "COMMENT ON COLUMN {schema}.population_budgets.cap IS "
+        "'epsilon all analysts together may spend on all tables of the population; NULL: no cap'",
+        """
+        CREATE TRIGGER spent_within_population_cap BEFORE UPDATE OF spent
+        ON {schema}.population_budgets
+        FOR EACH ROW EXECUTE FUNCTION {schema}.refuse_overspending('cap')
+        """,
+        # Tables known before this step are each their own population, spending carried over.
+        "ALTER TABLE {schema}.table_budgets ADD COLUMN population text",
+        "UPDATE {schema}.table_budgets SET population = table_name",
+        """
+        INSERT INTO {schema}.population_budgets (population, cap, spent)
+        SELECT table_name, cap, spent FROM {schema}.table_budgets
+        """,
+        "ALTER TABLE {schema}.table_budgets ALTER COLUMN population SET NOT NULL",
+        # The reservation now checks and charges the populations of the tables (their rows
+        # locked after the analyst's, in codepoint order), and still adds to each table's spent
+        # for the books (those rows are only written under their population's lock).
+        """
+        CREATE OR REPLACE FUNCTION {schema}.reserve_charge(
+            analyst_name text, table_names text[], amount numeric,
+            statement_text text, statement_fingerprint text,
+            OUT charge_id bigint, OUT refusal text, OUT refused_name text,
+            OUT refused_limit numeric, OUT refused_left numeric, OUT left_after numeric)
+        LANGUAGE plpgsql AS $body$
+        DECLARE
+            found_row record;
+            populations text[];
+        BEGIN
+            SELECT b.budget, b.budget - b.spent AS headroom INTO found_row
+              FROM {schema}.analyst_budgets b
+             WHERE b.analyst = analyst_name
+               FOR UPDATE;
+            IF NOT FOUND THEN
+                refusal := 'unknown analyst';
+                refused_name := analyst_name;
+                RETURN;
+            END IF;
+            IF amount > found_row.headroom THEN
+                refusal := 'analyst budget';
+                refused_name := analyst_name;
+                refused_limit := found_row.budget;
+                refused_left := found_row.headroom;
+                RETURN;
+            END IF;
+            SELECT min(wanted COLLATE "C") INTO refused_name
+              FROM unnest(table_names) AS wanted
+             WHERE NOT EXISTS (SELECT 1 FROM {schema}.table_budgets t WHERE t.table_name = wanted);
+            IF refused_name IS NOT NULL THEN
+                refusal := 'unknown table';
+                RETURN;
+            END IF;
+            SELECT array_agg(DISTINCT t.population) INTO populations
+              FROM {schema}.table_budgets t WHERE t.table_name = ANY (table_names);
+            -- ORDER BY runs before the row locks, so rows are locked in this order.
+            FOR found_row IN
+                SELECT p.population, p.cap, p.cap - p.spent AS headroom
+                  FROM {schema}.population_budgets p
+                 WHERE p.population = ANY (populations)
+                 ORDER BY p.population COLLATE "C"
+                   FOR UPDATE
+            LOOP
+                IF found_row.cap IS NOT NULL AND amount > found_row.headroom THEN
+                    -- A table that is its own population keeps the table's wording.
+                    refusal := CASE WHEN found_row.population = ANY (table_names)
+                                    THEN 'table cap' ELSE 'population cap' END;
+                    refused_name := found_row.population;
+                    refused_limit := found_row.cap;
+                    refused_left := found_row.headroom;
+                    RETURN;
+                END IF;
+            END LOOP;
+            UPDATE {schema}.analyst_budgets SET spent = spent + amount, updated_at = now()
+             WHERE analyst = analyst_name
+            RETURNING greatest(budget - spent, 0) INTO left_after;
+            UPDATE {schema}.population_budgets SET spent = spent + amount, updated_at = now()
+             WHERE population = ANY (populations);
+            UPDATE {schema}.table_budgets SET spent = spent + amount, updated_at = now()
+             WHERE table_name = ANY (table_names);
+            INSERT INTO {schema}.charges (analyst, tables, epsilon, statement, fingerprint)
+            VALUES (analyst_name, table_names, amount, statement_text, statement_fingerprint)
+            RETURNING id INTO charge_id;
+        END
+        $body$
+        """,
+    )),
 ]
 
 SCHEMA_VERSION = len(_MIGRATIONS)
@@ -311,9 +410,14 @@ class Ledger:
         Rows of analysts or tables no longer in the policy are kept (their charges refer to them).
         """
         analysts = sorted((name, a.budget) for name, a in policies.analysts.items())
-        tables = sorted((name, t.budget.cap if t.budget is not None else None)
+        tables = sorted((name, t.budget.cap if t.budget is not None else None, t.population)
                         for name, t in policies.tables.items())
-        for _, value in analysts + tables:
+        # A population's cap is the smallest its tables declare (fail closed); none: no cap.
+        caps: dict[str, list[Decimal]] = {}
+        for _, cap, population in tables:
+            caps.setdefault(population, []).extend([cap] if cap is not None else [])
+        populations = sorted((name, min(found) if found else None) for name, found in caps.items())
+        for value in [a[1] for a in analysts] + [t[1] for t in tables]:
             if value is not None:
                 _check_decimal(value, "a budget")
         with self._transaction() as conn:
@@ -321,6 +425,9 @@ class Ledger:
             with conn.cursor() as cur:
                 if analysts:
                     cur.executemany(self._sql.upsert_analyst, analysts)
+                # Populations before tables: the order reserve locks them in.
+                if populations:
+                    cur.executemany(self._sql.upsert_population, populations)
                 if tables:
                     cur.executemany(self._sql.upsert_table, tables)
 
@@ -444,6 +551,13 @@ def _refused(refusal: str, name: str, limit: Decimal | None, left: Decimal | Non
             f"privacy budget exhausted: {_show(left)} of {_show(limit)} left for analyst "
             f"{name}, this query needs {_show(epsilon)}",
             "lower hushql.epsilon or ask an administrator for more budget")
+    if refusal == "population cap":
+        return HushError(
+            BUDGET_EXHAUSTED,
+            f"population budget exhausted: {_show(left)} of {_show(limit)} left for the "
+            f"individuals of population {name} (all analysts, all its tables together), this "
+            f"query needs {_show(epsilon)}",
+            "lower hushql.epsilon or ask the data owners to raise the tables' cap")
     if refusal == "table cap":
         return HushError(
             BUDGET_EXHAUSTED,
@@ -482,16 +596,22 @@ class _Statements:
         self.spent = f"SELECT spent FROM {s}.analyst_budgets WHERE analyst = %s"
         self.table_remaining = (
             # GREATEST skips NULLs, so "no cap" must stay NULL explicitly.
-            "SELECT CASE WHEN cap IS NOT NULL THEN greatest(cap - spent, 0) END "
-            f"FROM {s}.table_budgets WHERE table_name = %s")
+            "SELECT CASE WHEN p.cap IS NOT NULL THEN greatest(p.cap - p.spent, 0) END "
+            f"FROM {s}.table_budgets t JOIN {s}.population_budgets p USING (population) "
+            "WHERE t.table_name = %s")
         self.upsert_analyst = (
             f"INSERT INTO {s}.analyst_budgets AS a (analyst, budget) VALUES (%s, %s) "
             "ON CONFLICT (analyst) DO UPDATE SET budget = EXCLUDED.budget, updated_at = now() "
             "WHERE a.budget IS DISTINCT FROM EXCLUDED.budget")
+        self.upsert_population = (
+            f"INSERT INTO {s}.population_budgets AS p (population, cap) VALUES (%s, %s) "
+            "ON CONFLICT (population) DO UPDATE SET cap = EXCLUDED.cap, updated_at = now() "
+            "WHERE p.cap IS DISTINCT FROM EXCLUDED.cap")
         self.upsert_table = (
-            f"INSERT INTO {s}.table_budgets AS t (table_name, cap) VALUES (%s, %s) "
-            "ON CONFLICT (table_name) DO UPDATE SET cap = EXCLUDED.cap, updated_at = now() "
-            "WHERE t.cap IS DISTINCT FROM EXCLUDED.cap")
+            f"INSERT INTO {s}.table_budgets AS t (table_name, cap, population) VALUES (%s, %s, %s) "
+            "ON CONFLICT (table_name) DO UPDATE SET cap = EXCLUDED.cap, "
+            "population = EXCLUDED.population, updated_at = now() "
+            "WHERE (t.cap, t.population) IS DISTINCT FROM (EXCLUDED.cap, EXCLUDED.population)")
 
 
 def _advisory_key(schema: str) -> int:

@@ -1,11 +1,15 @@
 """Plan -> backend SQL, and the sensitivity of each measure of the plan.
 
 Everything here is a pure function of the plan and its table policy; the SQL is built as a
-sqlglot tree, never by pasting strings, and written once for PostgreSQL.
+sqlglot tree and written once for PostgreSQL. Policy and analyst text (sources, columns,
+filters) only ever enter as tree nodes; fixed fragments of this module's own, holding nothing
+but its aliases and integers, are parsed into trees with sqlglot.
 
 The backend query returns exactly one row per declared cell, in domain order: the key ordinals
-``i0, i1, ...`` and then one column per measure ``m0, m1, ...`` (0 for empty cells). It never
-returns rows of the table, never sorts, limits or filters on aggregates.
+``i0, i1, ...``, one column per measure ``m0, m1, ...`` (0 for empty cells), and for tables with
+individuals each bound's value ``b0, b1, ...`` then each bound's clipped-away total (the same on
+every row). It never returns rows of the table, never sorts, limits or filters on aggregates
+(the one ORDER BY ... LIMIT 1 ranks the bounds' noisy scores: that is the mechanism itself).
 
 Row tables (each row is one individual)
 ---------------------------------------
@@ -21,31 +25,81 @@ finished aggregate to the domain list. Adding or removing one row changes one ce
 for a count and by at most ``M = max(|lo|, |hi|) / step`` for a sum, so the L1 sensitivity of the
 whole histogram is 1 (count) or M (sum), whatever the number of cells.
 
-Tables with individuals (``[individual]`` with ``groups_cap = g``, ``rows_cap = r``)
----------------------------------------------------------------------------------------
-One individual may own many rows, in many cells. The rewrite
-1. aggregates per (individual, cell): partial count, partial clamped sum, partial value count;
-2. keeps only cells inside the declared domains, then keeps at most ``g`` of each individual's
-   cells, chosen at random in the database (``ROW_NUMBER() OVER (PARTITION BY individual
-   ORDER BY md5(individual, cell, salt))`` with a fresh random salt per query); the choice
-   depends only on that individual's own cells and on randomness independent of the data;
-3. clamps each partial count to ``[0, r]`` and each partial sum to
-   ``[r * min(lo, 0), r * max(hi, 0)]`` (in step units, or in column units for numeric columns,
-   whose partial sums stay in column units until the cell is done; the interval holds 0 so a
-   partial sum is never pushed away from zero);
-4. sums the capped partials over individuals (then, for numeric columns, converts the cell's
-   total to step units once).
-Rows whose individual column is NULL belong to no identifiable individual, so no cap could be
-enforced on the person they belong to; they are not counted. (Kept as one group, they would
-also break step 2: md5 of a NULL is NULL, so their choice of cells would follow the executor's
-row order, which depends on everyone else's rows.)
-Argument: neighbouring databases differ by all rows of one individual. Every other individual's
-capped partials are identical in both (their rows and their own random choice are unchanged), so
-the answers differ only by that individual's at most ``g`` kept partials, each bounded as in 3.
-Hence the L1 sensitivity is ``g * r`` for a count, ``g * r * M`` for a sum and ``g`` for
-COUNT(DISTINCT individual). With ``C`` cells an individual reaches at most ``C`` of them, so
-``g`` is replaced by ``min(g, C)`` (1 for an ungrouped query), and when ``g >= C`` step 2's
-ranking is skipped as it would keep everything anyway.
+Tables with individuals (``[individual]`` with ``most_rows``)
+-------------------------------------------------------------
+Neighbouring databases differ by all the rows of one individual (in every table of its
+population). An individual may own many rows in many cells, so its influence is bounded over
+the whole answer at once (Amin, Kulesza, Munoz Medina & Vassilvitskii 2019, "Bounding User
+Contributions"), never cell by cell. The backend query:
+
+1. ``q``: aggregates per (individual, cell) inside the declared domains: ``r`` rows, and per
+   measure its partial in measure units (a row count, a count of values, the clamped sum in
+   step units, or 1 for COUNT(DISTINCT individual)). Rows whose individual is NULL belong to no
+   identifiable individual and are not counted (no bound could be enforced on their owner).
+2. ``t``: per individual, its totals over all cells: ``n_rows``, the cells it touches, and per
+   summed column the L1 total of its partials ``tot_j = sum |partial|``.
+3. ``b``: the bounds, one per subject (``rows`` when the plan counts anything, and one per
+   summed column), each either declared (its ceiling: ``most_rows`` rows, or
+   ``most_rows * max(|lo|, |hi|)`` step units) or chosen per query (below).
+4. ``w``: one factor per individual, ``w = min(1, B_j / total_j over its bounds j)``, scales all
+   its partials, each rounded toward zero: ``trunc(p * w) = sign(p) * min(|p|, floor(|p| B_j /
+   total_j), ...)``, computed with integer division (the floor of a minimum is the minimum of
+   the floors), so it is exact. AVG's sum and count shrink by the same factor.
+5. sums per cell, joined to the list of declared cells (empty cells read 0); per bound the
+   clipped-away total (see 7).
+
+Sensitivity, given the bounds. Take neighbours D and D' = D minus individual u. Every other
+individual's partials, totals and factor are computed from its own rows only, so they are equal
+in D and D'; the answers differ exactly by u's scaled partials. For a count measure, u's scaled
+partials add up over all cells to at most ``sum floor(c * R / n_rows) <= R`` (its counts add up
+to at most n_rows); for a sum, to at most ``sum |p| * T / tot <= T`` in L1. COUNT(DISTINCT
+individual) counts u once in each cell it touches when it touches at most R cells, else
+nowhere: at most ``min(R, cells)``. So the L1 sensitivity of the whole answer is R for counts,
+T for sums and min(R, cells) for distinct individuals, whatever the number of cells; each is at
+least 1 (a noise scale must be positive; any upper bound is sound). Row tables are the case
+without a factor: one row moves one cell by at most 1 or M.
+
+Choosing a bound privately (the same scan). The candidates are a geometric grid below the
+ceiling (``ceiling * (4/5)^k``, at least 1). For candidate k, ``above_k`` is the number of
+individuals whose total exceeds it; all ``above_k`` come from one histogram of the totals over
+the candidates (width_bucket, one pass over ``t``). The chosen candidate maximises
+``score_k + z_k`` with ``score_k = -|above_k - A|`` (ties to the smallest k), where the target A
+(individuals left above, from the number of cells and the measures' epsilon) and the noise z_k
+come from the engine in a setting. This is "report noisy max" with exact discrete Laplace noise
+of scale ``2 * Delta / epsilon_b``, where ``Delta = 1`` bounds how far one individual moves any
+score (it changes each above_k by at most 1; A does not depend on the data), and the engine may
+add a public, data-independent preference ``-c_k`` to z_k. It is epsilon_b-DP:
+
+  Proof. Fix the noise of every candidate but i. Candidate i wins iff ``z_i >= t(D)``, where the
+  integer threshold t(D) is set by the other noisy scores and by score_i (ties broken by a fixed
+  order, so the winning set of z_i is an upper set of integers). Moving from D to D' changes
+  each score by at most Delta, so ``t(D') <= t(D) + 2 Delta``. For discrete Laplace noise with
+  ``P(z) ~ a^|z|``, ``a = exp(-epsilon_b / (2 Delta))``, every tail satisfies
+  ``P(z >= m + 1) >= a * P(z >= m)`` (for m >= 0 with equality; for m < 0 because
+  ``(1 - a) P(z >= m + 1) >= C a >= C a^(|m| + 1) = a P(z = m)``, C the normalising constant).
+  Hence ``P(i | D') >= P(z_i >= t(D) + 2 Delta) >= a^(2 Delta) P(i | D) = exp(-epsilon_b)
+  P(i | D)``; integrating over the other candidates' noise and swapping D, D' gives the claim.
+
+Why not sample the exponential mechanism directly: its probabilities need the scores, which
+the proxy only has after the scan, and then the scaling with the chosen bound would need a
+second scan. Report noisy max with noise drawn before the query (exact integer sampling, see
+``proxy.noise``) lets the backend make the choice inside the one query, with integer arithmetic.
+
+6. Composition. A query with chosen bounds spends: epsilon_b per chosen bound on its choice,
+   epsilon_c per bound on its clipped-away figure, and epsilon_m per measure on the measures
+   (noise scaled to the sensitivities at the chosen bounds, which are released and public).
+   By basic adaptive sequential composition the query is (sum of these)-DP; the engine's split
+   makes that sum the query's epsilon.
+
+7. How far clipping may have lowered an answer. Per bound j, ``clipped_j`` sums over
+   individuals their clipped-away amount (rows, or the L1 of the sum's partials, lost to the
+   factor and the rounding), each capped at ``cap_j = max(terms) + cells``
+   (``loss_terms``): ``ceiling_j - B_j`` (w set by bound j: at most the ceiling less the bound),
+   ``ceiling_j - per_row * R`` for a sum bound when the rows bound R set w (each row adds at most
+   per_row), and ``ceiling_j`` for any other binding bound; ``cells`` covers rounding toward
+   zero (under one unit per partial). Removing u moves ``clipped_j`` by at most ``cap_j``, its
+   sensitivity. The caps rely on the data owner's ceiling (most_rows): an individual breaking it
+   is still bounded in the answer, but its clipped-away amount may then be understated.
 """
 
 from __future__ import annotations
