@@ -37,7 +37,7 @@ from tests.policy_fixtures import DUMMY_VERIFIER
 pytestmark = pytest.mark.slow
 
 EPSILON = Decimal(1)
-SAMPLES = 450        # per database and query: a pilot third, the rest for the test
+SAMPLES = 360        # per database and query: a pilot third, the rest for the test
 CONFIDENCE = 0.995   # of each Clopper-Pearson bound
 
 VISITS = """
