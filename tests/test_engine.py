@@ -254,3 +254,37 @@ def test_penguin_counts_fall_inside_their_bounds_around_published_sizes(penguin_
     monkeypatch.setattr(engine_module.noise, "sample_discrete_laplace",
                         lambda scale, size: real(scale * 2, size))
     assert coverage(penguin_engine, 200) < threshold
+
+
+def test_chosen_bounds_are_explained_and_reported_with_what_they_clipped(make_engine) -> None:
+    engine = make_engine(most_rows=10, bounds="chosen")
+    sql = "SELECT ward, COUNT(*), SUM(minutes) FROM visits GROUP BY ward"
+    explained = dict(engine.explain("tester", sql, epsilon=Decimal(1)).rows)
+    # Two measures share 85%; the two bounds share 10% for their choice, 5% for their clipped
+    # figures.
+    assert explained["epsilon per measure"] == "0.425"
+    assert explained["bound on rows per individual"].startswith(
+        "chosen per query by a private quantile (noisy max over 8 candidates up to the ceiling 10)")
+    assert "epsilon 0.05; clipped-away total reported with epsilon 0.025" in \
+        explained["bound on total of minutes per individual"]
+    assert explained["measure sum(minutes)"].startswith("sensitivity at most 600,")
+    answer = engine.answer("tester", sql, epsilon=Decimal(1))
+    assert answer.epsilon == Decimal(1)
+    for item in answer.accuracy:
+        # Counts and non-negative sums can only be low because of clipping.
+        assert item.low_by is not None and item.low_by >= 0 and item.high_by == 0
+    assert any(note.startswith("each individual's rows over the whole answer is scaled down to at "
+                               "most ") and note.endswith("(chosen privately for this query)")
+               for note in answer.notes)
+
+
+def test_declared_bounds_spend_everything_on_the_measures(make_engine) -> None:
+    engine = make_engine(most_rows=10, bounds="declared")
+    sql = "SELECT COUNT(*), SUM(minutes) FROM visits"
+    explained = dict(engine.explain("tester", sql, epsilon=Decimal(1)).rows)
+    assert explained["epsilon per measure"] == "0.5"
+    assert explained["bound on rows per individual"] == "declared: 10 (the policy's most_rows)"
+    assert explained["measure count(*)"].startswith("sensitivity 10,")
+    answer = engine.answer("tester", sql, epsilon=Decimal(1))
+    assert [a.sensitivity for a in answer.accuracy] == [10, 600]
+    assert all(a.low_by is None for a in answer.accuracy)

@@ -16,12 +16,12 @@ the rewrite's clipping switched off (every factor 1): it must then find a loss a
 
 from __future__ import annotations
 
+import math
 import textwrap
 from collections.abc import Callable
 from decimal import Decimal
 from pathlib import Path
 
-import math
 import numpy as np
 import psycopg
 import pytest

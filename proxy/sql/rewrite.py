@@ -304,10 +304,6 @@ def _literal(value: object) -> exp.Expression:
     return exp.Literal.string(str(value))
 
 
-def _least(a: exp.Expression, b: exp.Expression) -> exp.Expression:
-    return exp.Least(this=a, expressions=[b])
-
-
 def _clamp(value: exp.Expression, low: int, high: int) -> exp.Expression:
     return _clamp_between(value, _num(low), _num(high))
 
@@ -526,8 +522,7 @@ def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> ex
     return _aggregate(policy, measure, exact)
 
 
-def _scaled(value: str, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
-            plan: Plan) -> str:
+def _scaled(value: str, bounds: tuple[Bound, ...]) -> str:
     """SQL for trunc(value * w), value >= 0: w = min(1, B_j / total_j) over the plan's bounds,
     as integer divisions (floor of a minimum is the minimum of the floors), exact."""
     terms = [value]
@@ -562,15 +557,15 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
         f"({_choice_sql(j, bound)}) AS b{j}" if bound.chosen else f"{bound.ceiling} AS b{j}"
         for j, bound in enumerate(bounds)))
     rows_bound = next((j for j, bound in enumerate(bounds) if bound.subject == "rows"), None)
-    scaled = [f"{_scaled('q.r', bounds, measure_bounds, plan)} AS r_kept"]
+    scaled = [f"{_scaled('q.r', bounds)} AS r_kept"]
     for n, measure in enumerate(plan.measures):
         if measure.kind == "count_individuals":
             scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN 1 ELSE 0 END AS m{n}")
         elif measure.kind == "sum":
-            scaled.append(f"SIGN(q.m{n}) * {_scaled(f'ABS(q.m{n})', bounds, measure_bounds, plan)}"
+            scaled.append(f"SIGN(q.m{n}) * {_scaled(f'ABS(q.m{n})', bounds)}"
                           f" AS m{n}")
         else:
-            scaled.append(f"{_scaled(f'q.m{n}', bounds, measure_bounds, plan)} AS m{n}")
+            scaled.append(f"{_scaled(f'q.m{n}', bounds)} AS m{n}")
     ordinals = [f"q.i{j}" for j in range(len(plan.keys))]
     w = _select(f"SELECT {', '.join(['q.who', 'q.r'] + ordinals + [f'q.m{n}' + f' AS raw{n}' for n in range(len(plan.measures))] + scaled)} "
                 "FROM q JOIN t ON t.who = q.who CROSS JOIN b")
