@@ -599,9 +599,12 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
         f"SELECT width_bucket({'n_rows' if bound.subject == 'rows' else f'tot{j}'}::numeric, "
         f"ARRAY[{', '.join(str(c + 1) for c in bound.candidates)}]::numeric[]) AS slot, "
         f"COUNT(*) AS n FROM t GROUP BY 1")) for j, bound in enumerate(bounds) if bound.chosen]
+    # MATERIALIZED: each histogram is read once per candidate by the choice; inlined, it would
+    # be recomputed each time. The other parts are read more than once, so they are anyway.
     for name, part in [("q", q), ("t", t), *histograms, ("b", b), ("w", w), ("lost", lost),
                        ("clipped", clipped)]:
-        outer = outer.with_(name, as_=part, copy=False)
+        outer = outer.with_(name, as_=part, materialized=True if name.startswith("h") else None,
+                            copy=False)
     return outer
 
 
