@@ -126,7 +126,7 @@ def main() -> None:
             (f"individuals ({counts['readings']:,} readings): GROUP BY district, COUNT, SUM",
              "SELECT district, COUNT(*), SUM(litres) FROM readings GROUP BY district",
              "SELECT district, COUNT(*), SUM(litres) FROM utility.meter_readings GROUP BY district", "< 3"),
-            ("individuals: GROUP BY month (12 cells, groups_cap 4)",
+            ("individuals: GROUP BY month (12 cells, whole-household bounds)",
              "SELECT date_trunc('month', reading_date) AS month, COUNT(*) FROM readings GROUP BY 1",
              "SELECT date_trunc('month', reading_date), COUNT(*) FROM utility.meter_readings GROUP BY 1",
              "< 3"),

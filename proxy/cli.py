@@ -249,7 +249,9 @@ def print_answer(answer, console: Console, *, show_cost: bool = True) -> None:
         scale = "" if item.scale is None else f", noise scale {float(item.scale):.4g}"
         bound = "unbounded" if item.bound95 is None else f"±{item.bound95}"
         console.print(f"  {item.column}: 95% of answers within {bound} of the exact value"
-                      f"{scale} ({item.note})", highlight=False)
+                      f"{scale} ({item.note}){item.clipping_text}", highlight=False)
+    for note in answer.notes:
+        console.print(f"  note: {note}", highlight=False)
 
 
 def _run_serve(args: argparse.Namespace, console: Console) -> int:

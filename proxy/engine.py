@@ -7,8 +7,14 @@ The order of steps is the privacy argument, so it lives here and only here:
    the reservation also says what the analyst has left, which the answer reports.
 3. run: the rewritten query on the backend. From here on the charge stands whatever happens,
    because whether a query fails can depend on the data.
-4. noise: discrete Laplace noise of scale sensitivity / (epsilon / k) on each of the k measures
-   of every cell (the cells of a GROUP BY are disjoint and share that epsilon).
+   For tables with individuals whose bounds are chosen per query, the engine first draws the
+   exact discrete Laplace noise of the bounds' noisy-max choice and hands it to the query in
+   settings, so the choice happens inside the same backend scan (``proxy.sql.rewrite``).
+4. noise: discrete Laplace noise of scale sensitivity / epsilon_measure on each measure of every
+   cell (the cells of a GROUP BY are disjoint and share that epsilon), with sensitivities given
+   by the bounds the query used; and on each bound's clipped-away total. The epsilon split
+   (``epsilon_split``) is basic sequential composition: choices + clipped figures + measures
+   add up to the query's epsilon.
 5. release: post-processing on noisy values only (clamping counts at zero, AVG's division,
    HAVING, ORDER BY, LIMIT), then the answer.
 6. finish: the charge's outcome (answered, failed, cancelled) is noted in the ledger. It is a
@@ -33,8 +39,8 @@ import dataclasses
 import hashlib
 import json
 import logging
+import math
 import re
-import secrets
 import threading
 import time
 from collections import OrderedDict
@@ -59,15 +65,46 @@ from proxy.sql.domains import describe_key, key_label, key_type, key_values
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
 from proxy.sql.postprocess import postprocess
-from proxy.sql.rewrite import PICK_SALT_SETTING, Rewritten, rewrite
+from proxy.sql.rewrite import BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, loss_cap, rewrite
 
 __all__ = ["Engine", "Prepared", "QueryControl", "parse_epsilon"]
 
 log = logging.getLogger("hushql.engine")
 
-# AVG's bound combines the sum's and the count's bounds at this confidence each, so that by the
-# union bound both hold together with probability at least 0.95.
-_PART_CONFIDENCE = 0.975
+# The 95% half-width of a discrete Laplace variable is about ln(20) / sqrt(2) = 2.118 standard
+# deviations; a sum of independent such variables has lighter tails, so AVG's linearised error
+# (a combination of two) uses this multiple of its standard deviation.
+_AVG_SD_MULTIPLE = math.log(20) / math.sqrt(2)
+
+# Shares of a query's epsilon when its contribution bounds are chosen per query: choosing the
+# bounds, and the clipped-away figures that say how far an answer may be low. The rest is split
+# evenly among the measures.
+BOUND_SHARE = Decimal("0.1")
+CLIP_SHARE = Decimal("0.05")
+# A chosen bound aims at leaving about ABOVE_FACTOR * cells / epsilon_per_measure individuals
+# above it: where the noise a higher bound adds to each cell (bound / epsilon) balances the bias
+# it removes (about the individuals above it, per unit of bound, spread over the cells).
+ABOVE_FACTOR = 2
+PREFER_SMALLER = Fraction(1, 2)
+
+
+@dataclass(frozen=True)
+class EpsilonSplit:
+    """How a query's epsilon is shared: each measure, each chosen bound's choice, each bound's
+    clipped-away figure (0 when the bounds are declared)."""
+
+    measure: Decimal
+    bound: Decimal
+    clip: Decimal
+
+
+def epsilon_split(rewritten: Rewritten, measures: int, epsilon: Decimal) -> EpsilonSplit:
+    """Basic sequential composition: the parts add up to ``epsilon`` exactly."""
+    if not any(b.chosen for b in rewritten.bounds):
+        return EpsilonSplit(measure=epsilon / measures, bound=Decimal(0), clip=Decimal(0))
+    count = len(rewritten.bounds)
+    return EpsilonSplit(measure=epsilon * (1 - BOUND_SHARE - CLIP_SHARE) / measures,
+                        bound=epsilon * BOUND_SHARE / count, clip=epsilon * CLIP_SHARE / count)
 
 
 @dataclass(frozen=True)
@@ -265,26 +302,39 @@ class Engine:
         prepared = self.prepare(analyst, statement)
         eps = self.epsilon_for(epsilon)
         plan, rewritten = prepared.plan, prepared.rewritten
-        share = eps / len(plan.measures)
+        split = epsilon_split(rewritten, len(plan.measures), eps)
         rows: list[tuple[Value, ...]] = [
             ("table", plan.table.table),
-            ("protected unit", f"individual ({plan.table.individual.column})"
-             if plan.table.individual else "row"),
+            ("protected unit", f"individual ({plan.table.individual.column}, population "
+                               f"{plan.table.population})" if plan.table.individual else "row"),
             ("cells", str(rewritten.cells)),
             *[(f"key {key_label(key)}", describe_key(plan.table.columns[key.column], key))
               for key in plan.keys],
             ("epsilon", str(eps)),
-            ("epsilon per measure", f"{share:.6g}"),
+            ("epsilon per measure", f"{split.measure:.6g}"),
         ]
-        if rewritten.groups_kept is not None:
-            rows.append(("groups kept per individual", str(rewritten.groups_kept)))
-        for measure, sensitivity, scale in zip(plan.measures, rewritten.sensitivities,
-                                               self._scales(prepared, eps)):
+        for bound in rewritten.bounds:
+            unit = Decimal(1) if bound.subject == "rows" else plan.table.columns[bound.subject].unit
+            what = "rows" if bound.subject == "rows" else f"total of {bound.subject}"
+            if bound.chosen:
+                rows.append((f"bound on {what} per individual",
+                             f"chosen per query by a private quantile (noisy max over "
+                             f"{len(bound.candidates)} candidates up to the ceiling "
+                             f"{_show(bound.ceiling * unit)}), epsilon {split.bound:.6g}; "
+                             f"clipped-away total reported with epsilon {split.clip:.6g}"))
+            else:
+                rows.append((f"bound on {what} per individual",
+                             f"declared: {_show(bound.ceiling * unit)} (the policy's most_rows)"))
+        chosen = any(b.chosen for b in rewritten.bounds)
+        for measure, sensitivity in zip(plan.measures, rewritten.declared_sensitivities
+                                        if rewritten.bounds else rewritten.sensitivities()):
             unit = _measure_unit(plan, measure)
+            scale = Fraction(sensitivity) / Fraction(split.measure)
+            at_most = "at most " if chosen else ""
             rows.append((f"measure {_measure_label(measure.kind, measure.column)}",
-                         f"sensitivity {_show(sensitivity * unit)}, noise scale "
-                         f"{_show(scale * Fraction(unit))}, "
-                         f"95% bound ±{_show(noise.bound95(scale) * unit)}"))
+                         f"sensitivity {at_most}{_show(sensitivity * unit)}, noise scale "
+                         f"{at_most}{_show(scale * Fraction(unit))}, "
+                         f"95% bound {at_most}±{_show(noise.bound95(scale) * unit)}"))
         rows.append(("backend sql", rewritten.sql))
         return _explain_answer(rows, form, remaining=self.ledger.remaining(analyst),
                                table=plan.table.table)
@@ -307,12 +357,13 @@ class Engine:
         failure: HushError | None = None
         try:
             faults.pause("after-reserve")
-            settings = ({PICK_SALT_SETTING: secrets.token_hex(16)}
-                        if prepared.rewritten.needs_salt else None)
-            true_rows = self._run_in_time(prepared, control, settings, arrived, steady)
+            split = epsilon_split(prepared.rewritten, len(plan.measures), eps)
+            true_rows = self._run_in_time(prepared, control,
+                                          _bound_settings(prepared.rewritten, split), arrived,
+                                          steady)
             if len(true_rows) != len(prepared.cells):
                 raise HushError(INTERNAL_ERROR, "the backend returned an unexpected result shape")
-            answer = self._release(prepared, eps, true_rows, charge)
+            answer = self._release(prepared, eps, split, true_rows, charge)
             outcome = "answered"
         except HushError as error:
             failure = error
@@ -381,34 +432,42 @@ class Engine:
         except Exception:
             log.exception("could not record the outcome of charge %s", charge)
 
-    def _scales(self, prepared: Prepared, epsilon: Decimal) -> list[Fraction]:
-        """Noise scale of each measure in measure units: sensitivity * k / epsilon, exactly."""
-        k = len(prepared.plan.measures)
-        return [Fraction(s) * k / Fraction(epsilon) for s in prepared.rewritten.sensitivities]
-
-    def _release(self, prepared: Prepared, epsilon: Decimal, true_rows: list[tuple[Any, ...]],
-                 charge: int) -> Answer:
-        """Noise every measure of every cell, then post-process; ``remaining`` is filled in by
-        the caller from the reservation."""
-        plan = prepared.plan
-        key_count = len(plan.keys)
+    def _release(self, prepared: Prepared, epsilon: Decimal, split: EpsilonSplit,
+                 true_rows: list[tuple[Any, ...]], charge: int) -> Answer:
+        """Noise every measure of every cell and each bound's clipped-away total, then
+        post-process; ``remaining`` is filled in by the caller from the reservation."""
+        plan, rewritten = prepared.plan, prepared.rewritten
+        key_count, measure_count, bound_count = len(plan.keys), len(plan.measures), len(rewritten.bounds)
         cells = len(true_rows)
-        scales = self._scales(prepared, epsilon)
+        if any(len(row) != key_count + measure_count + 2 * bound_count for row in true_rows):
+            raise HushError(INTERNAL_ERROR, "the backend returned an unexpected result shape")
+        tail = true_rows[0][key_count + measure_count:]
+        values = tuple(int(v) for v in tail[:bound_count])
+        for bound, value in zip(rewritten.bounds, values):
+            if value not in (bound.candidates or (bound.ceiling,)):
+                raise HushError(INTERNAL_ERROR, "the backend returned an unexpected bound")
+        scales = [Fraction(s) / Fraction(split.measure) for s in rewritten.sensitivities(values)]
         noisy: list[list[int]] = []
         for n, scale in enumerate(scales):
             draws = noise.sample_discrete_laplace(scale, cells)
             noisy.append([int(row[key_count + n]) + int(z) for row, z in zip(true_rows, draws)])
+        clip_uppers = [_clip_upper(rewritten, j, values, int(lost), split.clip)
+                       for j, lost in enumerate(tail[bound_count:])]
         bounds = [noise.bound95(s) for s in scales]
         rows: list[list[Value]] = []
         for c in range(cells):
             rows.append([_output_value(plan, o, prepared.cells[c], [m[c] for m in noisy])
                          for o in plan.outputs])
-        accuracy = [_accuracy(plan, o, epsilon, prepared.rewritten.sensitivities, scales, bounds,
-                              noisy) for o in plan.outputs if o.visible and o.kind != "key"]
+        clipping = [None if not rewritten.bounds else clip_uppers[rewritten.measure_bounds[n]]
+                    for n in range(measure_count)]
+        accuracy = [_accuracy(plan, o, split.measure, rewritten.sensitivities(values), scales,
+                              bounds, noisy, clipping)
+                    for o in plan.outputs if o.visible and o.kind != "key"]
         return Answer(columns=[OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs],
                       rows=postprocess(plan, rows), epsilon=epsilon,
                       remaining=Decimal(0), accuracy=accuracy,
-                      tables=[plan.table.table], charge_id=charge)
+                      tables=[plan.table.table], charge_id=charge,
+                      notes=_answer_notes(plan, rewritten, values))
 
 
 def _plan_bytes(prepared: Prepared) -> int:
@@ -530,39 +589,111 @@ def _output_value(plan: Plan, output: Output, cell: tuple[Any, ...], measures: l
     return round(min(high, max(low, float(Decimal(first) * column.unit) / count)), 6)
 
 
-def _accuracy(plan: Plan, output: Output, epsilon: Decimal, sensitivities: tuple[int, ...],
-              scales: list[Fraction], bounds: list[int], noisy: list[list[int]]) -> Accuracy:
-    """How noisy one aggregate output is, in the column's own units (epsilon is the query's)."""
-    share = epsilon / len(plan.measures)
+def _bound_settings(rewritten: Rewritten, split: EpsilonSplit) -> dict[str, str] | None:
+    """Settings for the bounds' noisy-max choice: per chosen bound, ``A,z_1,...,z_G`` with the
+    target A (public: cells and epsilon) and exact discrete Laplace noise of scale
+    2 * score_sensitivity / epsilon_bound per candidate (the proof is in proxy.sql.rewrite)."""
+    settings: dict[str, str] = {}
+    for j, bound in enumerate(rewritten.bounds):
+        if not bound.chosen:
+            continue
+        target = math.ceil(Fraction(ABOVE_FACTOR * rewritten.cells) / Fraction(split.measure))
+        scale = Fraction(2 * SCORE_SENSITIVITY) / Fraction(split.bound)
+        draws = noise.sample_discrete_laplace(scale, len(bound.candidates))
+        # A public preference for smaller candidates, PREFER_SMALLER noise scales per step up:
+        # among candidates that leave about as many individuals above them, the smallest adds
+        # the least noise. It depends on nothing but the candidate's position.
+        step = int(scale * PREFER_SMALLER)
+        settings[BOUND_NOISE_SETTING.format(j)] = ",".join(
+            [str(target)] + [str(int(z) - step * k) for k, z in enumerate(draws)])
+    return settings or None
+
+
+def _clip_upper(rewritten: Rewritten, j: int, values: tuple[int, ...], lost: int,
+                epsilon: Decimal) -> int | None:
+    """An upper bound (95%) on one bound's clipped-away total, in measure units: the noisy
+    total plus its one-sided 95% margin (the two-sided 90% bound), at least 0. None when the
+    bound is declared (nothing spent on it: only data breaking most_rows is clipped)."""
+    if not rewritten.bounds[j].chosen:
+        return None
+    scale = Fraction(loss_cap(rewritten.bounds, j, values, rewritten.cells)) / Fraction(epsilon)
+    noisy = lost + int(noise.sample_discrete_laplace(scale, 1)[0])
+    return max(0, noisy + noise.bound(scale, 0.90))
+
+
+def _answer_notes(plan: Plan, rewritten: Rewritten, values: tuple[int, ...]) -> list[str]:
+    """Facts about how the answer was computed, true of any data (no data-dependent count)."""
+    notes = []
+    ranged = sorted({m.column for m in plan.measures if m.kind == "sum"})  # type: ignore[type-var]
+    for name in ranged:
+        column = plan.table.columns[name]  # type: ignore[index]
+        notes.append(f"values of {name} outside its declared range [{column.low}, {column.high}] "
+                     f"are counted as the nearest end, NULLs not at all")
+    if plan.keys:
+        notes.append("rows whose group keys lie outside the declared values are not counted")
+    if plan.table.individual is not None:
+        notes.append(f"rows without a {plan.table.individual.column} are not counted")
+        for bound, value in zip(rewritten.bounds, values):
+            unit = Decimal(1) if bound.subject == "rows" else plan.table.columns[bound.subject].unit
+            what = "rows" if bound.subject == "rows" else f"total {bound.subject}"
+            how = "chosen privately for this query" if bound.chosen else "declared"
+            notes.append(f"each individual's {what} over the whole answer is scaled down to at "
+                         f"most {_show(value * unit)} ({how})")
+    return notes
+
+
+def _accuracy(plan: Plan, output: Output, share: Decimal, sensitivities: tuple[int, ...],
+              scales: list[Fraction], bounds: list[int], noisy: list[list[int]],
+              clipping: list[int | None]) -> Accuracy:
+    """How noisy one aggregate output is, in the column's own units (``share`` is each
+    measure's epsilon); with how far clipping may have lowered it."""
     first = output.measures[0]
-    unit = _measure_unit(plan, plan.measures[first])
+    measure = plan.measures[first]
+    unit = _measure_unit(plan, measure)
     if output.kind in ("count", "sum"):
+        low_by = high_by = None
+        if clipping[first] is not None and measure.kind != "count_individuals":
+            low_by = Decimal(clipping[first]) * unit  # type: ignore[arg-type]
+            signed = measure.kind == "sum" and Decimal(plan.table.columns[measure.column].low) < 0  # type: ignore[index]
+            high_by = low_by if signed else Decimal(0)
         return Accuracy(column=output.name, epsilon=share, sensitivity=Decimal(sensitivities[first]) * unit,
                         scale=scales[first] * Fraction(unit), bound95=Decimal(bounds[first]) * unit,
-                        note="discrete Laplace")
-    column = plan.table.columns[plan.measures[first].column]  # type: ignore[index]
-    return _average_accuracy(output, column, share * 2, scales, noisy)
+                        note="discrete Laplace", low_by=low_by, high_by=high_by)
+    column = plan.table.columns[measure.column]  # type: ignore[index]
+    return _average_accuracy(output, column, share * 2, scales, noisy, clipping)
 
 
 def _average_accuracy(output: Output, column: ColumnPolicy, epsilon: Decimal,
-                      scales: list[Fraction], noisy: list[list[int]]) -> Accuracy:
-    """AVG's 95% bound: the widest half-width, over cells, of the set of averages consistent
-    with the sum and the count each within its 97.5% bound (union bound), capped by the range."""
+                      scales: list[Fraction], noisy: list[list[int]],
+                      clipping: list[int | None]) -> Accuracy:
+    """AVG's 95% bound, the widest over cells of its linearised error: the average
+    ``a = S u / C`` of a noisy sum and count moves by about ``(u Z_s - a Z_c) / C``, whose
+    standard deviation is ``sqrt(u^2 Var_s + a^2 Var_c) / C``; the bound is
+    ``_AVG_SD_MULTIPLE`` of it, capped by the range's width. Where the count is too small for
+    the linearisation (within three standard deviations of 0) the bound is the range's width.
+    Clipping (sum and count both scaled down by one factor per individual) may move the average
+    either way, by at most the clipped-away share of the count times the distance to the far end
+    of the range: ``low_by`` and ``high_by``."""
     s, c = output.measures
-    ts = noise.bound(scales[s], _PART_CONFIDENCE)
-    tc = noise.bound(scales[c], _PART_CONFIDENCE)
     unit = float(column.unit)
     low, high = (float(v) for v in column.range)  # type: ignore[union-attr]
-    widest = 0.0
+    var_s, var_c = noise.variance(scales[s]), noise.variance(scales[c])
+    widest = widest_clip = 0.0
     for total, count in zip(noisy[s], noisy[c]):
-        if count - tc <= 0:
-            widest = high - low
+        if count <= 3 * math.sqrt(var_c):
+            widest = widest_clip = high - low
             break
         estimate = min(high, max(low, total * unit / count))
-        corners = [min(high, max(low, (total + ds) * unit / (count + dc)))
-                   for ds in (-ts, ts) for dc in (-tc, tc)]
-        widest = max(widest, *(abs(x - estimate) for x in corners))
+        spread = _AVG_SD_MULTIPLE * math.sqrt(unit * unit * var_s + estimate * estimate * var_c) / count
+        widest = max(widest, min(high - low, spread))
+        if clipping[c] is not None:
+            # The plain average mixes the kept one with the clipped-away rows' average (inside
+            # the range, as both are scaled by one factor per individual), weighted by the
+            # clipped-away share of the count.
+            share = min(1.0, clipping[c] / count)  # type: ignore[operator]
+            widest_clip = max(widest_clip, share * max(estimate - low, high - estimate))
+    clipped = None if clipping[c] is None else Decimal(repr(round(widest_clip, 6)))
     return Accuracy(column=output.name, epsilon=epsilon,
                     sensitivity=None, scale=None, bound95=Decimal(repr(round(widest, 6))),
-                    note="average of a noisy sum and a noisy count (97.5% bound on each)")
-
+                    note="average of a noisy sum and a noisy count (linearised)",
+                    low_by=clipped, high_by=clipped)

@@ -1,7 +1,7 @@
 """The privacy ledger: durable, exact books on how much epsilon each analyst and table has spent.
 
 Why it is shaped like this:
-- Every answer is charged *before* its query runs (DESIGN.md, "The ledger"): ``reserve`` locks
+- Every answer is charged *before* its query runs: ``reserve`` locks
   the analyst's budget row and the tables' budget rows, checks, adds, inserts the charge row and
   commits, all in one transaction, and returns only once that commit is durable
   (``synchronous_commit = on`` on every ledger connection). The engine releases nothing before
@@ -12,8 +12,8 @@ Why it is shaped like this:
 - Group commit. Reservations that arrive while another is being committed wait, and the next
   of them to go takes every waiting reservation (up to ``batch_limit``) into one transaction:
   it first locks every budget row the batch touches, in the fixed order ``LOCK_ORDER`` (all
-  analysts' rows sorted, then all tables' rows sorted: the same global order a lone reservation
-  follows, so batches and lone reservations from any number of processes cannot deadlock);
+  analysts' rows sorted, then all their populations' rows sorted, then all tables' rows sorted:
+  the same global order a lone reservation follows, so batches and lone reservations from any number of processes cannot deadlock);
   then runs ``reserve_charge`` for each reservation in arrival order; then commits once. Each
   caller waits for that commit before its query runs. The checks stay exact: inside the
   transaction each ``reserve_charge`` sees the spending of the ones before it, and no other
@@ -26,16 +26,20 @@ Why it is shaped like this:
   reservations for other rows. The gain: a hot row (one analyst, one table cap) is
   locked, written and flushed to disk once per batch instead of once per answer, and the
   statements travel in one pipelined round trip. ``LOCK_ORDER`` is the one list of budget row
-  kinds; a new kind of budget (a shared population cap, say) adds its lock statement there.
+  kinds; a new kind of budget adds its lock statement there.
 - Once a query has started its charge stands, whatever happens (an error at run time can depend
   on the data): ``finish`` only records the outcome and never gives epsilon back.
 - Several proxy processes may share one ledger. Row locks (``SELECT ... FOR UPDATE``) make
-  concurrent reservations for one analyst or one table take turns, so none overspends; locks are
-  always taken in one order (the analyst's row, then the tables' rows sorted by name, codepoint
-  order) so two reservations cannot deadlock. Different analysts on different tables share no row
-  and do not wait for each other. (Every reservation on one table does take that table's row, so
-  charges to a single table serialise across analysts; that is what enforcing a table-wide cap
-  exactly costs.)
+  concurrent reservations for one analyst or one population take turns, so none overspends;
+  locks are always taken in one order (the analyst's row, then the populations' rows sorted by
+  name, codepoint order, then the tables' rows, written only under their population's lock) so
+  two reservations cannot deadlock. Different analysts on different populations share no row
+  and do not wait for each other. (Every reservation on one population does take its row, so
+  charges to it serialise across analysts; that is what enforcing a cap exactly costs.)
+- Populations: tables naming the same population protect the same people, so their spending
+  adds up against one cap (the smallest cap its tables declare); a table without an
+  ``[individual]`` section is a population of its own. Each table's own ``spent`` is kept too,
+  for the books.
 - Epsilon is ``Decimal`` in Python and ``NUMERIC`` in PostgreSQL, never a float: 0.1 charged 30
   times is exactly 3.0. Sums, differences and comparisons happen in PostgreSQL (arbitrary
   precision); Python never does arithmetic on a budget.
@@ -47,7 +51,7 @@ Why it is shaped like this:
 - A charge keeps a bounded excerpt of its statement (the first ``STATEMENT_EXCERPT``
   characters) and the SHA-256 of the whole text, never the whole text: refused-for-free and
   cheap queries must not be able to grow the ledger by megabytes each. The hash still lets an
-  auditor match a charge with a statement kept elsewhere. (Rows written before schema version 2
+  auditor match a charge with a statement kept elsewhere. (Rows written before schema version 4
   keep the full text they had; their hash was computed by the migration.)
 
 This module and ``proxy.backend`` are the only ones the engine reaches PostgreSQL through.
@@ -394,7 +398,7 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         "UPDATE {schema}.charges "
         "SET statement_sha256 = encode(sha256(convert_to(statement, 'UTF8')), 'hex')",
         "COMMENT ON COLUMN {schema}.charges.statement IS "
-        "'the first characters of the statement (rows before schema version 2: all of it)'",
+        "'the first characters of the statement (rows before schema version 4: all of it)'",
         "COMMENT ON COLUMN {schema}.charges.statement_sha256 IS "
         "'SHA-256 of the whole statement text in UTF-8, hex'",
         # reserve_charge and the hash in one statement, so in one transaction.
@@ -418,6 +422,106 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         $body$
         """,
     )),
+    ("population budgets: tables protecting the same people share one cap", (
+        """
+        CREATE TABLE {schema}.population_budgets (
+            population  text PRIMARY KEY,
+            cap         numeric CHECK (cap > 0),
+            spent       numeric NOT NULL DEFAULT 0 CHECK (spent >= 0),
+            updated_at  timestamptz NOT NULL DEFAULT now()
+        )
+        """,
+        "COMMENT ON COLUMN {schema}.population_budgets.cap IS "
+        "'epsilon all analysts together may spend on all tables of the population; NULL: no cap'",
+        """
+        CREATE TRIGGER spent_within_population_cap BEFORE UPDATE OF spent
+        ON {schema}.population_budgets
+        FOR EACH ROW EXECUTE FUNCTION {schema}.refuse_overspending('cap')
+        """,
+        # Tables known before this step are each their own population, spending carried over.
+        "ALTER TABLE {schema}.table_budgets ADD COLUMN population text",
+        "UPDATE {schema}.table_budgets SET population = table_name",
+        """
+        INSERT INTO {schema}.population_budgets (population, cap, spent)
+        SELECT table_name, cap, spent FROM {schema}.table_budgets
+        """,
+        "ALTER TABLE {schema}.table_budgets ALTER COLUMN population SET NOT NULL",
+        # The reservation now checks and charges the populations of the tables (their rows
+        # locked after the analyst's, in codepoint order), and still adds to each table's spent
+        # for the books (those rows are only written under their population's lock).
+        """
+        CREATE OR REPLACE FUNCTION {schema}.reserve_charge(
+            analyst_name text, table_names text[], amount numeric,
+            statement_text text, statement_fingerprint text,
+            OUT charge_id bigint, OUT refusal text, OUT refused_name text,
+            OUT refused_limit numeric, OUT refused_left numeric, OUT left_after numeric)
+        LANGUAGE plpgsql AS $body$
+        DECLARE
+            found_row record;
+            populations text[];
+        BEGIN
+            SELECT b.budget, b.budget - b.spent AS headroom INTO found_row
+              FROM {schema}.analyst_budgets b
+             WHERE b.analyst = analyst_name
+               FOR UPDATE;
+            IF NOT FOUND THEN
+                refusal := 'unknown analyst';
+                refused_name := analyst_name;
+                RETURN;
+            END IF;
+            IF amount > found_row.headroom THEN
+                refusal := 'analyst budget';
+                refused_name := analyst_name;
+                refused_limit := found_row.budget;
+                refused_left := found_row.headroom;
+                RETURN;
+            END IF;
+            SELECT min(wanted COLLATE "C") INTO refused_name
+              FROM unnest(table_names) AS wanted
+             WHERE NOT EXISTS (SELECT 1 FROM {schema}.table_budgets t WHERE t.table_name = wanted);
+            IF refused_name IS NOT NULL THEN
+                refusal := 'unknown table';
+                RETURN;
+            END IF;
+            SELECT array_agg(DISTINCT t.population) INTO populations
+              FROM {schema}.table_budgets t WHERE t.table_name = ANY (table_names);
+            -- ORDER BY runs before the row locks, so rows are locked in this order.
+            FOR found_row IN
+                SELECT p.population, p.cap, p.cap - p.spent AS headroom
+                  FROM {schema}.population_budgets p
+                 WHERE p.population = ANY (populations)
+                 ORDER BY p.population COLLATE "C"
+                   FOR UPDATE
+            LOOP
+                IF found_row.cap IS NOT NULL AND amount > found_row.headroom THEN
+                    -- A table that is its own population keeps the table's wording.
+                    refusal := CASE WHEN found_row.population = ANY (table_names)
+                                    THEN 'table cap' ELSE 'population cap' END;
+                    refused_name := found_row.population;
+                    refused_limit := found_row.cap;
+                    refused_left := found_row.headroom;
+                    RETURN;
+                END IF;
+            END LOOP;
+            UPDATE {schema}.analyst_budgets SET spent = spent + amount, updated_at = now()
+             WHERE analyst = analyst_name
+            RETURNING greatest(budget - spent, 0) INTO left_after;
+            UPDATE {schema}.population_budgets SET spent = spent + amount, updated_at = now()
+             WHERE population = ANY (populations);
+            UPDATE {schema}.table_budgets SET spent = spent + amount, updated_at = now()
+             WHERE table_name = ANY (table_names);
+            INSERT INTO {schema}.charges (analyst, tables, epsilon, statement, fingerprint)
+            VALUES (analyst_name, table_names, amount, statement_text, statement_fingerprint)
+            RETURNING id INTO charge_id;
+        END
+        $body$
+        """,
+        # Administrators' view of caps (migration 3) now reads the populations.
+        """
+        CREATE OR REPLACE VIEW {schema}.populations AS
+        SELECT population AS name, cap, spent, updated_at FROM {schema}.population_budgets
+        """,
+    )),
 ]
 
 
@@ -439,6 +543,9 @@ LOCK_ORDER: tuple[str, ...] = (
     # Parameters: %(analysts)s and %(tables)s, the batch's sorted keys; {schema} is quoted.
     'SELECT 1 FROM {schema}.analyst_budgets WHERE analyst = ANY (%(analysts)s::text[]) '
     'ORDER BY analyst COLLATE "C" FOR UPDATE',
+    'SELECT 1 FROM {schema}.population_budgets WHERE population IN (SELECT population FROM '
+    '{schema}.table_budgets WHERE table_name = ANY (%(tables)s::text[])) '
+    'ORDER BY population COLLATE "C" FOR UPDATE',
     'SELECT 1 FROM {schema}.table_budgets WHERE table_name = ANY (%(tables)s::text[]) '
     'ORDER BY table_name COLLATE "C" FOR UPDATE',
 )
@@ -656,19 +763,27 @@ class Ledger:
         operating-system user.
         """
         analysts = sorted((name, a.budget) for name, a in policies.analysts.items())
-        tables = sorted((name, t.budget.cap if t.budget is not None else None)
+        tables = sorted((name, t.budget.cap if t.budget is not None else None, t.population)
                         for name, t in policies.tables.items())
-        for _, value in analysts + tables:
+        # A population's cap is the smallest its tables declare (fail closed); none: no cap.
+        caps: dict[str, list[Decimal]] = {}
+        for _, cap, population in tables:
+            caps.setdefault(population, []).extend([cap] if cap is not None else [])
+        populations = sorted((name, min(found) if found else None) for name, found in caps.items())
+        for value in [a[1] for a in analysts] + [t[1] for t in tables]:
             if value is not None:
                 _check_decimal(value, "a budget")
         who = actor or os_user()
         with self._transaction() as conn, conn.cursor() as cur:
-            # Every existing row is locked first, in reserve's order (analysts, then tables,
-            # codepoint order), so that the chain head, locked by the first event, comes last.
+            # Every existing row is locked first, in reserve's order (analysts, populations,
+            # then tables, codepoint order), so that the chain head, locked by the first event,
+            # comes last.
             cur.execute(self._sql.lock_analysts, [[n for n, _ in analysts]])
             known_analysts = {row[0]: row[1:] for row in cur.fetchall()}
-            cur.execute(self._sql.lock_tables, [[n for n, _ in tables]])
-            known_tables = {row[0]: row[1] for row in cur.fetchall()}
+            cur.execute(self._sql.lock_populations, [[n for n, _ in populations]])
+            known_populations = {row[0]: row[1] for row in cur.fetchall()}
+            cur.execute(self._sql.lock_tables, [[n for n, _, _ in tables]])
+            known_tables = {row[0]: row[1:] for row in cur.fetchall()}
             for name, budget in analysts:
                 if name not in known_analysts:
                     cur.execute(self._sql.insert_analyst, [name, budget, budget])
@@ -681,15 +796,24 @@ class Ledger:
                     cur.execute(self._sql.change_analyst, [budget, old_policy, budget, name])
                     cur.execute(self._sql.event, ["change", "analyst", name, old_policy, budget,
                                                   f"changed by {source}", who])
-            for name, cap in tables:
+            for name, cap in populations:
+                if name not in known_populations:
+                    cur.execute(self._sql.insert_population, [name, cap])
+                elif known_populations[name] != cap:
+                    cur.execute(self._sql.change_population, [cap, name])
+            for name, cap, population in tables:
                 if name not in known_tables:
-                    cur.execute(self._sql.insert_table, [name, cap])
+                    cur.execute(self._sql.insert_table, [name, cap, population])
                     cur.execute(self._sql.event, ["import", "table", name, None, cap,
                                                   f"imported from {source}", who])
-                elif known_tables[name] != cap:
+                    continue
+                old_cap, old_population = known_tables[name]
+                if old_cap != cap:
                     cur.execute(self._sql.change_table, [cap, name])
-                    cur.execute(self._sql.event, ["change", "table", name, known_tables[name],
+                    cur.execute(self._sql.event, ["change", "table", name, old_cap,
                                                   cap, f"changed by {source}", who])
+                if old_population != population:
+                    cur.execute(self._sql.move_table, [population, name])
         return self.overspent()
 
     def renew(self, analyst: str, budget: Decimal, period_start: dt.datetime,
@@ -901,6 +1025,13 @@ def _refused(refusal: str, name: str, limit: Decimal | None, left: Decimal | Non
             f"privacy budget exhausted: {_show(left)} of {_show(limit)} left for analyst "
             f"{name}, this query needs {_show(epsilon)}",
             "lower hushql.epsilon or ask an administrator for more budget")
+    if refusal == "population cap":
+        return HushError(
+            BUDGET_EXHAUSTED,
+            f"population budget exhausted: {_show(left)} of {_show(limit)} left for the "
+            f"individuals of population {name} (all analysts, all its tables together), this "
+            f"query needs {_show(epsilon)}",
+            "lower hushql.epsilon or ask the data owners to raise the tables' cap")
     if refusal == "table cap":
         return HushError(
             BUDGET_EXHAUSTED,
@@ -944,13 +1075,14 @@ class _Statements:
         self.spent = f"SELECT spent FROM {s}.analyst_budgets WHERE analyst = %s"
         self.table_remaining = (
             # GREATEST skips NULLs, so "no cap" must stay NULL explicitly.
-            "SELECT CASE WHEN cap IS NOT NULL THEN greatest(cap - spent, 0) END "
-            f"FROM {s}.table_budgets WHERE table_name = %s")
+            "SELECT CASE WHEN p.cap IS NOT NULL THEN greatest(p.cap - p.spent, 0) END "
+            f"FROM {s}.table_budgets t JOIN {s}.population_budgets p USING (population) "
+            "WHERE t.table_name = %s")
         self.lock_analysts = (
             f"SELECT analyst, policy_budget, budget FROM {s}.analyst_budgets "
             "WHERE analyst = ANY (%s::text[]) ORDER BY analyst COLLATE \"C\" FOR UPDATE")
         self.lock_tables = (
-            f"SELECT table_name, cap FROM {s}.table_budgets "
+            f"SELECT table_name, cap, population FROM {s}.table_budgets "
             "WHERE table_name = ANY (%s::text[]) ORDER BY table_name COLLATE \"C\" FOR UPDATE")
         self.insert_analyst = (
             f"INSERT INTO {s}.analyst_budgets (analyst, budget, policy_budget) VALUES (%s, %s, %s)")
@@ -968,9 +1100,22 @@ class _Statements:
         self.add_budget = (
             f"UPDATE {s}.analyst_budgets SET budget = budget + %s, updated_at = now() "
             "WHERE analyst = %s")
-        self.insert_table = f"INSERT INTO {s}.table_budgets (table_name, cap) VALUES (%s, %s)"
+        self.lock_populations = (
+            f"SELECT population, cap FROM {s}.population_budgets "
+            "WHERE population = ANY (%s::text[]) ORDER BY population COLLATE \"C\" FOR UPDATE")
+        # A population's cap follows its tables' (the smallest): derived, so not an event.
+        self.insert_population = (
+            f"INSERT INTO {s}.population_budgets (population, cap) VALUES (%s, %s)")
+        self.change_population = (
+            f"UPDATE {s}.population_budgets SET cap = %s, updated_at = now() "
+            "WHERE population = %s")
+        self.insert_table = (
+            f"INSERT INTO {s}.table_budgets (table_name, cap, population) VALUES (%s, %s, %s)")
         self.change_table = (
             f"UPDATE {s}.table_budgets SET cap = %s, updated_at = now() WHERE table_name = %s")
+        self.move_table = (
+            f"UPDATE {s}.table_budgets SET population = %s, updated_at = now() "
+            "WHERE table_name = %s")
         self.event = (
             f"INSERT INTO {s}.budget_events "
             "(kind, subject_kind, subject, previous, amount, reason, actor) "
@@ -979,7 +1124,12 @@ class _Statements:
             f"SELECT 'analyst', analyst, budget, spent FROM {s}.analyst_budgets "
             "WHERE spent > budget "
             f"UNION ALL SELECT 'table', table_name, cap, spent FROM {s}.table_budgets "
-            "WHERE cap IS NOT NULL AND spent > cap ORDER BY 1, 2")
+            "WHERE cap IS NOT NULL AND spent > cap "
+            # A population that is one table of the same name is reported as that table.
+            f"UNION ALL SELECT 'population', p.population, p.cap, p.spent "
+            f"FROM {s}.population_budgets p WHERE p.cap IS NOT NULL AND p.spent > p.cap "
+            f"AND NOT (SELECT count(*) = 1 AND bool_and(t.table_name = p.population) "
+            f"FROM {s}.table_budgets t WHERE t.population = p.population) ORDER BY 1, 2")
 
 
 def statement_hash(statement: str) -> str:

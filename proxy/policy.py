@@ -92,12 +92,23 @@ class AccessPolicy(_Strict):
     limits: Limits = Field(default_factory=Limits)
 
 
+BoundsChoice = Literal["chosen", "declared"]
+
+
 class Individual(_Strict):
-    """Who one individual is: rows sharing ``column`` belong to one person or household."""
+    """Who one individual is: rows sharing ``column`` belong to one person or household.
+
+    ``population`` names whom the table protects: tables naming the same population protect the
+    same people, and their spending adds up against one cap. ``most_rows`` is the data owner's
+    ceiling on the rows one individual owns (from knowledge of the data, never read from it).
+    ``bounds``: "chosen" lets each query pick its contribution bounds below the ceiling by a
+    private quantile (a share of its epsilon); "declared" always uses the ceiling.
+    """
 
     column: str
-    groups_cap: WholeNumber
-    rows_cap: WholeNumber
+    population: str
+    most_rows: WholeNumber
+    bounds: BoundsChoice = "chosen"
 
 
 class TableBudget(_Strict):
@@ -162,6 +173,16 @@ class TablePolicy(_Strict):
 
     def column(self, name: str) -> ColumnPolicy | None:
         return self.columns.get(name)
+
+    @property
+    def population(self) -> str:
+        """Whom the table protects: its ``[individual]`` population, else the table itself."""
+        return self.individual.population if self.individual is not None else self.table
+
+    @property
+    def most_rows(self) -> int:
+        """The most rows one individual owns: 1 for a table of one row per individual."""
+        return self.individual.most_rows if self.individual is not None else 1
 
 
 @dataclass(frozen=True)
@@ -263,6 +284,15 @@ def _read_toml(path: Path, label: str, problems: list[str]) -> dict[str, Any] | 
     return None
 
 
+# Keys of earlier policy layouts, with what replaced them.
+_REPLACED_KEYS = {
+    ("individual", "groups_cap"): "no longer used: an individual's contribution is bounded over "
+                                  "the whole answer; set most_rows (the most rows one individual "
+                                  "can own) and population instead",
+    ("individual", "rows_cap"): "no longer used: set most_rows (the most rows one individual can "
+                                "own, e.g. 366 for one row a day) and population instead",
+}
+
 _PYDANTIC_WORDING = {
     "extra_forbidden": "unknown key",
     "missing": "required key is missing",
@@ -284,7 +314,10 @@ def _validate(raw: dict[str, Any], label: str, model: type[_Strict],
         pruned = copy.deepcopy(raw)
         for item in error.errors():
             key = ".".join(str(part) for part in item["loc"]) or "(top)"
-            problems.append(f"{label}: {key}: {_PYDANTIC_WORDING.get(item['type'], item['msg'])}")
+            wording = _REPLACED_KEYS.get(tuple(item["loc"])) if item["type"] == "extra_forbidden" \
+                else None
+            problems.append(f"{label}: {key}: "
+                            f"{wording or _PYDANTIC_WORDING.get(item['type'], item['msg'])}")
             keys.add(key)
             _prune(pruned, item["loc"])
     try:
@@ -342,10 +375,10 @@ def _table_problems(policy: TablePolicy) -> list[tuple[str, str]]:
         if ind.column not in policy.columns:
             found.append(("individual.column",
                           f"{ind.column!r} is not a listed column; list it under [columns]"))
-        if ind.groups_cap < 1:
-            found.append(("individual.groups_cap", "must be a positive integer"))
-        if ind.rows_cap < 1:
-            found.append(("individual.rows_cap", "must be a positive integer"))
+        if ind.most_rows < 1:
+            found.append(("individual.most_rows", "must be a positive integer"))
+        if not ind.population.isidentifier() or ind.population != ind.population.lower():
+            found.append(("individual.population", "must be a lower-case name (letters, digits, _)"))
     if policy.budget is not None and policy.budget.cap <= 0:
         found.append(("budget.cap", "must be positive"))
     if policy.timing is not None and not 1 <= policy.timing.answer_after_ms <= LONGEST_ANSWER_AFTER_MS:

@@ -1,7 +1,7 @@
 """``hushql check [DIR]``: validate a policy directory and show what it grants.
 
 On success a summary for the people who sign policies off: each table with its source, who one
-individual is and the caps, each column with its kind and domain, then the analysts with their
+individual is, its population and most rows, each column with its kind and domain, then the analysts with their
 budgets and grants, and the administrators. On failure nothing but the problems, one
 ``file: key: problem`` line each, so that editors and scripts can jump to them. With a backend
 DSN it also warns about the backend role's powers (a superuser can read files and other
@@ -121,14 +121,15 @@ def _tables_table(policies: Policies) -> Table:
     view = Table(title="Tables", title_justify="left")
     view.add_column("table", no_wrap=True)
     view.add_column("source", no_wrap=True)
-    for heading in ("one individual is", "caps per individual", "table budget cap"):
+    for heading in ("one individual is", "population", "rows per individual", "table budget cap"):
         view.add_column(heading, overflow="fold")
     for name in sorted(policies.tables):
         table = policies.tables[name]
         ind = table.individual
         view.add_row(name, table.source,
                      f"one {ind.column}" if ind else "one row",
-                     f"{ind.groups_cap} groups, {ind.rows_cap} rows each" if ind else "-",
+                     table.population,
+                     f"at most {ind.most_rows}, bounds {ind.bounds}" if ind else "1",
                      str(table.budget.cap) if table.budget else "none")
     return view
 

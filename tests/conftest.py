@@ -1,6 +1,6 @@
 """Shared fixtures: a PostgreSQL server for the whole run, and a fresh database per test.
 
-The server is found in the order DESIGN.md gives: ``HUSHQL_TEST_DSN``; else a PostgreSQL
+The server is found in this order: ``HUSHQL_TEST_DSN``; else a PostgreSQL
 container when a Docker engine answers; else a private server started from binaries on PATH or
 the pgserver wheel (``proxy.localpg``). Every database a test gets is created for it and dropped
 afterwards, so runs never see each other's data.

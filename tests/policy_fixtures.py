@@ -49,8 +49,9 @@ source = "clinic.visits"
 
 [individual]
 column = "person_id"
-groups_cap = {groups_cap}
-rows_cap = {rows_cap}
+population = "people"
+most_rows = {most_rows}
+bounds = "{bounds}"
 
 [columns.person_id]
 kind = "integer"
@@ -76,12 +77,12 @@ step = 0.25
 
 
 def write_policies(root: Path, *, budget: str = "1000", largest: str = "100",
-                   groups_cap: int = 2, rows_cap: int = 3, most_cells: int = 10000) -> Path:
+                   most_rows: int = 10, bounds: str = "chosen", most_cells: int = 10000) -> Path:
     """A policy folder granting analyst ``tester`` both clinic tables."""
     (root / "tables").mkdir(parents=True, exist_ok=True)
     (root / "tables" / "people.toml").write_text(PEOPLE)
     (root / "tables" / "visits.toml").write_text(
-        VISITS.format(groups_cap=groups_cap, rows_cap=rows_cap))
+        VISITS.format(most_rows=most_rows, bounds=bounds))
     (root / "access.toml").write_text(textwrap.dedent(f"""
         [defaults]
         epsilon_per_query = 1.0

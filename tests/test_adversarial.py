@@ -28,7 +28,8 @@ from proxy.errors import HushError
 from proxy.ledger import Ledger
 from proxy.policy import load_policies
 from proxy.sql.analyse import analyse
-from proxy.sql.rewrite import PICK_SALT_SETTING, rewrite
+from proxy.sql.rewrite import rewrite
+from tests.bounds_helpers import run_with_bounds
 from tests.policy_fixtures import PEOPLE, VISITS, load_clinic, write_policies
 
 # Ranges that cross zero, so that a NULL clamped as if it were a value would show: people.weight
@@ -50,12 +51,12 @@ PEOPLE_AGE_ZERO = PEOPLE.replace('table = "people"', 'table = "people_zero"').re
 BUDGET = Decimal(10_000_000)
 
 
-def _policy_folder(root: Path, groups_cap: int = 2) -> Path:
+def _policy_folder(root: Path) -> Path:
     assert PEOPLE_FROM_ONE != PEOPLE and VISITS_ACROSS_ZERO.count("[-") == 2
     assert "[0, 0]" in PEOPLE_AGE_ZERO
-    write_policies(root, groups_cap=groups_cap, rows_cap=3, largest="1000000", budget=str(BUDGET))
+    write_policies(root, most_rows=3, bounds="declared", largest="1000000", budget=str(BUDGET))
     (root / "tables" / "visits.toml").write_text(
-        VISITS_ACROSS_ZERO.format(groups_cap=groups_cap, rows_cap=3))
+        VISITS_ACROSS_ZERO.format(most_rows=3, bounds="declared"))
     (root / "tables" / "people.toml").write_text(PEOPLE_FROM_ONE)
     (root / "tables" / "people_text.toml").write_text(PEOPLE_AS_TEXT)
     (root / "tables" / "people_zero.toml").write_text(PEOPLE_AGE_ZERO)
@@ -100,9 +101,9 @@ def noise_free(dsn: str, policies, sql: str, exact: frozenset[str] = frozenset()
     plan = analyse(sql, policies, "tester")
     rewritten = rewrite(plan, exact)
     with psycopg.connect(dsn) as conn:
-        conn.execute("SELECT set_config(%s, 'fixed-test-salt', true)", (PICK_SALT_SETTING,))
-        rows = conn.execute(rewritten.sql).fetchall()
-    return [tuple(int(v) for v in row[len(plan.keys):]) for row in rows]
+        rows = run_with_bounds(conn, rewritten)
+    keys = len(plan.keys)
+    return [tuple(int(v) for v in row[keys:keys + len(plan.measures)]) for row in rows]
 
 
 def reference(dsn: str, sql: str) -> list[tuple]:
@@ -117,7 +118,7 @@ def reference(dsn: str, sql: str) -> list[tuple]:
 # The rewrite clamped with LEAST(GREATEST(x, lo), hi), and PostgreSQL's GREATEST ignores NULL:
 # GREATEST(NULL, lo) is lo. Every NULL row added lo to a SUM (-5 per NULL weight, +1 per NULL
 # age), AVG divided that by a count that rightly skipped NULLs, and an individual whose values in
-# a cell were all NULL added rows_cap * lo. The sensitivity bound still held (lo is inside the
+# a cell were all NULL added its per-cell row cap * lo. The sensitivity bound still held (lo is inside the
 # range), but every answer was biased by the number of NULLs, against the rewrite's own contract
 # ("NULL stays NULL") and PostgreSQL's SUM.
 
@@ -149,15 +150,17 @@ def test_null_values_add_nothing_to_grouped_sums(dsn, policies) -> None:
 
 @pytest.mark.parametrize("exact", [frozenset(), frozenset({"fee"})], ids=["per-row", "exact"])
 def test_individuals_whose_values_are_all_null_add_nothing(dsn, policies, exact) -> None:
-    # rows_cap 3: each individual's partial is clamped to [3 * -10, 3 * 60] minutes and
-    # [3 * -5, 3 * 50] fee; an individual with no non-NULL value has no partial at all.
+    # most_rows 3 (declared): bounds of 3 * 60 = 180 minutes and 3 * 50 / 0.25 = 600 fee units
+    # on each individual's L1 totals; both sums shrink by one common factor per individual. An
+    # individual with no non-NULL value has a NULL partial: it adds nothing and limits nothing.
     got = noise_free(dsn, policies, "SELECT SUM(minutes), SUM(fee) FROM visits", exact)
-    fee = ("floor(sum(CASE WHEN f > 150 THEN 150 WHEN f < -15 THEN -15 ELSE f END) / 0.25 + 0.5)"
-           if exact else "sum(CASE WHEN f > 600 THEN 600 WHEN f < -60 THEN -60 ELSE f END)")
-    fee_partial = ("sum(CASE WHEN fee > 50 THEN 50 WHEN fee < -5 THEN -5 ELSE fee END)" if exact
-                   else "sum(round(CASE WHEN fee > 50 THEN 50 WHEN fee < -5 THEN -5 ELSE fee END / 0.25))")
+    fee_partial = ("floor(sum(CASE WHEN fee > 50 THEN 50 WHEN fee < -5 THEN -5 ELSE fee END) / 0.25 + 0.5)"
+                   if exact else
+                   "sum(round(CASE WHEN fee > 50 THEN 50 WHEN fee < -5 THEN -5 ELSE fee END / 0.25))")
+    scaled = ("sign({x}) * least(abs({x}), floor(abs({x}) * 180.0 / nullif(abs(s), 0)), "
+              "floor(abs({x}) * 600.0 / nullif(abs(f), 0)))")
     want = reference(dsn, f"""
-        SELECT sum(CASE WHEN s > 180 THEN 180 WHEN s < -30 THEN -30 ELSE s END), {fee}
+        SELECT sum({scaled.format(x="s")}), sum({scaled.format(x="f")})
         FROM (SELECT person_id,
                      sum(CASE WHEN minutes > 60 THEN 60 WHEN minutes < -10 THEN -10 ELSE minutes END) AS s,
                      {fee_partial} AS f
@@ -229,33 +232,35 @@ def test_a_tiny_epsilon_is_refused_by_explain_and_answer_without_a_charge(engine
 def test_one_individual_moves_a_two_key_answer_at_most_its_sensitivity(dsn, policies) -> None:
     """Removing one individual (or every row with a NULL individual) moves each measure of a
     two-key grouped query, hidden measures of HAVING and ORDER BY included, by no more than the
-    claimed sensitivity. Before the fix, removing person 8 moved COUNT(DISTINCT) by 4 > 2."""
+    claimed sensitivity. (Under the earlier per-cell caps, removing person 8 moved
+    COUNT(DISTINCT) by 4 > 2.)"""
     sql = ("SELECT date_trunc('quarter', visited) AS q, ward, COUNT(DISTINCT person_id), "
            "SUM(minutes) FROM visits WHERE fee IS NOT NULL OR minutes IS NULL GROUP BY 1, 2 "
            "HAVING AVG(fee) > 1 ORDER BY COUNT(*) DESC")
     plan = analyse(sql, policies, "tester")
     rewritten = rewrite(plan)
-    assert rewritten.groups_kept == 2 and rewritten.needs_salt and len(plan.measures) == 5
+    assert len(plan.measures) == 5 and len(rewritten.bounds) == 3  # rows, minutes, fee
     keys = len(plan.keys)
+    small = tuple(b.candidates[len(b.candidates) // 2] if b.candidates else b.ceiling
+                  for b in rewritten.bounds)
 
     def measures(conn: psycopg.Connection) -> list[list[int]]:
-        conn.execute("SELECT set_config(%s, 'neighbour-salt', true)", (PICK_SALT_SETTING,))
-        rows = conn.execute(rewritten.sql).fetchall()
-        return [list(map(int, column)) for column in list(zip(*rows))[keys:]]
+        rows = run_with_bounds(conn, rewritten, small)
+        return [list(map(int, column)) for column in list(zip(*rows))[keys:keys + len(plan.measures)]]
 
     with psycopg.connect(dsn) as conn:
-        with conn.transaction():
-            full = measures(conn)
+        full = measures(conn)
         largest = [0] * len(plan.measures)
-        for who in ("person_id IS NULL", "person_id = 8", "person_id = 35"):
+        for who in ("person_id IS NULL", "person_id = 8", "person_id = 35", "person_id = 10",
+                    "person_id = 11"):
             with conn.transaction(force_rollback=True):
                 conn.execute(f"DELETE FROM clinic.visits WHERE {who}")
                 without = measures(conn)
             for n, (a, b) in enumerate(zip(full, without)):
                 move = sum(abs(x - y) for x, y in zip(a, b))
-                assert move <= rewritten.sensitivities[n], (who, plan.measures[n], move)
+                assert move <= rewritten.sensitivities(small)[n], (who, plan.measures[n], move)
                 largest[n] = max(largest[n], move)
-    assert all(m > 0 for m in largest)  # the check can fail: every measure does move
+    assert all(m > 0 for m in largest), largest  # the check can fail: every measure does move
 
 
 def test_rows_without_an_individual_are_not_counted(dsn, policies) -> None:

@@ -27,7 +27,7 @@ VERIFIER = "SCRAM-SHA-256$4096:c2FsdA==$c3RvcmVk:c2VydmVy"
 def _policies(most_cells: int = 10_000) -> Policies:
     readings = TablePolicy(
         table="readings", source="utility.meter_readings",
-        individual=Individual(column="household_id", groups_cap=4, rows_cap=31),
+        individual=Individual(column="household_id", population="households", most_rows=366),
         columns={
             "household_id": ColumnPolicy(kind="integer", range=[1, 5000]),
             "district": ColumnPolicy(kind="category", values=["Northbank", "Old Mill", "Harbourside"]),

@@ -22,7 +22,8 @@ from proxy.policy import ColumnPolicy, load_policies
 from proxy.sql.analyse import analyse
 from proxy.sql.domains import EXTRACT_FIELDS, TRUNC_UNITS, key_size, key_values
 from proxy.sql.plan import GroupKey
-from proxy.sql.rewrite import PICK_SALT_SETTING, rewrite
+from proxy.sql.rewrite import rewrite
+from tests.bounds_helpers import run_with_bounds
 from tests.policy_fixtures import load_clinic, write_policies
 
 # ---- domains ---------------------------------------------------------------------------------
@@ -106,7 +107,8 @@ def test_number_bucket_domains_hold_every_value_postgresql_computes(
 @pytest.fixture(scope="module")
 def clinic(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
     load_clinic(module_dsn)
-    policies = load_policies(write_policies(tmp_path_factory.mktemp("policies"), groups_cap=3))
+    policies = load_policies(write_policies(tmp_path_factory.mktemp("policies"),
+                                            most_rows=3, bounds="declared"))
     with psycopg.connect(module_dsn, autocommit=True) as connection:
         yield connection, policies
 
@@ -116,9 +118,7 @@ def answer_of(clinic, sql: str) -> dict[tuple, tuple[int, ...]]:
     connection, policies = clinic
     plan = analyse(sql, policies, "tester")
     rewritten = rewrite(plan)
-    with connection.transaction():
-        connection.execute("SELECT set_config(%s, 'fixed-test-salt', true)", (PICK_SALT_SETTING,))
-        rows = connection.execute(rewritten.sql).fetchall()
+    rows = run_with_bounds(connection, rewritten)
     cells: list[tuple] = [()]
     for key in plan.keys:
         cells = [c + (v,) for c in cells for v in key_values(plan.table.columns[key.column], key)]
@@ -127,7 +127,9 @@ def answer_of(clinic, sql: str) -> dict[tuple, tuple[int, ...]]:
     ordinals = itertools.product(*[range(len(key_values(plan.table.columns[k.column], k)))
                                    for k in plan.keys])
     assert [tuple(r[:width]) for r in rows] == list(ordinals)  # one row per cell, in domain order
-    return {cell: tuple(int(v) for v in row[width:]) for cell, row in zip(cells, rows)}
+    measures = len(plan.measures)
+    return {cell: tuple(int(v) for v in row[width:width + measures])
+            for cell, row in zip(cells, rows)}
 
 
 def exact(clinic, keys: str | tuple[str, ...], measures: str, where: str) -> dict[tuple, tuple[int, ...]]:

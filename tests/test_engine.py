@@ -1,6 +1,6 @@
 """The engine end to end on real PostgreSQL: plan -> reserve -> run -> noise -> release.
 
-Checks the ordering rules of DESIGN.md (refusals charge nothing, an exhausted budget runs
+Checks the ordering rules of proxy.engine (refusals charge nothing, an exhausted budget runs
 nothing, a started query's charge stands), the answer's shape and types, and that the noise the
 engine adds has exactly the distribution its accuracy claims.
 """
@@ -131,10 +131,12 @@ def test_epsilon_must_be_positive_and_within_the_largest(make_engine) -> None:
 
 
 def test_rows_outside_domains_and_ranges_follow_the_declared_policy(make_engine, clinic_dsn) -> None:
-    engine = make_engine(largest="1000")
-    # A huge epsilon makes the noise tiny (scale 1/1000): the answer is the clamped truth.
+    engine = make_engine(largest="100000", budget="100000")
+    # A huge epsilon makes the noise vanish: SUM(age) has sensitivity 100 and half the epsilon,
+    # so scale 100 / 50000 and P(noise != 0) = 2a / (1 + a) with a = exp(-500). (At epsilon
+    # 1000 the scale was 0.2 and a cell's sum was off by one in about 1.3% of runs.)
     answer = engine.answer("tester", "SELECT smoker, COUNT(*), SUM(age) FROM people GROUP BY smoker",
-                           epsilon=Decimal("1000"))
+                           epsilon=Decimal("100000"))
     truth = exact(clinic_dsn, "SELECT smoker, count(*), sum(LEAST(GREATEST(age, 0), 100)) "
                               "FROM clinic.people GROUP BY smoker ORDER BY smoker")
     assert [tuple(r) for r in answer.rows] == [tuple(r) for r in truth]
@@ -255,3 +257,37 @@ def test_penguin_counts_fall_inside_their_bounds_around_published_sizes(penguin_
     monkeypatch.setattr(engine_module.noise, "sample_discrete_laplace",
                         lambda scale, size: real(scale * 2, size))
     assert coverage(penguin_engine, 200) < threshold
+
+
+def test_chosen_bounds_are_explained_and_reported_with_what_they_clipped(make_engine) -> None:
+    engine = make_engine(most_rows=10, bounds="chosen")
+    sql = "SELECT ward, COUNT(*), SUM(minutes) FROM visits GROUP BY ward"
+    explained = dict(engine.explain("tester", sql, epsilon=Decimal(1)).rows)
+    # Two measures share 85%; the two bounds share 10% for their choice, 5% for their clipped
+    # figures.
+    assert explained["epsilon per measure"] == "0.425"
+    assert explained["bound on rows per individual"].startswith(
+        "chosen per query by a private quantile (noisy max over 8 candidates up to the ceiling 10)")
+    assert "epsilon 0.05; clipped-away total reported with epsilon 0.025" in \
+        explained["bound on total of minutes per individual"]
+    assert explained["measure sum(minutes)"].startswith("sensitivity at most 600,")
+    answer = engine.answer("tester", sql, epsilon=Decimal(1))
+    assert answer.epsilon == Decimal(1)
+    for item in answer.accuracy:
+        # Counts and non-negative sums can only be low because of clipping.
+        assert item.low_by is not None and item.low_by >= 0 and item.high_by == 0
+    assert any(note.startswith("each individual's rows over the whole answer is scaled down to at "
+                               "most ") and note.endswith("(chosen privately for this query)")
+               for note in answer.notes)
+
+
+def test_declared_bounds_spend_everything_on_the_measures(make_engine) -> None:
+    engine = make_engine(most_rows=10, bounds="declared")
+    sql = "SELECT COUNT(*), SUM(minutes) FROM visits"
+    explained = dict(engine.explain("tester", sql, epsilon=Decimal(1)).rows)
+    assert explained["epsilon per measure"] == "0.5"
+    assert explained["bound on rows per individual"] == "declared: 10 (the policy's most_rows)"
+    assert explained["measure count(*)"].startswith("sensitivity 10,")
+    answer = engine.answer("tester", sql, epsilon=Decimal(1))
+    assert [a.sensitivity for a in answer.accuracy] == [10, 600]
+    assert all(a.low_by is None for a in answer.accuracy)

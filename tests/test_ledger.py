@@ -35,6 +35,7 @@ from proxy.policy import (
     AccessPolicy,
     AnalystPolicy,
     ColumnPolicy,
+    Individual,
     Policies,
     TableBudget,
     TablePolicy,
@@ -250,6 +251,36 @@ def test_unknown_analyst_and_unknown_table_are_refused(
     assert charge_count(fresh_dsn) == 0
     assert ledger.spent("planner") == 0
     assert query(fresh_dsn, "SELECT spent FROM hushql.table_budgets") == [(D(0),)]
+
+
+def test_tables_of_one_population_share_one_cap(fresh_dsn: str,
+                                               open_ledger: Callable[..., Ledger]) -> None:
+    """households and readings protect the same households: spending on either adds up against
+    one cap, the smaller the two tables declare."""
+    policies = make_policies({"planner": "5.0"}, {"readings": "1.0", "households": "2.0",
+                                                  "pipes": "1.0"})
+    shared = {name: table.model_copy(update={"individual": Individual(
+        column="flag", population="households", most_rows=1)})
+        for name, table in policies.tables.items() if name != "pipes"}
+    policies = Policies(access=policies.access, tables={**policies.tables, **shared})
+    ledger = open_ledger()
+    ledger.sync_budgets(policies)
+    ledger.reserve("planner", ["households"], D("0.6"), "SELECT 1", "f")
+    assert ledger.table_remaining("readings") == D("0.4")  # the population's cap: min(1, 2)
+    with pytest.raises(HushError) as caught:
+        ledger.reserve("planner", ["readings"], D("0.6"), "SELECT 2", "f")
+    assert caught.value.sqlstate == BUDGET_EXHAUSTED
+    assert caught.value.message == (
+        "population budget exhausted: 0.4 of 1.0 left for the individuals of population "
+        "households (all analysts, all its tables together), this query needs 0.6")
+    ledger.reserve("planner", ["pipes"], D("0.6"), "SELECT 3", "f")  # another population
+    ledger.reserve("planner", ["readings", "households"], D("0.4"), "SELECT 4", "f")
+    assert ledger.table_remaining("households") == 0
+    # Each table's own spending is kept for the books; the population holds the sum.
+    assert dict(query(fresh_dsn, "SELECT table_name, spent FROM hushql.table_budgets")) == {
+        "households": D("1.0"), "readings": D("0.4"), "pipes": D("0.6")}
+    assert dict(query(fresh_dsn, "SELECT population, spent FROM hushql.population_budgets")) == {
+        "households": D("1.0"), "pipes": D("0.6")}
 
 
 def test_table_cap_holds_across_analysts(fresh_dsn: str,
@@ -485,7 +516,9 @@ def test_the_hash_migration_fills_in_rows_written_before_it(
     monkeypatch.setattr(ledger_module, "_MIGRATIONS", version_one)
     monkeypatch.setattr(ledger_module, "SCHEMA_VERSION", 1)
     old = open_ledger()
-    old.sync_budgets(make_policies({"planner": "3.0"}, {"households": None}))
+    with old._connection() as conn:  # version 1's budget rows, as that version wrote them
+        conn.execute("INSERT INTO hushql.analyst_budgets (analyst, budget) VALUES ('planner', 3.0)")
+        conn.execute("INSERT INTO hushql.table_budgets (table_name, cap) VALUES ('households', NULL)")
     old._sql.reserve = old._sql.reserve.replace("reserve_charge_hashed(%s, %s::text[], %s, %s, %s, %s)",
                                                 "reserve_charge(%s, %s::text[], %s, %s, %s)")
     with old._connection() as conn:

@@ -15,7 +15,7 @@ from concurrent.futures import ThreadPoolExecutor
 from decimal import Decimal
 
 from proxy.errors import BUDGET_EXHAUSTED, HushError
-from proxy.ledger import Ledger, _Request
+from proxy.ledger import Ledger, _Request, statement_hash
 from tests.test_ledger import charge_count, make_policies, open_ledger, query  # noqa: F401
 
 D = Decimal
@@ -26,13 +26,13 @@ def test_a_batch_checks_each_reservation_against_the_ones_before_it(
     ledger = open_ledger()
     ledger.sync_budgets(make_policies({"planner": "0.3", "researcher": "1.0"},
                                       {"households": "0.25", "readings": None}))
-    batch = [_Request("planner", ["households"], D("0.1"), "q1", "f"),
-             _Request("planner", ["households"], D("0.1"), "q2", "f"),
-             _Request("planner", ["households"], D("0.1"), "q3", "f"),  # cap: 0.05 left
-             _Request("nobody", [], D("0.1"), "q4", "f"),
-             _Request("planner", ["readings"], D("0.1"), "q5", "f"),  # budget: 0.1 left
-             _Request("planner", ["readings"], D("0.1"), "q6", "f"),  # budget: 0 left
-             _Request("researcher", ["readings", "households"], D("0.01"), "q7", "f")]
+    batch = [_Request("planner", ["households"], D("0.1"), "q1", statement_hash("q1"), "f"),
+             _Request("planner", ["households"], D("0.1"), "q2", statement_hash("q2"), "f"),
+             _Request("planner", ["households"], D("0.1"), "q3", statement_hash("q3"), "f"),  # cap: 0.05 left
+             _Request("nobody", [], D("0.1"), "q4", statement_hash("q4"), "f"),
+             _Request("planner", ["readings"], D("0.1"), "q5", statement_hash("q5"), "f"),  # budget: 0.1 left
+             _Request("planner", ["readings"], D("0.1"), "q6", statement_hash("q6"), "f"),  # budget: 0 left
+             _Request("researcher", ["readings", "households"], D("0.01"), "q7", statement_hash("q7"), "f")]
     rows = ledger._reserve_together(batch)
     refusals = [row[1] for row in rows]
     assert refusals == [None, None, "table cap", "unknown analyst", None, "analyst budget",

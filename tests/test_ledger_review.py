@@ -240,8 +240,9 @@ def test_charges_made_before_the_chain_join_it_in_order(fresh_dsn: str) -> None:
         with psycopg.connect(fresh_dsn, autocommit=True) as conn:
             conn.execute("INSERT INTO hushql.analyst_budgets (analyst, budget) VALUES ('p', 3)")
             conn.execute("INSERT INTO hushql.table_budgets (table_name, cap) VALUES ('t', NULL)")
-        for _ in range(3):
-            old.reserve("p", ["t"], D("0.1"), "SELECT 1", "fp")
+            for _ in range(3):  # version 1's own reservation function
+                conn.execute("SELECT hushql.reserve_charge('p', ARRAY['t'], 0.1, 'SELECT 1', "
+                             "'fp')")
         old.close()
     finally:
         ledger_module._MIGRATIONS[:] = saved

@@ -75,15 +75,18 @@ def test_demo_policies_load_cleanly() -> None:
     assert list(loaded.admins) == ["auditor"]
     readings = loaded.tables["readings"]
     assert readings.source == "utility.meter_readings"
-    assert (readings.individual.column, readings.individual.groups_cap,
-            readings.individual.rows_cap) == ("household_id", 4, 31)
+    assert (readings.individual.column, readings.individual.population,
+            readings.individual.most_rows, readings.individual.bounds) == (
+        "household_id", "households", 366, "chosen")
     assert readings.budget.cap == Decimal("20.0")
     litres = readings.columns["litres"]
     assert (litres.kind, litres.low, litres.high) == ("number", 0, 2000)
     assert litres.step == Decimal("0.1")
     assert readings.columns["reading_date"].bucket is None  # a date groups by day, as written
     households = loaded.tables["households"]
-    assert households.source == "utility.households" and households.individual is None
+    assert households.source == "utility.households"
+    assert (households.individual.most_rows, households.population) == (1, "households")
+    assert readings.population == households.population
     assert set(households.columns) == {"household_id", "district", "occupants", "tariff",
                                        "has_garden"}
 
@@ -111,7 +114,7 @@ CASES = [
                  f"{R}: colour: unknown key", id="unknown-top-level-key"),
     pytest.param(R, "step = 0.1", "step = 0.1\nunit = \"l\"",
                  f"{R}: columns.litres.unit: unknown key", id="unknown-column-key"),
-    pytest.param(R, "rows_cap = 31", "rows_cap = 31\nper_day = 1",
+    pytest.param(R, "most_rows = 366", "most_rows = 366\nper_day = 1",
                  f"{R}: individual.per_day: unknown key", id="unknown-individual-key"),
     pytest.param(A, "most_cells = 10000", "most_rows = 10000",
                  f"{A}: defaults.most_rows: unknown key", id="unknown-defaults-key"),
@@ -162,10 +165,23 @@ CASES = [
     pytest.param(R, 'column = "household_id"', 'column = "meter_id"',
                  f"{R}: individual.column: 'meter_id' is not a listed column; list it under "
                  "[columns]", id="individual-column-not-listed"),
-    pytest.param(R, "groups_cap = 4", "groups_cap = 0",
-                 f"{R}: individual.groups_cap: must be a positive integer", id="groups-cap-zero"),
-    pytest.param(R, "rows_cap = 31", "rows_cap = -2",
-                 f"{R}: individual.rows_cap: must be a positive integer", id="rows-cap-negative"),
+    pytest.param(R, "most_rows = 366", "most_rows = 0",
+                 f"{R}: individual.most_rows: must be a positive integer", id="most-rows-zero"),
+    pytest.param(R, 'population = "households"', 'population = "Households!"',
+                 f"{R}: individual.population: must be a lower-case name (letters, digits, _)",
+                 id="population-not-a-name"),
+    pytest.param(R, 'bounds = "chosen"', 'bounds = "guessed"',
+                 f"{R}: individual.bounds: Input should be 'chosen' or 'declared'",
+                 id="bounds-unknown"),
+    # Keys of the earlier per-cell layout are explained, naming what replaced them.
+    pytest.param(R, "most_rows = 366", "most_rows = 366\ngroups_cap = 4",
+                 f"{R}: individual.groups_cap: no longer used: an individual's contribution is "
+                 "bounded over the whole answer; set most_rows (the most rows one individual can "
+                 "own) and population instead", id="old-groups-cap"),
+    pytest.param(R, "most_rows = 366", "most_rows = 366\nrows_cap = 31",
+                 f"{R}: individual.rows_cap: no longer used: set most_rows (the most rows one "
+                 "individual can own, e.g. 366 for one row a day) and population instead",
+                 id="old-rows-cap"),
     pytest.param(A, 'tables = ["households"]', 'tables = ["households", "pipes"]',
                  f"{A}: analysts.researcher.tables: 'pipes' has no policy file in tables/",
                  id="granted-table-without-policy"),
@@ -248,26 +264,25 @@ def test_missing_directory(tmp_path: Path) -> None:
 
 
 def test_toml_syntax_error(policies: Path) -> None:
-    broken = (policies / R).read_text().replace("groups_cap = 4", "groups_cap = ")
+    broken = (policies / R).read_text().replace("most_rows = 366", "most_rows = ")
     (policies / R).write_text(broken)
     with pytest.raises(tomllib.TOMLDecodeError) as reference:
         tomllib.loads(broken)
     found = problems(policies)
     # The grant of readings is not reported again: the broken file still declares it.
     assert found == [f"{R}: (syntax): {reference.value}"]
-    assert "line 13" in found[0]
+    assert "line 13" in found[0]  # the most_rows line
 
 
 def test_shape_errors_name_the_key(policies: Path) -> None:
     """Wrong types, including ones a lax reader would coerce (true as 1, 4.0 as 4)."""
-    edit(policies, R, "groups_cap = 4", "groups_cap = true")
-    edit(policies, R, "rows_cap = 31", "rows_cap = 31.0")
+    edit(policies, R, "most_rows = 366", "most_rows = true")
     edit(policies, R, 'kind = "number"', 'kind = "float"')
     edit(policies, A, "budget = 3.0", 'budget = "lots"')
     edit(policies, A, "epsilon_per_query = 0.1", "epsilon_per_query = nan")
     found = problems(policies)
     keys = [line.split(": ")[:2] for line in found]
-    assert keys == [[R, "individual.groups_cap"], [R, "individual.rows_cap"],
+    assert keys == [[R, "individual.most_rows"],
                     [R, "columns.litres.kind"],
                     [A, "defaults.epsilon_per_query"], [A, "analysts.planner.budget"]]
 
@@ -335,7 +350,7 @@ def test_check_command_summarises_the_demo_policies() -> None:
     assert check_command(DEMO_POLICIES, console) == 0
     text = buffer.getvalue()
     for expected in ("utility.households", "utility.meter_readings", "one household_id",
-                     "4 groups, 31 rows each", "Northbank, Old Mill, Harbourside",
+                     "at most 366, bounds chosen", "households", "Northbank, Old Mill, Harbourside",
                      "2026-01-01 .. 2026-12-31", "365 cells", "0 .. 2000", "0.1",
                      "no (100,000 cells > most_cells)", "planner", "3.0",
                      "households, readings", "researcher", "1.0", "Administrators: auditor",
@@ -346,11 +361,11 @@ def test_check_command_summarises_the_demo_policies() -> None:
 def test_a_malformed_key_is_reported_once_and_the_rest_still_checked(policies: Path) -> None:
     """A wrongly typed step is one problem (not also "needs a step"); other checks still run."""
     edit(policies, R, "step = 0.1", 'step = "fine"')
-    edit(policies, R, "rows_cap = 31", "rows_cap = 0")
+    edit(policies, R, "most_rows = 366", "most_rows = 0")
     found = problems(policies)
     assert [line.split(": ")[1] for line in found] == ["columns.litres.step",
-                                                       "individual.rows_cap"]
-    assert found[1] == f"{R}: individual.rows_cap: must be a positive integer"
+                                                       "individual.most_rows"]
+    assert found[1] == f"{R}: individual.most_rows: must be a positive integer"
 
 
 # --- [connections] --------------------------------------------------------------------------------

@@ -15,7 +15,8 @@ import pytest
 
 from proxy.policy import load_policies
 from proxy.sql.analyse import analyse
-from proxy.sql.rewrite import PICK_SALT_SETTING, rewrite
+from proxy.sql.rewrite import rewrite
+from tests.bounds_helpers import run_with_bounds
 from tests.policy_fixtures import load_clinic, write_policies
 
 WARDS = "unnest(ARRAY['north','south','east']) WITH ORDINALITY AS w(v, i)"
@@ -24,7 +25,8 @@ WARDS = "unnest(ARRAY['north','south','east']) WITH ORDINALITY AS w(v, i)"
 @pytest.fixture(scope="module")
 def clinic(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
     load_clinic(module_dsn)
-    policies = load_policies(write_policies(tmp_path_factory.mktemp("policies"), groups_cap=3))
+    policies = load_policies(write_policies(tmp_path_factory.mktemp("policies"),
+                                            most_rows=3, bounds="declared"))
     with psycopg.connect(module_dsn, autocommit=True) as conn:
         yield conn, policies
 
@@ -34,12 +36,10 @@ def measures_of(clinic, sql: str, exact: frozenset[str] = frozenset()) -> list[t
     conn, policies = clinic
     plan = analyse(sql, policies, "tester")
     rewritten = rewrite(plan, exact)
-    with conn.transaction():
-        conn.execute("SELECT set_config(%s, 'fixed-test-salt', true)", (PICK_SALT_SETTING,))
-        rows = conn.execute(rewritten.sql).fetchall()
+    rows = run_with_bounds(conn, rewritten)
     assert len(rows) == rewritten.cells
     keys = len(plan.keys)
-    return [tuple(int(v) for v in row[keys:]) for row in rows]
+    return [tuple(int(v) for v in row[keys:keys + len(plan.measures)]) for row in rows]
 
 
 def reference(clinic, sql: str) -> list[tuple]:
@@ -48,6 +48,7 @@ def reference(clinic, sql: str) -> list[tuple]:
             for row in conn.execute(sql).fetchall()]
 
 
+CLAMPED_MINUTES = "CASE WHEN minutes > 60 THEN 60 WHEN minutes < 0 THEN 0 ELSE minutes END"
 CLAMPED_AGE = "CASE WHEN age > 100 THEN 100 WHEN age < 0 THEN 0 ELSE age END"
 WEIGHT_UNITS = ("CASE WHEN round(weight * 2) > 240 THEN 240 WHEN round(weight * 2) < -10 "
                 "THEN -10 ELSE round(weight * 2) END")
@@ -77,17 +78,26 @@ CASES = [
      f"FROM {WARDS} ORDER BY w.i"),
     ("SELECT COUNT(*) FROM people WHERE ward LIKE 'no%' AND NOT smoker",
      "SELECT count(*) FROM clinic.people WHERE ward LIKE 'no%' AND NOT smoker"),
-    # visits: one person owns many rows; rows_cap 3, groups_cap 3 (= the 3 wards, so no choice).
+    # visits: one person owns many rows; most_rows 3 (declared), minutes in [0, 60]. Each
+    # person's partials are all scaled by w = min(1, 3 / rows, 180 / total minutes), each
+    # rounded toward zero. With one cell, that is a cap on the person's count or sum.
     ("SELECT COUNT(*) FROM visits",
      "SELECT sum(CASE WHEN c > 3 THEN 3 ELSE c END) FROM "
      "(SELECT person_id, count(*) AS c FROM clinic.visits GROUP BY person_id) s"),
+    ("SELECT SUM(minutes) FROM visits",
+     f"SELECT sum(CASE WHEN s > 180 THEN 180 ELSE s END) FROM (SELECT person_id, "
+     f"sum({CLAMPED_MINUTES}) AS s FROM clinic.visits GROUP BY person_id) t"),
+    # Both bounds: the sum shrinks with the rows (3 / c) too; every person is in the one cell.
     ("SELECT SUM(minutes), COUNT(DISTINCT person_id) FROM visits",
-     "SELECT sum(CASE WHEN s > 180 THEN 180 ELSE s END), count(*) FROM (SELECT person_id, "
-     "sum(CASE WHEN minutes > 60 THEN 60 WHEN minutes < 0 THEN 0 ELSE minutes END) AS s "
-     "FROM clinic.visits GROUP BY person_id) t"),
+     f"SELECT sum(least(s, trunc(s * 3.0 / c), 180)), count(*) FROM (SELECT person_id, count(*) AS c, "
+     f"sum({CLAMPED_MINUTES}) AS s FROM clinic.visits GROUP BY person_id) t"),
+    # Per ward: each person's count there times 3 / (its rows in the three wards), truncated;
+    # a person in at most 3 cells is always counted once per ward it visited.
     ("SELECT ward, COUNT(*), COUNT(DISTINCT person_id) FROM visits GROUP BY ward",
-     f"SELECT (SELECT sum(CASE WHEN c > 3 THEN 3 ELSE c END) FROM (SELECT count(*) AS c "
-     f"FROM clinic.visits x WHERE x.ward = w.v GROUP BY x.person_id) s), "
+     f"SELECT (SELECT sum(CASE WHEN x.c * 3 >= x.c * x.total THEN x.c ELSE trunc(x.c * 3.0 / x.total) END) "
+     f"FROM (SELECT v.person_id, count(*) AS c, (SELECT count(*) FROM clinic.visits y "
+     f"WHERE y.person_id = v.person_id AND y.ward IN ('north', 'south', 'east')) AS total "
+     f"FROM clinic.visits v WHERE v.ward = w.v GROUP BY v.person_id) x), "
      f"(SELECT count(DISTINCT person_id) FROM clinic.visits x WHERE x.ward = w.v) "
      f"FROM {WARDS} ORDER BY w.i"),
 ]

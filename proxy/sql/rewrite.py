@@ -1,11 +1,15 @@
 """Plan -> backend SQL, and the sensitivity of each measure of the plan.
 
 Everything here is a pure function of the plan and its table policy; the SQL is built as a
-sqlglot tree, never by pasting strings, and written once for PostgreSQL.
+sqlglot tree and written once for PostgreSQL. Policy and analyst text (sources, columns,
+filters) only ever enter as tree nodes; fixed fragments of this module's own, holding nothing
+but its aliases and integers, are parsed into trees with sqlglot.
 
 The backend query returns exactly one row per declared cell, in domain order: the key ordinals
-``i0, i1, ...`` and then one column per measure ``m0, m1, ...`` (0 for empty cells). It never
-returns rows of the table, never sorts, limits or filters on aggregates.
+``i0, i1, ...``, one column per measure ``m0, m1, ...`` (0 for empty cells), and for tables with
+individuals each bound's value ``b0, b1, ...`` then each bound's clipped-away total (the same on
+every row). It never returns rows of the table, never sorts, limits or filters on aggregates
+(the one ORDER BY ... LIMIT 1 ranks the bounds' noisy scores: that is the mechanism itself).
 
 Row tables (each row is one individual)
 ---------------------------------------
@@ -21,31 +25,81 @@ finished aggregate to the domain list. Adding or removing one row changes one ce
 for a count and by at most ``M = max(|lo|, |hi|) / step`` for a sum, so the L1 sensitivity of the
 whole histogram is 1 (count) or M (sum), whatever the number of cells.
 
-Tables with individuals (``[individual]`` with ``groups_cap = g``, ``rows_cap = r``)
----------------------------------------------------------------------------------------
-One individual may own many rows, in many cells. The rewrite
-1. aggregates per (individual, cell): partial count, partial clamped sum, partial value count;
-2. keeps only cells inside the declared domains, then keeps at most ``g`` of each individual's
-   cells, chosen at random in the database (``ROW_NUMBER() OVER (PARTITION BY individual
-   ORDER BY md5(individual, cell, salt))`` with a fresh random salt per query); the choice
-   depends only on that individual's own cells and on randomness independent of the data;
-3. clamps each partial count to ``[0, r]`` and each partial sum to
-   ``[r * min(lo, 0), r * max(hi, 0)]`` (in step units, or in column units for numeric columns,
-   whose partial sums stay in column units until the cell is done; the interval holds 0 so a
-   partial sum is never pushed away from zero);
-4. sums the capped partials over individuals (then, for numeric columns, converts the cell's
-   total to step units once).
-Rows whose individual column is NULL belong to no identifiable individual, so no cap could be
-enforced on the person they belong to; they are not counted. (Kept as one group, they would
-also break step 2: md5 of a NULL is NULL, so their choice of cells would follow the executor's
-row order, which depends on everyone else's rows.)
-Argument: neighbouring databases differ by all rows of one individual. Every other individual's
-capped partials are identical in both (their rows and their own random choice are unchanged), so
-the answers differ only by that individual's at most ``g`` kept partials, each bounded as in 3.
-Hence the L1 sensitivity is ``g * r`` for a count, ``g * r * M`` for a sum and ``g`` for
-COUNT(DISTINCT individual). With ``C`` cells an individual reaches at most ``C`` of them, so
-``g`` is replaced by ``min(g, C)`` (1 for an ungrouped query), and when ``g >= C`` step 2's
-ranking is skipped as it would keep everything anyway.
+Tables with individuals (``[individual]`` with ``most_rows``)
+-------------------------------------------------------------
+Neighbouring databases differ by all the rows of one individual (in every table of its
+population). An individual may own many rows in many cells, so its influence is bounded over
+the whole answer at once (Amin, Kulesza, Munoz Medina & Vassilvitskii 2019, "Bounding User
+Contributions"), never cell by cell. The backend query:
+
+1. ``q``: aggregates per (individual, cell) inside the declared domains: ``r`` rows, and per
+   measure its partial in measure units (a row count, a count of values, the clamped sum in
+   step units, or 1 for COUNT(DISTINCT individual)). Rows whose individual is NULL belong to no
+   identifiable individual and are not counted (no bound could be enforced on their owner).
+2. ``t``: per individual, its totals over all cells: ``n_rows``, the cells it touches, and per
+   summed column the L1 total of its partials ``tot_j = sum |partial|``.
+3. ``b``: the bounds, one per subject (``rows`` when the plan counts anything, and one per
+   summed column), each either declared (its ceiling: ``most_rows`` rows, or
+   ``most_rows * max(|lo|, |hi|)`` step units) or chosen per query (below).
+4. ``w``: one factor per individual, ``w = min(1, B_j / total_j over its bounds j)``, scales all
+   its partials, each rounded toward zero: ``trunc(p * w) = sign(p) * min(|p|, floor(|p| B_j /
+   total_j), ...)``, computed with integer division (the floor of a minimum is the minimum of
+   the floors), so it is exact. AVG's sum and count shrink by the same factor.
+5. sums per cell, joined to the list of declared cells (empty cells read 0); per bound the
+   clipped-away total (see 7).
+
+Sensitivity, given the bounds. Take neighbours D and D' = D minus individual u. Every other
+individual's partials, totals and factor are computed from its own rows only, so they are equal
+in D and D'; the answers differ exactly by u's scaled partials. For a count measure, u's scaled
+partials add up over all cells to at most ``sum floor(c * R / n_rows) <= R`` (its counts add up
+to at most n_rows); for a sum, to at most ``sum |p| * T / tot <= T`` in L1. COUNT(DISTINCT
+individual) counts u once in each cell it touches when it touches at most R cells, else
+nowhere: at most ``min(R, cells)``. So the L1 sensitivity of the whole answer is R for counts,
+T for sums and min(R, cells) for distinct individuals, whatever the number of cells; each is at
+least 1 (a noise scale must be positive; any upper bound is sound). Row tables are the case
+without a factor: one row moves one cell by at most 1 or M.
+
+Choosing a bound privately (the same scan). The candidates are a geometric grid below the
+ceiling (``ceiling * (4/5)^k``, at least 1). For candidate k, ``above_k`` is the number of
+individuals whose total exceeds it; all ``above_k`` come from one histogram of the totals over
+the candidates (width_bucket, one pass over ``t``). The chosen candidate maximises
+``score_k + z_k`` with ``score_k = -|above_k - A|`` (ties to the smallest k), where the target A
+(individuals left above, from the number of cells and the measures' epsilon) and the noise z_k
+come from the engine in a setting. This is "report noisy max" with exact discrete Laplace noise
+of scale ``2 * Delta / epsilon_b``, where ``Delta = 1`` bounds how far one individual moves any
+score (it changes each above_k by at most 1; A does not depend on the data), and the engine may
+add a public, data-independent preference ``-c_k`` to z_k. It is epsilon_b-DP:
+
+  Proof. Fix the noise of every candidate but i. Candidate i wins iff ``z_i >= t(D)``, where the
+  integer threshold t(D) is set by the other noisy scores and by score_i (ties broken by a fixed
+  order, so the winning set of z_i is an upper set of integers). Moving from D to D' changes
+  each score by at most Delta, so ``t(D') <= t(D) + 2 Delta``. For discrete Laplace noise with
+  ``P(z) ~ a^|z|``, ``a = exp(-epsilon_b / (2 Delta))``, every tail satisfies
+  ``P(z >= m + 1) >= a * P(z >= m)`` (for m >= 0 with equality; for m < 0 because
+  ``(1 - a) P(z >= m + 1) >= C a >= C a^(|m| + 1) = a P(z = m)``, C the normalising constant).
+  Hence ``P(i | D') >= P(z_i >= t(D) + 2 Delta) >= a^(2 Delta) P(i | D) = exp(-epsilon_b)
+  P(i | D)``; integrating over the other candidates' noise and swapping D, D' gives the claim.
+
+Why not sample the exponential mechanism directly: its probabilities need the scores, which
+the proxy only has after the scan, and then the scaling with the chosen bound would need a
+second scan. Report noisy max with noise drawn before the query (exact integer sampling, see
+``proxy.noise``) lets the backend make the choice inside the one query, with integer arithmetic.
+
+6. Composition. A query with chosen bounds spends: epsilon_b per chosen bound on its choice,
+   epsilon_c per bound on its clipped-away figure, and epsilon_m per measure on the measures
+   (noise scaled to the sensitivities at the chosen bounds, which are released and public).
+   By basic adaptive sequential composition the query is (sum of these)-DP; the engine's split
+   makes that sum the query's epsilon.
+
+7. How far clipping may have lowered an answer. Per bound j, ``clipped_j`` sums over
+   individuals their clipped-away amount (rows, or the L1 of the sum's partials, lost to the
+   factor and the rounding), each capped at ``cap_j = max(terms) + cells``
+   (``loss_terms``): ``ceiling_j - B_j`` (w set by bound j: at most the ceiling less the bound),
+   ``ceiling_j - per_row * R`` for a sum bound when the rows bound R set w (each row adds at most
+   per_row), and ``ceiling_j`` for any other binding bound; ``cells`` covers rounding toward
+   zero (under one unit per partial). Removing u moves ``clipped_j`` by at most ``cap_j``, its
+   sensitivity. The caps rely on the data owner's ceiling (most_rows): an individual breaking it
+   is still bounded in the answer, but its clipped-away amount may then be understated.
 """
 
 from __future__ import annotations
@@ -53,8 +107,10 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass
 from decimal import Decimal
+from fractions import Fraction
 from typing import Sequence
 
+import sqlglot
 import sqlglot.expressions as exp
 
 from proxy.policy import ColumnPolicy, TablePolicy
@@ -63,50 +119,119 @@ from proxy.sql.filters import date_node
 from proxy.sql.keys import key_expression
 from proxy.sql.plan import GroupKey, Measure, Plan
 
+# Backend session settings holding, per chosen bound j, the comma-separated integer noise of
+# each candidate's score (drawn exactly by the engine before the query runs).
+BOUND_NOISE_SETTING = "hushql.bound_noise_{}"
 
-# The backend session setting holding the per-query salt of the random choice of cells.
-PICK_SALT_SETTING = "hushql.pick_salt"
+# Candidates for a chosen bound: the ceiling times (4/5)^k, k = 0..MOST_CANDIDATES-1 (at least 1).
+_CANDIDATE_RATIO = Fraction(4, 5)
+MOST_CANDIDATES = 40
+
+
+@dataclass(frozen=True)
+class Bound:
+    """One contribution bound of a query over a table with individuals, in measure units.
+
+    ``subject`` is "rows" (an individual's rows over all cells) or a summed column (the L1 total
+    of its clamped values over all cells, in step units). ``candidates`` (ascending) are the
+    values a private quantile chooses among; empty when the ceiling is declared as the bound.
+    ``loss_cap`` is each individual's cap in the clipped-away figure: its sensitivity is
+    ``loss_cap(value)``.
+    """
+
+    subject: str
+    ceiling: int
+    per_row: int  # most one row adds to the subject's total (1 for rows): ceiling = most_rows * per_row
+    candidates: tuple[int, ...]
+
+    @property
+    def chosen(self) -> bool:
+        return bool(self.candidates)
+
+
+# One individual moves each candidate's score -|above_k - A| by at most this.
+SCORE_SENSITIVITY = 1
+
+# A term of a loss cap: constant - coefficient * (value of bound ``index``), or the constant.
+LossTerm = tuple[int, int, "int | None"]
+
+
+def loss_terms(bounds: tuple[Bound, ...], j: int, cells: int) -> list[LossTerm]:
+    """The cap on one individual's clipped-away amount for bound j is the largest of these
+    terms plus ``cells`` (module notes, 4)."""
+    own = bounds[j]
+    terms: list[LossTerm] = [(own.ceiling, 1, j)]
+    for k, other in enumerate(bounds):
+        if k == j:
+            continue
+        if other.subject == "rows" and own.subject != "rows":
+            terms.append((own.ceiling, own.per_row, k))  # per_row * (most_rows - R)
+        else:
+            terms.append((own.ceiling, 0, None))
+    return terms
+
+
+def loss_cap(bounds: tuple[Bound, ...], j: int, values: tuple[int, ...], cells: int) -> int:
+    """The sensitivity of bound j's clipped-away total, given the bounds' values."""
+    return max(c - a * (values[k] if k is not None else 0)
+               for c, a, k in loss_terms(bounds, j, cells)) + cells
+
+    score_sensitivity = 1  # one individual moves each score -|above_k - A| by at most 1
 
 
 @dataclass(frozen=True)
 class Rewritten:
-    """The backend SQL of a plan and the L1 sensitivity (in measure units) of each measure."""
+    """The backend SQL of a plan and what the engine needs to noise its result.
+
+    The backend returns one row per cell: key ordinals, then one column per measure, then (for
+    tables with individuals) for each bound its value and its clipped-away total. Sensitivities
+    depend on the bounds' values: ``sensitivities(values)``.
+    """
 
     sql: str
-    sensitivities: tuple[int, ...]
     cells: int
-    groups_kept: int | None  # min(g, cells) for individual tables, else None
-    needs_salt: bool = False  # the query reads PICK_SALT_SETTING: set it per query
+    bounds: tuple[Bound, ...]
+    measure_bounds: tuple[int, ...]  # per measure, index into bounds (-1 on row tables)
+    row_sensitivities: tuple[int, ...]  # per measure, on row tables
+    measure_kinds: tuple[str, ...] = ()
+
+    def sensitivities(self, values: tuple[int, ...] = ()) -> tuple[int, ...]:
+        """The L1 sensitivity of each measure given the bounds' values (module notes, 3)."""
+        if not self.bounds:
+            return self.row_sensitivities
+        return tuple(max(1, min(values[b], self.cells) if kind == "count_individuals" else values[b])
+                     for b, kind in zip(self.measure_bounds, self.measure_kinds))
+
+    @property
+    def declared_sensitivities(self) -> tuple[int, ...]:
+        """Sensitivities at the ceilings (what a chosen bound can never exceed)."""
+        return self.sensitivities(tuple(b.ceiling for b in self.bounds))
 
 
 def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritten:
     """Build the backend query and sensitivities of an analysed plan. Pure.
 
     ``exact_columns`` names number columns whose backend type is exact (numeric): their clamped
-    values are summed exactly and turned into step units once per cell instead of per row.
+    values are summed exactly and turned into step units once per cell (row tables) or once per
+    (individual, cell) partial, instead of per row.
     """
     policy = plan.table
     cells = cell_count([key_size(_key_column(policy, k), k) for k in plan.keys])
-    if cells == 0:  # the WHERE leaves some key no value: no cell, nothing to read
-        tree = _no_cells(plan)
-        groups_kept = None
-        factor = 1
-        rows_cap = 1 if policy.individual is None else policy.individual.rows_cap
-    elif policy.individual is None:
+    kinds = tuple(m.kind for m in plan.measures)
+    if cells == 0:  # the WHERE leaves some key no value: no cell, nothing to read or to noise
+        return Rewritten(sql=_no_cells(plan).sql(dialect="postgres"), cells=0, bounds=(),
+                         measure_bounds=tuple(-1 for _ in plan.measures),
+                         row_sensitivities=tuple(1 for _ in plan.measures), measure_kinds=kinds)
+    if policy.individual is None:
         tree = _row_table_query(plan, exact_columns)
-        groups_kept = None
-        factor = 1
-        rows_cap = 1
-    else:
-        groups_kept = min(policy.individual.groups_cap, cells)
-        tree = _individual_table_query(plan, groups_kept, cells, exact_columns)
-        factor = groups_kept
-        rows_cap = policy.individual.rows_cap
-    sensitivities = tuple(
-        factor * _unit_sensitivity(policy, m, rows_cap) for m in plan.measures)
-    return Rewritten(sql=tree.sql(dialect="postgres"), sensitivities=sensitivities,
-                     cells=cells, groups_kept=groups_kept,
-                     needs_salt=groups_kept is not None and groups_kept < cells)
+        return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=(),
+                         measure_bounds=tuple(-1 for _ in plan.measures),
+                         row_sensitivities=tuple(_unit_sensitivity(policy, m) for m in plan.measures),
+                         measure_kinds=kinds)
+    bounds, measure_bounds = _bounds(plan, cells)
+    tree = _individual_table_query(plan, bounds, measure_bounds, cells, exact_columns)
+    return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
+                     measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds)
 
 
 def _no_cells(plan: Plan) -> exp.Select:
@@ -116,18 +241,47 @@ def _no_cells(plan: Plan) -> exp.Select:
                                copy=False).where(exp.false(), copy=False)
 
 
-def _unit_sensitivity(policy: TablePolicy, measure: Measure, rows_cap: int) -> int:
-    """Largest change of one cell of ``measure`` from one individual (before the groups factor),
-    at least 1: a sum over a column declared as [0, 0] cannot move, but noise needs a positive
-    scale, and any upper bound is a sound sensitivity."""
+def _bounds(plan: Plan, cells: int) -> tuple[tuple[Bound, ...], tuple[int, ...]]:
+    """The bounds a plan needs (rows for any count, one per summed column) and, per measure,
+    which bound limits it."""
+    policy = plan.table
+    assert policy.individual is not None
+    most_rows = policy.individual.most_rows
+    subjects: list[str] = []
+    for m in plan.measures:
+        subject = m.column if m.kind == "sum" else "rows"
+        if subject not in subjects:
+            subjects.append(subject)  # type: ignore[arg-type]
+    choose = policy.individual.bounds == "chosen" and most_rows > 1
+    bounds = []
+    for subject in subjects:
+        if subject == "rows":
+            ceiling = most_rows
+        else:
+            low, high = _unit_range(policy.columns[subject])
+            ceiling = most_rows * max(1, abs(low), abs(high))
+        bounds.append(Bound(subject=subject, ceiling=ceiling, per_row=ceiling // most_rows,
+                            candidates=_candidates(ceiling) if choose else ()))
+    measure_bounds = tuple(subjects.index(m.column if m.kind == "sum" else "rows")  # type: ignore[arg-type]
+                           for m in plan.measures)
+    return tuple(bounds), measure_bounds
+
+
+def _candidates(ceiling: int) -> tuple[int, ...]:
+    """A geometric grid below the ceiling: floor(ceiling * (4/5)^k), at least 1, ascending."""
+    found = {max(1, int(ceiling * _CANDIDATE_RATIO ** k)) for k in range(MOST_CANDIDATES)}
+    return tuple(sorted(found))
+
+
+def _unit_sensitivity(policy: TablePolicy, measure: Measure) -> int:
+    """Largest change of a row table's measure (L1 over cells) from one row, at least 1: a sum
+    over a column declared as [0, 0] cannot move, but noise needs a positive scale."""
     if measure.kind == "count_individuals":
-        if policy.individual is None:
-            raise ValueError("COUNT(DISTINCT individual) needs an [individual] section")
-        return 1
+        raise ValueError("COUNT(DISTINCT individual) needs an [individual] section")
     if measure.kind in ("count_rows", "count_values"):
-        return rows_cap
+        return 1
     low, high = _unit_range(policy.columns[measure.column])  # type: ignore[index]
-    return max(1, rows_cap * max(abs(low), abs(high)))
+    return max(1, max(abs(low), abs(high)))
 
 
 def _unit_range(column: ColumnPolicy) -> tuple[int, int]:
@@ -164,10 +318,6 @@ def _literal(value: object) -> exp.Expression:
     if isinstance(value, Decimal):
         return _decimal(value)
     return exp.Literal.string(str(value))
-
-
-def _least(a: exp.Expression, b: exp.Expression) -> exp.Expression:
-    return exp.Least(this=a, expressions=[b])
 
 
 def _clamp(value: exp.Expression, low: int, high: int) -> exp.Expression:
@@ -369,69 +519,132 @@ def _row_table_query(plan: Plan, exact: frozenset[str]) -> exp.Select:
     return _finish(plan, grouped, by_ordinal=False)
 
 
-def _shuffle_key(plan: Plan) -> exp.Expression:
-    """A per-query random order of one individual's cells: md5 of (individual, cell, salt).
-
-    The salt is a fresh random value per query (setting ``PICK_SALT_SETTING``), so the order
-    depends only on the individual's own cells and on randomness independent of the data.
-    """
-    parts: list[exp.Expression] = [exp.cast(exp.column("who", "p"), "text", copy=False)]
-    for j in range(len(plan.keys)):
-        parts += [exp.Literal.string(":"), exp.cast(exp.column("i", f"d{j}"), "text", copy=False)]
-    parts += [exp.Literal.string(":"), exp.Anonymous(
-        this="current_setting", expressions=[exp.Literal.string(PICK_SALT_SETTING)])]
-    text = parts[0]
-    for part in parts[1:]:
-        text = exp.DPipe(this=text, expression=part)
-    return exp.MD5(this=text)
+def _select(text: str) -> exp.Select:
+    """A fixed fragment of this module's own SQL (aliases and integers only, never policy or
+    analyst text), parsed once into a tree to be combined with built parts."""
+    tree = sqlglot.parse_one(text, dialect="postgres")
+    assert isinstance(tree, exp.Select)
+    return tree
 
 
-def _individual_table_query(plan: Plan, groups_kept: int, cells: int,
-                            exact: frozenset[str]) -> exp.Select:
+def _expression(text: str) -> exp.Expression:
+    """An expression fragment of this module's own (aliases and integers only)."""
+    return sqlglot.parse_one(text, dialect="postgres")
+
+
+def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> exp.Expression:
+    """One measure's partial over the rows of one (individual, cell), as an exact number in
+    measure units: COUNT for counts, the clamped sum in step units for sums, 1 for distinct
+    individuals."""
+    if measure.kind == "count_individuals":
+        return _num(1)
+    if measure.kind == "sum":
+        return exp.cast(_aggregate(policy, measure, exact, finish=True), "numeric", copy=False)
+    return _aggregate(policy, measure, exact)
+
+
+def _scaled(value: str, bounds: tuple[Bound, ...]) -> str:
+    """SQL for trunc(value * w), value >= 0: w = min(1, B_j / total_j) over the plan's bounds,
+    as integer divisions (floor of a minimum is the minimum of the floors), exact."""
+    terms = [value]
+    for j, bound in enumerate(bounds):
+        total = "n_rows" if bound.subject == "rows" else f"tot{j}"
+        terms.append(f"div({value} * b.b{j}, NULLIF(t.{total}, 0))")
+    return f"LEAST({', '.join(terms)})"
+
+
+def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
+                            cells: int, exact: frozenset[str]) -> exp.Select:
+    """The per-individual rewrite (module notes): partials per (individual, cell) in the
+    domains, totals per individual, the bounds (declared, or chosen by noisy max over the
+    candidates), one factor per individual scaling all its partials, sums per cell, and per
+    bound the clipped-away total, each individual capped."""
     policy = plan.table
     assert policy.individual is not None
-    rows_cap = policy.individual.rows_cap
     who = exp.alias_(_col(policy.individual.column), "who", copy=False)
     keys = [exp.alias_(_key_expression(policy, k), f"k{j}", copy=False) for j, k in enumerate(plan.keys)]
-    partials = [exp.alias_(_aggregate(policy, m, exact, finish=False), f"m{n}", copy=False)
-                for n, m in enumerate(plan.measures) if m.kind != "count_individuals"]
+    partials = [exp.alias_(exp.Count(this=exp.Star()), "r", copy=False)] + [
+        exp.alias_(_partial(policy, m, exact), f"m{n}", copy=False)
+        for n, m in enumerate(plan.measures)]
     per_individual = _filtered(plan, exp.Select().select(who, *keys, *partials, copy=False)).where(
         exp.Not(this=exp.Is(this=_col(policy.individual.column), expression=exp.Null())),
         copy=False).group_by(*[_num(j + 1) for j in range(len(keys) + 1)], copy=False)
-    if plan.keys:
-        kept = _in_domains(plan, per_individual, "p")
-        if groups_kept < cells:
-            pick = exp.Window(this=exp.RowNumber(), partition_by=[exp.column("who", "p")],
-                              order=exp.Order(expressions=[exp.Ordered(this=_shuffle_key(plan))]))
-            kept.set("expressions", kept.expressions + [exp.alias_(pick, "pick", copy=False)])
-            kept = exp.Select().select(exp.Star(), copy=False).from_(
-                exp.Subquery(this=kept, alias=exp.TableAlias(this=exp.to_identifier("r"))), copy=False).where(
-                exp.LTE(this=exp.column("pick", "r"), expression=_num(groups_kept)), copy=False)
-    else:
-        kept = per_individual
-    frame_alias = "q"
-    capped: list[exp.Expression] = []
+    q = _in_domains(plan, per_individual, "p") if plan.keys else per_individual
+    sum_bounds = [(j, measure_bounds.index(j)) for j, b in enumerate(bounds) if b.subject != "rows"]
+    totals = ["who", "SUM(r) AS n_rows", "COUNT(*) AS touched"] + [
+        f"SUM(ABS(m{n})) AS tot{j}" for j, n in sum_bounds]
+    t = _select(f"SELECT {', '.join(totals)} FROM q GROUP BY who")
+    b = _select("SELECT " + ", ".join(
+        f"({_choice_sql(j, bound)}) AS b{j}" if bound.chosen else f"{bound.ceiling} AS b{j}"
+        for j, bound in enumerate(bounds)))
+    rows_bound = next((j for j, bound in enumerate(bounds) if bound.subject == "rows"), None)
+    scaled = [f"{_scaled('q.r', bounds)} AS r_kept"]
     for n, measure in enumerate(plan.measures):
-        partial = exp.column(f"m{n}", frame_alias)
         if measure.kind == "count_individuals":
-            total: exp.Expression = exp.Count(this=exp.Star())
+            scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN 1 ELSE 0 END AS m{n}")
         elif measure.kind == "sum":
-            column = policy.columns[measure.column]  # type: ignore[index]
-            if _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
-                low, high = Decimal(column.low), Decimal(column.high)
-                floor, ceiling = _decimal(rows_cap * min(low, 0)), _decimal(rows_cap * max(high, 0))
-                total = _to_units(exp.Sum(this=_clamp_between(partial, floor, ceiling)), column)
-            else:
-                low_u, high_u = _unit_range(column)
-                total = exp.Sum(this=_clamp(partial, rows_cap * min(low_u, 0),
-                                            rows_cap * max(high_u, 0)))
+            scaled.append(f"SIGN(q.m{n}) * {_scaled(f'ABS(q.m{n})', bounds)}"
+                          f" AS m{n}")
         else:
-            total = exp.Sum(this=_least(partial, _num(rows_cap)))
-        capped.append(exp.alias_(exp.Coalesce(this=total, expressions=[_num(0)]), f"m{n}", copy=False))
-    ordinals = [exp.column(f"i{j}", frame_alias).as_(f"i{j}") for j in range(len(plan.keys))]
-    summed = exp.Select().select(*ordinals, *capped, copy=False).from_(
-        exp.Subquery(this=kept, alias=exp.TableAlias(this=exp.to_identifier(frame_alias))), copy=False)
-    if not plan.keys:
-        return summed
-    summed = summed.group_by(*[exp.column(f"i{j}", frame_alias) for j in range(len(plan.keys))], copy=False)
-    return _finish(plan, summed, by_ordinal=True)
+            scaled.append(f"{_scaled(f'q.m{n}', bounds)} AS m{n}")
+    ordinals = [f"q.i{j}" for j in range(len(plan.keys))]
+    w = _select(f"SELECT {', '.join(['q.who', 'q.r'] + ordinals + [f'q.m{n}' + f' AS raw{n}' for n in range(len(plan.measures))] + scaled)} "
+                "FROM q JOIN t ON t.who = q.who CROSS JOIN b")
+    losses = []
+    for j, bound in enumerate(bounds):
+        if bound.subject == "rows":
+            losses.append(f"SUM(r - r_kept) AS lost{j}")
+        else:
+            n = measure_bounds.index(j)
+            losses.append(f"SUM(ABS(raw{n}) - ABS(m{n})) AS lost{j}")
+    lost = _select(f"SELECT {', '.join(losses)} FROM w GROUP BY who")
+    caps = ", ".join(
+        f"COALESCE(SUM(LEAST(lost{j}, GREATEST({_loss_terms_sql(loss_terms(bounds, j, cells))})"
+        f" + {cells})), 0) AS clipped{j}"
+        for j, bound in enumerate(bounds))
+    clipped = _select(f"SELECT {caps} FROM lost")
+    measures = [f"COALESCE(SUM(w.m{n}), 0) AS m{n}" for n in range(len(plan.measures))]
+    tail = [f"b.b{j}" for j in range(len(bounds))] + [f"clip.clipped{j}" for j in range(len(bounds))]
+    if plan.keys:
+        summed = _select(f"SELECT {', '.join([f'w.i{j} AS i{j}' for j in range(len(plan.keys))] + measures)} "
+                         f"FROM w GROUP BY {', '.join(f'w.i{j}' for j in range(len(plan.keys)))}")
+        outer = _finish(plan, summed, by_ordinal=True)
+        outer = outer.join(exp.to_table("b"), join_type="cross", copy=False).join(
+            exp.to_table("clipped", alias="clip"), join_type="cross", copy=False)
+        outer = outer.select(*[_expression(x) for x in tail], copy=False)
+    else:
+        outer = _select(f"SELECT {', '.join([f'a.m{n}' for n in range(len(plan.measures))] + tail)} "
+                        f"FROM (SELECT {', '.join(measures)} FROM w) AS a CROSS JOIN b "
+                        f"CROSS JOIN clipped AS clip")
+    histograms = [(f"h{j}", _select(
+        f"SELECT width_bucket({'n_rows' if bound.subject == 'rows' else f'tot{j}'}::numeric, "
+        f"ARRAY[{', '.join(str(c + 1) for c in bound.candidates)}]::numeric[]) AS slot, "
+        f"COUNT(*) AS n FROM t GROUP BY 1")) for j, bound in enumerate(bounds) if bound.chosen]
+    # MATERIALIZED: each histogram is read once per candidate by the choice; inlined, it would
+    # be recomputed each time. The other parts are read more than once, so they are anyway.
+    for name, part in [("q", q), ("t", t), *histograms, ("b", b), ("w", w), ("lost", lost),
+                       ("clipped", clipped)]:
+        outer = outer.with_(name, as_=part, materialized=True if name.startswith("h") else None,
+                            copy=False)
+    return outer
+
+
+def _loss_terms_sql(terms: list[LossTerm]) -> str:
+    return ", ".join(f"{c} - {a} * (SELECT b{k} FROM b)" if k is not None else str(c)
+                     for c, a, k in terms)
+
+
+def _choice_sql(j: int, bound: Bound) -> str:
+    """The noisy-max choice of bound j among its candidates (module notes, 2): the candidate
+    with the highest ``noise_k - |above_k - A|``, ties to the smallest. ``above_k`` (the
+    individuals whose total exceeds candidate k) comes from the histogram ``h<j>`` of the totals
+    over the candidates, counted in one pass with width_bucket: an individual's slot is the
+    number of candidates below its total. The engine passes ``A,noise_1,...,noise_G`` in a
+    setting."""
+    grid = ", ".join(f"({k}, {c})" for k, c in enumerate(bound.candidates, start=1))
+    setting = f"current_setting('{BOUND_NOISE_SETTING.format(j)}')"
+    return (
+        f"SELECT g.tau FROM (VALUES {grid}) AS g(k, tau) "
+        f"ORDER BY CAST(split_part({setting}, ',', g.k + 1) AS bigint) "
+        f"- ABS(COALESCE((SELECT SUM(h.n) FROM h{j} AS h WHERE h.slot >= g.k), 0) "
+        f"- CAST(split_part({setting}, ',', 1) AS bigint)) DESC, g.k LIMIT 1")

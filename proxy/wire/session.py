@@ -111,8 +111,8 @@ def answer_notice(answer: Answer) -> codec.NoticeResponse:
         else:
             scale = "" if a.scale is None else f", noise scale {float(a.scale):.4g}"
             parts.append(f"{a.column}: within ±{a.bound95} of the exact value in 95% of "
-                         f"answers{scale}")
-    detail = "; ".join(parts) if parts else None
+                         f"answers{scale}{a.clipping_text}")
+    detail = "; ".join(parts + answer.notes) if parts or answer.notes else None
     return codec.NoticeResponse.build(
         "NOTICE", SUCCESSFUL_COMPLETION, message, detail=detail,
         hint="The figures carry deliberate random noise; SET hushql.epsilon changes the trade "
