@@ -123,7 +123,8 @@ def test_refusal_cost_grows_with_the_text() -> None:
 @pytest.fixture
 def engine_with_admin() -> FakeEngine:
     engine = FakeEngine()
-    engine.policies.admins = {ADMIN: SimpleNamespace(password=make_verifier(ADMIN_PASSWORD))}
+    engine.policies.admins = {ADMIN: SimpleNamespace(password=make_verifier(ADMIN_PASSWORD),
+                                                    disabled=False)}
     return engine
 
 
