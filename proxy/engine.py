@@ -55,6 +55,7 @@ import sqlglot.errors
 import sqlglot.expressions as exp
 
 from proxy import faults, noise
+from proxy.accounts import Accounts
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
 from proxy.backend import Backend, QueryControl
 from proxy.errors import INTERNAL_ERROR, INVALID_PARAMETER_VALUE, QUERY_CANCELED, HushError
@@ -62,6 +63,7 @@ from proxy.ledger import Ledger
 from proxy.policy import ColumnPolicy, Policies
 from proxy.sql.analyse import analyse
 from proxy.sql.domains import describe_key, key_label, key_type, key_values
+from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
 from proxy.sql.postprocess import postprocess
@@ -290,6 +292,21 @@ class Engine:
         chosen = defaults.epsilon_per_query if epsilon is None else epsilon
         return parse_epsilon(chosen, defaults.largest_epsilon_per_query,
                              defaults.smallest_epsilon_per_query)
+
+    @property
+    def limits(self) -> Limits:
+        """The work limits of the policies served now."""
+        return self.policies.limits
+
+    @property
+    def default_epsilon(self) -> Decimal:
+        """The epsilon a query runs with when the analyst sets none."""
+        return Decimal(self.policies.defaults.epsilon_per_query)
+
+    @property
+    def accounts(self) -> Accounts:
+        """Account facts (login verifiers, administrators) of the policies served now."""
+        return Accounts(self.policies)
 
     def remaining(self, analyst: str) -> Decimal:
         """Epsilon ``analyst`` may still spend, from the ledger; HushError 42501 if unknown."""

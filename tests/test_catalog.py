@@ -20,9 +20,9 @@ from proxy.demo import load_scenario
 from proxy.errors import HushError
 from proxy.policy import load_policies
 from proxy.wire import catalog as catalog_module
-from proxy.wire import codec
-from proxy.wire.catalog import (ROLE, Catalog, build_catalog, check_catalog_text, claims_text,
-                                is_catalog_tree)
+from proxy.wire import catalog_guard, codec
+from proxy.wire.catalog import ROLE, Catalog, build_catalog
+from proxy.wire.catalog_guard import check_catalog_text, claims_text, is_catalog_tree
 from proxy.wire.session import Session
 from tests.conftest import with_database
 from tests.proxy_fixtures import DEMO_POLICIES, UNLISTED_COLUMN, add_unlisted_column
@@ -315,8 +315,8 @@ def test_routing_sends_policy_tables_to_the_engine(catalog: Catalog) -> None:
 
 
 def test_session_routes_catalog_queries_to_the_mirror(catalog: Catalog) -> None:
-    class NoEngine:  # the session must not ask the engine anything here
-        policies = catalog.policies
+    class NoEngine:  # the session must not ask the engine anything here but the text limits
+        limits = catalog.policies.limits
 
     session = Session(NoEngine(), "researcher", catalog=catalog)
     out = asyncio.run(session.simple_query(PUBLIC_TABLES))
@@ -437,12 +437,12 @@ def test_the_catalog_tells_the_proxy_and_the_analyst_not_the_backend(catalog: Ca
     assert [name for name, _ in columns] == ["version", "v", "current_user", "session_user",
                                              "current_role", "user", "current_setting",
                                              "current_setting"]
-    assert got == [(catalog_module.VERSION_STRING, catalog_module.VERSION_STRING, "planner",
+    assert got == [(catalog_guard.VERSION_STRING, catalog_guard.VERSION_STRING, "planner",
                     "planner", "planner", "planner", "15.0 (hushql)", "off")]
-    assert "hushql" in catalog_module.VERSION_STRING
-    assert catalog_module.VERSION_STRING.startswith("PostgreSQL 15.0 ")  # what drivers parse
+    assert "hushql" in catalog_guard.VERSION_STRING
+    assert catalog_guard.VERSION_STRING.startswith("PostgreSQL 15.0 ")  # what drivers parse
     assert rows(catalog, "researcher", "SELECT * FROM version()") == [
-        (catalog_module.VERSION_STRING,)]
+        (catalog_guard.VERSION_STRING,)]
     assert rows(catalog, "researcher", "SELECT rolname FROM pg_catalog.pg_roles "
                 "WHERE rolname = current_user") == []  # the analyst is no backend role
 
@@ -457,5 +457,5 @@ def test_the_catalog_tells_the_proxy_and_the_analyst_not_the_backend(catalog: Ca
 ])
 def test_personalise_replaces_only_identity_questions(text: str, expected: str,
                                                       monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(catalog_module, "VERSION_STRING", "V")
-    assert catalog_module.personalise(text, "o'neil") == expected
+    monkeypatch.setattr(catalog_guard, "VERSION_STRING", "V")
+    assert catalog_guard.personalise(text, "o'neil") == expected

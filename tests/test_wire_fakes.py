@@ -1,8 +1,9 @@
 """Shared stand-ins for the wire tests: a fake engine, a fake catalog, a raw protocol client.
 
-No tests live here. The fake engine honours the engine's contract (answer / explain / describe /
-remaining / policies, HushError for refusals, QueryControl for cancellation) with canned
-answers, so the wire front can be tested without a database.
+No tests live here. The fake engine implements proxy.wire.boundary.Answering (HushError for
+refusals, QueryControl for cancellation) and the fake catalog CatalogQuestions, with canned
+answers, so the wire front can be tested without a database. The fake's ``policies`` is a plain
+namespace tests may edit; its settings and accounts are read from it on every call.
 """
 
 from __future__ import annotations
@@ -18,7 +19,9 @@ from typing import Any, Iterator
 import pytest
 from sqlglot import exp
 
+from proxy.accounts import Accounts
 from proxy.answer import Accuracy, Answer, OutputColumn
+from proxy.engine import parse_epsilon
 from proxy.errors import HushError
 from proxy.sql.limits import Limits
 from proxy.wire import codec
@@ -113,6 +116,30 @@ class FakeEngine:
         with self.lock:
             return self.budget - self.spent
 
+    @property
+    def limits(self) -> Limits:
+        return self.policies.limits
+
+    @property
+    def default_epsilon(self) -> Decimal:
+        return Decimal(self.policies.defaults.epsilon_per_query)
+
+    @property
+    def accounts(self) -> Accounts:
+        return Accounts(self.policies)
+
+    def epsilon_for(self, epsilon: Decimal | str | None) -> Decimal:
+        defaults = self.policies.defaults
+        chosen = defaults.epsilon_per_query if epsilon is None else epsilon
+        return parse_epsilon(chosen, defaults.largest_epsilon_per_query,
+                             defaults.smallest_epsilon_per_query)
+
+    def parameter_types(self, analyst: str, tree: exp.Expression) -> list[str | None]:
+        return []  # no inference: untyped parameters stay text
+
+    def close(self) -> None:
+        pass
+
 
 class FakeCatalog:
     """Claims queries on pg_catalog; answers with one fixed table."""
@@ -127,6 +154,18 @@ class FakeCatalog:
         self.runs.append((analyst, sql, list(params)))
         return [OutputColumn("relname", "name"), OutputColumn("oid", "oid")], \
             [("households", 16384), ("readings", 16390)]
+
+    def is_catalog_text(self, text: str) -> bool:
+        return False  # claims parsed statements only
+
+    def describe(self, analyst: str, sql: str) -> list[Any]:
+        return [OutputColumn("relname", "name"), OutputColumn("oid", "oid")]
+
+    def parameter_types(self, analyst: str, sql: str) -> list[int]:
+        return []
+
+    def close(self) -> None:
+        pass
 
 
 @pytest.fixture

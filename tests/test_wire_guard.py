@@ -124,7 +124,7 @@ def test_refusal_cost_grows_with_the_text() -> None:
 def engine_with_admin() -> FakeEngine:
     engine = FakeEngine()
     engine.policies.admins = {ADMIN: SimpleNamespace(password=make_verifier(ADMIN_PASSWORD),
-                                                       disabled=False)}
+                                                    disabled=False)}
     return engine
 
 

@@ -35,6 +35,7 @@ from proxy.errors import (
     HushError,
 )
 from proxy.policy import Policies
+from proxy.wire.boundary import CatalogQuestions
 from proxy.wire.catalog import (
     _ALL_OIDS,
     MAX_ROWS,
@@ -87,7 +88,8 @@ class LedgerRelations:
     """Answers administrators' queries on the ledger's relations; delegates the rest to
     ``inner`` (the catalog, or None). Thread-safe: one short connection per query."""
 
-    def __init__(self, policies: Policies, ledger_dsn: str, inner: Any = None, *,
+    def __init__(self, policies: Policies, ledger_dsn: str,
+                 inner: CatalogQuestions | None = None, *,
                  timeout_ms: int = STATEMENT_TIMEOUT_MS, max_rows: int = MAX_ROWS) -> None:
         self._admins = frozenset(policies.admins)
         self._dsn = ledger_dsn
@@ -124,7 +126,8 @@ class LedgerRelations:
             conn.execute(sql.SQL("GRANT SELECT ON {} TO {}").format(
                 sql.SQL(", ").join(sql.Identifier(SCHEMA, r) for r in sorted(RELATIONS)), role))
 
-    def replace(self, policies: Policies, inner: Any) -> Any:
+    def replace(self, policies: Policies, inner: CatalogQuestions | None
+                ) -> CatalogQuestions | None:
         """Serve ``policies``' administrators and delegate to ``inner`` from now on; returns
         the catalog replaced (for the caller to close)."""
         old, self.inner = self.inner, inner
@@ -162,8 +165,7 @@ class LedgerRelations:
 
     def parameter_types(self, user: str, sql_text: str) -> list[int]:
         if not names_ledger_schema(None, sql_text):
-            infer = getattr(self.inner, "parameter_types", None)
-            return infer(user, sql_text) if infer is not None else []
+            return self.inner.parameter_types(user, sql_text) if self.inner is not None else []
         self._check(user, sql_text)
         return []
 
@@ -171,7 +173,7 @@ class LedgerRelations:
         if self.inner is not None:
             self.inner.close()
 
-    def _inner(self) -> Any:
+    def _inner(self) -> CatalogQuestions:
         if self.inner is None:
             raise HushError(FEATURE_NOT_SUPPORTED, "catalog queries are not available on this "
                             "server")

@@ -31,6 +31,7 @@ from proxy.errors import (ADMIN_SHUTDOWN, INVALID_AUTHORIZATION, INVALID_PASSWOR
                           PROTOCOL_VIOLATION, TOO_MANY_CONNECTIONS, HushError)
 from proxy.policy import Connections
 from proxy.wire import auth, codec, guard, states
+from proxy.wire.boundary import Answering, CatalogQuestions
 from proxy.wire.session import Session, error_response, internal_error, log_internal
 from proxy.wire.states import Act, ConnectionMachine, Event
 
@@ -379,10 +380,10 @@ def _peer(peer: Any) -> str:
 class WireServer:
     """Accepts connections and runs each one; shares the engine, catalog and thread pool."""
 
-    def __init__(self, engine: Any, *, ssl_context: ssl.SSLContext | None = None,
+    def __init__(self, engine: Answering, *, ssl_context: ssl.SSLContext | None = None,
                  max_message_bytes: int = codec.DEFAULT_MAX_MESSAGE_BYTES,
                  limits: Connections | None = None, max_connections: int | None = None,
-                 catalog: Any = None, engine_threads: int = 32) -> None:
+                 catalog: CatalogQuestions | None = None, engine_threads: int = 32) -> None:
         # sqlglot logs statements it cannot fully parse, text and all; they may hold values.
         logging.getLogger("sqlglot").setLevel(logging.ERROR)
         self.engine = engine
@@ -446,17 +447,16 @@ class WireServer:
             conn.session.cancel("user")
 
     def is_admin(self, user: str) -> bool:
-        return user in self.engine.policies.admins
+        return self.engine.accounts.is_admin(user)
 
     def verifier_for(self, user: str) -> auth.Verifier | None:
         """The account's verifier (analysts, then administrators), or None when unknown or
         unusable (then the exchange runs against a stand-in and fails like a wrong password)."""
-        policies = self.engine.policies
-        account = policies.analysts.get(user) or policies.admins.get(user)
-        if account is None or account.disabled:
+        stored = self.engine.accounts.verifier(user)
+        if stored is None:
             return None
         try:
-            return auth.parse_verifier(account.password)
+            return auth.parse_verifier(stored)
         except ValueError:
             log.warning("account %s has an unusable password verifier", user)
             return None
@@ -479,11 +479,11 @@ class WireServer:
         self.executor.shutdown(wait=False, cancel_futures=True)
 
 
-async def serve(engine: Any, *, host: str = "127.0.0.1", port: int = 7432,
+async def serve(engine: Answering, *, host: str = "127.0.0.1", port: int = 7432,
                 ssl_context: ssl.SSLContext | None = None,
                 max_message_bytes: int = codec.DEFAULT_MAX_MESSAGE_BYTES,
                 limits: Connections | None = None, max_connections: int | None = None,
-                catalog: Any = None, ready: asyncio.Event | None = None,
+                catalog: CatalogQuestions | None = None, ready: asyncio.Event | None = None,
                 engine_threads: int = 32) -> None:
     """Serves the PostgreSQL protocol until cancelled; sets ``ready`` once listening."""
     server = WireServer(engine, ssl_context=ssl_context, max_message_bytes=max_message_bytes,
@@ -501,7 +501,7 @@ async def serve(engine: Any, *, host: str = "127.0.0.1", port: int = 7432,
         log.info("stopped")
 
 
-def run_server(engine: Any, **kwargs: Any) -> None:
+def run_server(engine: Answering, **kwargs: Any) -> None:
     """Blocking ``serve``; returns after SIGINT or SIGTERM, once connections are closed."""
     if not logging.getLogger().handlers:
         logging.basicConfig(stream=sys.stderr, level=logging.INFO,
@@ -530,7 +530,7 @@ def run_server(engine: Any, **kwargs: Any) -> None:
     asyncio.run(main())
 
 
-def start_in_thread(engine: Any, *, host: str = "127.0.0.1", port: int = 0,
+def start_in_thread(engine: Answering, *, host: str = "127.0.0.1", port: int = 0,
                     **kwargs: Any) -> tuple[str, int, Callable[[], None]]:
     """Runs a server on a background thread (tests, tools); returns (host, port, stop).
 

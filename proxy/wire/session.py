@@ -33,7 +33,7 @@ from typing import Any, Callable, Sequence
 from sqlglot import exp
 
 from proxy.answer import Answer
-from proxy.engine import QueryControl, parse_epsilon
+from proxy.engine import QueryControl
 from proxy.errors import (BUDGET_EXHAUSTED, DUPLICATE_CURSOR, DUPLICATE_PREPARED_STATEMENT, FEATURE_NOT_SUPPORTED,
                           IN_FAILED_SQL_TRANSACTION, INTERNAL_ERROR, INVALID_CURSOR_NAME,
                           INVALID_PARAMETER_VALUE, INVALID_SAVEPOINT, INVALID_SQL_STATEMENT_NAME,
@@ -41,6 +41,8 @@ from proxy.errors import (BUDGET_EXHAUSTED, DUPLICATE_CURSOR, DUPLICATE_PREPARED
                           QUERY_CANCELED, SUCCESSFUL_COMPLETION, HushError)
 from proxy.sql.limits import check_statement_text
 from proxy.wire import codec, guard, settings, statements, types
+from proxy.wire.boundary import Answering, CatalogQuestions
+from proxy.wire.catalog_guard import looks_like_catalog
 from proxy.wire.states import FAILED_BLOCK_HINT, TransactionMachine, TxEvent, TxStatus, TxStep
 from proxy.wire.statements import (DeallocateStatement, DiscardStatement, EmptyStatement,
                                    ExplainStatement, NoopStatement, QueryStatement,
@@ -58,29 +60,6 @@ _PARSE_LANE = ThreadPoolExecutor(max_workers=1, thread_name_prefix="hushql-parse
 # A statement the refusal allowance cannot pay for waits at most this long (reading nothing),
 # then is refused with 53400 and the time still to wait.
 LONGEST_REFUSAL_WAIT_SECONDS = 5.0
-
-# Functions and schemas that mark a query about the catalog rather than the data.
-_CATALOG_SCHEMAS = frozenset({"pg_catalog", "information_schema"})
-_CATALOG_FUNCTIONS = frozenset({"version", "current_schema", "current_schemas",
-                                "current_database", "current_catalog", "current_user",
-                                "session_user", "current_setting", "set_config", "format_type",
-                                "obj_description", "col_description", "has_table_privilege",
-                                "has_schema_privilege", "to_regclass"})
-
-
-def looks_like_catalog(tree: exp.Expression) -> bool:
-    """Whether a query reads catalog relations or catalog functions (used when no catalog
-    module is plugged in, so such queries get a clear refusal)."""
-    for table in tree.find_all(exp.Table):
-        if table.db.lower() in _CATALOG_SCHEMAS or table.name.lower().startswith("pg_"):
-            return True
-    for func in tree.find_all(exp.Func):
-        name = (func.name if isinstance(func, exp.Anonymous) else func.sql_name()).lower()
-        if name in _CATALOG_FUNCTIONS or name.startswith("pg_"):
-            return True
-    return isinstance(tree, exp.Select) and any(
-        isinstance(n, (exp.CurrentUser, exp.CurrentSchema)) for n in tree.walk())
-
 
 # --------------------------------------------------------------------------- results
 
@@ -170,12 +149,12 @@ class Portal:
 class Session:
     """The state of one authenticated connection and the handling of its queries.
 
-    ``engine`` offers answer/explain/describe/remaining/policies (proxy.engine.Engine);
-    ``catalog`` is optional (is_catalog_query(tree) and run(analyst, sql, params)); ``executor``
-    runs blocking calls (None: the loop's default).
+    ``engine`` answers (boundary.Answering); ``catalog`` is optional (boundary.CatalogQuestions;
+    None: catalog queries are refused); ``executor`` runs blocking calls (None: the loop's
+    default).
     """
 
-    def __init__(self, engine: Any, analyst: str, *, catalog: Any = None,
+    def __init__(self, engine: Answering, analyst: str, *, catalog: CatalogQuestions | None = None,
                  executor: Executor | None = None, database: str = "",
                  refusals: guard.RefusalAllowance | None = None) -> None:
         self.engine = engine
@@ -286,7 +265,7 @@ class Session:
         out: list[Any] = []
         try:
             cost = await self._admit(sql)
-            check_statement_text(sql, self.engine.policies.limits)  # before any parsing
+            check_statement_text(sql, self.engine.limits)  # before any parsing
             parsed = await self._split(sql)
             if not parsed:
                 self._give_back(cost)
@@ -328,7 +307,7 @@ class Session:
             raise HushError(DUPLICATE_PREPARED_STATEMENT,
                             f'prepared statement "{msg.name}" already exists',
                             hint="Close or DEALLOCATE it first, or use another name.")
-        check_statement_text(msg.sql, self.engine.policies.limits)  # before any parsing
+        check_statement_text(msg.sql, self.engine.limits)  # before any parsing
         st = statements.only_statement(await self._split(msg.sql))
         self._check_block(st)
         to_catalog = self._route(st)
@@ -400,29 +379,26 @@ class Session:
 
     async def _suggested_types(self, tree: exp.Expression | None, declared: Sequence[int],
                                count: int, to_catalog: bool) -> list[int | None]:
-        """Types the engine infers for untyped parameters, when it offers
-        ``parameter_types(analyst, tree) -> list[type name | None]`` (one per $n). A planning
-        error here is left for Describe or Execute to report."""
-        infer = getattr(self.engine, "parameter_types", None)
+        """Types the engine infers for untyped parameters (a type name or None per $n). A
+        planning error here is left for Describe or Execute to report."""
         untyped = any((declared[i] if i < len(declared) else 0) in (0, types.UNKNOWN_LITERAL)
                       for i in range(count))
-        if infer is None or tree is None or to_catalog or not untyped:
+        if tree is None or to_catalog or not untyped:
             return []
         try:
-            names = await self._blocking(infer, self.analyst, tree.copy())
+            names = await self._blocking(self.engine.parameter_types, self.analyst, tree.copy())
         except HushError:
             return []
         return [types.oid_of(n) if n else None for n in list(names)[:count]]
 
     async def _catalog_parameter_types(self, st: Statement) -> list[int | None]:
-        """Parameter types of a catalog statement as the mirror infers them, when the catalog
-        offers ``parameter_types(analyst, text) -> list[OID]``; types hushql does not accept
-        are left to the default (text). A refusal here is left for Describe or Execute."""
-        infer = getattr(self.catalog, "parameter_types", None)
-        if infer is None or not isinstance(st, QueryStatement):
+        """Parameter types of a catalog statement as the mirror infers them; types hushql
+        does not accept are left to the default (text). A refusal here is left for Describe
+        or Execute."""
+        if self.catalog is None or not isinstance(st, QueryStatement):
             return []
         try:
-            oids = await self._blocking(infer, self.analyst, st.text)
+            oids = await self._blocking(self.catalog.parameter_types, self.analyst, st.text)
         except HushError:
             return []
         return [oid if oid in types.PARAMETER_OIDS and oid else None for oid in oids]
@@ -562,12 +538,8 @@ class Session:
             return types.ResultShape.of((await self._explain(st, tree)).columns)
         if isinstance(st, QueryStatement):
             if to_catalog:
-                describe = getattr(self.catalog, "describe", None)
-                if describe is not None:
-                    columns = await self._blocking(describe, self.analyst, st.text)
-                else:
-                    columns, _ = await self._blocking(self.catalog.run, self.analyst, st.text,
-                                                      values)
+                columns = await self._blocking(self._catalog_questions().describe,
+                                               self.analyst, st.text)
                 return types.ResultShape.of(columns)
             target = tree if tree is not None else st.text
             columns = await self._blocking(self.engine.describe, self.analyst, target)
@@ -584,8 +556,7 @@ class Session:
                 raise st.query.error
             return False
         if st.tree is None:
-            claim = getattr(self.catalog, "is_catalog_text", None)
-            if claim is not None and claim(st.text):
+            if self.catalog is not None and self.catalog.is_catalog_text(st.text):
                 return True
             assert st.error is not None
             raise st.error
@@ -673,8 +644,16 @@ class Session:
                        [answer_notice(answer)])
 
     async def _catalog(self, st: QueryStatement, values: list[Any]) -> Outcome:
-        columns, rows = await self._blocking(self.catalog.run, self.analyst, st.text, values)
+        columns, rows = await self._blocking(self._catalog_questions().run, self.analyst,
+                                             st.text, values)
         return Outcome(types.ResultShape.of(columns), list(rows), "SELECT")
+
+    def _catalog_questions(self) -> CatalogQuestions:
+        """The catalog, for a statement routed to it (routing needs one to route there)."""
+        if self.catalog is None:
+            raise HushError(FEATURE_NOT_SUPPORTED, "catalog queries are not available on this "
+                            "server", hint=CATALOG_HINT)
+        return self.catalog
 
     def _epsilon(self) -> Decimal | None:
         value = self.values[settings.EPSILON]
@@ -780,9 +759,7 @@ class Session:
             if value is None or value == "":
                 self.values[key] = self.defaults.get(key, "")
                 return
-            defaults = self.engine.policies.defaults
-            self.values[key] = format(parse_epsilon(value, defaults.largest_epsilon_per_query,
-                                                    defaults.smallest_epsilon_per_query), "f")
+            self.values[key] = format(self.engine.epsilon_for(value), "f")
             return
         if value is None:
             settings.normalise(key, self.defaults[key])  # still refuses read-only names
@@ -837,7 +814,7 @@ class Session:
             remaining = await self._blocking(self.engine.remaining, self.analyst)
             return format(remaining, "f")
         if key == settings.EPSILON and not self.values[key]:
-            return format(Decimal(self.engine.policies.defaults.epsilon_per_query), "f")
+            return format(self.engine.default_epsilon, "f")
         return self.values[key]
 
 

@@ -50,6 +50,7 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from typing import Any
 
+from proxy.wire.boundary import Answering
 from proxy.wire.server import WireServer
 
 log = logging.getLogger("hushql.workers")
@@ -85,7 +86,7 @@ def slot_of(process_id: int) -> int:
 class WorkerSetup:
     """What every worker needs; ``make_engine`` runs in the worker, after the fork."""
 
-    make_engine: Callable[[], Any]
+    make_engine: Callable[[], Answering]
     server_options: dict[str, Any]  # WireServer keywords (catalog, ssl_context, limits...)
     workers: int
     memory_limit_bytes: int | None = None
@@ -97,7 +98,7 @@ class WorkerServer(WireServer):
     """A WireServer accepting on an inherited socket, whose process ids name its slot and
     which forwards cancel requests for other slots to their owners."""
 
-    def __init__(self, engine: Any, *, slot: int, listener: socket.socket,
+    def __init__(self, engine: Answering, *, slot: int, listener: socket.socket,
                  routes: list[socket.socket], **options: Any) -> None:
         super().__init__(engine, **options)
         self.slot = slot
@@ -246,7 +247,7 @@ def _worker_main(slot: int, listener: socket.socket, inbox: socket.socket,
     return 0
 
 
-async def _serve_worker(engine: Any, slot: int, listener: socket.socket, inbox: socket.socket,
+async def _serve_worker(engine: Answering, slot: int, listener: socket.socket, inbox: socket.socket,
                         routes: list[socket.socket], setup: WorkerSetup) -> None:
     loop = asyncio.get_running_loop()
     server = WorkerServer(engine, slot=slot, listener=listener, routes=routes,
