@@ -195,8 +195,13 @@ def test_two_serve_processes_on_one_ledger_never_overspend_nor_lose_a_charge(
         def client(index: int) -> dict[str, list[str]]:
             """Per query text, the outcome of each try: "ok" or the SQLSTATE."""
             outcomes: dict[str, list[str]] = {QUERY: [], READINGS_QUERY: []}
-            with (first, second)[index % 2].connect(autocommit=True) as conn:
-                barrier.wait(timeout=60)
+            try:
+                conn = (first, second)[index % 2].connect(autocommit=True)
+            except psycopg.Error as error:
+                barrier.abort()  # the others stop waiting; this error is the one to see
+                raise AssertionError(f"client {index} could not log in: {error}") from None
+            with conn:
+                barrier.wait(timeout=180)
                 for query in queries:
                     try:
                         conn.execute(query).fetchone()
