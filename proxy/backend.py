@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import logging
 import threading
-from typing import Any
+from typing import Any, Protocol
 
 import psycopg
 from psycopg_pool import ConnectionPool
@@ -20,6 +20,12 @@ from psycopg_pool import ConnectionPool
 from proxy.errors import INTERNAL_ERROR, QUERY_CANCELED, HushError
 
 log = logging.getLogger("hushql.backend")
+
+
+class Cancellable(Protocol):
+    """What a running query can be cancelled through (a psycopg connection, a Spark tag)."""
+
+    def cancel_safe(self, timeout: float) -> None: ...
 
 
 class QueryControl:
@@ -31,7 +37,7 @@ class QueryControl:
 
     def __init__(self) -> None:
         self._lock = threading.Lock()
-        self._connection: psycopg.Connection[Any] | None = None
+        self._connection: Cancellable | None = None
         self.cancelled = False
 
     def cancel(self) -> None:
@@ -44,7 +50,7 @@ class QueryControl:
             except Exception:  # the query may have just finished; nothing to cancel
                 log.debug("cancel request failed", exc_info=True)
 
-    def _attach(self, connection: psycopg.Connection[Any] | None) -> bool:
+    def _attach(self, connection: Cancellable | None) -> bool:
         """Register the running connection; False when cancel() already happened."""
         with self._lock:
             self._connection = connection
