@@ -264,7 +264,8 @@ EXAMPLE_QUERIES: list[tuple[str, str, str]] = [
 
 def run_demo(backend: str | None, data_dir: Path | None, policies_dir: Path,
              listen: tuple[str, int] | None, serve_callback: Callable[[str], None] | None = None,
-             *, console: Console | None = None, households: int = 3000) -> int:
+             *, console: Console | None = None, households: int = 3000,
+             load: bool = True) -> int:
     """``hushql demo``: check the policies, load the scenario, print how to query it, then serve.
 
     With no ``backend``, starts a private PostgreSQL in ``data_dir`` (default
@@ -272,6 +273,7 @@ def run_demo(backend: str | None, data_dir: Path | None, policies_dir: Path,
     ``serve_callback(backend_dsn)`` if given (it blocks; the banner then shows how to connect
     to ``listen``). Without it the banner shows how to serve what was loaded on ``listen``, and
     a private server is kept running until Ctrl-C, so that the printed commands can use it.
+    With ``load`` false the scenario loaded before into ``backend`` is served as it is.
     Returns the exit code: 0 after a clean stop, 1 when the policies are broken or no server
     can be had.
     """
@@ -306,7 +308,7 @@ def run_demo(backend: str | None, data_dir: Path | None, policies_dir: Path,
                     backend = _ensure_database(server.dsn, DEMO_DATABASE)
                 assert backend is not None
                 started = time.perf_counter()
-                counts = load_scenario(backend, households=households)
+                counts = load_scenario(backend, households=households) if load else None
                 seconds = time.perf_counter() - started
                 database = _database_name(backend)
             except psycopg.Error as error:
@@ -315,8 +317,9 @@ def run_demo(backend: str | None, data_dir: Path | None, policies_dir: Path,
                 _say(err, "Check --backend: the database must exist and the role may create "
                           "schema utility in it.")
                 return 1
-            _say(out, f"Loaded {counts['households']:,} households and {counts['readings']:,} "
-                     f"readings in {seconds:.1f} s.")
+            if counts is not None:
+                _say(out, f"Loaded {counts['households']:,} households and "
+                          f"{counts['readings']:,} readings in {seconds:.1f} s.")
             _print_examples(out, backend, policies_dir, listen, database,
                             serving=serve_callback is not None)
             if serve_callback is not None:
@@ -377,7 +380,9 @@ def _print_examples(out: Console, backend: str, policies_dir: Path,
             url = f"postgresql://planner:{planner}@{client_host(host)}:{port}/{database}"
             lines.append(f"psql {_shell_quote(url)}    # the demo's invented planner account")
         else:
-            lines.append(f"{hushql} serve --listen {_shell_quote(f'{host}:{port}')}"
+            # The demo's published passwords are served by `hushql demo` only, never by `serve`.
+            lines.append(f"{hushql} demo --no-load --backend {_shell_quote(backend)} "
+                         f"--listen {_shell_quote(f'{host}:{port}')}"
                          f"    # then connect to database {database} as planner / {planner}")
     out.rule("hushql demo: try these")
     for line in lines:

@@ -146,7 +146,7 @@ def test_no_serve_prints_a_serve_line_that_serves_what_was_loaded(fresh_dsn: str
     closing = next(i for i in range(opening + 1, len(lines)) if set(lines[i]) == {RULE})
     banner = lines[opening + 1:closing]
     exports = [line for line in banner if line.startswith("export ")]
-    [serve] = [line for line in banner if " serve --listen " in line]
+    [serve] = [line for line in banner if " demo --no-load " in line]
     said = re.search(r"connect to database (\S+) as planner / (\S+)", serve)
     assert said and said.group(1) == fresh_dsn.rsplit("/", 1)[1]
     server = subprocess.Popen(["sh", "-c", "\n".join([*exports, f"exec {serve}"])],
