@@ -171,8 +171,9 @@ def test_run_demo_without_serving_prints_how_to_serve_and_no_url(
     assert run_demo(fresh_dsn, None, POLICIES, ("127.0.0.1", 7555), None, console=console) == 0
     text = buffer.getvalue()
     database = fresh_dsn.rsplit("/", 1)[1]
-    assert f"{demo.hushql_command()} serve --listen 127.0.0.1:7555    # then connect to " \
-           f"database {database} as planner / planner-demo" in text.splitlines()
+    assert f"{demo.hushql_command()} demo --no-load --backend {fresh_dsn} --listen " \
+           f"127.0.0.1:7555    # then connect to database {database} as planner / planner-demo" \
+        in text.splitlines()
     assert "postgresql://planner" not in text and "psql" not in text
 
 
