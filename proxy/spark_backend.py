@@ -28,14 +28,15 @@ import functools
 import logging
 import threading
 import uuid
-from collections.abc import Callable
+from collections.abc import Mapping
+from decimal import Decimal
 from typing import Any
 
 import sqlglot
 import sqlglot.expressions as exp
 
 from proxy.backend import QueryControl
-from proxy.errors import INTERNAL_ERROR, QUERY_CANCELED, HushError
+from proxy.errors import FEATURE_NOT_SUPPORTED, INTERNAL_ERROR, QUERY_CANCELED, HushError
 from proxy.policy import Policies
 
 log = logging.getLogger("hushql.spark")
@@ -64,48 +65,359 @@ def parameter_name(setting: str) -> str:
 
 # ---- the transforms: PostgreSQL tree -> Spark tree ---------------------------------------------
 
-def _settings_as_parameters(tree: exp.Expression) -> exp.Expression:
-    """``current_setting('x.y')`` -> the named parameter ``:x_y``, bound per query."""
-    def replace(node: exp.Expression) -> exp.Expression:
+class NotOnSpark(Exception):
+    """A rewritten query holds a shape this module cannot write for Spark with PostgreSQL's
+    exact values; the query is refused (0A000), never run approximately."""
+
+
+# PostgreSQL type names (as ``postgres_type_name`` gives them) whose values Spark and
+# PostgreSQL convert to NUMERIC and round alike: integers and decimals. Floating columns are not
+# (PostgreSQL casts a double to NUMERIC through 15 significant digits, Spark through the double's
+# shortest decimal string), so a number key over one is refused.
+_EXACT_TYPES = ("numeric", "smallint", "integer", "bigint")
+
+
+def _is_cast_to_bare_decimal(node: exp.Expression) -> bool:
+    """``CAST(x AS NUMERIC)`` without precision: PostgreSQL keeps every digit, Spark's DECIMAL
+    means DECIMAL(10, 0) and would round."""
+    return isinstance(node, exp.Cast) and node.to.this == exp.DataType.Type.DECIMAL \
+        and not node.to.expressions
+
+
+def _column_name(node: exp.Expression) -> str | None:
+    return node.name.lower() if isinstance(node, exp.Column) else None
+
+
+def _exact_floor_div(numerator: exp.Expression, denominator: exp.Expression) -> exp.Expression:
+    """``floor(n / d)`` for d > 0, exactly: Spark's decimal division keeps as few as 6 digits
+    after the point, so a quotient just below an integer could round up to it. The rounded
+    quotient q is off by at most one; ``q*d > n`` and ``(q+1)*d <= n`` (multiplications, which
+    Spark's decimals compute exactly) correct it."""
+    q = exp.Floor(this=exp.Div(this=exp.Paren(this=numerator.copy()),
+                               expression=exp.Paren(this=denominator.copy())))
+    n, d = exp.Paren(this=numerator.copy()), exp.Paren(this=denominator.copy())
+    too_high = exp.If(this=exp.GT(this=exp.Mul(this=q.copy(), expression=d.copy()),
+                                  expression=n.copy()), true=exp.Literal.number(1),
+                      false=exp.Literal.number(0))
+    too_low = exp.If(this=exp.LTE(this=exp.Mul(this=exp.Paren(this=exp.Add(
+        this=q.copy(), expression=exp.Literal.number(1))), expression=d.copy()),
+        expression=n.copy()), true=exp.Literal.number(1), false=exp.Literal.number(0))
+    # floor() of the corrected integer: the same value, and marks it integral for later casts.
+    return exp.Floor(this=exp.Paren(this=exp.Add(this=exp.Sub(this=q, expression=too_high),
+                                                 expression=too_low)))
+
+
+def _number(value: exp.Expression) -> Decimal:
+    """A numeric literal (possibly negated) of the rewrite, as a Decimal."""
+    if isinstance(value, exp.Neg):
+        return -_number(value.this)
+    if isinstance(value, exp.Paren):
+        return _number(value.this)
+    if isinstance(value, exp.Literal) and not value.is_string:
+        return Decimal(value.this)
+    raise NotOnSpark(f"a non-literal bucket bound ({value.sql()})")
+
+
+def _literal(value: Decimal) -> exp.Expression:
+    literal = exp.Literal.number(str(abs(value)))
+    return exp.Neg(this=literal) if value < 0 else literal
+
+
+class _Writer:
+    """The transforms of one query, knowing the column types of the tables it reads."""
+
+    def __init__(self, types: Mapping[str, str]) -> None:
+        self.types = types
+
+    def exact_type(self, node: exp.Expression) -> bool:
+        name = _column_name(node)
+        return name is not None and self.types.get(name, "").partition("(")[0] in _EXACT_TYPES
+
+    # -- rows: settings, series, CTEs ----------------------------------------------------------
+
+    def settings_as_parameters(self, node: exp.Expression) -> exp.Expression:
+        """``current_setting('x.y')`` -> the named parameter ``:x_y``, bound per query."""
         if isinstance(node, exp.Anonymous) and str(node.this).lower() == "current_setting":
             (name,) = node.expressions
             return exp.Placeholder(this=parameter_name(name.name))
         return node
-    return tree.transform(replace, copy=False)
 
-
-def _number_series(tree: exp.Expression) -> exp.Expression:
-    """``generate_series(lo, hi) AS s(v)`` in FROM -> ``range(lo, hi + 1) AS s(v)``: the same
-    integers lo..hi, one row each (Spark's range excludes its end)."""
-    for table in list(tree.find_all(exp.Table)):
-        series = table.this
-        if isinstance(series, (exp.GenerateSeries, exp.ExplodingGenerateSeries)):
+    def number_series(self, node: exp.Expression) -> exp.Expression:
+        """``generate_series(lo, hi) AS s(v)`` in FROM -> ``range(lo, hi + 1) AS s(v)``."""
+        if isinstance(node, exp.Table) and isinstance(
+                node.this, (exp.GenerateSeries, exp.ExplodingGenerateSeries)):
+            series = node.this
             end = exp.Add(this=series.args["end"].copy(), expression=exp.Literal.number(1))
-            table.set("this", exp.Anonymous(this="range",
-                                            expressions=[series.args["start"].copy(), end]))
-    return tree
+            node.set("this", exp.Anonymous(this="range", expressions=[
+                series.args["start"].copy(), end]))
+        return node
+
+    def date_plus_days(self, node: exp.Expression) -> exp.Expression:
+        """``date + i`` (PostgreSQL: the date i days later) -> ``date_add(date, CAST(i AS
+        INT))``: Spark's date_add takes an INT, and range() gives BIGINT."""
+        if isinstance(node, exp.Add) and isinstance(node.this, exp.Cast) \
+                and node.this.to.this == exp.DataType.Type.DATE:
+            return exp.Anonymous(this="date_add", expressions=[
+                node.this.copy(), exp.cast(node.expression.copy(), "int")])
+        return node
+
+    def plain_ctes(self, node: exp.Expression) -> exp.Expression:
+        """``WITH h AS MATERIALIZED (...)`` -> ``WITH h AS (...)``: a planner hint only."""
+        if isinstance(node, exp.CTE) and node.args.get("materialized") is not None:
+            node.set("materialized", None)
+        return node
+
+    def scores_as_columns(self, node: exp.Expression) -> exp.Expression:
+        """``SELECT x FROM g ORDER BY <expression with a subquery> ... LIMIT 1`` (the noisy max
+        over the candidates: each score reads the histogram in a correlated subquery) -> the
+        scores computed as columns of an inner SELECT and the outer one ordered by them. Spark
+        accepts correlated subqueries in projections, not in ORDER BY; the rows and their
+        order are the same."""
+        order = node.args.get("order") if isinstance(node, exp.Select) else None
+        if order is None or not any(o.find(exp.Subquery, exp.Select) for o in order.expressions):
+            return node
+        keys = order.expressions
+        names = [p.alias_or_name for p in node.expressions]
+        inner = exp.select(*[p.copy() for p in node.expressions],
+                           *[exp.alias_(o.this.copy(), f"_o{i}") for i, o in enumerate(keys)])
+        source = node.args.get("from_") or node.args.get("from")
+        inner.set("from_" if "from_" in node.args else "from", source.copy())
+        if node.args.get("where") is not None:
+            inner.set("where", node.args["where"].copy())
+        outer = exp.select(*[exp.column(n, table="_s") for n in names]).from_(
+            exp.Subquery(this=inner, alias=exp.TableAlias(this=exp.to_identifier("_s"))))
+        outer.set("order", exp.Order(expressions=[
+            exp.Ordered(this=exp.column(f"_o{i}", table="_s"), desc=o.args.get("desc"),
+                        nulls_first=o.args.get("nulls_first")) for i, o in enumerate(keys)]))
+        if node.args.get("limit") is not None:
+            outer.set("limit", node.args["limit"].copy())
+        return outer
+
+    def single_extremes(self, node: exp.Expression) -> exp.Expression:
+        """``GREATEST(x)`` / ``LEAST(x)`` of one argument (PostgreSQL: x) -> ``x``: Spark wants
+        two or more."""
+        if isinstance(node, (exp.Greatest, exp.Least)) and not node.expressions:
+            return exp.Paren(this=node.this.copy())
+        return node
+
+    # -- numbers -------------------------------------------------------------------------------
+
+    def histogram_slots(self, node: exp.Expression) -> exp.Expression:
+        """``width_bucket(x, ARRAY[t1, ..., tn])`` (sorted thresholds: how many are <= x) ->
+        ``IF(x IS NULL, NULL, size(filter(array(t1, ..., tn), e -> e <= x)))``."""
+        if isinstance(node, exp.WidthBucket) and node.args.get("threshold") is not None:
+            value = node.this.this if _is_cast_to_bare_decimal(node.this) else node.this
+            thresholds = node.args["threshold"]
+            if isinstance(thresholds, exp.Cast):
+                thresholds = thresholds.this
+            if not isinstance(thresholds, exp.Array):
+                raise NotOnSpark("width_bucket over a non-literal array")
+            counted = sqlglot.parse_one(
+                f"IF(x IS NULL, NULL, size(filter(array({', '.join(e.sql() for e in thresholds.expressions)}), "
+                "e -> e <= x)))", read="spark")
+            return counted.transform(
+                lambda n: value.copy() if isinstance(n, exp.Column) and n.name == "x" else n)
+        return node
+
+    def exact_width_bucket(self, node: exp.Expression) -> exp.Expression:
+        """``width_bucket(v, low, high, n)`` (PostgreSQL's exact NUMERIC buckets) -> the same
+        buckets by exact decimal arithmetic (Spark's width_bucket computes in doubles)."""
+        if not isinstance(node, exp.WidthBucket) or node.args.get("threshold") is not None:
+            return node
+        value = node.this.this if _is_cast_to_bare_decimal(node.this) else node.this
+        if not self.exact_type(value):
+            raise NotOnSpark("width_bucket over a floating-point column")
+        low, high = _number(node.args["min_value"]), _number(node.args["max_value"])
+        count = _number(node.args["num_buckets"])
+        ascending = low < high
+        offset = exp.Sub(this=value.copy(), expression=_literal(low)) if ascending else \
+            exp.Sub(this=_literal(low), expression=value.copy())
+        inside = exp.Add(this=_exact_floor_div(exp.Mul(this=exp.Paren(this=offset),
+                                                        expression=_literal(count)),
+                                               _literal(abs(high - low))),
+                         expression=exp.Literal.number(1))
+        below = (exp.LT if ascending else exp.GT)(this=value.copy(), expression=_literal(low))
+        above = (exp.GTE if ascending else exp.LTE)(this=value.copy(), expression=_literal(high))
+        return exp.Case(ifs=[exp.If(this=below, true=exp.Literal.number(0)),
+                             exp.If(this=above, true=_literal(count + 1))], default=inside)
+
+    def integer_division(self, node: exp.Expression) -> exp.Expression:
+        """PostgreSQL's ``/`` between integers truncates toward zero; Spark's ``/`` is exact.
+        The rewrite divides a bare column only for ``floor(x / w) * w`` over an integer column
+        and an integer width (``proxy.sql.domains.integer_division``): written ``x DIV w``,
+        which truncates toward zero as PostgreSQL does. Any other division of a bare column is
+        an exact floor (below)."""
+        if isinstance(node, exp.Div) and _column_name(node.this) is not None:
+            column_type = self.types.get(_column_name(node.this) or "", "")
+            integer = column_type in ("smallint", "integer", "bigint")
+            if integer and isinstance(node.expression, exp.Literal) and "." not in node.expression.this:
+                return exp.IntDiv(this=node.this.copy(), expression=node.expression.copy())
+        return node
+
+    def exact_floors(self, node: exp.Expression) -> exp.Expression:
+        """``floor(n / d)`` and ``floor(n / d + c)`` (d a positive literal: the bucket width or
+        the column step) -> exact floors (``_exact_floor_div``) on decimals."""
+        if not isinstance(node, exp.Floor):
+            return node
+        inner, shift = node.this, None
+        if isinstance(inner, exp.Add) and isinstance(inner.this, exp.Div):
+            inner, shift = inner.this, inner.expression
+        if not isinstance(inner, exp.Div):
+            return node
+        numerator, denominator = inner.this, inner.expression
+        if _is_cast_to_bare_decimal(numerator):
+            if not self.exact_type(numerator.this):
+                raise NotOnSpark("floor(x / w) over a floating-point column")
+            numerator = numerator.this
+        elif _column_name(numerator) is not None and not self.exact_type(numerator):
+            raise NotOnSpark("floor(x / w) over a floating-point column")
+        width = _number(denominator)
+        if width <= 0:
+            raise NotOnSpark("floor(x / w) with w <= 0")
+        if shift is not None:  # floor(n / d + c) = floor((n + c*d) / d)
+            numerator = exp.Add(this=exp.Paren(this=numerator.copy()),
+                                expression=_literal(_number(shift) * width))
+        return _exact_floor_div(numerator, denominator)
+
+    def rounding(self, node: exp.Expression) -> exp.Expression:
+        """``round(x)``: PostgreSQL rounds NUMERIC halves away from zero (Spark's round, HALF_UP)
+        and double precision halves to even (Spark's bround). The rewrite rounds per row
+        ``round(clamp(c) / step)`` over one column c: its type picks the function."""
+        if isinstance(node, exp.Round):
+            columns = {c.name.lower() for c in node.find_all(exp.Column)}
+            kinds = {self.types.get(c, "").partition("(")[0] for c in columns}
+            if len(columns) != 1 or not kinds <= set(_EXACT_TYPES) | {"real", "double precision"}:
+                raise NotOnSpark("round over an expression of unknown type")
+            argument = node.this if isinstance(node, exp.Round) else node.expressions[0]
+            function = "round" if kinds <= set(_EXACT_TYPES) else "bround"
+            return exp.Anonymous(this=function, expressions=[argument.copy()])
+        return node
+
+    def integral_decimals(self, node: exp.Expression) -> exp.Expression:
+        """``CAST(x AS NUMERIC)`` of an integral value (a count, a sum of integers, an integer
+        division, a floor) -> ``CAST(x AS DECIMAL(38, 0))``, exact up to 38 digits (past them
+        ANSI mode fails the query). Any other unsized NUMERIC cast left would round: refused."""
+        if _is_cast_to_bare_decimal(node):
+            operand = node.this
+            if isinstance(operand, (exp.AggFunc, exp.IntDiv, exp.Floor)) or \
+                    (isinstance(operand, exp.Anonymous) and operand.name.lower() in
+                     ("round", "bround", "floor")) or \
+                    _column_name(operand) in self.integral_columns:
+                return exp.cast(operand.copy(), exp.DataType.build("DECIMAL(38, 0)"))
+            if self.exact_type(operand):  # an exact column: its own type keeps every digit
+                return operand.copy()
+            raise NotOnSpark(f"a cast to NUMERIC of {operand.sql()[:40]}")
+        return node
+
+    def integer_signs(self, node: exp.Expression) -> exp.Expression:
+        """``sign(x)``: Spark's returns a double, which would turn the scaled partials it
+        multiplies into doubles (inexact past 2^53) -> ``CAST(sign(x) AS INT)``."""
+        if isinstance(node, exp.Sign):
+            return exp.cast(exp.Sign(this=node.this.copy()), "int")
+        return node
+
+    # -- dates ---------------------------------------------------------------------------------
+
+    def date_buckets(self, node: exp.Expression) -> exp.Expression:
+        """``date_trunc`` units Spark lacks: decade (years divisible by 10), century and
+        millennium (PostgreSQL's start at years 1, 101, ..., 1001, 2001, ...) -> make_date."""
+        if isinstance(node, (exp.TimestampTrunc, exp.DateTrunc)):
+            unit = node.text("unit").lower()
+            if unit in _LONG_UNITS:
+                size, first = _LONG_UNITS[unit]
+                year = exp.Extract(this=exp.var("YEAR"), expression=node.this.copy())
+                start = sqlglot.parse_one(f"((y - {first}) DIV {size}) * {size} + {first}",
+                                          read="spark")
+                start = start.transform(lambda n: year.copy() if isinstance(n, exp.Column) else n)
+                return exp.Anonymous(this="make_date", expressions=[
+                    exp.cast(start, "int"), exp.Literal.number(1), exp.Literal.number(1)])
+        return node
+
+    def date_fields(self, node: exp.Expression) -> exp.Expression:
+        """``extract(field FROM d)`` with PostgreSQL's numbering (``_EXTRACT_FIELDS``)."""
+        if isinstance(node, exp.Extract):
+            field = node.name.lower()
+            if field not in _EXTRACT_FIELDS:
+                raise NotOnSpark(f"extract({field})")
+            template = _EXTRACT_FIELDS[field]
+            if template is None:
+                return node
+            built = sqlglot.parse_one(template, read="spark")
+            return exp.Paren(this=built.transform(
+                lambda n: node.expression.copy() if isinstance(n, exp.Column) and n.name == "d" else n))
+        return node
+
+    integral_columns = frozenset({"n_rows", "touched"} | {f"tot{j}" for j in range(100)})
 
 
-# name -> (transform, why it keeps the rewrite's values). Applied in this order.
-SPARK_TRANSFORMS: dict[str, tuple[Callable[[exp.Expression], exp.Expression], str]] = {
-    "settings as parameters": (
-        _settings_as_parameters,
-        "Spark Connect has no per-session custom settings the SQL can read; the value is bound "
-        "as a parameter of the same query instead, so it is still fresh per query"),
-    "number series": (
-        _number_series,
-        "Spark has no generate_series table function; range(lo, hi + 1) lists the same "
-        "integers lo..hi, the declared domain of an integer key"),
+# PostgreSQL date_trunc units Spark lacks: (years per bucket, first year of a bucket).
+_LONG_UNITS = {"decade": (10, 0), "century": (100, 1), "millennium": (1000, 1)}
+
+# PostgreSQL extract field -> Spark SQL over the date ``d`` (None: Spark's field means the same).
+# PostgreSQL: dow 0 = Sunday .. 6, isodow 1 = Monday .. 7, week and isoyear ISO 8601, decade
+# year / 10, century and millennium counted from year 1 (years >= 1: Spark dates start there).
+_EXTRACT_FIELDS: dict[str, str | None] = {
+    "year": None, "quarter": None, "month": None, "week": None, "day": None, "doy": None,
+    "dow": "EXTRACT(DAYOFWEEK FROM d) - 1",
+    "isodow": "EXTRACT(DAYOFWEEK_ISO FROM d)",
+    "isoyear": "EXTRACT(YEAROFWEEK FROM d)",
+    "decade": "EXTRACT(YEAR FROM d) DIV 10",
+    "century": "(EXTRACT(YEAR FROM d) + 99) DIV 100",
+    "millennium": "(EXTRACT(YEAR FROM d) + 999) DIV 1000",
 }
 
 
+# name -> why it keeps the rewrite's values; applied in this order, each over the whole tree.
+SPARK_TRANSFORMS: dict[str, str] = {
+    "settings_as_parameters": "Spark Connect has no per-session custom settings the SQL can "
+        "read; the bound noise is bound as a parameter of the same query instead, still fresh "
+        "per query, and a parameter the engine did not give fails the query",
+    "number_series": "Spark has no generate_series table function; range(lo, hi + 1) lists the "
+        "same integers lo..hi (the ordinals of a run of declared values)",
+    "scores_as_columns": "Spark refuses correlated subqueries in ORDER BY; the same scores as "
+        "columns of an inner SELECT order the same rows",
+    "single_extremes": "GREATEST or LEAST of one value is that value; Spark wants two",
+    "plain_ctes": "MATERIALIZED is a PostgreSQL planner hint; the values do not change",
+    "histogram_slots": "width_bucket over a sorted array (how many thresholds are <= x) does "
+        "not exist in Spark; counting them is the same integer",
+    "exact_width_bucket": "Spark's width_bucket computes in doubles; PostgreSQL's NUMERIC "
+        "version is exact, and so is the decimal arithmetic written instead",
+    "date_buckets": "date_trunc to decade, century, millennium is missing in Spark: the same "
+        "first day, from the year",
+    "date_fields": "extract fields numbered as PostgreSQL numbers them",
+    "integer_division": "PostgreSQL's integer / truncates toward zero, as Spark's DIV does",
+    "exact_floors": "floor of a decimal quotient: Spark's decimal division may round the "
+        "quotient; the corrected floor is exact",
+    "rounding": "round per row: halves away from zero for NUMERIC, to even for double "
+        "precision, as PostgreSQL does",
+    "integer_signs": "Spark's sign is a double; the scaled partials must stay exact integers",
+    "integral_decimals": "an unsized NUMERIC is DECIMAL(10, 0) in Spark; the rewrite's integral "
+        "values get DECIMAL(38, 0), other casts are refused",
+    "date_plus_days": "date + integer is date_add in Spark, which takes an INT",
+}
+
+
+def to_spark_sql(postgres_sql: str, types: Mapping[str, str] | None = None) -> str:
+    """The rewrite's PostgreSQL query written for Spark SQL (pure). ``types`` maps the column
+    names of the tables it reads (lower case) to PostgreSQL type names (``postgres_type_name``).
+
+    Raises NotOnSpark when a part cannot be written with PostgreSQL's exact values."""
+    return _to_spark_sql(postgres_sql, tuple(sorted((types or {}).items())))
+
+
 @functools.lru_cache(maxsize=1024)
-def to_spark_sql(postgres_sql: str) -> str:
-    """The rewrite's PostgreSQL query written for Spark SQL (pure; cached by text)."""
+def _to_spark_sql(postgres_sql: str, types: tuple[tuple[str, str], ...]) -> str:
     tree = sqlglot.parse_one(postgres_sql, read="postgres")
-    for transform, _why in SPARK_TRANSFORMS.values():
-        tree = transform(tree)
+    writer = _Writer(dict(types))
+    for name in SPARK_TRANSFORMS:
+        tree = tree.transform(getattr(writer, name), copy=False)
     return tree.sql(dialect="spark")
+
+
+def source_tables(postgres_sql: str) -> list[str]:
+    """The ``schema.table`` names a rewritten query reads."""
+    tree = sqlglot.parse_one(postgres_sql, read="postgres")
+    return sorted({f"{t.db}.{t.name}" for t in tree.find_all(exp.Table) if t.db})
 
 
 # ---- types -----------------------------------------------------------------------------------
@@ -159,15 +471,19 @@ class SparkBackend:
         self.dsn = dsn
         self._timeout = statement_timeout_ms / 1000
         self._session = SparkSession.builder.remote(dsn).create()
+        self._types: dict[str, dict[str, str]] = {}
         for key, value in SESSION_CONFIG.items():
             self._session.conf.set(key, value)
 
     def run(self, sql: str, control: QueryControl | None = None,
-            settings: dict[str, str] | None = None) -> list[tuple[Any, ...]]:
+            settings: dict[str, str] | None = None, *,
+            timeout_ms: int | None = None) -> list[tuple[Any, ...]]:
         """Run one rewritten (PostgreSQL) query on Spark and return all its rows as tuples.
 
-        ``settings`` bind the settings the query reads (the per-query salt). Raises HushError
-        57014 when cancelled or timed out, XX000 on any other failure (no Spark text).
+        ``settings`` bind the settings the query reads (the bound noise); ``timeout_ms``
+        (default: the backend's) interrupts it. Raises HushError 0A000 for a shape Spark cannot
+        answer exactly as PostgreSQL would (nothing runs), 57014 when cancelled or timed out,
+        XX000 on any other failure (no Spark text).
         """
         tag = f"hushql-{uuid.uuid4().hex}"
         timed_out = threading.Event()
@@ -176,9 +492,16 @@ class SparkBackend:
             timed_out.set()
             self._session.interruptTag(tag)
 
-        timer = threading.Timer(self._timeout, expire)
+        seconds = self._timeout if timeout_ms is None else max(1, timeout_ms) / 1000
+        timer = threading.Timer(seconds, expire)
         try:
-            text = to_spark_sql(sql)
+            try:
+                text = to_spark_sql(sql, self._types_of(sql))
+            except NotOnSpark as error:
+                raise HushError(FEATURE_NOT_SUPPORTED,
+                                f"this query cannot be answered on the Spark backend: {error}",
+                                hint="ask for the same cells with a date key, a category, an "
+                                     "integer column, or a number column stored as DECIMAL") from None
             arguments = {parameter_name(k): v for k, v in (settings or {}).items()}
             if control is not None and not control._attach(_TagCanceller(self._session, tag)):
                 raise HushError(QUERY_CANCELED, "canceling statement due to user request")
@@ -210,6 +533,17 @@ class SparkBackend:
         """Column name -> PostgreSQL type name of a Spark table (``db.table``)."""
         schema = self._session.table(relation).schema
         return {field.name: postgres_type_name(field.dataType.simpleString()) for field in schema}
+
+    def _types_of(self, sql: str) -> dict[str, str]:
+        """The column types (lower-case names) of the tables a query reads, looked up once per
+        table (a policy reload that changes a source makes a new backend)."""
+        found: dict[str, str] = {}
+        for relation in source_tables(sql):
+            if relation not in self._types:
+                self._types[relation] = {name.lower(): kind for name, kind
+                                         in self.column_types(relation).items()}
+            found.update(self._types[relation])
+        return found
 
     def close(self) -> None:
         try:
