@@ -75,6 +75,9 @@ class NotOnSpark(Exception):
 # (PostgreSQL casts a double to NUMERIC through 15 significant digits, Spark through the double's
 # shortest decimal string), so a number key over one is refused.
 _EXACT_TYPES = ("numeric", "smallint", "integer", "bigint")
+# The widest DECIMAL column whose floors and buckets Spark computes exactly (see narrow_exact):
+# its digits, a literal's (under 10) and the quotient's extra scale stay within 38.
+_MOST_DIGITS = 18
 
 
 def _is_cast_to_bare_decimal(node: exp.Expression) -> bool:
@@ -89,10 +92,11 @@ def _column_name(node: exp.Expression) -> str | None:
 
 
 def _exact_floor_div(numerator: exp.Expression, denominator: exp.Expression) -> exp.Expression:
-    """``floor(n / d)`` for d > 0, exactly: Spark's decimal division keeps as few as 6 digits
-    after the point, so a quotient just below an integer could round up to it. The rounded
-    quotient q is off by at most one; ``q*d > n`` and ``(q+1)*d <= n`` (multiplications, which
-    Spark's decimals compute exactly) correct it."""
+    """``floor(n / d)`` for d > 0: Spark rounds a decimal quotient to its result scale, so a
+    quotient just below an integer could round up to it. The rounded quotient q is off by at
+    most one; ``q*d > n`` and ``(q+1)*d <= n`` correct it. Exact while every decimal involved
+    fits in 38 digits (``_Writer.narrow_exact``), when Spark's multiplications and comparisons
+    are exact."""
     q = exp.Floor(this=exp.Div(this=exp.Paren(this=numerator.copy()),
                                expression=exp.Paren(this=denominator.copy())))
     n, d = exp.Paren(this=numerator.copy()), exp.Paren(this=denominator.copy())
@@ -132,6 +136,20 @@ class _Writer:
     def exact_type(self, node: exp.Expression) -> bool:
         name = _column_name(node)
         return name is not None and self.types.get(name, "").partition("(")[0] in _EXACT_TYPES
+
+    def narrow_exact(self, node: exp.Expression) -> bool:
+        """Whether every column in ``node`` is an integer or a DECIMAL of at most
+        ``_MOST_DIGITS`` digits: then Spark's decimal arithmetic on it stays within 38 digits
+        and loses no scale (past 38 it drops decimals, in divisions and in the widening of
+        comparisons alike), so floors and buckets over it are exact."""
+        for column in [node] if isinstance(node, exp.Column) else node.find_all(exp.Column):
+            kind = self.types.get(column.name.lower(), "")
+            base, _, size = kind.partition("(")
+            if base in ("smallint", "integer", "bigint"):
+                continue
+            if base != "numeric" or not size or int(size.split(",")[0]) > _MOST_DIGITS:
+                return False
+        return True
 
     # -- rows: settings, series, CTEs ----------------------------------------------------------
 
@@ -225,8 +243,9 @@ class _Writer:
         if not isinstance(node, exp.WidthBucket) or node.args.get("threshold") is not None:
             return node
         value = node.this.this if _is_cast_to_bare_decimal(node.this) else node.this
-        if not self.exact_type(value):
-            raise NotOnSpark("width_bucket over a floating-point column")
+        if not self.narrow_exact(value):
+            raise NotOnSpark(f"width_bucket over a column that is not an integer or a DECIMAL "
+                             f"of at most {_MOST_DIGITS} digits")
         low, high = _number(node.args["min_value"]), _number(node.args["max_value"])
         count = _number(node.args["num_buckets"])
         ascending = low < high
@@ -266,11 +285,10 @@ class _Writer:
             return node
         numerator, denominator = inner.this, inner.expression
         if _is_cast_to_bare_decimal(numerator):
-            if not self.exact_type(numerator.this):
-                raise NotOnSpark("floor(x / w) over a floating-point column")
             numerator = numerator.this
-        elif _column_name(numerator) is not None and not self.exact_type(numerator):
-            raise NotOnSpark("floor(x / w) over a floating-point column")
+        if not self.narrow_exact(numerator):
+            raise NotOnSpark(f"floor(x / w) or an exact sum over a column that is not an "
+                             f"integer or a DECIMAL of at most {_MOST_DIGITS} digits")
         width = _number(denominator)
         if width <= 0:
             raise NotOnSpark("floor(x / w) with w <= 0")
