@@ -181,6 +181,10 @@ class Backend:
         except Exception:
             log.debug("pool check failed", exc_info=True)
 
+    def check(self, sql: str) -> None:
+        """Raise HushError when this backend cannot run a rewritten query exactly; PostgreSQL
+        runs every one (the rewrite is written for it)."""
+
     def column_types(self, relation: str) -> dict[str, str]:
         """Column name -> PostgreSQL type name of a backend relation (schema-qualified or not)."""
         with self._pool.connection() as connection, connection.cursor() as cursor:

@@ -257,6 +257,7 @@ class Engine:
                     return cached
         plan = analyse(statement, self.policies, analyst)
         rewritten = rewrite(plan, self._exact_columns(plan.table.table))
+        self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         prepared = Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                             fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16])
         if key is not None:

@@ -8,12 +8,20 @@ Rules of this module:
   because every transform produces the same values on every row (see each row's reason).
 - Where sqlglot's writer already bridges a difference, tests pin it (``tests/test_spark.py``):
   NULL ordering (PostgreSQL sorts NULL last ascending, Spark first: the writer adds NULLS LAST),
-  ``date_trunc`` (Spark's takes the unit first, as PostgreSQL's, and returns a timestamp that the
-  rewrite casts to a date), casts to text (STRING), and integer division (Spark's ``/`` is always
-  exact; the rewrite only divides number columns by their step, never two integers).
-- Session settings the rewrite reads with ``current_setting(name)`` (the per-query salt of the
-  random choice of cells) become named parameters of Spark's parameterised SQL, bound per query:
-  a setting the engine did not give fails the query (fail closed).
+  ``date_trunc`` (Spark's takes the unit first, as PostgreSQL's; the rewrite casts its timestamp
+  to a date) and casts to text (STRING). The other differences are rows of ``SPARK_TRANSFORMS``:
+  integer division (PostgreSQL's ``/`` on integers truncates toward zero, Spark's is exact:
+  written ``DIV``), floors of decimal quotients, width_bucket, rounding per type, extract
+  numbering, long date_trunc units, unsized NUMERIC casts, one-argument GREATEST/LEAST,
+  correlated subqueries in ORDER BY, MATERIALIZED, generate_series and date + integer.
+- Shapes that cannot be written with PostgreSQL's exact values are refused (0A000) before
+  anything runs: number keys over floating-point columns (PostgreSQL converts a double to
+  NUMERIC through 15 digits, Spark otherwise), floors and buckets over DECIMALs wider than 18
+  digits (Spark's decimals drop scale past 38 digits), any other unsized NUMERIC cast.
+- Session settings the rewrite reads with ``current_setting(name)`` (the noise of the bounds'
+  noisy-max choice, drawn by the engine per query) become named parameters of Spark's
+  parameterised SQL, bound per query: a setting the engine did not give fails the query (fail
+  closed).
 - Spark runs with ANSI mode on: an overflowing sum or a decimal that no longer fits raises an
   error instead of becoming NULL (which COALESCE would turn into a data-dependent 0).
 - Statement timeouts and cancellation use Spark Connect's operation tags: each query runs under
@@ -59,7 +67,7 @@ def is_spark_dsn(dsn: str | None) -> bool:
 
 def parameter_name(setting: str) -> str:
     """The Spark SQL parameter standing for a PostgreSQL session setting (dots are not allowed
-    in parameter names): ``hushql.pick_salt`` -> ``hushql_pick_salt``."""
+    in parameter names): ``hushql.bound_noise_0`` -> ``hushql_bound_noise_0``."""
     return setting.replace(".", "_")
 
 
@@ -513,13 +521,7 @@ class SparkBackend:
         seconds = self._timeout if timeout_ms is None else max(1, timeout_ms) / 1000
         timer = threading.Timer(seconds, expire)
         try:
-            try:
-                text = to_spark_sql(sql, self._types_of(sql))
-            except NotOnSpark as error:
-                raise HushError(FEATURE_NOT_SUPPORTED,
-                                f"this query cannot be answered on the Spark backend: {error}",
-                                hint="ask for the same cells with a date key, a category, an "
-                                     "integer column, or a number column stored as DECIMAL") from None
+            text = self._spark_text(sql)
             arguments = {parameter_name(k): v for k, v in (settings or {}).items()}
             if control is not None and not control._attach(_TagCanceller(self._session, tag)):
                 raise HushError(QUERY_CANCELED, "canceling statement due to user request")
@@ -551,6 +553,20 @@ class SparkBackend:
         """Column name -> PostgreSQL type name of a Spark table (``db.table``)."""
         schema = self._session.table(relation).schema
         return {field.name: postgres_type_name(field.dataType.simpleString()) for field in schema}
+
+    def check(self, sql: str) -> None:
+        """Raise HushError 0A000 when a rewritten query cannot be written for Spark with
+        PostgreSQL's exact values (the engine asks before charging)."""
+        self._spark_text(sql)
+
+    def _spark_text(self, sql: str) -> str:
+        try:
+            return to_spark_sql(sql, self._types_of(sql))
+        except NotOnSpark as error:
+            raise HushError(FEATURE_NOT_SUPPORTED,
+                            f"this query cannot be answered on the Spark backend: {error}",
+                            hint="ask for the same cells with a date key, a category, an integer "
+                                 "column, or a number column stored as DECIMAL(18) or narrower") from None
 
     def _types_of(self, sql: str) -> dict[str, str]:
         """The column types (lower-case names) of the tables a query reads, looked up once per

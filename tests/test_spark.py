@@ -387,3 +387,21 @@ def test_an_unsized_numeric_cast_of_unknown_values_is_refused() -> None:
     # Spark's DECIMAL means DECIMAL(10, 0): it would round a value PostgreSQL keeps.
     with pytest.raises(NotOnSpark):
         to_spark_sql("SELECT CAST(a + b AS NUMERIC) FROM t", {"a": "numeric", "b": "numeric"})
+
+
+def test_a_shape_spark_cannot_run_exactly_is_refused_by_the_check_the_engine_runs_first(
+        clinic, engine) -> None:
+    backend, _, _ = clinic
+    # A DECIMAL(38, 18) column: floors over it are refused on Spark. Engine.prepare calls this
+    # check before reserving any epsilon.
+    backend._session.sql("CREATE OR REPLACE TABLE clinic.wide USING parquet AS SELECT "
+                         "CAST(age AS DECIMAL(38, 18)) AS weight, person_id, ward, age, smoker, "
+                         "admitted FROM clinic.people")
+    table = engine.policies.tables["people"]
+    wide = table.model_copy(update={"source": "clinic.wide"})
+    plan = analyse("SELECT floor(weight / 2.5) * 2.5, COUNT(*) FROM people GROUP BY 1",
+                   engine.policies, "tester")
+    sql = rewrite(dataclasses.replace(plan, table=wide), EXACT).sql
+    with pytest.raises(HushError) as refused:
+        backend.check(sql)
+    assert refused.value.sqlstate == "0A000" and "DECIMAL" in (refused.value.hint or "")
