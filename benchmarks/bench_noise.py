@@ -1,7 +1,7 @@
 """Benchmark: exact discrete Laplace noise for 10,000 cells (median milliseconds per call).
 
 The scales are those of typical answers: 1 (a row-table COUNT at epsilon 1), 1240 (a COUNT
-on the demo readings table, sensitivity groups_cap * rows_cap = 4 * 31, at epsilon 0.1) and
+on the demo readings table with a row bound of 124 at epsilon 0.1) and
 1e6 (a wide SUM). The target is well under
 50 ms per 10,000 cells. Run: ``python benchmarks/bench_noise.py``.
 """

@@ -326,7 +326,7 @@ def _run_workers(args: argparse.Namespace, policies, context, workers: int) -> i
     SIGHUP replaces every worker with one serving the policy folder as it now is, if it passes
     the start-up checks (proxy.reload.load_checked)."""
     from proxy.engine import Engine
-    from proxy.reload import load_checked
+    from proxy.reload import load_checked, log_reloaded
     from proxy.wire.ledger_relations import LedgerRelations
     from proxy.wire.workers import WorkerSetup, run_workers
 
@@ -347,7 +347,11 @@ def _run_workers(args: argparse.Namespace, policies, context, workers: int) -> i
 
     def renew() -> WorkerSetup | None:
         fresh = load_checked(args.policies, backend, args.allow_demo_accounts)
-        return None if fresh is None else setup_for(fresh)
+        if fresh is None:
+            return None
+        setup = setup_for(fresh)
+        log_reloaded(fresh)  # the workers are replaced with it next
+        return setup
 
     run_workers(setup_for(policies), *args.listen)
     return 0

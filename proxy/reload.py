@@ -57,7 +57,7 @@ class PolicyReloader:
             old = self._relations.replace(policies, catalog)
             if old is not None:
                 old.close()
-            log.info("policies reloaded: %s", policy_source(policies))
+            log_reloaded(policies)
             return True
 
     def reload_in_background(self, *_: object) -> None:
@@ -84,6 +84,11 @@ def load_checked(directory: str | Path, backend_dsn: str, allow_demo_accounts: b
         _log_refusal(error.message.splitlines()[1:] or [error.message])
         return None
     return policies
+
+
+def log_reloaded(policies: Policies) -> None:
+    """The log line that says a new set is in force, naming its folder and digest."""
+    log.info("policies reloaded: %s", policy_source(policies))
 
 
 def _log_refusal(problems: list[str]) -> None:

@@ -4,10 +4,12 @@ the ledger's books, and clean up the catalog mirrors a serve process builds."""
 from __future__ import annotations
 
 import os
+import re
 import shutil
 import signal
 import subprocess
 import sys
+import tempfile
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -25,7 +27,34 @@ from proxy.wire.catalog import mirror_layout, mirror_name
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_POLICIES = ROOT / "policies"
-PASSWORDS = dict(demo_accounts())
+# `hushql serve` refuses the demo's published passwords: serve processes get a copy of the demo
+# policies whose accounts have these instead.
+PASSWORDS = {name: f"{name}-serve-test" for name, _ in demo_accounts()}
+_served_policies: Path | None = None
+
+
+def served_policies() -> Path:
+    """The demo policies with PASSWORDS as their accounts' passwords (made once per run)."""
+    global _served_policies
+    if _served_policies is None:
+        _served_policies = with_own_passwords(
+            Path(tempfile.mkdtemp(prefix="hushql-served-")) / "policies")
+    return _served_policies
+
+
+def with_own_passwords(target: Path) -> Path:
+    """Copies the demo policies to ``target`` with a verifier of PASSWORDS for every account."""
+    from proxy.wire.auth import make_verifier
+
+    shutil.copytree(DEMO_POLICIES, target)
+    access = target / "access.toml"
+    text = access.read_text()
+    for name, password in PASSWORDS.items():
+        text, found = re.subn(rf'(\[(?:analysts|admins)\.{name}\]\npassword = )"[^"]*"',
+                              lambda m: m.group(1) + f'"{make_verifier(password)}"', text)
+        assert found == 1, name
+    access.write_text(text)
+    return target
 
 
 @dataclass
@@ -66,13 +95,14 @@ class ServeProcess:
 
 
 def start_serve(backend_dsn: str, log_path: Path, *, workers: int = 1, port: int | None = None,
-                policies: Path = DEMO_POLICIES, env: dict[str, str] | None = None,
+                policies: Path | None = None, env: dict[str, str] | None = None,
                 extra: tuple[str, ...] = (), pool_size: int | None = None) -> ServeProcess:
     """Starts ``hushql serve`` and returns once it accepts analysts' connections."""
     port = port or free_port()
     stderr = open(log_path, "ab")
     process = subprocess.Popen(
-        [sys.executable, "-m", "proxy.cli", "serve", "--policies", str(policies),
+        [sys.executable, "-m", "proxy.cli", "serve", "--policies",
+         str(policies or served_policies()),
          "--backend", backend_dsn, "--listen", f"127.0.0.1:{port}", "--workers", str(workers),
          "--pool-size", str(pool_size or 2 * workers), *extra],
         cwd=ROOT, env={**os.environ, **(env or {})}, stderr=stderr, stdout=subprocess.DEVNULL)
@@ -100,9 +130,15 @@ def serving(backend_dsn: str, log_path: Path, **kwargs: object) -> Iterator[Serv
 
 
 def policies_with_budgets(folder: Path, *, planner: str, households_cap: str) -> Path:
-    """A copy of the demo policies with the planner's budget and the households cap changed."""
+    """A copy of the served policies with the planner's budget and the households cap changed,
+    and readings made a population of its own ("meters"), so that the households cap binds on
+    households answers alone."""
     target = folder / "policies"
-    shutil.copytree(DEMO_POLICIES, target)
+    shutil.copytree(served_policies(), target)
+    readings = target / "tables" / "readings.toml"
+    text = readings.read_text()
+    assert 'population = "households"' in text
+    readings.write_text(text.replace('population = "households"', 'population = "meters"'))
     access = target / "access.toml"
     text = access.read_text()
     access.write_text(text.replace("budget = 3.0 ", f"budget = {planner} ", 1))

@@ -62,7 +62,7 @@ def connect(host: str, port: int, user: str) -> psycopg.Connection:
     ("hushql.grants", "id, kind, subject, amount, reason",
      "SELECT id, kind, subject, amount, reason FROM hushql.budget_events"),
     ("hushql.populations", "name, cap, spent",
-     "SELECT table_name, cap, spent FROM hushql.table_budgets"),
+     "SELECT population, cap, spent FROM hushql.population_budgets"),
 ])
 def test_an_administrator_reads_each_ledger_relation_exactly(
         proxy: tuple[str, int, str], relation: str, columns: str, direct: str) -> None:

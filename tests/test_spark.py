@@ -394,9 +394,9 @@ def test_a_shape_spark_cannot_run_exactly_is_refused_by_the_check_the_engine_run
     backend, _, _ = clinic
     # A DECIMAL(38, 18) column: floors over it are refused on Spark. Engine.prepare calls this
     # check before reserving any epsilon.
-    backend._session.sql("CREATE OR REPLACE TABLE clinic.wide USING parquet AS SELECT "
-                         "CAST(age AS DECIMAL(38, 18)) AS weight, person_id, ward, age, smoker, "
-                         "admitted FROM clinic.people")
+    backend._session.sql("SELECT CAST(age AS DECIMAL(38, 18)) AS weight, person_id, ward, age, "
+                         "smoker, admitted FROM clinic.people").write.mode("overwrite") \
+        .format("parquet").saveAsTable("clinic.wide")
     table = engine.policies.tables["people"]
     wide = table.model_copy(update={"source": "clinic.wide"})
     plan = analyse("SELECT floor(weight / 2.5) * 2.5, COUNT(*) FROM people GROUP BY 1",
