@@ -14,7 +14,7 @@ from __future__ import annotations
 import logging
 import threading
 import weakref
-from typing import Any
+from typing import Any, Protocol
 
 import psycopg
 from psycopg_pool import ConnectionPool, PoolTimeout
@@ -40,6 +40,12 @@ def _connection_lost(error: psycopg.OperationalError) -> bool:
     return state is None or state in _GONE_STATES or state.startswith("08")
 
 
+class Cancellable(Protocol):
+    """What a running query can be cancelled through (a psycopg connection, a Spark tag)."""
+
+    def cancel_safe(self, timeout: float) -> None: ...
+
+
 class QueryControl:
     """Lets another thread cancel the backend query a session is waiting on.
 
@@ -49,7 +55,7 @@ class QueryControl:
 
     def __init__(self) -> None:
         self._lock = threading.Lock()
-        self._connection: psycopg.Connection[Any] | None = None
+        self._connection: Cancellable | None = None
         self._cancelled = threading.Event()
 
     @property
@@ -70,7 +76,7 @@ class QueryControl:
             except Exception:  # the query may have just finished; nothing to cancel
                 log.debug("cancel request failed", exc_info=True)
 
-    def _attach(self, connection: psycopg.Connection[Any] | None) -> bool:
+    def _attach(self, connection: Cancellable | None) -> bool:
         """Register the running connection; False when cancel() already happened."""
         with self._lock:
             self._connection = connection
@@ -174,6 +180,10 @@ class Backend:
             self._pool.check()
         except Exception:
             log.debug("pool check failed", exc_info=True)
+
+    def check(self, sql: str) -> None:
+        """Raise HushError when this backend cannot run a rewritten query exactly; PostgreSQL
+        runs every one (the rewrite is written for it)."""
 
     def column_types(self, relation: str) -> dict[str, str]:
         """Column name -> PostgreSQL type name of a backend relation (schema-qualified or not)."""

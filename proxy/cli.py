@@ -26,6 +26,7 @@ from proxy.errors import (CANNOT_CONNECT, CONFIG_FILE_ERROR, INVALID_PARAMETER_V
                           HushError)
 from proxy.ledger_cli import add_ledger_command, run_ledger
 from proxy.mirrors import add_mirrors_command, run_mirrors
+from proxy.spark_backend import is_spark_dsn
 
 DEFAULT_LISTEN = "127.0.0.1:7432"
 
@@ -68,6 +69,8 @@ def _parser() -> argparse.ArgumentParser:
                                "water-utility scenario and serve it")
     demo.add_argument("--backend", help="load the scenario into this database instead of "
                                         "starting one")
+    demo.add_argument("--ledger", help="ledger database for a Spark backend (sc://HOST:PORT), "
+                                       "which keeps its ledger in PostgreSQL")
     demo.add_argument("--data-dir", type=Path, help="folder for the private PostgreSQL "
                                                     "(default .hushql/demo-postgres)")
     demo.add_argument("--policies", default=_default_policies(), help="demo policy folder")
@@ -147,7 +150,17 @@ def _need_backend(args: argparse.Namespace) -> str:
     if not args.backend:
         raise HushError(CANNOT_CONNECT, "no backend database given",
                         hint="pass --backend DSN or set HUSHQL_BACKEND")
+    if is_spark_dsn(args.backend) and not args.ledger:
+        raise HushError(CANNOT_CONNECT, "a Spark backend (sc://) needs a PostgreSQL ledger",
+                        hint="pass --ledger postgresql://... or set HUSHQL_LEDGER: the ledger, "
+                             "stored answers and catalog mirror stay in PostgreSQL")
     return args.backend
+
+
+def _postgres_dsn(args: argparse.Namespace) -> str:
+    """The PostgreSQL server holding the catalog mirror: the backend's, or for a Spark
+    backend the ledger's."""
+    return args.ledger if is_spark_dsn(args.backend) else args.backend
 
 
 def _connect(policies, args: argparse.Namespace, *, pool_size: int):
@@ -158,7 +171,10 @@ def _connect(policies, args: argparse.Namespace, *, pool_size: int):
     from proxy.engine import Engine
 
     backend = _need_backend(args)
-    preflight.check_reachable(backend, "backend", "--backend or HUSHQL_BACKEND")
+    if is_spark_dsn(backend):
+        preflight.check_spark_reachable(backend, "--backend or HUSHQL_BACKEND")
+    else:
+        preflight.check_reachable(backend, "backend", "--backend or HUSHQL_BACKEND")
     if args.ledger:
         preflight.check_reachable(args.ledger, "ledger", "--ledger or HUSHQL_LEDGER")
     try:
@@ -262,10 +278,11 @@ def _run_serve(args: argparse.Namespace, console: Console) -> int:
     from proxy.safe_config import refuse_unsafe_serving
     from proxy.wire.ledger_relations import LedgerRelations
 
+    backend = _need_backend(args)
     context = preflight.tls_context(args.tls_cert, args.tls_key)
     host, port = args.listen
     preflight.check_can_listen(host, port)
-    refuse_unsafe_serving(policies, _need_backend(args),
+    refuse_unsafe_serving(policies, backend,
                           allow_demo_accounts=args.allow_demo_accounts)
     workers = args.workers or default_workers()
     if workers > 1:
@@ -345,7 +362,7 @@ def _catalog(policies, args: argparse.Namespace):
     proxy.mirrors), else those an administrator made."""
     from proxy.mirrors import serving_catalog
 
-    return serving_catalog(policies, args.backend, args.mirror_admin)
+    return serving_catalog(policies, _postgres_dsn(args), args.mirror_admin)
 
 
 def _run_demo(args: argparse.Namespace, console: Console) -> int:
@@ -356,11 +373,20 @@ def _run_demo(args: argparse.Namespace, console: Console) -> int:
 
     def serve(backend_dsn: str) -> None:
         namespace = argparse.Namespace(policies=args.policies, backend=backend_dsn,
-                                       ledger=None, pool_size=16, listen=args.listen,
+                                       ledger=args.ledger, pool_size=16, listen=args.listen,
                                        tls_cert=None, tls_key=None, max_connections=None,
                                        max_message_bytes=1 << 20, allow_demo_accounts=True,
-                                       mirror_admin=backend_dsn, workers=1)
+                                       mirror_admin=_postgres_dsn(args), workers=1)
         _run_serve(namespace, console)
+
+    if is_spark_dsn(args.backend):
+        from proxy.spark_demo import run_spark_demo
+
+        _need_backend(args)  # refuses sc:// without --ledger
+        preflight.check_spark_reachable(args.backend, "--backend")
+        preflight.check_reachable(args.ledger, "ledger", "--ledger")
+        return run_spark_demo(args.backend, args.ledger, Path(args.policies), args.listen,
+                              None if args.no_serve else serve, households=args.households)
     if args.no_load and not args.backend:
         raise HushError(CONFIG_FILE_ERROR, "--no-load serves a scenario loaded before, so it "
                         "needs --backend naming the database it was loaded into")

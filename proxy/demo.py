@@ -358,7 +358,8 @@ def client_host(host: str) -> str:
 
 
 def _print_examples(out: Console, backend: str, policies_dir: Path,
-                    listen: tuple[str, int] | None, database: str, *, serving: bool) -> None:
+                    listen: tuple[str, int] | None, database: str, *, serving: bool,
+                    ledger: str | None = None) -> None:
     """The commands to try, one per line and never wrapped, so they paste into a shell as is.
 
     Every path is absolute and hushql is named by its full path, so the lines work from any
@@ -368,6 +369,8 @@ def _print_examples(out: Console, backend: str, policies_dir: Path,
     hushql = hushql_command()
     lines = [f"export HUSHQL_BACKEND={_shell_quote(backend)}",
              f"export HUSHQL_POLICIES={_shell_quote(str(policies_dir.absolute()))}"]
+    if ledger is not None:  # a Spark backend keeps its ledger in PostgreSQL
+        lines.insert(1, f"export HUSHQL_LEDGER={_shell_quote(ledger)}")
     lines += [f"{hushql} ask --as {who} {_shell_quote(query)}" + (f"    # {note}" if note else "")
               for who, query, note in EXAMPLE_QUERIES]
     planner = dict(demo_accounts())["planner"]

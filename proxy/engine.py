@@ -67,6 +67,7 @@ from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
 from proxy.sql.postprocess import postprocess
+from proxy.spark_backend import SparkBackend, is_spark_dsn
 from proxy.sql.rewrite import BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, loss_cap, rewrite
 
 __all__ = ["Engine", "Prepared", "QueryControl", "parse_epsilon"]
@@ -177,7 +178,7 @@ def _decimal_places(value: Decimal) -> int:
 class Engine:
     """Answers analysts' statements from a backend, charging a ledger. Thread-safe."""
 
-    def __init__(self, policies: Policies, backend: Backend, ledger: Ledger, *,
+    def __init__(self, policies: Policies, backend: Backend | SparkBackend, ledger: Ledger, *,
                  plan_cache_size: int = 1024,
                  plan_cache_bytes: int = 64 * 1024 * 1024) -> None:
         self.policies = policies
@@ -207,8 +208,17 @@ class Engine:
     @classmethod
     def connect(cls, policies: Policies, backend_dsn: str, ledger_dsn: str | None = None, *,
                 pool_size: int = 16) -> Engine:
-        """An engine with its own backend pool and ledger (default: schema hushql in the backend)."""
-        backend = Backend(backend_dsn, pool_size=pool_size)
+        """An engine with its own backend pool and ledger (default: schema hushql in the backend).
+
+        A Spark Connect backend (``sc://``) needs ``ledger_dsn``: the ledger stays in PostgreSQL.
+        """
+        backend: Backend | SparkBackend
+        if is_spark_dsn(backend_dsn):
+            if not ledger_dsn:
+                raise ValueError("a Spark backend needs a PostgreSQL ledger DSN")
+            backend = SparkBackend(backend_dsn)
+        else:
+            backend = Backend(backend_dsn, pool_size=pool_size)
         # Each answer makes two ledger calls to one backend call: give the ledger as many.
         ledger = Ledger(ledger_dsn or backend_dsn, pool_size=max(2, pool_size))
         return cls(policies, backend, ledger)
@@ -249,6 +259,7 @@ class Engine:
                     return cached
         plan = analyse(statement, self.policies, analyst)
         rewritten = rewrite(plan, self._exact_columns(plan.table.table))
+        self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         prepared = Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                             fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16])
         if key is not None:

@@ -13,6 +13,7 @@ from __future__ import annotations
 import errno
 import socket
 import ssl
+import urllib.parse
 from pathlib import Path
 
 import psycopg
@@ -67,6 +68,22 @@ def check_reachable(dsn: str, role: str, flag: str, *, timeout: int = 10) -> Non
                         f"{first_line(error)}",
                         hint=f"check {flag}, and that PostgreSQL runs there and accepts this "
                              "user") from None
+
+
+def check_spark_reachable(dsn: str, flag: str, *, timeout: float = 10) -> None:
+    """Raise HushError unless the Spark Connect server of ``sc://HOST:PORT[/;options]``
+    accepts a TCP connection within ``timeout`` seconds (15002, Spark's default, when no
+    port is given)."""
+    parts = urllib.parse.urlsplit(dsn)
+    host, port = parts.hostname or "localhost", 15002
+    try:
+        port = parts.port or port
+        socket.create_connection((host, port), timeout=timeout).close()
+    except (OSError, ValueError) as error:  # ValueError: a port that is not a number
+        raise HushError(CANNOT_CONNECT, f"cannot connect to the Spark Connect server {host}:{port}: "
+                        f"{first_line(error)}",
+                        hint=f"check {flag}, and that a Spark Connect server runs there "
+                             "(sbin/start-connect-server.sh)") from None
 
 
 def tls_context(cert: Path | None, key: Path | None) -> ssl.SSLContext | None:

@@ -173,9 +173,14 @@ def refuse_unsafe_serving(policies: Policies, backend_dsn: str, *,
     ``hushql demo``) or a table is one the backend cannot answer."""
     log.info("policies: %s", policy_source(policies))
     problems = [] if allow_demo_accounts else demo_account_problems(policies)
+    from proxy.spark_backend import is_spark_dsn, source_problems
+
     try:
-        problems += backend_problems(policies, backend_dsn)
-    except psycopg.Error as error:
+        if is_spark_dsn(backend_dsn):
+            problems += source_problems(policies, backend_dsn)
+        else:
+            problems += backend_problems(policies, backend_dsn)
+    except Exception as error:  # psycopg's or Spark Connect's; the class is enough here
         log.error("backend check failed: %s", type(error).__name__)
         raise HushError(CANNOT_CONNECT, "the backend database could not be checked",
                         hint="check --backend or HUSHQL_BACKEND") from None

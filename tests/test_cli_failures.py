@@ -146,3 +146,24 @@ def test_a_malformed_epsilon_is_one_line(module_dsn: str) -> None:
     done = hushql("ask", "--policies", str(POLICIES), "--backend", module_dsn, "--as", "planner",
                   "--epsilon", "a lot", QUERY)
     assert_short_failure(done, "invalid epsilon 'a lot'", "--epsilon 0.25")
+
+
+@pytest.mark.parametrize("command", [
+    ["ask", "--policies", str(POLICIES), "--as", "planner", QUERY],
+    ["serve", "--policies", str(POLICIES)],
+    ["demo", "--no-serve"],
+])
+def test_a_spark_backend_without_a_ledger_is_refused_in_one_line(command: list[str]) -> None:
+    # The ledger stays in PostgreSQL; nothing is contacted before the refusal (port 9 answers
+    # nothing here).
+    done = hushql(*command, "--backend", "sc://127.0.0.1:9")
+    text = assert_short_failure(done, "a Spark backend (sc://) needs a PostgreSQL ledger",
+                                "--ledger")
+    assert len(error_lines(text)) == 2, text
+
+
+def test_an_unreachable_spark_server_is_one_line(pg_server_dsn: str) -> None:
+    done = hushql("ask", "--policies", str(POLICIES), "--as", "planner", QUERY,
+                  "--backend", f"sc://127.0.0.1:{free_port()}", "--ledger", pg_server_dsn)
+    text = assert_short_failure(done, "cannot connect to the Spark Connect server")
+    assert len(error_lines(text)) == 2, text

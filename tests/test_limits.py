@@ -200,8 +200,9 @@ def test_the_plan_cache_is_bounded_in_memory_not_only_in_entries() -> None:
     from proxy.engine import Engine, _plan_bytes
 
     def engine(cache_bytes: int) -> Engine:
-        return Engine(POLICIES, SimpleNamespace(column_types=lambda source: {}),  # type: ignore[arg-type]
-                      SimpleNamespace(sync_budgets=lambda policies, **_: []),  # type: ignore[arg-type]
+        return Engine(POLICIES, SimpleNamespace(column_types=lambda source: {},  # type: ignore[arg-type]
+                                                check=lambda sql: None),
+                      SimpleNamespace(sync_budgets=lambda policies, source=None: []),  # type: ignore[arg-type]
                       plan_cache_bytes=cache_bytes)
 
     big = [BASE + " OR ".join(f"occupants * {k}.5 + {i} > {k}" for k in range(40))

@@ -1,0 +1,107 @@
+"""The demo's invented water-utility scenario, loaded into Apache Spark as Parquet tables.
+
+The same rows as ``proxy.demo.load_scenario`` writes into PostgreSQL (same generator, same
+seed), as tables ``utility.households`` and ``utility.meter_readings`` of the Spark Connect
+server's catalog, stored as Parquet. The readings go in chunks of households, each appended
+to the table, so the progress bar moves as they are written. Readings are sent as whole tenths
+of a litre and made DECIMAL(7,1) in Spark, the PostgreSQL table's numeric(7,1).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+from rich.console import Console
+
+from proxy.demo import (DAYS, DISTRICTS, SCHEMA, TARIFFS, YEAR, _database_name, _print_examples,
+                        _progress, _say, generate_scenario)
+from proxy.policy import PolicyError, load_policies
+
+HOUSEHOLD_COLUMNS = ("CAST(household_id AS INT) AS household_id", "district",
+                     "CAST(occupants AS INT) AS occupants", "tariff", "has_garden")
+READING_COLUMNS = ("CAST(household_id AS INT) AS household_id", "district", "reading_date",
+                   "CAST(CAST(tenths AS DECIMAL(8,0)) / 10 AS DECIMAL(7,1)) AS litres")
+
+
+def load_scenario_into_spark(dsn: str, *, households: int = 3000, seed: int = 2026,
+                             progress: bool = True, per_chunk: int = 500) -> dict[str, int]:
+    """Create (or replace) ``utility.households`` and ``utility.meter_readings`` on the Spark
+    Connect server ``dsn``; returns the row counts as ``load_scenario`` does."""
+    import pandas as pd
+    from pyspark.sql import SparkSession
+
+    scenario = generate_scenario(households, seed)
+    session = SparkSession.builder.remote(dsn).create()
+    try:
+        session.sql(f"CREATE DATABASE IF NOT EXISTS {SCHEMA}")
+        with _progress(progress) as bar:
+            houses_task = bar.add_task("households", total=scenario.households)
+            readings_task = bar.add_task("readings", total=scenario.readings)
+            houses = pd.DataFrame({
+                "household_id": scenario.household_id,
+                "district": [DISTRICTS[d] for d in scenario.district.tolist()],
+                "occupants": scenario.occupants.astype(np.int64),
+                "tariff": [TARIFFS[t] for t in scenario.tariff.tolist()],
+                "has_garden": scenario.has_garden.astype(bool)})
+            session.createDataFrame(houses).selectExpr(*HOUSEHOLD_COLUMNS).write \
+                .mode("overwrite").format("parquet").saveAsTable(f"{SCHEMA}.households")
+            bar.advance(houses_task, scenario.households)
+            dates = np.array([dt.date(YEAR, 1, 1) + dt.timedelta(days=i) for i in range(DAYS)])
+            for first in range(0, scenario.households, per_chunk):
+                last = min(first + per_chunk, scenario.households)
+                count = last - first
+                tenths = scenario.litres_tenths[first:last].reshape(-1)
+                chunk = pd.DataFrame({
+                    "household_id": np.repeat(scenario.household_id[first:last], DAYS),
+                    "district": np.repeat([DISTRICTS[d] for d in scenario.district[first:last].tolist()], DAYS),
+                    "reading_date": np.tile(dates, count),
+                    "tenths": pd.array(np.where(scenario.unread[first:last].reshape(-1), None, tenths),
+                                       dtype="Int64")})
+                session.createDataFrame(chunk).selectExpr(*READING_COLUMNS).write \
+                    .mode("overwrite" if first == 0 else "append").format("parquet") \
+                    .saveAsTable(f"{SCHEMA}.meter_readings")
+                bar.advance(readings_task, count * DAYS)
+    finally:
+        session.stop()
+    return {"households": scenario.households, "readings": scenario.readings}
+
+
+def run_spark_demo(backend: str, ledger: str, policies_dir: Path,
+                   listen: tuple[str, int] | None,
+                   serve_callback: Callable[[str], None] | None = None, *,
+                   console: Console | None = None, households: int = 3000) -> int:
+    """``hushql demo --backend sc://... --ledger postgresql://...``: load the scenario into
+    Spark, print how to query it, then serve it (``serve_callback(backend)`` blocks). Returns
+    the exit code: 1 when the policies are broken or Spark cannot take the tables."""
+    out = console or Console()
+    err = console or Console(stderr=True)
+    try:
+        load_policies(policies_dir)
+    except PolicyError as error:
+        _say(err, f"The policies in {policies_dir} have problems:")
+        for line in error.problems:
+            _say(err, line)
+        return 1
+    started = time.perf_counter()
+    try:
+        counts = load_scenario_into_spark(backend, households=households)
+    except Exception as error:  # Spark Connect's errors; the operator's terminal, one line
+        _say(err, f"hushql demo: cannot load the scenario into Spark: {type(error).__name__}")
+        _say(err, "Check --backend: a Spark Connect server must run there and its user may "
+                  f"create database {SCHEMA}.")
+        return 1
+    seconds = time.perf_counter() - started
+    _say(out, f"Loaded {counts['households']:,} households and {counts['readings']:,} "
+              f"readings into Spark in {seconds:.1f} s.")
+    _print_examples(out, backend, policies_dir, listen, _database_name(ledger),
+                    serving=serve_callback is not None, ledger=ledger)
+    if serve_callback is not None:
+        try:
+            serve_callback(backend)
+        except KeyboardInterrupt:
+            pass
+    return 0
