@@ -14,13 +14,10 @@ rows. Nothing here asserts a speed.
 from __future__ import annotations
 
 import argparse
-import statistics
 import sys
 import tempfile
-import time
 from decimal import Decimal
 from pathlib import Path
-from typing import Callable
 
 import psycopg
 from rich.console import Console
@@ -28,7 +25,7 @@ from rich.table import Table
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from benchmarks.common import generous_policies  # noqa: E402
+from benchmarks.common import generous_policies, median_ms  # noqa: E402
 from proxy.engine import Engine  # noqa: E402
 from proxy.policy import load_policies  # noqa: E402
 
@@ -71,15 +68,6 @@ CASES = [
      "SELECT date_trunc('month', reading_date), SUM(litres) FROM bench_bounding.readings GROUP BY 1"),
 ]
 
-
-def median_ms(action: Callable[[], object], repeat: int) -> float:
-    action()
-    times = []
-    for _ in range(repeat):
-        start = time.perf_counter()
-        action()
-        times.append((time.perf_counter() - start) * 1000)
-    return statistics.median(times)
 
 
 def load(dsn: str, rows: int) -> None:

@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import re
 import shutil
+import statistics
+import time
+from collections.abc import Callable
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -27,3 +30,15 @@ def generous_policies(folder: Path) -> Path:
     access.write_text(re.sub(r'^password = "[^"]*"', f'password = "{make_verifier(BENCH_PASSWORD)}"',
                              access.read_text(), flags=re.MULTILINE))
     return target
+
+
+def median_ms(action: Callable[[], object], repeat: int, warmup: int = 2) -> float:
+    """Median wall time of ``action`` in milliseconds over ``repeat`` runs, after ``warmup``."""
+    for _ in range(warmup):
+        action()
+    times = []
+    for _ in range(repeat):
+        start = time.perf_counter()
+        action()
+        times.append((time.perf_counter() - start) * 1000)
+    return statistics.median(times)

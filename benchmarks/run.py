@@ -14,12 +14,9 @@ from __future__ import annotations
 
 import argparse
 import importlib.util
-import statistics
 import sys
 import tempfile
-import time
 from pathlib import Path
-from typing import Callable
 
 import psycopg
 from rich.console import Console
@@ -28,7 +25,7 @@ from rich.table import Table
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from benchmarks.common import generous_policies  # noqa: E402
+from benchmarks.common import generous_policies, median_ms  # noqa: E402
 from proxy.engine import Engine  # noqa: E402
 from proxy.policy import load_policies  # noqa: E402
 from proxy.sql.analyse import analyse  # noqa: E402
@@ -49,16 +46,6 @@ range = [0, 2000]
 step = 0.1
 """
 
-
-def median_ms(action: Callable[[], object], repeat: int, warmup: int = 2) -> float:
-    for _ in range(warmup):
-        action()
-    times = []
-    for _ in range(repeat):
-        start = time.perf_counter()
-        action()
-        times.append((time.perf_counter() - start) * 1000)
-    return statistics.median(times)
 
 
 def load_bench_table(dsn: str, rows: int) -> None:
