@@ -49,9 +49,9 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.bench_wire import drop_catalog_mirrors  # noqa: E402
-from benchmarks.common import generous_policies  # noqa: E402
+from benchmarks.common import BENCH_PASSWORD, generous_policies  # noqa: E402
 
-from proxy.demo import demo_accounts, load_scenario  # noqa: E402
+from proxy.demo import load_scenario  # noqa: E402
 from proxy.dsn import with_database  # noqa: E402
 from proxy.localpg import free_port  # noqa: E402
 from proxy.wire.workers import default_workers  # noqa: E402
@@ -166,7 +166,6 @@ def main() -> int:
     if not args.backend:
         parser.error("give --backend or set HUSHQL_TEST_DSN")
     console = Console(width=120)
-    passwords = dict(demo_accounts())
     folder = Path(tempfile.mkdtemp(prefix="hushql-load-"))
     name = f"hushql_load_{uuid.uuid4().hex[:8]}"
     with psycopg.connect(args.backend, autocommit=True) as conn:
@@ -184,8 +183,8 @@ def main() -> int:
                  "--policies", str(policies), "--backend", dsn, "--listen",
                  f"127.0.0.1:{port}", "--pool-size", str(args.pool_size)],
                 cwd=ROOT, stderr=log, stdout=subprocess.DEVNULL)
-        _wait_for_proxy(port, passwords["planner"], proxy)
-        analysts = [("planner", passwords["planner"]), ("researcher", passwords["researcher"])]
+        _wait_for_proxy(port, BENCH_PASSWORD, proxy)
+        analysts = [("planner", BENCH_PASSWORD), ("researcher", BENCH_PASSWORD)]
         started = time.monotonic()
         through = asyncio.run(_run("127.0.0.1", port, "hushql_demo", args.clients, args.seconds, True,
                                    analysts))

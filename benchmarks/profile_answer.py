@@ -33,9 +33,9 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.bench_wire import drop_catalog_mirrors  # noqa: E402
-from benchmarks.common import generous_policies  # noqa: E402
+from benchmarks.common import BENCH_PASSWORD, generous_policies  # noqa: E402
 
-from proxy.demo import PLANNER_PASSWORD, load_scenario  # noqa: E402
+from proxy.demo import load_scenario  # noqa: E402
 from proxy.dsn import with_database  # noqa: E402
 from proxy.localpg import free_port  # noqa: E402
 
@@ -53,7 +53,7 @@ def load(port: int, clients: int, seconds: float) -> int:
 
     def client(index: int) -> None:
         with psycopg.connect(host="127.0.0.1", port=port, user="planner",
-                             password=PLANNER_PASSWORD, dbname="hushql_demo",
+                             password=BENCH_PASSWORD, dbname="hushql_demo",
                              autocommit=True) as conn:
             k = index
             while time.monotonic() < stop:
@@ -129,7 +129,7 @@ def main() -> int:
         while True:
             try:
                 psycopg.connect(host="127.0.0.1", port=port, user="planner",
-                                password=PLANNER_PASSWORD, dbname="hushql_demo").close()
+                                password=BENCH_PASSWORD, dbname="hushql_demo").close()
                 break
             except psycopg.OperationalError:
                 if proxy.poll() is not None or time.monotonic() > deadline:

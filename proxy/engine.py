@@ -40,11 +40,11 @@ import hashlib
 import json
 import logging
 import math
+import queue
 import re
 import threading
 import time
 from collections import OrderedDict
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from decimal import Decimal, InvalidOperation
 from fractions import Fraction
@@ -67,10 +67,16 @@ from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
 from proxy.sql.postprocess import postprocess
+from proxy.sql import statement as slots
+from proxy.sql.statement import BoundStatement
 from proxy.spark_backend import SparkBackend, is_spark_dsn
 from proxy.sql.rewrite import BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, loss_cap, rewrite
 
-__all__ = ["Engine", "Prepared", "QueryControl", "parse_epsilon"]
+__all__ = ["Engine", "Prepared", "QueryControl", "Statement", "parse_epsilon"]
+
+# What the engine answers: a statement's text (plans cached by it), a parsed tree (long texts,
+# not cached), or a parameterised statement with its values (plans cached per class of values).
+Statement = str | exp.Expression | BoundStatement
 
 log = logging.getLogger("hushql.engine")
 
@@ -120,10 +126,26 @@ class Prepared:
     fingerprint: str
 
 
+@dataclass(frozen=True)
+class _LatePlan:
+    """A plan whose backend SQL has holes for late-bound values (``proxy.sql.statement``)."""
+
+    prepared: Prepared  # planned with markers in the late slots
+    template: slots.Template
+
+
+def _fingerprint(sql: str) -> str:
+    return hashlib.sha256(sql.encode()).hexdigest()[:16]
+
+
 # Digits an epsilon may have after the decimal point (so the smallest is 1e-12). Noise scales
 # are exact fractions of epsilon and the 95% bound is computed in decimals as wide as the scale:
 # an unbounded exponent (1e-999999999) would make them numbers of a billion digits.
 MOST_EPSILON_PLACES = 12
+
+# How long the notes thread waits after a first 'answered' note for others to join its batch:
+# one ledger round trip per batch instead of one per answer (the charge is durable already).
+NOTE_GATHERING_SECONDS = 0.02
 
 
 # An epsilon as text: ASCII digits only (Python's Decimal would also read other scripts' digits,
@@ -184,7 +206,9 @@ class Engine:
         self.policies = policies
         self.backend = backend
         self.ledger = ledger
-        self._cache: OrderedDict[tuple[str, str], Prepared] = OrderedDict()
+        self._cache: OrderedDict[tuple[Any, ...], Prepared | _LatePlan] = OrderedDict()
+        # Per (analyst, text, types) of a parameterised statement: the slots bound late.
+        self._late: dict[tuple[str, str, tuple[int, ...]], frozenset[int]] = {}
         self._cache_size = plan_cache_size
         # Bounded in (estimated) memory too: EXPLAIN plans for free, and the largest plans the
         # limits accept hold about 2 MB each.
@@ -192,10 +216,11 @@ class Engine:
         self._cache_weight = 0
         self._cache_lock = threading.Lock()
         self._exact: dict[str, frozenset[str]] = {}
-        # Records answered outcomes after the answer is released, in order, on one thread.
-        self._notes = ThreadPoolExecutor(max_workers=1, thread_name_prefix="hushql-outcomes")
-        self._answered: list[int] = []  # charges whose 'answered' note is not yet recorded
-        self._answered_lock = threading.Lock()
+        # Records answered outcomes after the answer is released, in batches, on one thread
+        # started at the first note (so after a fork).
+        self._answered: queue.SimpleQueue[int | threading.Event | None] = queue.SimpleQueue()
+        self._notes: threading.Thread | None = None
+        self._notes_lock = threading.Lock()
         from proxy.safe_config import policy_source
 
         for line in ledger.sync_budgets(policies, source=policy_source(policies)):
@@ -238,39 +263,135 @@ class Engine:
             self.policies = policies
             self._renewals = renewals
             self._cache.clear()
+            self._late.clear()
             self._exact.clear()
 
     def close(self) -> None:
         """Record pending outcomes, then close the pools."""
-        self._notes.shutdown(wait=True)
+        self.flush_notes(stop=True)
         self.backend.close()
         self.ledger.close()
 
     # ---- planning (no data read, nothing charged) ------------------------------------------
 
-    def prepare(self, analyst: str, statement: str | exp.Expression) -> Prepared:
-        """Analyse and rewrite ``statement`` for ``analyst``; cached by statement text."""
-        key = (analyst, statement) if isinstance(statement, str) else None
-        if key is not None:
-            with self._cache_lock:
-                cached = self._cache.get(key)
-                if cached is not None:
-                    self._cache.move_to_end(key)
-                    return cached
+    def prepare(self, analyst: str, statement: Statement) -> Prepared:
+        """Analyse and rewrite ``statement`` for ``analyst``; cached by statement text, and for
+        a parameterised statement by text and class of values (``proxy.sql.statement``)."""
+        found = self.planned(analyst, statement)
+        if found is not None:
+            return found
+        if isinstance(statement, BoundStatement):
+            return self._prepare_bound(analyst, statement)
+        prepared = self._plan(analyst, statement)
+        if isinstance(statement, str):
+            self._keep((analyst, statement), prepared)
+        return prepared
+
+    def planned(self, analyst: str, statement: Statement) -> Prepared | None:
+        """The cached plan of ``statement``, or None when it would need analysis: dictionary
+        look-ups and, for late-bound values, their checks (HushError as analysis raises)."""
+        if isinstance(statement, str):
+            return self._cached((analyst, statement))  # type: ignore[return-value]
+        if not isinstance(statement, BoundStatement):
+            return None
+        late = self._late.get((analyst, statement.text, statement.types))
+        if late is None:
+            return None
+        found = self._cached(self._bound_key(analyst, statement, late))
+        if isinstance(found, _LatePlan):
+            return self._filled(found, statement)
+        return found
+
+    def _cached(self, key: tuple[Any, ...]) -> Prepared | _LatePlan | None:
+        with self._cache_lock:
+            cached = self._cache.get(key)
+            if cached is not None:
+                self._cache.move_to_end(key)
+            return cached
+
+    def _keep(self, key: tuple[Any, ...], entry: Prepared | _LatePlan) -> None:
+        """Caches ``entry``, dropping the least recently used beyond the count and byte bounds."""
+        with self._cache_lock:
+            if key not in self._cache:
+                self._cache[key] = entry
+                self._cache_weight += _plan_bytes(entry)
+            while self._cache and (len(self._cache) > self._cache_size
+                                   or self._cache_weight > self._cache_bytes):
+                self._cache_weight -= _plan_bytes(self._cache.popitem(last=False)[1])
+
+    def _plan(self, analyst: str, statement: str | exp.Expression) -> Prepared:
+        """Fresh analysis and rewrite, uncached."""
         plan = analyse(statement, self.policies, analyst)
         rewritten = rewrite(plan, self._exact_columns(plan.table.table))
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
-        prepared = Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
-                            fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16])
-        if key is not None:
-            with self._cache_lock:
-                if key not in self._cache:
-                    self._cache[key] = prepared
-                    self._cache_weight += _plan_bytes(prepared)
-                while self._cache and (len(self._cache) > self._cache_size
-                                       or self._cache_weight > self._cache_bytes):
-                    self._cache_weight -= _plan_bytes(self._cache.popitem(last=False)[1])
-        return prepared
+        return Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
+                        fingerprint=_fingerprint(rewritten.sql))
+
+    @staticmethod
+    def _bound_key(analyst: str, bound: BoundStatement, late: frozenset[int]
+                   ) -> tuple[Any, ...]:
+        """The cache key of a parameterised statement: late values by class, others as such."""
+        classes: list[Any] = []
+        for slot, value in enumerate(bound.values, 1):
+            found = slots.value_class(value) if slot in late else None
+            classes.append(("late", found) if found is not None
+                           else ("value", slots.planned_key(value)))
+        return (analyst, bound.text, bound.types, tuple(classes))
+
+    def _prepare_bound(self, analyst: str, bound: BoundStatement) -> Prepared:
+        """Plans a class of values once: with markers in its late slots, checked once against
+        a fresh analysis of the real values (a difference turns late binding off for the
+        statement); without late slots, per value."""
+        statement_key = (analyst, bound.text, bound.types)
+        late = self._late.get(statement_key)
+        if late is None:
+            late = slots.late_slots(bound.tree, self.policies)
+            self._late[statement_key] = late
+        key = self._bound_key(analyst, bound, late)
+        used = frozenset(slot for slot in late if key[3][slot - 1][0] == "late")
+        fresh = self._plan(analyst, bound.substituted())  # the real refusal, if any
+        if not used:
+            self._keep(key, fresh)
+            return fresh
+        entry = self._late_plan(analyst, bound, used)
+        if entry is not None:
+            filled = self._filled(entry, bound)
+            if _same_plan(filled, fresh):
+                self._keep(key, entry)
+                return filled
+            log.warning("late binding differed from fresh analysis; planning per value")
+        self._late[statement_key] = frozenset()
+        self._keep(self._bound_key(analyst, bound, frozenset()), fresh)
+        return fresh
+
+    def _late_plan(self, analyst: str, bound: BoundStatement, used: frozenset[int]
+                   ) -> _LatePlan | None:
+        """The statement planned with a marker in each slot of ``used``, its backend SQL cut at
+        the markers; None when the markers cannot be found exactly."""
+        literals = list(bound.literals)
+        markers: dict[int, str] = {}
+        for slot in used:
+            literals[slot - 1] = slots.marker(bound.values[slot - 1], slot)
+        marked = dataclasses.replace(bound, literals=tuple(literals))
+        try:
+            for slot in used:
+                markers[slot] = slots.rendering(literals[slot - 1], self.policies.limits)
+            prepared = self._plan(analyst, marked.substituted())
+        except HushError:
+            return None
+        counts = slots.occurrences(bound.tree)
+        cut = slots.template(prepared.rewritten.sql, markers, {s: counts[s] for s in used})
+        return None if cut is None else _LatePlan(prepared, cut)
+
+    def _filled(self, entry: _LatePlan, bound: BoundStatement) -> Prepared:
+        """The late plan with this statement's values in its holes (each checked first)."""
+        limits = self.policies.limits
+        renderings = {slot: slots.rendering(bound.literals[slot - 1], limits)
+                      for slot in set(entry.template.slots)}
+        sql = entry.template.fill(renderings)
+        prepared = entry.prepared
+        return dataclasses.replace(prepared, rewritten=dataclasses.replace(prepared.rewritten, sql=sql),
+                                   fingerprint=_fingerprint(sql))
 
     def _exact_columns(self, table: str) -> frozenset[str]:
         """Number columns of ``table`` whose backend type is numeric (summed exactly); looked up
@@ -288,10 +409,15 @@ class Engine:
                 self._exact[table] = known
         return known
 
-    def describe(self, analyst: str, statement: str | exp.Expression) -> list[OutputColumn]:
+    def describe(self, analyst: str, statement: Statement) -> list[OutputColumn]:
         """The columns an answer would have; plans only."""
-        plan = self.prepare(analyst, statement).plan
-        return [OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs]
+        return _columns(self.prepare(analyst, statement).plan)
+
+    def describe_planned(self, analyst: str, statement: Statement) -> list[OutputColumn] | None:
+        """The columns of an already planned statement, None when it needs planning: cheap
+        enough for an event loop (no analysis, no I/O)."""
+        found = self.planned(analyst, statement)
+        return None if found is None else _columns(found.plan)
 
     def parameter_types(self, analyst: str, tree: exp.Expression) -> list[str | None]:
         """Types of untyped ``$n`` parameters from the columns they are compared with."""
@@ -323,7 +449,7 @@ class Engine:
         """Epsilon ``analyst`` may still spend, from the ledger; HushError 42501 if unknown."""
         return self.ledger.remaining(analyst)
 
-    def explain(self, analyst: str, statement: str | exp.Expression, *,
+    def explain(self, analyst: str, statement: Statement, *,
                 epsilon: Decimal | None = None, form: str = "text") -> Answer:
         """The plan, its sensitivities and noise, charging nothing: a two-column table (``form``
         "text"), or one JSON document with the same items (``form`` "json")."""
@@ -369,7 +495,7 @@ class Engine:
 
     # ---- answering ---------------------------------------------------------------------------
 
-    def answer(self, analyst: str, statement: str | exp.Expression, *,
+    def answer(self, analyst: str, statement: Statement, *,
                epsilon: Decimal | None = None, control: QueryControl | None = None) -> Answer:
         """Plan, reserve, run, noise and release one statement. Raises HushError."""
         arrived = time.monotonic()
@@ -377,7 +503,8 @@ class Engine:
         self._renewals.apply_due()  # a clock comparison except at a period boundary
         eps = self.epsilon_for(epsilon)
         plan = prepared.plan
-        text = statement if isinstance(statement, str) else statement.sql(dialect="postgres")
+        text = statement if isinstance(statement, str) else statement.shown() \
+            if isinstance(statement, BoundStatement) else statement.sql(dialect="postgres")
         charge, remaining = self.ledger.reserve(analyst, [plan.table.table], eps, text,
                                                 prepared.fingerprint)
         outcome = "failed"
@@ -410,17 +537,54 @@ class Engine:
         return dataclasses.replace(answer, remaining=remaining)
 
     def _note_answered(self, charge: int) -> None:
-        """Queues an 'answered' note; the notes thread records all queued notes in one round
-        trip, so under load the notes cost the ledger one transaction per batch of answers."""
-        with self._answered_lock:
-            self._answered.append(charge)
-            first = len(self._answered) == 1
-        if first:
-            self._notes.submit(self._record_answered)
+        """Queues an 'answered' note for the notes thread, which records what has gathered in
+        one round trip: under load the notes cost the ledger one transaction per batch."""
+        self._answered.put(charge)
+        if self._notes is None:
+            with self._notes_lock:
+                if self._notes is None:
+                    self._notes = threading.Thread(target=self._record_answered, daemon=True,
+                                                   name="hushql-outcomes")
+                    self._notes.start()
+
+    def flush_notes(self, *, stop: bool = False) -> None:
+        """Waits until the notes queued so far are recorded (``stop``: and ends the thread)."""
+        with self._notes_lock:
+            thread = self._notes
+            if stop:
+                self._notes = None
+        if thread is None:
+            return
+        if stop:
+            self._answered.put(None)
+            thread.join()
+            return
+        done = threading.Event()
+        self._answered.put(done)
+        while not done.wait(0.05) and thread.is_alive():
+            pass
 
     def _record_answered(self) -> None:
-        with self._answered_lock:
-            charges, self._answered = self._answered, []
+        """The notes thread: records queued charges in batches; an Event in the queue is set
+        once everything before it is recorded, None ends the thread."""
+        while True:
+            items = [self._answered.get()]
+            time.sleep(NOTE_GATHERING_SECONDS)  # gather the notes of concurrent answers
+            while True:
+                try:
+                    items.append(self._answered.get_nowait())
+                except queue.Empty:
+                    break
+            charges = [c for c in items if isinstance(c, int)]
+            if charges:
+                self._record(charges)
+            for item in items:
+                if isinstance(item, threading.Event):
+                    item.set()
+            if None in items:
+                return
+
+    def _record(self, charges: list[int]) -> None:
         try:
             recorded = self.ledger.finish_many(charges, "answered")
         except Exception:
@@ -491,16 +655,28 @@ class Engine:
         accuracy = [_accuracy(plan, o, split.measure, rewritten.sensitivities(values), scales,
                               bounds, noisy, clipping)
                     for o in plan.outputs if o.visible and o.kind != "key"]
-        return Answer(columns=[OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs],
+        return Answer(columns=_columns(plan),
                       rows=postprocess(plan, rows), epsilon=epsilon,
                       remaining=Decimal(0), accuracy=accuracy,
                       tables=[plan.table.table], charge_id=charge,
                       notes=_answer_notes(plan, rewritten, values))
 
 
-def _plan_bytes(prepared: Prepared) -> int:
+def _columns(plan: Plan) -> list[OutputColumn]:
+    return [OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs]
+
+
+def _same_plan(a: Prepared, b: Prepared) -> bool:
+    """Whether two plans make the same answer: backend SQL, noise, cells and outputs (the
+    WHERE tree is compared through the SQL it became)."""
+    return a.rewritten == b.rewritten and a.cells == b.cells and a.fingerprint == b.fingerprint \
+        and dataclasses.replace(a.plan, where=None) == dataclasses.replace(b.plan, where=None)
+
+
+def _plan_bytes(entry: Prepared | _LatePlan) -> int:
     """An estimate of a cached plan's memory: about 600 bytes per condition node (measured with
     tracemalloc on the largest accepted shapes), plus the backend SQL and the cells."""
+    prepared = entry.prepared if isinstance(entry, _LatePlan) else entry
     plan = prepared.plan
     nodes = sum(1 for clause in (plan.where, plan.having) if clause is not None
                 for _ in clause.walk())

@@ -208,7 +208,7 @@ def engine(clinic, module_dsn: str):
     backend, _, policies = clinic
     engine = Engine(policies, backend, Ledger(module_dsn, pool_size=2, schema="spark_ledger"))
     yield engine
-    engine._notes.shutdown(wait=True)
+    engine.flush_notes(stop=True)
     engine.ledger.close()
 
 

@@ -24,6 +24,7 @@ from proxy.answer import Accuracy, Answer, OutputColumn
 from proxy.engine import parse_epsilon
 from proxy.errors import HushError
 from proxy.sql.limits import Limits
+from proxy.sql.statement import BoundStatement
 from proxy.wire import codec
 from proxy.wire.auth import make_verifier
 from proxy.wire.server import start_in_thread
@@ -64,9 +65,13 @@ class FakeEngine:
 
     @staticmethod
     def text_of(statement: Any) -> str:
+        if isinstance(statement, BoundStatement):
+            statement = statement.substituted()
         return statement if isinstance(statement, str) else statement.sql(dialect="postgres")
 
     def _accept(self, statement: Any) -> str:
+        if isinstance(statement, BoundStatement):
+            statement = statement.substituted()
         if isinstance(statement, exp.Expression) and any(
                 True for _ in statement.find_all(exp.Parameter, exp.Placeholder)):
             raise HushError("0A000", "parameters are not accepted")
@@ -81,6 +86,9 @@ class FakeEngine:
         self._accept(statement)
         self.described.append(statement)
         return list(COLUMNS)
+
+    def describe_planned(self, analyst: str, statement: Any) -> list[OutputColumn] | None:
+        return None  # the fake plans nothing ahead: every Describe goes through describe
 
     def answer(self, analyst: str, statement: Any, *, epsilon: Decimal | None = None,
                control: Any = None) -> Answer:

@@ -11,6 +11,7 @@ import pytest
 from sqlglot import exp
 
 from proxy.errors import HushError
+from proxy.sql.statement import BoundStatement
 from proxy.wire import codec
 from proxy.wire.session import Session
 from proxy.wire.states import TxStatus
@@ -247,12 +248,14 @@ def test_extended_query_with_a_parameter_and_row_limits(engine: FakeEngine) -> N
     out = _send(s, codec.Execute("p1", 2), codec.Sync())
     assert _kinds(out) == ["DataRow", "CommandComplete", "ReadyForQuery"]
     assert out[1].tag == "SELECT 1"
-    [(_, tree, _)] = engine.calls  # ran once, with the value as a literal node
+    [(_, bound, _)] = engine.calls  # ran once, with the value as a literal node
+    tree = bound.substituted()
     assert isinstance(tree, exp.Expression) and not list(tree.find_all(exp.Parameter))
     assert "Old Mill' OR 1=1 --" in [lit.this for lit in tree.find_all(exp.Literal)]
     # The statement was described with a stand-in, never with the placeholder.
-    assert not any(isinstance(d, exp.Expression) and list(d.find_all(exp.Parameter))
-                   for d in engine.described)
+    assert engine.described and all(
+        isinstance(d, BoundStatement) and not list(d.substituted().find_all(exp.Parameter))
+        for d in engine.described)
     assert "p1" not in s.portals  # the implicit transaction ended at Sync
 
 
@@ -378,8 +381,8 @@ def test_the_engine_may_type_untyped_parameters(engine: FakeEngine) -> None:
                 codec.Bind("", "", (), (b"2", b"Old Mill"), ()), codec.Execute("", 0),
                 codec.Sync())
     assert out[1].type_oids == (20, 25)
-    [(_, tree, _)] = engine.calls
-    assert "occupants > 2 AND district = 'Old Mill'" in tree.sql(dialect="postgres")
+    [(_, bound, _)] = engine.calls
+    assert "occupants > 2 AND district = 'Old Mill'" in bound.substituted().sql(dialect="postgres")
     assert len(seen) == 1 and list(seen[0].find_all(exp.Parameter))
 
 

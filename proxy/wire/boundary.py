@@ -18,9 +18,13 @@ from sqlglot import exp
 from proxy.answer import Answer, OutputColumn
 from proxy.backend import QueryControl
 from proxy.sql.limits import Limits
+from proxy.sql.statement import BoundStatement
 
 # A catalog answer's columns: (name, type OID or PostgreSQL type name).
 CatalogColumns = list[tuple[str, int | str]]
+# What the engine answers: a statement's text, a parsed tree (texts too long to cache), or a
+# parameterised statement with its values.
+Statement = str | exp.Expression | BoundStatement
 
 
 @runtime_checkable
@@ -62,16 +66,21 @@ class Answering(Protocol):
         """The epsilon a query would run with, validated against the policy's bounds."""
         ...
 
-    def describe(self, analyst: str, statement: str | exp.Expression) -> list[OutputColumn]: ...
+    def describe(self, analyst: str, statement: Statement) -> list[OutputColumn]: ...
+
+    def describe_planned(self, analyst: str, statement: Statement) -> list[OutputColumn] | None:
+        """The columns of a statement planned already, None when it needs planning; cheap and
+        free of I/O, so it may run on the event loop."""
+        ...
 
     def parameter_types(self, analyst: str, tree: exp.Expression) -> list[str | None]:
         """A type name (or None) for each untyped ``$n``, from what it is compared with."""
         ...
 
-    def explain(self, analyst: str, statement: str | exp.Expression, *,
+    def explain(self, analyst: str, statement: Statement, *,
                 epsilon: Decimal | None = None, form: str = "text") -> Answer: ...
 
-    def answer(self, analyst: str, statement: str | exp.Expression, *,
+    def answer(self, analyst: str, statement: Statement, *,
                epsilon: Decimal | None = None, control: QueryControl | None = None) -> Answer: ...
 
     def remaining(self, analyst: str) -> Decimal: ...

@@ -9,8 +9,10 @@ statement_timeout is not one of them: answers run under the proxy's own time lim
 
 What the engine sees: for a statement without parameters, its own text (the engine caches plans
 by text) or, above ``statements.MAX_CACHED_TEXT``, its tree (so a long text is parsed once);
-with parameters, a copy of the parsed tree in which every ``$n`` has been replaced by a literal
-node built from the decoded value. Parameter values are never pasted into SQL text.
+with parameters, a ``BoundStatement``: the tree parsed once at Parse, with each decoded value as
+a literal node, which the engine plans once per class of values and binds late
+(``proxy.sql.statement``). Parameter values are never pasted into SQL text they brought.
+Describe of a statement the engine has planned already is answered on the event loop.
 
 Refused work costs time: before a Query or Parse is read, the account's refusal allowance
 (``guard.RefusalAllowance``) must be able to pay for the text; the cost comes back when the
@@ -40,6 +42,7 @@ from proxy.errors import (BUDGET_EXHAUSTED, DUPLICATE_CURSOR, DUPLICATE_PREPARED
                           NO_ACTIVE_SQL_TRANSACTION, PROGRAM_LIMIT_EXCEEDED, PROTOCOL_VIOLATION,
                           QUERY_CANCELED, SUCCESSFUL_COMPLETION, HushError)
 from proxy.sql.limits import check_statement_text
+from proxy.sql.statement import BoundStatement
 from proxy.wire import codec, guard, settings, statements, types
 from proxy.wire.boundary import Answering, CatalogQuestions
 from proxy.wire.catalog_guard import looks_like_catalog
@@ -128,6 +131,7 @@ class Prepared:
     param_types: tuple[int, ...]
     to_catalog: bool = False
     shape: types.ResultShape | None | bool = False  # False: not described yet
+    folded: exp.Expression | None = None  # the tree values bind into (statements.fold_casts)
 
 
 @dataclass
@@ -136,7 +140,7 @@ class Portal:
 
     prepared: Prepared
     values: list[Any]
-    tree: exp.Expression | None  # the bound tree (None: use the statement's text)
+    bound: BoundStatement | None  # the statement with its values (None: use its text)
     result_formats: tuple[int, ...]
     outcome: Outcome | None = None
     sent: int = 0
@@ -323,7 +327,9 @@ class Session:
         else:
             suggested = await self._suggested_types(tree, msg.param_oids, count, to_catalog)
         param_types = statements.infer_parameter_types(tree, msg.param_oids, count, suggested)
-        self.statements[msg.name] = Prepared(st, param_types, to_catalog)
+        folded = statements.fold_casts(tree, param_types) \
+            if tree is not None and param_types and not to_catalog else None
+        self.statements[msg.name] = Prepared(st, param_types, to_catalog, folded=folded)
         return [codec.ParseComplete()]
 
     # ---- refused work ---------------------------------------------------------------------
@@ -419,11 +425,8 @@ class Session:
         per_param = formats if len(formats) == n else (formats[0] if formats else 0,) * n
         values = [types.decode_parameter(data, oid, fmt, i + 1) for i, (data, oid, fmt)
                   in enumerate(zip(msg.params, prepared.param_types, per_param))]
-        tree = statements.statement_tree(prepared.statement)
-        bound = None
-        if tree is not None and n and not prepared.to_catalog:
-            bound = statements.bind(tree, values, prepared.param_types)
-        self.portals[msg.portal] = Portal(prepared, values, bound, msg.result_formats)
+        self.portals[msg.portal] = Portal(prepared, values, _bound(prepared, values),
+                                          msg.result_formats)
         return [codec.BindComplete()]
 
     async def describe(self, msg: codec.Describe) -> list[Any]:
@@ -453,7 +456,7 @@ class Session:
         if portal.outcome is None:
             prepared = portal.prepared
             self._check_block(prepared.statement)
-            portal.outcome = await self._run(prepared.statement, portal.tree, portal.values,
+            portal.outcome = await self._run(prepared.statement, portal.bound, portal.values,
                                              prepared.to_catalog)
             out += portal.outcome.notices
         outcome = portal.outcome
@@ -509,14 +512,12 @@ class Session:
     async def _describe_statement(self, prepared: Prepared) -> types.ResultShape | None:
         """Columns of a statement before its parameters are known."""
         st = prepared.statement
-        tree = statements.statement_tree(st)
-        if tree is None or not prepared.param_types or prepared.to_catalog:
+        if prepared.folded is None:
             return await self._shape(st, None, [None] * len(prepared.param_types),
                                      prepared.to_catalog)
         # Plan with stand-in values: the columns of an answer do not depend on them.
-        stand_ins = statements.stand_in_values(tree, prepared.param_types)
-        bound = statements.bind(tree, stand_ins, prepared.param_types)
-        return await self._shape(st, bound, stand_ins, False)
+        stand_ins = statements.stand_in_values(prepared.folded, prepared.param_types)
+        return await self._shape(st, _bound(prepared, stand_ins), stand_ins, False)
 
     async def _describe_portal(self, portal: Portal) -> types.ResultShape | None:
         if portal.outcome is not None:
@@ -524,25 +525,28 @@ class Session:
         st = portal.prepared.statement
         if isinstance(st, ExplainStatement) or portal.prepared.to_catalog:
             # Data-free and uncharged: run it now and keep the result for Execute.
-            portal.outcome = await self._run(st, portal.tree, portal.values,
+            portal.outcome = await self._run(st, portal.bound, portal.values,
                                              portal.prepared.to_catalog)
             return portal.outcome.shape
-        return await self._shape(st, portal.tree, portal.values, False)
+        return await self._shape(st, portal.bound, portal.values, False)
 
-    async def _shape(self, st: Statement, tree: exp.Expression | None, values: list[Any],
+    async def _shape(self, st: Statement, bound: BoundStatement | None, values: list[Any],
                      to_catalog: bool) -> types.ResultShape | None:
         """The result columns of a statement without running it (where that is possible)."""
         if isinstance(st, ShowStatement):
             return _show_shape(st)
         if isinstance(st, ExplainStatement):
-            return types.ResultShape.of((await self._explain(st, tree)).columns)
+            return types.ResultShape.of((await self._explain(st, bound)).columns)
         if isinstance(st, QueryStatement):
             if to_catalog:
                 columns = await self._blocking(self._catalog_questions().describe,
                                                self.analyst, st.text)
                 return types.ResultShape.of(columns)
-            target = tree if tree is not None else st.text
-            columns = await self._blocking(self.engine.describe, self.analyst, target)
+            target = bound if bound is not None else st.text
+            # A statement planned already is described here, without a thread hand-off.
+            columns = self.engine.describe_planned(self.analyst, target)
+            if columns is None:
+                columns = await self._blocking(self.engine.describe, self.analyst, target)
             return types.ResultShape.of(columns)
         return None
 
@@ -573,7 +577,7 @@ class Session:
         if self.tx.status is TxStatus.FAILED and self.tx.peek(event).refuse is not None:
             raise HushError(*self.tx.peek(event).refuse, hint=FAILED_BLOCK_HINT)
 
-    async def _run(self, st: Statement, tree: exp.Expression | None, values: list[Any],
+    async def _run(self, st: Statement, bound: BoundStatement | None, values: list[Any],
                    to_catalog: bool) -> Outcome:
         """Runs one statement; raises HushError."""
         if isinstance(st, TransactionStatement):
@@ -590,9 +594,9 @@ class Session:
         if isinstance(st, QueryStatement):
             if to_catalog:
                 return await self._catalog(st, values)
-            return await self._answer(tree if tree is not None else _target(st))
+            return await self._answer(bound if bound is not None else _target(st))
         if isinstance(st, ExplainStatement):
-            answer = await self._explain(st, tree)
+            answer = await self._explain(st, bound)
             return Outcome(types.ResultShape.of(answer.columns), list(answer.rows), "EXPLAIN")
         if isinstance(st, SetStatement):
             return self._set(st)
@@ -623,14 +627,14 @@ class Session:
             return Outcome(None, tag=st.tag)
         raise TypeError(f"unhandled statement {type(st).__name__}")
 
-    async def _explain(self, st: ExplainStatement, tree: exp.Expression | None) -> Answer:
-        """The engine's EXPLAIN of ``st`` (of its bound tree when given); plans and charges
+    async def _explain(self, st: ExplainStatement, bound: BoundStatement | None) -> Answer:
+        """The engine's EXPLAIN of ``st`` (with its values when given); plans and charges
         nothing."""
-        target = tree if tree is not None else _target(st.query)
+        target = bound if bound is not None else _target(st.query)
         return await self._blocking(self.engine.explain, self.analyst, target,
                                     epsilon=self._epsilon(), form=st.format)
 
-    async def _answer(self, target: str | exp.Expression) -> Outcome:
+    async def _answer(self, target: str | exp.Expression | BoundStatement) -> Outcome:
         epsilon = self._epsilon()
         try:
             answer = await self._controlled(self.engine.answer, self.analyst, target,
@@ -816,6 +820,17 @@ class Session:
         if key == settings.EPSILON and not self.values[key]:
             return format(self.engine.default_epsilon, "f")
         return self.values[key]
+
+
+def _bound(prepared: Prepared, values: Sequence[Any]) -> BoundStatement | None:
+    """The statement with its values for the engine, or None when it takes its text (no
+    parameters, or a catalog statement, which binds its values itself)."""
+    if prepared.folded is None:
+        return None
+    st = prepared.statement
+    query = st.query if isinstance(st, ExplainStatement) else st
+    assert isinstance(query, QueryStatement)
+    return statements.bound(query.text, prepared.folded, values, prepared.param_types)
 
 
 def _target(st: QueryStatement) -> str | exp.Expression:

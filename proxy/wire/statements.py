@@ -20,8 +20,10 @@ import sqlglot
 from sqlglot import exp
 from sqlglot.errors import ParseError, TokenError
 
-from proxy.errors import FEATURE_NOT_SUPPORTED, SYNTAX_ERROR, UNDEFINED_PARAMETER, HushError
+from proxy.errors import FEATURE_NOT_SUPPORTED, SYNTAX_ERROR, HushError
 from proxy.sql.filters import mark_written_names
+from proxy.sql.statement import BoundStatement
+from proxy.sql.statement import slot_index as _index
 from proxy.wire import types
 from proxy.wire.cache import SizedCache
 from proxy.wire.states import TxEvent
@@ -681,16 +683,6 @@ def only_statement(statements: tuple[Statement, ...]) -> Statement:
 # --------------------------------------------------------------------------- parameters
 
 
-def _index(node: exp.Expression) -> int | None:
-    """The n of a $n node, or None for other nodes."""
-    if isinstance(node, (exp.Parameter, exp.Placeholder)):
-        inner = node.this
-        text = inner.name if isinstance(inner, exp.Expression) else str(inner or "")
-        if text.isdigit():
-            return int(text)
-    return None
-
-
 def parameter_count(tree: exp.Expression | None) -> int:
     """The highest $n in a tree (0 when it has none)."""
     if tree is None:
@@ -737,31 +729,37 @@ def infer_parameter_types(tree: exp.Expression | None, declared: Sequence[int],
     return tuple(out)
 
 
-def bind(tree: exp.Expression, values: Sequence[Any], param_types: Sequence[int]
-         ) -> exp.Expression:
-    """A copy of the tree with every $n replaced by the literal node of values[n-1].
-
-    The values are never turned into SQL text here: they become nodes (see types.literal). A
-    cast of a parameter to the very type it was decoded as (``$1::int``) is replaced whole by
-    the literal, since the literal already has that type.
-    """
-    literals = [types.literal(v, i + 1) for i, v in enumerate(values)]
-
-    def literal_for(i: int) -> exp.Expression:
-        if not 1 <= i <= len(literals):
-            raise HushError(UNDEFINED_PARAMETER, f"there is no parameter ${i}")
-        return literals[i - 1].copy()
-
-    def replace(node: exp.Expression) -> exp.Expression:
+def fold_casts(tree: exp.Expression, param_types: Sequence[int]) -> exp.Expression:
+    """A copy of the tree in which a cast of ``$n`` to the very type it is decoded as
+    (``$1::int`` with $1 an int4) is ``$n`` alone: its literal will already have that type.
+    Done once per Parse; each Execute binds into the result (``bound``)."""
+    def fold(node: exp.Expression) -> exp.Expression:
         if isinstance(node, exp.Cast) and not node.to.expressions:
             i = _index(node.this)
             if i is not None and i <= len(param_types) \
                     and types.oid_of_sqlglot(node.to) == param_types[i - 1]:
-                return literal_for(i)
-        i = _index(node)
-        return node if i is None else literal_for(i)
+                return node.this.copy()
+        return node
 
-    return tree.transform(replace)
+    return tree.transform(fold)
+
+
+def bound(text: str, folded: exp.Expression, values: Sequence[Any],
+          param_types: Sequence[int]) -> BoundStatement:
+    """One Execute's statement: the folded tree of ``text`` and each value's literal node.
+
+    The values are never turned into SQL text here: they become nodes (see types.literal),
+    put in place of their ``$n`` when the engine plans (``BoundStatement.substituted``).
+    """
+    literals = tuple(types.literal(v, i + 1) for i, v in enumerate(values))
+    return BoundStatement(text, folded, tuple(values), literals, tuple(param_types))
+
+
+def bind(tree: exp.Expression, values: Sequence[Any], param_types: Sequence[int]
+         ) -> exp.Expression:
+    """A copy of the tree with every $n replaced by the literal node of values[n-1] (a cast of
+    a parameter to its own decoded type replaced whole by the literal)."""
+    return bound("", fold_casts(tree, param_types), values, param_types).substituted()
 
 
 _STAND_INS: dict[int, Any] = {
