@@ -30,7 +30,6 @@ import os
 import re
 import shutil
 import statistics
-import subprocess
 import sys
 import tempfile
 import time
@@ -49,11 +48,10 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.bench_wire import drop_catalog_mirrors  # noqa: E402
-from benchmarks.common import BENCH_PASSWORD, generous_policies  # noqa: E402
+from benchmarks.common import BENCH_PASSWORD, generous_policies, serve  # noqa: E402
 
 from proxy.demo import load_scenario  # noqa: E402
 from proxy.dsn import with_database  # noqa: E402
-from proxy.localpg import free_port  # noqa: E402
 from proxy.wire.workers import default_workers  # noqa: E402
 
 RESEARCHER_BUDGET = "2.0"  # 20 answers at 0.1, then 53400
@@ -70,6 +68,7 @@ class ClientCounts:
     """What one client saw: latencies of answers (s), outcomes by SQLSTATE ("ok" for answers)."""
 
     analyst: str
+    fresh: bool = False  # SET hushql.fresh = on was accepted: no answer is a stored one
     latencies: list[float] = field(default_factory=list)
     outcomes: collections.Counter[str] = field(default_factory=collections.Counter)
 
@@ -90,6 +89,12 @@ async def _client(host: str, port: int, database: str, analyst: str, password: s
     conn = await asyncpg.connect(host=host, port=port, user=analyst, password=password,
                                  database=database, ssl=False, timeout=60)
     try:
+        if mixed:  # every answer planned, charged and noised, even where answers are stored
+            try:
+                await conn.execute("SET hushql.fresh = on")
+                counts.fresh = True
+            except asyncpg.PostgresError:
+                pass  # a build without stored answers: every answer is fresh anyway
         n = index
         while time.monotonic() < stop_at:
             kind = MIX[n % len(MIX)] if mixed else "accepted"
@@ -140,19 +145,6 @@ def _books(dsn: str) -> dict[str, tuple[Decimal, int, int]]:
     return {a: (spent, n, failed) for a, spent, n, failed in rows}
 
 
-def _wait_for_proxy(port: int, password: str, proxy: subprocess.Popen[bytes]) -> None:
-    deadline = time.monotonic() + 60
-    while True:
-        try:
-            psycopg.connect(host="127.0.0.1", port=port, user="planner", password=password,
-                            dbname="hushql_demo", connect_timeout=2).close()
-            return
-        except psycopg.OperationalError:
-            if proxy.poll() is not None or time.monotonic() > deadline:
-                raise SystemExit("the proxy did not start") from None
-            time.sleep(0.2)
-
-
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--backend", default=os.environ.get("HUSHQL_TEST_DSN"),
@@ -176,14 +168,8 @@ def main() -> int:
     proxy = None
     try:
         load_scenario(dsn, households=args.households, progress=False)
-        port = free_port()
-        with open(folder / "serve.log", "wb") as log:
-            proxy = subprocess.Popen(
-                [sys.executable, "-m", "proxy.cli", "serve", "--workers", str(args.workers),
-                 "--policies", str(policies), "--backend", dsn, "--listen",
-                 f"127.0.0.1:{port}", "--pool-size", str(args.pool_size)],
-                cwd=ROOT, stderr=log, stdout=subprocess.DEVNULL)
-        _wait_for_proxy(port, BENCH_PASSWORD, proxy)
+        proxy, port = serve(policies, dsn, folder / "serve.log", workers=args.workers,
+                            pool_size=args.pool_size)
         analysts = [("planner", BENCH_PASSWORD), ("researcher", BENCH_PASSWORD)]
         started = time.monotonic()
         through = asyncio.run(_run("127.0.0.1", port, "hushql_demo", args.clients, args.seconds, True,
@@ -227,6 +213,16 @@ def _report(console: Console, args: argparse.Namespace, through: list[ClientCoun
                       f"{1000 * _percentile(latencies, 0.95):.2f}",
                       f"{1000 * _percentile(latencies, 0.99):.2f}", str(outcomes["ok"]), errors)
     console.print(table)
+    through_ok = [x for c in through for x in c.latencies]
+    direct_ok = [x for c in direct for x in c.latencies]
+    if through_ok and direct_ok:
+        console.print(f"median added latency: "
+                      f"{1000 * (statistics.median(through_ok) - statistics.median(direct_ok)):.2f}"
+                      f" ms; load average now {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores")
+    console.print("every answer noised and charged: " + (
+        "SET hushql.fresh = on in every session" if all(c.fresh for c in through) else
+        "this build stores no answers (hushql.fresh unknown)" if not any(c.fresh for c in through)
+        else "MIXED: some sessions could not set hushql.fresh"))
     ok = True
     ledger = Table("analyst", "answers seen", "charge rows", "failed/cancelled rows",
                    "spent (ledger)", "answers x 0.1", "books", title="ledger against the clients")

@@ -26,7 +26,6 @@ import argparse
 import os
 import shutil
 import statistics
-import subprocess
 import sys
 import tempfile
 import time
@@ -40,12 +39,11 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.bench_wire import drop_catalog_mirrors  # noqa: E402
-from benchmarks.common import BENCH_PASSWORD, generous_policies  # noqa: E402
+from benchmarks.common import BENCH_PASSWORD, generous_policies, serve  # noqa: E402
 
 from proxy.demo import load_scenario  # noqa: E402
 from proxy.dsn import with_database  # noqa: E402
 from proxy.engine import Engine  # noqa: E402
-from proxy.localpg import free_port  # noqa: E402
 from proxy.policy import load_policies  # noqa: E402
 from proxy.wire import statements, types  # noqa: E402
 
@@ -136,22 +134,7 @@ def main() -> int:
             analysis(engine, args.executions)
         finally:
             engine.close()
-        port = free_port()
-        with open(folder / "serve.log", "wb") as log:
-            proxy = subprocess.Popen(
-                [sys.executable, "-m", "proxy.cli", "serve", "--workers", "1", "--policies",
-                 str(policies), "--backend", dsn, "--listen", f"127.0.0.1:{port}",
-                 "--pool-size", "4"], cwd=ROOT, stderr=log, stdout=subprocess.DEVNULL)
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                psycopg.connect(host="127.0.0.1", port=port, user=ANALYST,
-                                password=BENCH_PASSWORD, dbname="hushql_demo").close()
-                break
-            except psycopg.OperationalError:
-                if proxy.poll() is not None or time.monotonic() > deadline:
-                    raise SystemExit("the proxy did not start; see its log") from None
-                time.sleep(0.2)
+        proxy, port = serve(policies, dsn, folder / "serve.log", pool_size=4)
         wire(port, dsn, args.executions)
     finally:
         if proxy is not None:

@@ -42,3 +42,33 @@ def median_ms(action: Callable[[], object], repeat: int, warmup: int = 2) -> flo
         action()
         times.append((time.perf_counter() - start) * 1000)
     return statistics.median(times)
+
+
+def serve(policies: Path, dsn: str, log: Path, *, workers: int = 1, pool_size: int = 8
+          ) -> tuple["subprocess.Popen[bytes]", int]:
+    """``hushql serve`` on a free port with ``policies`` over ``dsn``, its stderr in ``log``;
+    returns the process and the port once the planner can log in (SystemExit after 60 s)."""
+    import subprocess
+    import sys
+
+    import psycopg
+
+    from proxy.localpg import free_port
+
+    port = free_port()
+    with open(log, "wb") as out:
+        proxy = subprocess.Popen(
+            [sys.executable, "-m", "proxy.cli", "serve", "--workers", str(workers), "--policies",
+             str(policies), "--backend", dsn, "--listen", f"127.0.0.1:{port}", "--pool-size",
+             str(pool_size)], cwd=ROOT, stderr=out, stdout=subprocess.DEVNULL)
+    deadline = time.monotonic() + 60
+    while True:
+        try:
+            psycopg.connect(host="127.0.0.1", port=port, user="planner", password=BENCH_PASSWORD,
+                            dbname="hushql_demo", connect_timeout=2).close()
+            return proxy, port
+        except psycopg.OperationalError:
+            if proxy.poll() is not None or time.monotonic() > deadline:
+                proxy.kill()
+                raise SystemExit(f"the proxy did not start; its log: {log}") from None
+            time.sleep(0.2)

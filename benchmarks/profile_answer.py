@@ -33,11 +33,10 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.bench_wire import drop_catalog_mirrors  # noqa: E402
-from benchmarks.common import BENCH_PASSWORD, generous_policies  # noqa: E402
+from benchmarks.common import BENCH_PASSWORD, generous_policies, serve  # noqa: E402
 
 from proxy.demo import load_scenario  # noqa: E402
 from proxy.dsn import with_database  # noqa: E402
-from proxy.localpg import free_port  # noqa: E402
 
 
 def cpu_seconds(pid: int) -> float:
@@ -118,23 +117,7 @@ def main() -> int:
     proxy = None
     try:
         load_scenario(dsn, households=3000, progress=False)
-        port = free_port()
-        log = open(folder / "serve.log", "wb")
-        proxy = subprocess.Popen(
-            [sys.executable, "-m", "proxy.cli", "serve", "--workers", "1",
-             "--policies", str(generous_policies(folder)), "--backend", dsn,
-             "--listen", f"127.0.0.1:{port}", "--pool-size", "8"],
-            cwd=ROOT, stderr=log, stdout=subprocess.DEVNULL)
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                psycopg.connect(host="127.0.0.1", port=port, user="planner",
-                                password=BENCH_PASSWORD, dbname="hushql_demo").close()
-                break
-            except psycopg.OperationalError:
-                if proxy.poll() is not None or time.monotonic() > deadline:
-                    raise SystemExit("the proxy did not start") from None
-                time.sleep(0.2)
+        proxy, port = serve(generous_policies(folder), dsn, folder / "serve.log", pool_size=8)
         load(port, args.clients, 2.0)  # warm the plan cache and the pools
         raw = args.raw or folder / "profile.txt"
         sampler = subprocess.Popen(
