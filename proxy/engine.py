@@ -346,7 +346,10 @@ class Engine:
         late = self._late.get(statement_key)
         if late is None:
             late = slots.late_slots(bound.tree, self.policies)
-            self._late[statement_key] = late
+            with self._cache_lock:
+                if len(self._late) >= 4 * self._cache_size:  # bounded like the plans
+                    self._late.clear()
+                self._late[statement_key] = late
         key = self._bound_key(analyst, bound, late)
         used = frozenset(slot for slot in late if key[3][slot - 1][0] == "late")
         fresh = self._plan(analyst, bound.substituted())  # the real refusal, if any
