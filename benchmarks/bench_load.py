@@ -22,7 +22,8 @@ stored one: each is planned, charged and noised (the output says which held).
 Then the same accepted query straight to PostgreSQL, with as many clients for as long, for the
 ratio. It prints throughput, latency percentiles, answers by SQLSTATE, and the ledger's totals
 checked against the clients' own counts: every answer a client received must have a charge row,
-and every charge row an answer (or an error the client saw after its charge). Nothing is
+and every charge row an answer (or an error the client saw after its charge); and where one
+answer's time goes, step by step, in this process (``--no-stages`` skips it). Nothing is
 asserted about speed; a mismatch in the books exits 1.
 """
 
@@ -160,6 +161,8 @@ def main() -> int:
     parser.add_argument("--workers", type=int, default=default_workers())
     parser.add_argument("--pool-size", type=int, default=16)
     parser.add_argument("--households", type=int, default=3000)
+    parser.add_argument("--no-stages", dest="stages", action="store_false",
+                        help="skip the breakdown of one answer's time into its steps")
     parser.add_argument("--mix", choices=("mixed", "accepted"), default="mixed",
                         help="mixed: the mix above from two analysts; accepted: only the accepted "
                              "count, all as the planner (the throughput of answers alone)")
@@ -194,6 +197,7 @@ def main() -> int:
         direct_elapsed = time.monotonic() - direct_started
         time.sleep(1.0)  # outcomes of the last answers are noted off the answer path
         books = _books(dsn)
+        stages = _stages(policies, dsn) if args.stages else []
     finally:
         if proxy is not None:
             proxy.terminate()
@@ -203,7 +207,47 @@ def main() -> int:
             conn.execute(sql.SQL("DROP DATABASE IF EXISTS {} WITH (FORCE)").format(
                 sql.Identifier(name)))
         shutil.rmtree(folder, ignore_errors=True)
+    for line in stages:
+        console.print(line)
     return _report(console, args, through, elapsed, direct, direct_elapsed, books)
+
+
+def _stages(policies: Path, dsn: str, repeat: int = 200) -> list[str]:
+    """Where one answer's time goes, one at a time in this process (its own ledger schema, so
+    the books above are untouched): median ms of each step of ``Engine.answer``."""
+    from benchmarks.common import median_ms
+    from proxy.backend import Backend
+    from proxy.engine import Engine, _bound_settings, epsilon_split
+    from proxy.ledger import Ledger
+    from proxy.policy import load_policies
+
+    engine = Engine(load_policies(policies), Backend(dsn, pool_size=2),
+                    Ledger(dsn, schema="hushql_stages", pool_size=2))
+    try:
+        text = ACCEPTED.format(k=3)
+        prepared = engine.prepare("planner", text)
+        split = epsilon_split(prepared.rewritten, len(prepared.plan.measures), EPSILON)
+        settings = _bound_settings(prepared.rewritten, split)
+        rows = engine.backend.run(prepared.rewritten.sql, None, settings)
+        with psycopg.connect(dsn, autocommit=True) as conn:
+            direct = median_ms(lambda: conn.execute(DIRECT.format(k=3)).fetchall(), repeat)
+        figures = [
+            ("the plain query straight to PostgreSQL", direct),
+            ("plan (cached)", median_ms(lambda: engine.prepare("planner", text), repeat)),
+            ("reserve: the durable charge (ledger commit)", median_ms(
+                lambda: engine.ledger.reserve("planner", ["households"], EPSILON, text,
+                                              prepared.fingerprint), repeat)),
+            ("run: the rewritten query on PostgreSQL", median_ms(
+                lambda: engine.backend.run(prepared.rewritten.sql, None, settings), repeat)),
+            ("noise and release", median_ms(
+                lambda: engine._release(prepared, EPSILON, split, rows, 0), repeat)),
+            ("the whole answer (Engine.answer, no wire)", median_ms(
+                lambda: engine.answer("planner", text), repeat)),
+        ]
+    finally:
+        engine.close()
+    return ["where one answer's time goes (one at a time, median ms):"] + [
+        f"  {label:<46} {ms:8.3f}" for label, ms in figures]
 
 
 def _report(console: Console, args: argparse.Namespace, through: list[ClientCounts],
