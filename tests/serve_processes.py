@@ -147,11 +147,15 @@ def policies_with_budgets(folder: Path, *, planner: str, households_cap: str) ->
                   "most_logins_in_progress_per_address = 128", text)
     text = re.sub(r"(?m)^most_logins_in_progress = \d+", "most_logins_in_progress = 256", text)
     text = re.sub(r"(?m)^login_timeout_seconds = \d+", "login_timeout_seconds = 60", text)
+    # A login takes its failed-login token when it starts (given back on success), so logins in
+    # progress at once from one address count against this allowance too.
+    text = re.sub(r"(?m)^failed_logins_allowed = \d+", "failed_logins_allowed = 256", text)
     access.write_text(text.replace("budget = 3.0 ", f"budget = {planner} ", 1))
     households = target / "tables" / "households.toml"
     text = households.read_text()
     households.write_text(text.replace("cap = 20.0 ", f"cap = {households_cap} ", 1))
     assert f"budget = {planner} " in access.read_text()
+    assert "failed_logins_allowed = 256" in access.read_text()
     assert f"cap = {households_cap} " in households.read_text()
     return target
 
