@@ -258,7 +258,7 @@ class Engine:
                     self._cache.move_to_end(key)
                     return cached
         plan = analyse(statement, self.policies, analyst)
-        rewritten = rewrite(plan, self._exact_columns(plan.table.table))
+        rewritten = rewrite(plan, self._plan_exact_columns(plan))
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         prepared = Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                             fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16])
@@ -271,6 +271,14 @@ class Engine:
                                        or self._cache_weight > self._cache_bytes):
                     self._cache_weight -= _plan_bytes(self._cache.popitem(last=False)[1])
         return prepared
+
+    def _plan_exact_columns(self, plan: Plan) -> frozenset[str]:
+        """The plan's columns summed exactly: of its table, or of the joined tables under the
+        names the plan gives them."""
+        if not plan.joins:
+            return self._exact_columns(plan.table.table)
+        return frozenset(name for join in plan.joins for name, own in join.columns
+                         if own in self._exact_columns(join.table.table))
 
     def _exact_columns(self, table: str) -> frozenset[str]:
         """Number columns of ``table`` whose backend type is numeric (summed exactly); looked up
@@ -378,7 +386,7 @@ class Engine:
         eps = self.epsilon_for(epsilon)
         plan = prepared.plan
         text = statement if isinstance(statement, str) else statement.sql(dialect="postgres")
-        charge, remaining = self.ledger.reserve(analyst, [plan.table.table], eps, text,
+        charge, remaining = self.ledger.reserve(analyst, _charged_tables(plan), eps, text,
                                                 prepared.fingerprint)
         outcome = "failed"
         steady = _steady_ms(plan)
@@ -494,8 +502,14 @@ class Engine:
         return Answer(columns=[OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs],
                       rows=postprocess(plan, rows), epsilon=epsilon,
                       remaining=Decimal(0), accuracy=accuracy,
-                      tables=[plan.table.table], charge_id=charge,
+                      tables=_charged_tables(plan), charge_id=charge,
                       notes=_answer_notes(plan, rewritten, values))
+
+
+def _charged_tables(plan: Plan) -> list[str]:
+    """The tables a query's charge names: every table it reads but public ones (they protect
+    nobody); the ledger charges their populations once each."""
+    return [t.table for t in plan.tables if not t.public]
 
 
 def _plan_bytes(prepared: Prepared) -> int:

@@ -1,0 +1,297 @@
+"""Joins that keep the protected unit (proxy.sql.joins, and "Joins" in proxy.sql.rewrite).
+
+On the invented clinic (tests/policy_fixtures.py) plus three policies of this module's own:
+``residents`` (clinic.people protected per person, most_rows 1, the population of visits),
+``wards`` (a public lookup table keyed by ward) and ``staff`` (clinic.people as another
+population). Checked: each accepted shape's noise-free answer against PostgreSQL's own answer
+to the same question; removing one person from both tables moves each measure by at most its
+sensitivity; refusals with their SQLSTATE.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import psycopg
+import pytest
+
+from proxy.errors import HushError
+from proxy.policy import load_policies
+from proxy.sql.analyse import analyse
+from proxy.sql.rewrite import rewrite
+from tests.bounds_helpers import run_with_bounds
+from tests.policy_fixtures import load_clinic, write_policies
+
+RESIDENTS = """
+table = "residents"
+source = "clinic.people"
+
+[individual]
+column = "person_id"
+population = "people"
+most_rows = 1
+
+[columns.person_id]
+kind = "integer"
+range = [1, 100000]
+
+[columns.ward]
+kind = "category"
+values = ["north", "south", "east"]
+
+[columns.age]
+kind = "integer"
+range = [0, 100]
+
+[columns.smoker]
+kind = "boolean"
+"""
+
+STAFF = RESIDENTS.replace('table = "residents"', 'table = "staff"').replace(
+    'population = "people"', 'population = "staff"')
+
+WARDS = """
+table = "wards"
+source = "clinic.wards"
+public = true
+key = "ward"
+
+[columns.ward]
+kind = "category"
+values = ["north", "south", "east", "west"]
+
+[columns.region]
+kind = "category"
+values = ["upper", "lower"]
+
+[columns.rate]
+kind = "number"
+range = [0, 10]
+step = 0.5
+"""
+
+
+def write_join_policies(root) -> None:
+    write_policies(root, most_rows=10)
+    for name, text in [("residents", RESIDENTS), ("staff", STAFF), ("wards", WARDS)]:
+        (root / "tables" / f"{name}.toml").write_text(text)
+    access = (root / "access.toml").read_text()
+    (root / "access.toml").write_text(access.replace(
+        'tables = ["people", "visits"]',
+        'tables = ["people", "visits", "residents", "staff", "wards"]').replace(
+        'tables = []', 'tables = ["visits"]'))
+
+
+def load_wards(dsn: str) -> None:
+    with psycopg.connect(dsn, autocommit=True) as conn:
+        conn.execute("CREATE TABLE clinic.wards (ward text, region text, rate numeric)")
+        conn.execute("INSERT INTO clinic.wards VALUES ('north', 'upper', 1.5), "
+                     "('south', 'lower', 2.0), ('east', 'upper', 3.5), ('west', 'lower', 1.0)")
+
+
+@pytest.fixture(scope="module")
+def clinic(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
+    load_clinic(module_dsn, people=600)
+    load_wards(module_dsn)
+    root = tmp_path_factory.mktemp("policies")
+    write_join_policies(root)
+    with psycopg.connect(module_dsn) as conn:
+        yield conn, load_policies(root)
+
+
+def noise_free(conn, policies, sql: str, values: tuple[int, ...] | None = None) -> list[list[int]]:
+    """Per cell, the measures (in the plan's order) with the bounds at ``values`` (default:
+    the ceilings, which no clinic person exceeds: at most 9 visits of one person)."""
+    plan = analyse(sql, policies, "tester")
+    rewritten = rewrite(plan, frozenset())
+    rows = run_with_bounds(conn, rewritten, values)
+    keys = len(plan.keys)
+    return [[int(v) for v in row[keys:keys + len(plan.measures)]] for row in rows]
+
+
+WARD_CELLS = "(VALUES (0, 'north'), (1, 'south'), (2, 'east')) AS d(i, v)"
+CLAMPED_MINUTES = "CASE WHEN v.minutes < 0 THEN 0 WHEN v.minutes > 60 THEN 60 ELSE v.minutes END"
+FEE_UNITS = "round(CASE WHEN v.fee < 0 THEN 0 WHEN v.fee > 50 THEN 50 ELSE v.fee END / 0.25)"
+
+# (the analyst's query, PostgreSQL's own answer: one row per declared cell, measures in order)
+CASES = [
+    # Same population, grouped by a column of the one-row-per-person table.
+    ("SELECT r.ward, COUNT(*), SUM(v.minutes) FROM visits v "
+     "JOIN residents r ON r.person_id = v.person_id GROUP BY r.ward",
+     f"SELECT (SELECT count(*) FROM clinic.visits v JOIN clinic.people p ON p.person_id = v.person_id "
+     f"WHERE p.ward = d.v), (SELECT coalesce(sum({CLAMPED_MINUTES}), 0) FROM clinic.visits v "
+     f"JOIN clinic.people p ON p.person_id = v.person_id WHERE p.ward = d.v) "
+     f"FROM {WARD_CELLS} ORDER BY d.i"),
+    # USING, a filter on each table, AVG (sum and count of values), COUNT(DISTINCT individual).
+    ("SELECT AVG(fee), COUNT(DISTINCT person_id) FROM residents JOIN visits USING (person_id) "
+     "WHERE smoker AND minutes > 10",
+     f"SELECT coalesce(sum({FEE_UNITS}), 0), count(v.fee), count(DISTINCT v.person_id) "
+     "FROM clinic.visits v JOIN clinic.people p ON p.person_id = v.person_id "
+     "WHERE p.smoker AND v.minutes > 10"),
+    # A public lookup: grouped by its column, joined on its key to the visits' ward.
+    ("SELECT w.region, COUNT(*) FROM visits v JOIN wards w ON w.ward = v.ward GROUP BY w.region",
+     "SELECT (SELECT count(*) FROM clinic.visits v JOIN clinic.wards w ON w.ward = v.ward "
+     "WHERE w.region = r.v) FROM (VALUES (0, 'upper'), (1, 'lower')) AS r(i, v) ORDER BY r.i"),
+    # Three tables: same population, then a public table joined to the residents' ward,
+    # filtered by a public column.
+    ("SELECT v.ward, COUNT(*) FROM visits v JOIN residents r ON v.person_id = r.person_id "
+     "JOIN wards w ON w.ward = r.ward WHERE w.rate >= 2 GROUP BY v.ward",
+     "SELECT (SELECT count(*) FROM clinic.visits v JOIN clinic.people p ON p.person_id = v.person_id "
+     f"JOIN clinic.wards w ON w.ward = p.ward WHERE w.rate >= 2 AND v.ward = d.v) "
+     f"FROM {WARD_CELLS} ORDER BY d.i"),
+    # A semi-join: visits of people aged over 40, the inner WHERE checked like any other.
+    ("SELECT ward, COUNT(*) FROM visits "
+     "WHERE person_id IN (SELECT person_id FROM residents WHERE age > 40) AND minutes < 30 "
+     "GROUP BY ward",
+     "SELECT (SELECT count(*) FROM clinic.visits v WHERE v.ward = d.v AND v.minutes < 30 AND "
+     f"v.person_id IN (SELECT person_id FROM clinic.people WHERE age > 40)) "
+     f"FROM {WARD_CELLS} ORDER BY d.i"),
+]
+
+
+@pytest.mark.parametrize("query, expected", CASES, ids=[c[0][:60] for c in CASES])
+def test_joined_answers_match_postgresql(clinic, query: str, expected: str) -> None:
+    conn, policies = clinic
+    want = [[int(v) for v in row] for row in conn.execute(expected).fetchall()]
+    assert noise_free(conn, policies, query) == want
+    assert any(any(row) for row in want)  # the comparison is not between empty answers
+
+
+def test_a_repeated_public_key_joins_nothing(clinic) -> None:
+    """A key value that repeats in the public table would count a row twice: it is dropped."""
+    conn, policies = clinic
+    query = "SELECT w.region, COUNT(*) FROM visits v JOIN wards w ON w.ward = v.ward GROUP BY w.region"
+    before = noise_free(conn, policies, query)
+    with conn.transaction(force_rollback=True):
+        conn.execute("INSERT INTO clinic.wards VALUES ('north', 'lower', 9)")
+        after = noise_free(conn, policies, query)
+        north = conn.execute("SELECT count(*) FROM clinic.visits WHERE ward = 'north'").fetchone()[0]
+    assert north > 0
+    # north's visits were counted under 'upper'; now they meet two rows and are not counted.
+    assert after == [[before[0][0] - north], before[1]]
+
+
+NEIGHBOUR_QUERIES = [
+    "SELECT r.ward, COUNT(*), SUM(v.minutes), COUNT(DISTINCT v.person_id) FROM visits v "
+    "JOIN residents r ON r.person_id = v.person_id GROUP BY r.ward",
+    "SELECT r.smoker, v.ward, AVG(v.fee) FROM visits v JOIN residents r ON r.person_id = v.person_id "
+    "JOIN wards w ON w.ward = v.ward WHERE w.region = 'upper' GROUP BY r.smoker, v.ward",
+    "SELECT ward, COUNT(*), SUM(minutes) FROM visits "
+    "WHERE person_id IN (SELECT person_id FROM residents WHERE NOT smoker) GROUP BY ward",
+]
+
+
+@pytest.mark.parametrize("sql", NEIGHBOUR_QUERIES, ids=[q[:50] for q in NEIGHBOUR_QUERIES])
+def test_removing_one_person_from_both_tables_moves_each_measure_at_most_its_sensitivity(
+        clinic, sql: str) -> None:
+    conn, policies = clinic
+    plan = analyse(sql, policies, "tester")
+    rewritten = rewrite(plan, frozenset())
+    # The rows bound's ceiling is the product of most_rows (visits 10, residents 1).
+    assert [b.ceiling for b in rewritten.bounds if b.subject == "rows"] == [10]
+    keys, measures = len(plan.keys), len(plan.measures)
+    people = [row[0] for row in conn.execute(
+        "SELECT person_id FROM clinic.visits GROUP BY 1 ORDER BY count(*) DESC, 1 LIMIT 5")] + [3, 50, 301]
+    ceilings = tuple(b.ceiling for b in rewritten.bounds)
+    small = tuple(min(b.candidates, key=lambda c: abs(3 * c - b.ceiling)) for b in rewritten.bounds)
+    for values in (ceilings, small):
+        full = run_with_bounds(conn, rewritten, values)
+        sensitivities = rewritten.sensitivities(values)
+        largest = [0] * measures
+        for person in people:
+            with conn.transaction(force_rollback=True):
+                # Neighbours: the person's rows leave every table of the population.
+                conn.execute("DELETE FROM clinic.visits WHERE person_id = %s", (person,))
+                conn.execute("DELETE FROM clinic.people WHERE person_id = %s", (person,))
+                without = run_with_bounds(conn, rewritten, values)
+            for n in range(measures):
+                move = sum(abs(int(a[keys + n]) - int(b[keys + n])) for a, b in zip(full, without))
+                assert move <= sensitivities[n], (person, plan.measures[n], values)
+                largest[n] = max(largest[n], move)
+        assert all(m > 0 for m in largest), (largest, values)  # the check can fail
+
+
+def test_neighbour_check_fails_on_a_join_that_mixes_individuals(clinic) -> None:
+    """The same check catches a broken rewrite: joining visits to people on ward (not on the
+    individual) makes one person's removal move the count by far more than the bound."""
+    conn, policies = clinic
+    rewritten = rewrite(analyse(NEIGHBOUR_QUERIES[0], policies, "tester"), frozenset())
+    broken = rewritten.sql.replace('ON t1."person_id" = t0."person_id"', 'ON t1."ward" = t0."ward"')
+    assert broken != rewritten.sql
+    broken_rewrite = dataclasses.replace(rewritten, sql=broken)
+    values = tuple(b.ceiling for b in rewritten.bounds)
+    full = run_with_bounds(conn, broken_rewrite, values)
+    with conn.transaction(force_rollback=True):
+        conn.execute("DELETE FROM clinic.visits WHERE person_id = 3")
+        conn.execute("DELETE FROM clinic.people WHERE person_id = 3")
+        without = run_with_bounds(conn, broken_rewrite, values)
+    move = sum(abs(int(a[1]) - int(b[1])) for a, b in zip(full, without))
+    assert move > rewritten.sensitivities(values)[0]
+
+
+REFUSALS = [
+    ("SELECT COUNT(*) FROM visits v LEFT JOIN residents r ON r.person_id = v.person_id", "0A000"),
+    ("SELECT COUNT(*) FROM visits v FULL JOIN residents r ON r.person_id = v.person_id", "0A000"),
+    ("SELECT COUNT(*) FROM visits v CROSS JOIN residents r", "0A000"),
+    ("SELECT COUNT(*) FROM visits v, residents r", "0A000"),
+    ("SELECT COUNT(*) FROM visits v NATURAL JOIN residents r", "0A000"),
+    ("SELECT COUNT(*) FROM visits v JOIN residents r ON r.ward = v.ward", "0A000"),
+    ("SELECT COUNT(*) FROM visits v JOIN residents r ON r.person_id = v.person_id "
+     "AND r.ward = v.ward", "0A000"),
+    ("SELECT COUNT(*) FROM visits v JOIN residents r ON r.person_id > v.person_id", "0A000"),
+    ("SELECT COUNT(*) FROM visits a JOIN visits b ON a.person_id = b.person_id", "0A000"),
+    ("SELECT COUNT(*) FROM visits v JOIN staff s ON s.person_id = v.person_id", "0A000"),
+    ("SELECT COUNT(*) FROM visits v JOIN people p ON p.person_id = v.person_id", "0A000"),
+    ("SELECT COUNT(*) FROM visits v JOIN wards w ON w.region = v.ward", "0A000"),
+    ("SELECT COUNT(*) FROM visits v JOIN (SELECT * FROM residents) r ON r.person_id = v.person_id",
+     "0A000"),
+    ("SELECT COUNT(*) FROM residents r JOIN wards w ON w.ward = r.ward "
+     "JOIN visits v ON v.ward = w.ward", "0A000"),
+    ("SELECT COUNT(*) FROM wards", "0A000"),
+    ("SELECT COUNT(*) FROM visits v JOIN residents r ON r.person_id = v.person_id "
+     "WHERE ward = 'north'", "42702"),
+    ("SELECT COUNT(*) FROM visits v JOIN residents r ON r.person_id = v.person_id "
+     "WHERE x.ward = 'north'", "42P01"),
+    ("SELECT COUNT(*) FROM visits v JOIN nowhere n ON n.person_id = v.person_id", "42P01"),
+    ("SELECT COUNT(*) FROM visits WHERE ward IN (SELECT ward FROM residents)", "0A000"),
+    ("SELECT COUNT(*) FROM visits WHERE person_id IN (SELECT person_id FROM staff)", "0A000"),
+    ("SELECT COUNT(*) FROM visits WHERE person_id IN (SELECT person_id FROM people)", "0A000"),
+    ("SELECT COUNT(*) FROM visits WHERE person_id IN "
+     "(SELECT person_id FROM residents WHERE age / 0 > 1)", "0A000"),
+    ("SELECT COUNT(*) FROM visits WHERE person_id IN "
+     "(SELECT person_id FROM residents GROUP BY person_id)", "0A000"),
+    ("SELECT COUNT(*) FROM visits WHERE minutes > 3 OR person_id IN "
+     "(SELECT person_id FROM residents)", "0A000"),
+    ("SELECT COUNT(*) FROM visits WHERE person_id NOT IN (SELECT person_id FROM residents)", "0A000"),
+]
+
+
+@pytest.mark.parametrize("sql, sqlstate", REFUSALS, ids=[r[0][22:80] for r in REFUSALS])
+def test_other_joins_are_refused_with_a_hint(clinic, sql: str, sqlstate: str) -> None:
+    _, policies = clinic
+    with pytest.raises(HushError) as caught:
+        analyse(sql, policies, "tester")
+    assert caught.value.sqlstate == sqlstate, caught.value
+    assert caught.value.hint
+
+
+def test_every_joined_table_must_be_granted(clinic) -> None:
+    _, policies = clinic
+    # "outsider" is granted visits only.
+    for sql in ["SELECT COUNT(*) FROM visits v JOIN residents r ON r.person_id = v.person_id",
+                "SELECT COUNT(*) FROM visits WHERE person_id IN (SELECT person_id FROM residents)"]:
+        with pytest.raises(HushError) as caught:
+            analyse(sql, policies, "outsider")
+        assert caught.value.sqlstate == "42501"
+
+
+def test_plan_lists_every_table_read(clinic) -> None:
+    _, policies = clinic
+    plan = analyse("SELECT w.region, COUNT(*) FROM visits v JOIN residents r ON r.person_id = "
+                   "v.person_id JOIN wards w ON w.ward = v.ward "
+                   "WHERE v.person_id IN (SELECT person_id FROM residents WHERE smoker) "
+                   "GROUP BY w.region", policies, "tester")
+    assert [t.table for t in plan.tables] == ["visits", "residents", "wards", "residents"]
+    assert [j.kind for j in plan.joins] == ["from", "inner", "inner", "semi"]
+    assert plan.table.individual is not None and plan.table.individual.most_rows == 10
+    assert [o.name for o in plan.visible_outputs] == ["region", "count"]
