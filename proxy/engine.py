@@ -58,7 +58,8 @@ from proxy import faults, noise
 from proxy.accounts import Accounts
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
 from proxy.backend import Backend, QueryControl
-from proxy.errors import INTERNAL_ERROR, INVALID_PARAMETER_VALUE, QUERY_CANCELED, HushError
+from proxy.errors import (INTERNAL_ERROR, INVALID_PARAMETER_VALUE, PROGRAM_LIMIT_EXCEEDED,
+                          QUERY_CANCELED, HushError)
 from proxy.ledger import Ledger
 from proxy.policy import ColumnPolicy, Policies
 from proxy.sql.analyse import analyse
@@ -66,6 +67,7 @@ from proxy.sql.domains import describe_key, key_label, key_type, key_values
 from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
+from proxy.sql.public import KIND_TYPES, PublicRead, read_sql
 from proxy.sql.postprocess import postprocess
 from proxy.spark_backend import SparkBackend, is_spark_dsn
 from proxy.sql.rewrite import BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, loss_cap, rewrite
@@ -118,6 +120,19 @@ class Prepared:
     rewritten: Rewritten
     cells: list[tuple[Any, ...]]  # the key values of each cell, in the order the backend returns
     fingerprint: str
+
+
+@dataclass(frozen=True)
+class PreparedRead:
+    """The rows of a public table to read as stored: no noise, nothing charged."""
+
+    read: PublicRead
+    sql: str
+
+    @property
+    def columns(self) -> list[OutputColumn]:
+        return [OutputColumn(name, KIND_TYPES[self.read.table.columns[column].kind])  # type: ignore[arg-type]
+                for name, column in self.read.columns]
 
 
 # Digits an epsilon may have after the decimal point (so the smallest is 1e-12). Noise scales
@@ -248,7 +263,7 @@ class Engine:
 
     # ---- planning (no data read, nothing charged) ------------------------------------------
 
-    def prepare(self, analyst: str, statement: str | exp.Expression) -> Prepared:
+    def prepare(self, analyst: str, statement: str | exp.Expression) -> Prepared | PreparedRead:
         """Analyse and rewrite ``statement`` for ``analyst``; cached by statement text."""
         key = (analyst, statement) if isinstance(statement, str) else None
         if key is not None:
@@ -258,10 +273,14 @@ class Engine:
                     self._cache.move_to_end(key)
                     return cached
         plan = analyse(statement, self.policies, analyst)
-        rewritten = rewrite(plan, self._plan_exact_columns(plan))
-        self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
-        prepared = Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
-                            fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16])
+        prepared: Prepared | PreparedRead
+        if isinstance(plan, PublicRead):
+            prepared = PreparedRead(plan, read_sql(plan))
+        else:
+            rewritten = rewrite(plan, self._plan_exact_columns(plan))
+            self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
+            prepared = Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
+                                fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16])
         if key is not None:
             with self._cache_lock:
                 if key not in self._cache:
@@ -298,7 +317,10 @@ class Engine:
 
     def describe(self, analyst: str, statement: str | exp.Expression) -> list[OutputColumn]:
         """The columns an answer would have; plans only."""
-        plan = self.prepare(analyst, statement).plan
+        prepared = self.prepare(analyst, statement)
+        if isinstance(prepared, PreparedRead):
+            return prepared.columns
+        plan = prepared.plan
         return [OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs]
 
     def parameter_types(self, analyst: str, tree: exp.Expression) -> list[str | None]:
@@ -336,6 +358,12 @@ class Engine:
         """The plan, its sensitivities and noise, charging nothing: a two-column table (``form``
         "text"), or one JSON document with the same items (``form`` "json")."""
         prepared = self.prepare(analyst, statement)
+        if isinstance(prepared, PreparedRead):
+            return _explain_answer(
+                [("table", prepared.read.table.table),
+                 ("public", "rows as stored: no noise, nothing charged"),
+                 ("backend sql", prepared.sql)], form,
+                remaining=self.ledger.remaining(analyst), table=prepared.read.table.table)
         eps = self.epsilon_for(epsilon)
         plan, rewritten = prepared.plan, prepared.rewritten
         split = epsilon_split(rewritten, len(plan.measures), eps)
@@ -382,6 +410,8 @@ class Engine:
         """Plan, reserve, run, noise and release one statement. Raises HushError."""
         arrived = time.monotonic()
         prepared = self.prepare(analyst, statement)
+        if isinstance(prepared, PreparedRead):
+            return self._read_public(analyst, prepared, control)
         self._renewals.apply_due()  # a clock comparison except at a period boundary
         eps = self.epsilon_for(epsilon)
         plan = prepared.plan
@@ -416,6 +446,23 @@ class Engine:
         if failure is not None:
             raise failure
         return dataclasses.replace(answer, remaining=remaining)
+
+    def _read_public(self, analyst: str, prepared: PreparedRead,
+                     control: QueryControl | None) -> Answer:
+        """A public table's rows as stored; 54000 when there are more than ``most_cells``."""
+        read = prepared.read
+        rows = self.backend.run(prepared.sql, control, None,
+                                timeout_ms=self.policies.limits.query_timeout_ms)
+        if len(rows) > read.most_rows:
+            raise HushError(PROGRAM_LIMIT_EXCEEDED,
+                            f"public table {read.table.table} has more than {read.most_rows:,} "
+                            "rows to answer (most_cells)",
+                            "read fewer with WHERE or LIMIT, or page with LIMIT and OFFSET")
+        return Answer(columns=prepared.columns, rows=[tuple(row) for row in rows],
+                      epsilon=Decimal(0), remaining=self.ledger.remaining(analyst), accuracy=[],
+                      tables=[read.table.table],
+                      notes=[f"{read.table.table} is a public table: its rows as stored, no noise, "
+                             "nothing charged"])
 
     def _note_answered(self, charge: int) -> None:
         """Queues an 'answered' note; the notes thread records all queued notes in one round
@@ -512,9 +559,11 @@ def _charged_tables(plan: Plan) -> list[str]:
     return [t.table for t in plan.tables if not t.public]
 
 
-def _plan_bytes(prepared: Prepared) -> int:
+def _plan_bytes(prepared: Prepared | PreparedRead) -> int:
     """An estimate of a cached plan's memory: about 600 bytes per condition node (measured with
     tracemalloc on the largest accepted shapes), plus the backend SQL and the cells."""
+    if isinstance(prepared, PreparedRead):
+        return 2_000 + 2 * len(prepared.sql)
     plan = prepared.plan
     nodes = sum(1 for clause in (plan.where, plan.having) if clause is not None
                 for _ in clause.walk())

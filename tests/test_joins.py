@@ -11,6 +11,7 @@ sensitivity; refusals with their SQLSTATE.
 from __future__ import annotations
 
 import dataclasses
+from decimal import Decimal
 
 import psycopg
 import pytest
@@ -71,8 +72,8 @@ step = 0.5
 """
 
 
-def write_join_policies(root) -> None:
-    write_policies(root, most_rows=10)
+def write_join_policies(root, most_cells: int = 10000) -> None:
+    write_policies(root, most_rows=10, most_cells=most_cells)
     for name, text in [("residents", RESIDENTS), ("staff", STAFF), ("wards", WARDS)]:
         (root / "tables" / f"{name}.toml").write_text(text)
     access = (root / "access.toml").read_text()
@@ -295,3 +296,93 @@ def test_plan_lists_every_table_read(clinic) -> None:
     assert [j.kind for j in plan.joins] == ["from", "inner", "inner", "semi"]
     assert plan.table.individual is not None and plan.table.individual.most_rows == 10
     assert [o.name for o in plan.visible_outputs] == ["region", "count"]
+
+
+# ---- through the engine: charges, public reads --------------------------------------------
+
+@pytest.fixture
+def make_engine(clinic, module_dsn: str, tmp_path):
+    """Engines on the clinic with the join policies and a fresh ledger schema each."""
+    from proxy.backend import Backend
+    from proxy.engine import Engine
+    from proxy.ledger import Ledger
+
+    made: list[Engine] = []
+
+    def make(most_cells: int = 10000) -> Engine:
+        folder = tmp_path / f"policies{len(made)}"
+        write_join_policies(folder, most_cells)
+        schema = f"ledger_joins_{abs(hash((str(tmp_path), len(made)))) % 10**9}"
+        made.append(Engine(load_policies(folder), Backend(module_dsn, pool_size=2),
+                           Ledger(module_dsn, schema=schema)))
+        return made[-1]
+
+    yield make
+    for engine in made:
+        engine.close()
+
+
+def _ledger_rows(dsn: str, engine, sql: str, *args) -> list[tuple]:
+    with psycopg.connect(dsn) as conn:
+        return conn.execute(sql.format(schema=engine.ledger.schema), args).fetchall()
+
+
+def test_a_join_charges_every_table_and_its_population_once(make_engine, module_dsn: str) -> None:
+    engine = make_engine()
+    answer = engine.answer("tester", "SELECT r.ward, COUNT(*) FROM visits v JOIN residents r "
+                                     "ON r.person_id = v.person_id JOIN wards w ON w.ward = r.ward "
+                                     "GROUP BY r.ward", epsilon=Decimal("0.5"))
+    assert answer.tables == ["visits", "residents"]  # the public table charges nothing
+    assert [row[0] for row in answer.rows] == ["north", "south", "east"]
+    [(tables,)] = _ledger_rows(module_dsn, engine, "SELECT tables FROM {schema}.charges WHERE id = %s",
+                               answer.charge_id)
+    assert tables == ["residents", "visits"]
+    # Both tables protect the population "people": its cap is charged 0.5 once, not twice.
+    [(spent,)] = _ledger_rows(module_dsn, engine, "SELECT spent FROM {schema}.population_budgets "
+                                                  "WHERE population = 'people'")
+    assert spent == Decimal("0.5")
+    assert engine.remaining("tester") == Decimal("999.5")
+    semi = engine.answer("tester", "SELECT COUNT(*) FROM visits WHERE person_id IN "
+                                   "(SELECT person_id FROM residents WHERE smoker)",
+                         epsilon=Decimal("0.25"))
+    assert semi.tables == ["visits", "residents"]
+
+
+def test_public_rows_are_read_as_stored_and_cost_nothing(make_engine, module_dsn: str) -> None:
+    engine = make_engine()
+    answer = engine.answer("tester", "SELECT * FROM wards WHERE rate > 1 ORDER BY ward DESC")
+    with psycopg.connect(module_dsn) as conn:  # PostgreSQL's own answer
+        want = conn.execute("SELECT ward, region, rate FROM clinic.wards WHERE rate > 1 "
+                            "ORDER BY ward DESC").fetchall()
+    assert [tuple(row) for row in answer.rows] == want and len(want) == 3
+    assert [(c.name, c.type) for c in answer.columns] == [
+        ("ward", "text"), ("region", "text"), ("rate", "numeric")]
+    assert answer.epsilon == 0 and answer.accuracy == [] and answer.charge_id is None
+    assert _ledger_rows(module_dsn, engine, "SELECT count(*) FROM {schema}.charges") == [(0,)]
+    assert engine.remaining("tester") == Decimal("1000")
+    named = engine.answer("tester", "SELECT region AS r, ward FROM wards ORDER BY 2 LIMIT 2")
+    assert [c.name for c in named.columns] == ["r", "ward"]
+    assert [tuple(row) for row in named.rows] == [("upper", "east"), ("upper", "north")]
+    assert engine.describe("tester", "SELECT rate FROM wards")[0].type == "numeric"
+
+
+@pytest.mark.parametrize("sql, sqlstate", [
+    ("SELECT COUNT(*) FROM wards", "0A000"),
+    ("SELECT rate * 2 FROM wards", "0A000"),
+    ("SELECT ward FROM wards GROUP BY ward", "0A000"),
+    ("SELECT nothing FROM wards", "42703"),
+    ("SELECT * FROM wards WHERE rate / 0 > 1", "0A000"),
+])
+def test_public_reads_refuse_other_shapes(clinic, sql: str, sqlstate: str) -> None:
+    _, policies = clinic
+    with pytest.raises(HushError) as caught:
+        analyse(sql, policies, "tester")
+    assert caught.value.sqlstate == sqlstate and caught.value.hint
+
+
+def test_a_public_read_holds_at_most_most_cells_rows(make_engine) -> None:
+    engine = make_engine(most_cells=3)
+    with pytest.raises(HushError) as caught:
+        engine.answer("tester", "SELECT * FROM wards")
+    assert caught.value.sqlstate == "54000"
+    assert len(engine.answer("tester", "SELECT ward FROM wards LIMIT 3").rows) == 3

@@ -51,6 +51,7 @@ from proxy.sql.filters import (KIND_TYPE, Typed, chain_operands, check_filter, d
 from proxy.sql.joins import Scope, name_of as _name, read_from, take_semi_joins
 from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narrowings, read_key,
                             restrictions)
+from proxy.sql.public import PublicRead, is_public_read, read_public
 from proxy.sql.limits import check_statement_text, check_tree
 from proxy.sql.limits import hint as limit_hint
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
@@ -91,8 +92,9 @@ _KEY_FAMILY = {"text": "text", "integer": "number", "bigint": "number", "numeric
                "double precision": "number", "date": "date", "boolean": "boolean"}
 
 
-def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -> Plan:
-    """The plan of one accepted SELECT by ``analyst``; HushError (SQLSTATE, message, hint) otherwise.
+def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -> Plan | PublicRead:
+    """The plan of one accepted SELECT by ``analyst`` (a ``PublicRead`` for the rows of a public
+    table); HushError (SQLSTATE, message, hint) otherwise.
 
     A string is parsed with sqlglot (PostgreSQL dialect); a parsed tree is used as is and never
     modified. Nothing here reads data or touches a database.
@@ -108,6 +110,8 @@ def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -
         tree = _parse(statement) if isinstance(statement, str) else statement
         check_tree(tree, policies.limits)
         select = _as_select(tree)
+        if is_public_read(select, policies):
+            return read_public(select, policies, frozenset(analyst_policy.tables))
         return _Analysis(select, policies, frozenset(analyst_policy.tables)).plan()
     except RecursionError:  # the parser's own recursion can run out before check_tree runs
         raise HushError(STATEMENT_TOO_COMPLEX, "the statement is nested too deeply",

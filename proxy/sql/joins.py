@@ -129,8 +129,10 @@ class Scope:
                          f"columns of {self.table.table}: " + ", ".join(self.table.columns))
 
 
-def read_from(select: exp.Select, policies: Policies, granted: frozenset[str]) -> Scope:
-    """The scope of a SELECT's FROM and JOINs; HushError for anything not accepted."""
+def read_from(select: exp.Select, policies: Policies, granted: frozenset[str], *,
+              public: bool = False) -> Scope:
+    """The scope of a SELECT's FROM and JOINs; HushError for anything not accepted. A public
+    table alone is accepted only when ``public`` (a read of its rows, ``proxy.sql.public``)."""
     clause = select.args.get("from_") or select.args.get("from")
     if clause is None:
         raise refused("SELECT without FROM is not accepted", "name one table: FROM <table>")
@@ -154,7 +156,7 @@ def read_from(select: exp.Select, policies: Policies, granted: frozenset[str]) -
         named.append(table)
         edges.append(_join_edge(join, named))
     if len(named) == 1:
-        return _single_scope(first)
+        return _single_scope(first, public)
     return _joined_scope(named, edges)
 
 
@@ -237,11 +239,11 @@ def _side(node: exp.Column, named: list[_Named]) -> tuple[int, str]:
     raise HushError(UNDEFINED_TABLE, f'missing FROM-clause entry for table "{prefix}"', FROM_HINT)
 
 
-def _single_scope(table: _Named) -> Scope:
+def _single_scope(table: _Named, public: bool = False) -> Scope:
     policy = table.policy
-    if policy.public:
-        raise refused(f"{policy.table} is a public table: read its rows with SELECT ... FROM "
-                      f"{policy.table}, or join it to a protected table", JOIN_HINT)
+    if policy.public and not public:
+        raise refused(f"{policy.table} is a public table: read its rows (SELECT * FROM "
+                      f"{policy.table}), or join it to a protected table", JOIN_HINT)
     scope = Scope(policy, qualifiers=tuple(sorted(table.qualifiers)))
     for column in policy.columns:
         scope.unqualified[column] = {column}
