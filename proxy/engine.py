@@ -371,6 +371,7 @@ class Engine:
             ("table", plan.table.table),
             ("protected unit", f"individual ({plan.table.individual.column}, population "
                                f"{plan.table.population})" if plan.table.individual else "row"),
+            *([("joins", describe_joins(plan))] if plan.joins else []),
             ("cells", str(rewritten.cells)),
             *[(f"key {key_label(key)}", describe_key(plan.table.columns[key.column], key))
               for key in plan.keys],
@@ -551,6 +552,20 @@ class Engine:
                       remaining=Decimal(0), accuracy=accuracy,
                       tables=_charged_tables(plan), charge_id=charge,
                       notes=_answer_notes(plan, rewritten, values))
+
+
+def describe_joins(plan: Plan) -> str:
+    """The tables a plan reads and how they meet, for EXPLAIN."""
+    parts = []
+    for join in plan.joins:
+        name = join.table.table + (" (public)" if join.table.public else "")
+        if join.to is None:
+            parts.append(name)
+        else:
+            other = plan.joins[join.to[0]].table.table
+            verb = "semi-join" if join.kind == "semi" else "join"
+            parts.append(f"{verb} {name} on {join.table.table}.{join.column} = {other}.{join.to[1]}")
+    return "; ".join(parts) + " (rows bounded per individual over the joined rows)"
 
 
 def _charged_tables(plan: Plan) -> list[str]:

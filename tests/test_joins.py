@@ -22,6 +22,7 @@ from proxy.sql.analyse import analyse
 from proxy.sql.rewrite import rewrite
 from tests.bounds_helpers import run_with_bounds
 from tests.policy_fixtures import load_clinic, write_policies
+from tests.proxy_fixtures import demo_proxy  # noqa: F401  (fixture)
 
 RESIDENTS = """
 table = "residents"
@@ -386,3 +387,46 @@ def test_a_public_read_holds_at_most_most_cells_rows(make_engine) -> None:
         engine.answer("tester", "SELECT * FROM wards")
     assert caught.value.sqlstate == "54000"
     assert len(engine.answer("tester", "SELECT ward FROM wards LIMIT 3").rows) == 3
+
+
+# ---- end to end: the demo behind a proxy, through psycopg -----------------------------------
+
+JOIN_SQL = ("SELECT h.tariff, COUNT(*) AS readings, AVG(r.litres) FROM readings r "
+            "JOIN households h ON h.household_id = r.household_id GROUP BY h.tariff")
+
+
+def test_join_public_read_and_refusal_through_psycopg(demo_proxy) -> None:
+    notices: list[str] = []
+    with psycopg.connect(demo_proxy.conninfo("planner"), autocommit=True) as conn:
+        conn.add_notice_handler(lambda diag: notices.append(diag.message_primary or ""))
+        conn.execute("SET hushql.epsilon = 1")
+        rows = conn.execute(JOIN_SQL).fetchall()
+        assert [r[0] for r in rows] == ["standard", "saver", "social"]
+        assert any("spent epsilon 1" in n for n in notices), notices
+        with psycopg.connect(demo_proxy.backend_dsn) as backend:
+            exact = dict(backend.execute(
+                "SELECT h.tariff, count(*) FROM utility.meter_readings r JOIN utility.households h "
+                "ON h.household_id = r.household_id GROUP BY 1").fetchall())
+        # Noisy counts: no one's rows are counted above what they own, so each count stays
+        # below the exact one plus the noise; the noise scale is at most the rows ceiling (366)
+        # over the measures' epsilon share, far below the 10^6 margin used here.
+        assert all(0 <= r[1] <= exact[r[0]] + 10**6 for r in rows)
+        explained = dict(conn.execute("EXPLAIN " + JOIN_SQL).fetchall())
+        assert explained["table"] == "readings, households"
+        assert "join households on households.household_id = readings.household_id" \
+            in explained["joins"]
+        assert "up to the ceiling 366" in explained["bound on rows per individual"]
+
+        tariffs = conn.execute("SELECT * FROM tariffs ORDER BY price_per_m3").fetchall()
+        with psycopg.connect(demo_proxy.backend_dsn) as backend:
+            assert tariffs == backend.execute(
+                "SELECT tariff, price_per_m3, description FROM utility.tariffs "
+                "ORDER BY price_per_m3").fetchall()
+        grouped = conn.execute("SELECT t.description, COUNT(*) FROM households h JOIN tariffs t "
+                               "ON t.tariff = h.tariff WHERE t.price_per_m3 < 2 GROUP BY 1")
+        assert len(grouped.fetchall()) == 3  # the public column's declared values
+
+        with pytest.raises(psycopg.errors.FeatureNotSupported) as caught:
+            conn.execute("SELECT COUNT(*) FROM readings r LEFT JOIN households h "
+                         "ON h.household_id = r.household_id")
+        assert caught.value.diag.message_hint and "joins accepted" in caught.value.diag.message_hint
