@@ -276,6 +276,7 @@ class Engine:
         prepared: Prepared | PreparedRead
         if isinstance(plan, PublicRead):
             prepared = PreparedRead(plan, read_sql(plan))
+            self.backend.check(prepared.sql)
         else:
             rewritten = rewrite(plan, self._plan_exact_columns(plan))
             self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
@@ -571,7 +572,7 @@ def describe_joins(plan: Plan) -> str:
 def _charged_tables(plan: Plan) -> list[str]:
     """The tables a query's charge names: every table it reads but public ones (they protect
     nobody); the ledger charges their populations once each."""
-    return [t.table for t in plan.tables if not t.public]
+    return list(dict.fromkeys(t.table for t in plan.tables if not t.public))
 
 
 def _plan_bytes(prepared: Prepared | PreparedRead) -> int:

@@ -134,6 +134,14 @@ CASES = [
     ("SELECT w.region, COUNT(*) FROM visits v JOIN wards w ON w.ward = v.ward GROUP BY w.region",
      "SELECT (SELECT count(*) FROM clinic.visits v JOIN clinic.wards w ON w.ward = v.ward "
      "WHERE w.region = r.v) FROM (VALUES (0, 'upper'), (1, 'lower')) AS r(i, v) ORDER BY r.i"),
+    # A row table (each row one person) and a public table: still one row per person.
+    ("SELECT w.region, COUNT(*), SUM(p.age) FROM people p JOIN wards w ON w.ward = p.ward "
+     "WHERE p.smoker GROUP BY w.region",
+     "SELECT (SELECT count(*) FROM clinic.people p JOIN clinic.wards w ON w.ward = p.ward "
+     "WHERE p.smoker AND w.region = r.v), (SELECT coalesce(sum(CASE WHEN p.age < 0 THEN 0 "
+     "WHEN p.age > 100 THEN 100 ELSE p.age END), 0) FROM clinic.people p JOIN clinic.wards w "
+     "ON w.ward = p.ward WHERE p.smoker AND w.region = r.v) "
+     "FROM (VALUES (0, 'upper'), (1, 'lower')) AS r(i, v) ORDER BY r.i"),
     # Three tables: same population, then a public table joined to the residents' ward,
     # filtered by a public column.
     ("SELECT v.ward, COUNT(*) FROM visits v JOIN residents r ON v.person_id = r.person_id "
@@ -347,6 +355,10 @@ def test_a_join_charges_every_table_and_its_population_once(make_engine, module_
                                    "(SELECT person_id FROM residents WHERE smoker)",
                          epsilon=Decimal("0.25"))
     assert semi.tables == ["visits", "residents"]
+    itself = engine.answer("tester", "SELECT COUNT(*) FROM visits WHERE person_id IN "
+                                     "(SELECT person_id FROM visits WHERE minutes > 50)",
+                           epsilon=Decimal("0.25"))
+    assert itself.tables == ["visits"]
 
 
 def test_public_rows_are_read_as_stored_and_cost_nothing(make_engine, module_dsn: str) -> None:
@@ -430,3 +442,29 @@ def test_join_public_read_and_refusal_through_psycopg(demo_proxy) -> None:
             conn.execute("SELECT COUNT(*) FROM readings r LEFT JOIN households h "
                          "ON h.household_id = r.household_id")
         assert caught.value.diag.message_hint and "joins accepted" in caught.value.diag.message_hint
+
+
+def test_spark_refuses_joins_before_any_charge(clinic) -> None:
+    """The Spark backend's check (run by the engine before reserving) refuses joined rows; one
+    table's rewrite passes this test of it."""
+    from proxy.spark_backend import refuse_joins
+
+    _, policies = clinic
+    single = rewrite(analyse("SELECT COUNT(*) FROM visits", policies, "tester"), frozenset())
+    refuse_joins(single.sql)
+    for sql in [NEIGHBOUR_QUERIES[0], NEIGHBOUR_QUERIES[2]]:
+        with pytest.raises(HushError) as caught:
+            refuse_joins(rewrite(analyse(sql, policies, "tester"), frozenset()).sql)
+        assert caught.value.sqlstate == "0A000"
+
+
+def test_parameters_compared_with_joined_columns_are_typed(clinic) -> None:
+    from proxy.sql.parameters import parameter_types
+    import sqlglot
+
+    _, policies = clinic
+    tree = sqlglot.parse_one(
+        "SELECT COUNT(*) FROM visits v JOIN residents r ON r.person_id = v.person_id "
+        "WHERE r.age > $1 AND v.ward = $2 AND minutes < $3 AND ward = $4", read="postgres")
+    # ward is in both tables (both categories), so even unqualified it is text.
+    assert parameter_types(tree, policies) == ["bigint", "text", "bigint", "text"]
