@@ -390,8 +390,12 @@ def _print_examples(out: Console, backend: str, policies_dir: Path,
              f"export HUSHQL_POLICIES={_shell_quote(str(policies_dir.absolute()))}"]
     if ledger is not None:  # a Spark backend keeps its ledger in PostgreSQL
         lines.insert(1, f"export HUSHQL_LEDGER={_shell_quote(ledger)}")
+    spark = ledger is not None  # joins are answered on PostgreSQL only (spark_backend.check)
     lines += [f"{hushql} ask --as {who} {_shell_quote(query)}" + (f"    # {note}" if note else "")
-              for who, query, note in EXAMPLE_QUERIES]
+              for who, query, note in [
+                  (who, query, note or ("refused on Spark: joins run on PostgreSQL only"
+                                        if spark and " JOIN " in query else ""))
+                  for who, query, note in EXAMPLE_QUERIES]]
     planner = dict(demo_accounts())["planner"]
     if listen is not None:
         host, port = listen

@@ -488,10 +488,13 @@ def _rows(plan: Plan) -> exp.Expression:
     table up into the query, so it costs nothing by itself."""
     if not plan.joins:
         return _source(plan.table)
+    used = _used_columns(plan)
     provided: dict[str, exp.Expression] = {}  # the individual columns are one (equal when joined)
     for index, join in enumerate(plan.joins):
         for name, own in join.columns:
-            provided.setdefault(name, exp.alias_(_col(own, f"t{index}"), _ident(name), copy=False))
+            if name in used or not provided:  # a derived table needs one column at least
+                provided.setdefault(name, exp.alias_(_col(own, f"t{index}"), _ident(name),
+                                                     copy=False))
     select = exp.Select().select(*provided.values(), copy=False)
     for index, join in enumerate(plan.joins):
         if join.kind == "semi":
@@ -503,6 +506,17 @@ def _rows(plan: Plan) -> exp.Expression:
         else:
             select = select.join(item, on=_join_condition(plan, index), join_type="inner", copy=False)
     return exp.Subquery(this=select, alias=exp.TableAlias(this=exp.to_identifier(JOINED_ROWS_ALIAS)))
+
+
+def _used_columns(plan: Plan) -> set[str]:
+    """The plan columns the query reads: keys, measures, the WHERE's and the individual's
+    (only these are named in the derived table, so an unused listed column is never read)."""
+    used = {key.column for key in plan.keys} | {m.column for m in plan.measures if m.column}
+    if plan.where is not None:
+        used |= {column.name for column in plan.where.find_all(exp.Column)}
+    if plan.table.individual is not None:
+        used.add(plan.table.individual.column)
+    return used
 
 
 def _joined_source(table: TablePolicy, alias: str) -> exp.Expression:
