@@ -468,3 +468,18 @@ def test_parameters_compared_with_joined_columns_are_typed(clinic) -> None:
         "WHERE r.age > $1 AND v.ward = $2 AND minutes < $3 AND ward = $4", read="postgres")
     # ward is in both tables (both categories), so even unqualified it is text.
     assert parameter_types(tree, policies) == ["bigint", "text", "bigint", "text"]
+
+
+def test_tables_with_different_timing_are_not_joined(tmp_path) -> None:
+    """[timing] promises an answer time per table; a join of tables promising different times
+    could keep only one promise, so it is refused (one table at a time still answers)."""
+    write_join_policies(tmp_path)
+    residents = tmp_path / "tables" / "residents.toml"
+    residents.write_text(residents.read_text().replace(
+        "[columns.person_id]", "[timing]\nanswer_after_ms = 200\n\n[columns.person_id]", 1))
+    policies = load_policies(tmp_path)
+    with pytest.raises(HushError) as caught:
+        analyse("SELECT COUNT(*) FROM visits v JOIN residents r ON r.person_id = v.person_id",
+                policies, "tester")
+    assert caught.value.sqlstate == "0A000" and "[timing]" in str(caught.value)
+    assert analyse("SELECT COUNT(*) FROM residents", policies, "tester").table.timing is not None
