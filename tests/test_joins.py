@@ -483,3 +483,17 @@ def test_tables_with_different_timing_are_not_joined(tmp_path) -> None:
                 policies, "tester")
     assert caught.value.sqlstate == "0A000" and "[timing]" in str(caught.value)
     assert analyse("SELECT COUNT(*) FROM residents", policies, "tester").table.timing is not None
+
+
+def test_analysing_a_semi_join_leaves_the_tree_as_it_was(clinic) -> None:
+    import sqlglot
+
+    _, policies = clinic
+    text = ("SELECT ward, COUNT(*) FROM visits WHERE minutes > 3 AND person_id IN "
+            "(SELECT person_id FROM residents WHERE smoker) AND ward <> 'east' GROUP BY ward")
+    tree = sqlglot.parse_one(text, read="postgres")
+    before = tree.sql(dialect="postgres")
+    terms = list(tree.args["where"].this.flatten())
+    analyse(tree, policies, "tester")
+    assert tree.sql(dialect="postgres") == before
+    assert all(term.parent is not None and term.root() is tree for term in terms)

@@ -219,13 +219,13 @@ class _Analysis:
         if group is not None:
             self._group_by(group, items)
         where = select.args.get("where")
+        # The WHERE without its semi-joins (a copy when it had any: the tree is never modified).
         written = take_semi_joins(where.this, self.scope, self.policies, self.granted) \
             if where is not None else None
-        where = exp.Where(this=written) if written is not None else None
-        condition = check_filter(where.this, self._column, bucket_reader(self.table, self._column),
-                                 self.policies.limits) if where is not None else None
+        condition = check_filter(written, self._column, bucket_reader(self.table, self._column),
+                                 self.policies.limits) if written is not None else None
         within = narrowings(condition, self.table)
-        among = restrictions(where.this, self._column) if where is not None else {}
+        among = restrictions(written, self._column) if written is not None else {}
         keys = tuple(replace(key, within=within.get(key.column), among=among.get(key))
                      for key in self.keys)
         self._check_cells(keys)

@@ -369,7 +369,7 @@ def take_semi_joins(condition: exp.Expression, scope: Scope, policies: Policies,
             _add_semi_join(term, scope, policies, granted)
     if len(kept) == len(terms):
         return condition
-    return exp.and_(*kept, copy=False) if kept else None
+    return exp.and_(*kept) if kept else None  # copies: the analysed tree is never modified
 
 
 def _and_terms(condition: exp.Expression) -> list[exp.Expression]:
