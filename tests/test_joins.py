@@ -130,6 +130,11 @@ CASES = [
      f"SELECT coalesce(sum({FEE_UNITS}), 0), count(v.fee), count(DISTINCT v.person_id) "
      "FROM clinic.visits v JOIN clinic.people p ON p.person_id = v.person_id "
      "WHERE p.smoker AND v.minutes > 10"),
+    # INNER JOIN written out, unaliased tables qualified by name (and by schema public).
+    ("SELECT COUNT(*) FROM visits INNER JOIN residents ON residents.person_id = visits.person_id "
+     "WHERE public.residents.age < 30",
+     "SELECT count(*) FROM clinic.visits v JOIN clinic.people p ON p.person_id = v.person_id "
+     "WHERE p.age < 30"),
     # A public lookup: grouped by its column, joined on its key to the visits' ward.
     ("SELECT w.region, COUNT(*) FROM visits v JOIN wards w ON w.ward = v.ward GROUP BY w.region",
      "SELECT (SELECT count(*) FROM clinic.visits v JOIN clinic.wards w ON w.ward = v.ward "
@@ -263,6 +268,9 @@ REFUSALS = [
     ("SELECT COUNT(*) FROM visits v JOIN residents r ON r.person_id = v.person_id "
      "WHERE x.ward = 'north'", "42P01"),
     ("SELECT COUNT(*) FROM visits v JOIN nowhere n ON n.person_id = v.person_id", "42P01"),
+    ("SELECT COUNT(*) FROM visits x JOIN residents x ON x.person_id = x.person_id", "42712"),
+    ("SELECT COUNT(*) FROM visits v LEFT OUTER JOIN residents r ON r.person_id = v.person_id",
+     "0A000"),
     ("SELECT COUNT(*) FROM visits WHERE ward IN (SELECT ward FROM residents)", "0A000"),
     ("SELECT COUNT(*) FROM visits WHERE person_id IN (SELECT person_id FROM staff)", "0A000"),
     ("SELECT COUNT(*) FROM visits WHERE person_id IN (SELECT person_id FROM people)", "0A000"),

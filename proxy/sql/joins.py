@@ -39,7 +39,7 @@ from math import prod
 
 import sqlglot.expressions as exp
 
-from proxy.errors import (AMBIGUOUS_COLUMN, INSUFFICIENT_PRIVILEGE, SYNTAX_ERROR,
+from proxy.errors import (AMBIGUOUS_COLUMN, DUPLICATE_ALIAS, INSUFFICIENT_PRIVILEGE, SYNTAX_ERROR,
                           UNDEFINED_COLUMN, UNDEFINED_TABLE, HushError, refused)
 from proxy.policy import ColumnPolicy, Individual, Policies, TablePolicy
 from proxy.sql.filters import check_filter
@@ -120,7 +120,8 @@ class Scope:
         if len(names) > 1:
             raise HushError(AMBIGUOUS_COLUMN, f'column reference "{name}" is ambiguous',
                             "qualify it with its table or alias: " + ", ".join(
-                                f"{q}.{name}" for (q, c) in self.qualified if c == name))
+                                f"{q}.{name}" for (q, c) in self.qualified
+                                if c == name and not q.startswith("public.")))
         found = next(iter(names))
         return found, self.table.columns[found]
 
@@ -141,7 +142,8 @@ def read_from(select: exp.Select, policies: Policies, granted: frozenset[str], *
     edges: list[tuple[int, str, int, str]] = []  # (table, its column, earlier table, its column)
     for join in select.args.get("joins") or []:
         for key, value in join.args.items():
-            if key in ("this", "on", "using") or value in (None, False, []):
+            if key in ("this", "on", "using") or value in (None, False, []) \
+                    or (key == "kind" and str(value).upper() == "INNER"):
                 continue
             word = str(value).upper() if isinstance(value, str) else key.upper()
             raise refused(_JOIN_REFUSALS.get(key, "this form of JOIN is not accepted ({})").format(word),
@@ -150,6 +152,10 @@ def read_from(select: exp.Select, policies: Policies, granted: frozenset[str], *
             raise refused("a join without ON or USING (a cross join or a list of tables) is not "
                           "accepted", JOIN_HINT)
         table = _named_table(join.this, policies, granted)
+        for taken in [q for t in named for q in t.qualifiers]:
+            if taken in table.qualifiers:
+                raise HushError(DUPLICATE_ALIAS, f'table name "{taken}" specified more than once',
+                                "give each table its own alias")
         if any(t.policy.table == table.policy.table for t in named):
             raise refused(f"table {table.policy.table} is joined to itself: self-joins are not "
                           "accepted", JOIN_HINT)
