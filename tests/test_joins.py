@@ -15,6 +15,7 @@ from decimal import Decimal
 
 import psycopg
 import pytest
+import sqlglot.expressions as exp
 
 from proxy.errors import HushError
 from proxy.policy import load_policies
@@ -505,3 +506,17 @@ def test_analysing_a_semi_join_leaves_the_tree_as_it_was(clinic) -> None:
     analyse(tree, policies, "tester")
     assert tree.sql(dialect="postgres") == before
     assert all(term.parent is not None and term.root() is tree for term in terms)
+
+
+def test_a_column_named_like_the_other_tables_individual_stays_its_own(tmp_path) -> None:
+    """wards gains a column person_id that is not an individual: joined to visits, it must not
+    be mistaken for the shared individual column."""
+    write_join_policies(tmp_path)
+    wards = tmp_path / "tables" / "wards.toml"
+    wards.write_text(wards.read_text() + '\n[columns.person_id]\nkind = "integer"\nrange = [0, 9]\n')
+    policies = load_policies(tmp_path)
+    plan = analyse("SELECT COUNT(*) FROM visits v JOIN wards w ON w.ward = v.ward "
+                   "WHERE w.person_id = 3", policies, "tester")
+    assert plan.table.individual.column == "person_id"
+    assert dict(plan.joins[1].columns)["wards.person_id"] == "person_id"
+    assert [c.name for c in plan.where.find_all(exp.Column)] == ["wards.person_id"]

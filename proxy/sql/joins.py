@@ -304,7 +304,9 @@ def _joined_scope(named: list[_Named], edges: list[tuple[int, str, int, str]]) -
             if _is_individual(table.policy, column):
                 name = shared or column
             else:
-                name = column if counts[column] == 1 else f"{table.policy.table}.{column}"
+                # A name two tables have (or the shared individual's) is qualified by table.
+                name = column if counts[column] == 1 and column != shared \
+                    else f"{table.policy.table}.{column}"
             columns.setdefault(name, policy)
             provided.append((name, column))
             scope.unqualified.setdefault(column, set()).add(name)
