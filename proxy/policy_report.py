@@ -127,9 +127,8 @@ def _tables_table(policies: Policies) -> Table:
         table = policies.tables[name]
         ind = table.individual
         if table.public:
-            view.add_row(name, table.source, "nobody: public, rows readable as stored",
-                         "-", "-", "none (nothing charged)"
-                         + (f"; joins on key {table.key}" if table.key else ""))
+            view.add_row(name, table.source, "nobody (public)", "-",
+                         f"key {table.key}" if table.key else "-", "none (free)")
             continue
         view.add_row(name, table.source,
                      f"one {ind.column}" if ind else "one row",

@@ -354,7 +354,7 @@ def test_check_command_summarises_the_demo_policies() -> None:
                      "2026-01-01 .. 2026-12-31", "365 cells", "0 .. 2000", "0.1",
                      "no (100,000 cells > most_cells)", "planner", "3.0",
                      "households, readings", "researcher", "1.0", "Administrators: auditor",
-                     "nobody: public, rows readable as stored", "joins on key tariff",
+                     "nobody (public)", "key tariff", "none (free)",
                      "3 tables, 2 analysts, 1 administrator."):
         assert expected in text, expected
 
