@@ -100,8 +100,8 @@ def main() -> int:
             (target / "tables" / f"{name}.toml").write_text(TABLE.format(name=name, bounds=bounds))
         access = target / "access.toml"
         access.write_text(access.read_text().replace(
-            'tables = ["households", "readings"]',
-            'tables = ["households", "readings", "chosen_bounds", "declared_bounds"]', 1))
+            'tables = ["households", "readings", "tariffs"]',
+            'tables = ["households", "readings", "tariffs", "chosen_bounds", "declared_bounds"]', 1))
         engine = Engine.connect(load_policies(target), args.backend, pool_size=2)
         table = Table("query", "plain ms", "declared ms", "ratio", "chosen ms", "ratio",
                       "threshold's cost")

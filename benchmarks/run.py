@@ -64,7 +64,8 @@ def policies_with_bench(folder: Path) -> Path:
     (target / "tables" / "meters.toml").write_text(BENCH_TABLE)
     access = target / "access.toml"
     access.write_text(access.read_text().replace(
-        'tables = ["households", "readings"]', 'tables = ["households", "readings", "meters"]', 1))
+        'tables = ["households", "readings", "tariffs"]',
+        'tables = ["households", "readings", "tariffs", "meters"]', 1))
     return target
 
 

@@ -54,7 +54,14 @@ DAYS = (dt.date(YEAR + 1, 1, 1) - dt.date(YEAR, 1, 1)).days
 FIRST_ACCOUNT = 100001
 LAST_ACCOUNT = 199999
 
+# The utility's published price list: a public table (policies/tables/tariffs.toml), one row per
+# tariff, invented like everything here.
+TARIFF_PRICES = (("standard", "2.40", "Metered supply at the full price per cubic metre"),
+                 ("saver", "2.10", "Lower price for households that agree to a usage cap"),
+                 ("social", "1.20", "Reduced price for households receiving support"))
+
 _DDL = f"""
+DROP TABLE IF EXISTS {SCHEMA}.tariffs;
 DROP TABLE IF EXISTS {SCHEMA}.meter_readings;
 DROP TABLE IF EXISTS {SCHEMA}.households;
 CREATE SCHEMA IF NOT EXISTS {SCHEMA};
@@ -71,7 +78,13 @@ CREATE TABLE {SCHEMA}.meter_readings (
     reading_date date         NOT NULL,
     litres       numeric(7,1)
 );
+CREATE TABLE {SCHEMA}.tariffs (
+    tariff       text         PRIMARY KEY,
+    price_per_m3 numeric(5,2) NOT NULL,
+    description  text         NOT NULL
+);
 COMMENT ON TABLE {SCHEMA}.households IS 'hushql demo: invented households of an invented utility';
+COMMENT ON TABLE {SCHEMA}.tariffs IS 'hushql demo: the invented utility''s published price list';
 COMMENT ON TABLE {SCHEMA}.meter_readings IS 'hushql demo: invented daily meter readings';
 """
 
@@ -174,9 +187,10 @@ def generate_scenario(households: int = 3000, seed: int = 2026) -> Scenario:
 
 def load_scenario(dsn: str, *, households: int = 3000, seed: int = 2026,
                   progress: bool = True) -> dict[str, int]:
-    """Create schema ``utility`` with ``households`` and ``meter_readings`` in ``dsn``'s database.
+    """Create schema ``utility`` with ``households``, ``meter_readings`` and the public
+    ``tariffs`` in ``dsn``'s database.
 
-    Replaces both tables if present, atomically (one transaction). Returns the row counts as
+    Replaces the tables if present, atomically (one transaction). Returns the row counts as
     {"households": ..., "readings": ...}. Same seed and count give the same rows.
     """
     scenario = generate_scenario(households, seed)
@@ -185,12 +199,14 @@ def load_scenario(dsn: str, *, households: int = 3000, seed: int = 2026,
         readings_task = bar.add_task("readings", total=scenario.readings)
         with conn.transaction():
             conn.execute(_DDL)
+            with conn.cursor() as cursor:
+                cursor.executemany(f"INSERT INTO {SCHEMA}.tariffs VALUES (%s, %s, %s)", TARIFF_PRICES)
             _copy(conn, f"{SCHEMA}.households", _household_lines(scenario),
                   lambda rows: bar.advance(houses_task, rows))
             _copy(conn, f"{SCHEMA}.meter_readings", _reading_lines(scenario),
                   lambda rows: bar.advance(readings_task, rows))
             conn.execute(_CONSTRAINTS)
-        conn.execute(f"ANALYZE {SCHEMA}.households, {SCHEMA}.meter_readings")
+        conn.execute(f"ANALYZE {SCHEMA}.households, {SCHEMA}.meter_readings, {SCHEMA}.tariffs")
         conn.commit()
     return {"households": scenario.households, "readings": scenario.readings}
 
@@ -256,6 +272,9 @@ EXAMPLE_QUERIES: list[tuple[str, str, str]] = [
     ("planner", "SELECT tariff, AVG(occupants) FROM households GROUP BY tariff", ""),
     ("planner", "SELECT district, SUM(litres) AS july_litres FROM readings "
                 "WHERE reading_date BETWEEN '2026-07-01' AND '2026-07-31' GROUP BY district", ""),
+    ("planner", "SELECT h.tariff, AVG(r.litres) FROM readings r JOIN households h "
+                "ON h.household_id = r.household_id GROUP BY h.tariff", ""),
+    ("planner", "SELECT * FROM tariffs", ""),
     ("researcher", "SELECT has_garden, COUNT(*) FROM households GROUP BY has_garden", ""),
     ("researcher", "SELECT COUNT(*) FROM readings", "refused: readings is not granted"),
     ("planner", "SELECT * FROM households", "refused: raw rows"),
@@ -371,8 +390,12 @@ def _print_examples(out: Console, backend: str, policies_dir: Path,
              f"export HUSHQL_POLICIES={_shell_quote(str(policies_dir.absolute()))}"]
     if ledger is not None:  # a Spark backend keeps its ledger in PostgreSQL
         lines.insert(1, f"export HUSHQL_LEDGER={_shell_quote(ledger)}")
+    spark = ledger is not None  # joins are answered on PostgreSQL only (spark_backend.check)
     lines += [f"{hushql} ask --as {who} {_shell_quote(query)}" + (f"    # {note}" if note else "")
-              for who, query, note in EXAMPLE_QUERIES]
+              for who, query, note in [
+                  (who, query, note or ("refused on Spark: joins run on PostgreSQL only"
+                                        if spark and " JOIN " in query else ""))
+                  for who, query, note in EXAMPLE_QUERIES]]
     planner = dict(demo_accounts())["planner"]
     if listen is not None:
         host, port = listen

@@ -58,7 +58,8 @@ from proxy import faults, noise
 from proxy.accounts import Accounts
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
 from proxy.backend import Backend, QueryControl
-from proxy.errors import INTERNAL_ERROR, INVALID_PARAMETER_VALUE, QUERY_CANCELED, HushError
+from proxy.errors import (INTERNAL_ERROR, INVALID_PARAMETER_VALUE, PROGRAM_LIMIT_EXCEEDED,
+                          QUERY_CANCELED, HushError)
 from proxy.ledger import Ledger
 from proxy.policy import ColumnPolicy, Policies
 from proxy.sql.analyse import analyse
@@ -66,6 +67,7 @@ from proxy.sql.domains import describe_key, key_label, key_type, key_values
 from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
+from proxy.sql.public import KIND_TYPES, PublicRead, read_sql
 from proxy.sql.postprocess import postprocess
 from proxy.sql import statement as slots
 from proxy.sql.statement import BoundStatement
@@ -136,6 +138,19 @@ class _LatePlan:
 
 def _fingerprint(sql: str) -> str:
     return hashlib.sha256(sql.encode()).hexdigest()[:16]
+
+
+@dataclass(frozen=True)
+class PreparedRead:
+    """The rows of a public table to read as stored: no noise, nothing charged."""
+
+    read: PublicRead
+    sql: str
+
+    @property
+    def columns(self) -> list[OutputColumn]:
+        return [OutputColumn(name, KIND_TYPES[self.read.table.columns[column].kind])  # type: ignore[arg-type]
+                for name, column in self.read.columns]
 
 
 # Digits an epsilon may have after the decimal point (so the smallest is 1e-12). Noise scales
@@ -274,7 +289,7 @@ class Engine:
 
     # ---- planning (no data read, nothing charged) ------------------------------------------
 
-    def prepare(self, analyst: str, statement: Statement) -> Prepared:
+    def prepare(self, analyst: str, statement: Statement) -> Prepared | PreparedRead:
         """Analyse and rewrite ``statement`` for ``analyst``; cached by statement text, and for
         a parameterised statement by text and class of values (``proxy.sql.statement``)."""
         found = self.planned(analyst, statement)
@@ -287,7 +302,7 @@ class Engine:
             self._keep((analyst, statement), prepared)
         return prepared
 
-    def planned(self, analyst: str, statement: Statement) -> Prepared | None:
+    def planned(self, analyst: str, statement: Statement) -> Prepared | PreparedRead | None:
         """The cached plan of ``statement``, or None when it would need analysis: dictionary
         look-ups and, for late-bound values, their checks (HushError as analysis raises)."""
         if isinstance(statement, str):
@@ -302,14 +317,14 @@ class Engine:
             return self._filled(found, statement)
         return found
 
-    def _cached(self, key: tuple[Any, ...]) -> Prepared | _LatePlan | None:
+    def _cached(self, key: tuple[Any, ...]) -> Prepared | PreparedRead | _LatePlan | None:
         with self._cache_lock:
             cached = self._cache.get(key)
             if cached is not None:
                 self._cache.move_to_end(key)
             return cached
 
-    def _keep(self, key: tuple[Any, ...], entry: Prepared | _LatePlan) -> None:
+    def _keep(self, key: tuple[Any, ...], entry: Prepared | PreparedRead | _LatePlan) -> None:
         """Caches ``entry``, dropping the least recently used beyond the count and byte bounds."""
         with self._cache_lock:
             if key not in self._cache:
@@ -319,10 +334,14 @@ class Engine:
                                    or self._cache_weight > self._cache_bytes):
                 self._cache_weight -= _plan_bytes(self._cache.popitem(last=False)[1])
 
-    def _plan(self, analyst: str, statement: str | exp.Expression) -> Prepared:
+    def _plan(self, analyst: str, statement: str | exp.Expression) -> Prepared | PreparedRead:
         """Fresh analysis and rewrite, uncached."""
         plan = analyse(statement, self.policies, analyst)
-        rewritten = rewrite(plan, self._exact_columns(plan.table.table))
+        if isinstance(plan, PublicRead):
+            read = PreparedRead(plan, read_sql(plan))
+            self.backend.check(read.sql)
+            return read
+        rewritten = rewrite(plan, self._plan_exact_columns(plan))
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         return Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                         fingerprint=_fingerprint(rewritten.sql))
@@ -338,7 +357,7 @@ class Engine:
                            else ("value", slots.planned_key(value)))
         return (analyst, bound.text, bound.types, tuple(classes))
 
-    def _prepare_bound(self, analyst: str, bound: BoundStatement) -> Prepared:
+    def _prepare_bound(self, analyst: str, bound: BoundStatement) -> Prepared | PreparedRead:
         """Plans a class of values once: with markers in its late slots, checked once against
         a fresh analysis of the real values (a difference turns late binding off for the
         statement); without late slots, per value."""
@@ -353,7 +372,7 @@ class Engine:
         key = self._bound_key(analyst, bound, late)
         used = frozenset(slot for slot in late if key[3][slot - 1][0] == "late")
         fresh = self._plan(analyst, bound.substituted())  # the real refusal, if any
-        if not used:
+        if not used or isinstance(fresh, PreparedRead):  # public reads: planned per value
             self._keep(key, fresh)
             return fresh
         entry = self._late_plan(analyst, bound, used)
@@ -382,6 +401,8 @@ class Engine:
             prepared = self._plan(analyst, marked.substituted())
         except HushError:
             return None
+        if isinstance(prepared, PreparedRead):
+            return None
         counts = slots.occurrences(bound.tree)
         cut = slots.template(prepared.rewritten.sql, markers, {s: counts[s] for s in used})
         return None if cut is None else _LatePlan(prepared, cut)
@@ -395,6 +416,14 @@ class Engine:
         prepared = entry.prepared
         return dataclasses.replace(prepared, rewritten=dataclasses.replace(prepared.rewritten, sql=sql),
                                    fingerprint=_fingerprint(sql))
+
+    def _plan_exact_columns(self, plan: Plan) -> frozenset[str]:
+        """The plan's columns summed exactly: of its table, or of the joined tables under the
+        names the plan gives them."""
+        if not plan.joins:
+            return self._exact_columns(plan.table.table)
+        return frozenset(name for join in plan.joins for name, own in join.columns
+                         if own in self._exact_columns(join.table.table))
 
     def _exact_columns(self, table: str) -> frozenset[str]:
         """Number columns of ``table`` whose backend type is numeric (summed exactly); looked up
@@ -414,13 +443,13 @@ class Engine:
 
     def describe(self, analyst: str, statement: Statement) -> list[OutputColumn]:
         """The columns an answer would have; plans only."""
-        return _columns(self.prepare(analyst, statement).plan)
+        return _described(self.prepare(analyst, statement))
 
     def describe_planned(self, analyst: str, statement: Statement) -> list[OutputColumn] | None:
         """The columns of an already planned statement, None when it needs planning: cheap
         enough for an event loop (no analysis, no I/O)."""
         found = self.planned(analyst, statement)
-        return None if found is None else _columns(found.plan)
+        return None if found is None else _described(found)
 
     def parameter_types(self, analyst: str, tree: exp.Expression) -> list[str | None]:
         """Types of untyped ``$n`` parameters from the columns they are compared with."""
@@ -457,6 +486,12 @@ class Engine:
         """The plan, its sensitivities and noise, charging nothing: a two-column table (``form``
         "text"), or one JSON document with the same items (``form`` "json")."""
         prepared = self.prepare(analyst, statement)
+        if isinstance(prepared, PreparedRead):
+            return _explain_answer(
+                [("table", prepared.read.table.table),
+                 ("public", "rows as stored: no noise, nothing charged"),
+                 ("backend sql", prepared.sql)], form,
+                remaining=self.ledger.remaining(analyst), table=prepared.read.table.table)
         eps = self.epsilon_for(epsilon)
         plan, rewritten = prepared.plan, prepared.rewritten
         split = epsilon_split(rewritten, len(plan.measures), eps)
@@ -464,6 +499,7 @@ class Engine:
             ("table", plan.table.table),
             ("protected unit", f"individual ({plan.table.individual.column}, population "
                                f"{plan.table.population})" if plan.table.individual else "row"),
+            *([("joins", describe_joins(plan))] if plan.joins else []),
             ("cells", str(rewritten.cells)),
             *[(f"key {key_label(key)}", describe_key(plan.table.columns[key.column], key))
               for key in plan.keys],
@@ -503,12 +539,14 @@ class Engine:
         """Plan, reserve, run, noise and release one statement. Raises HushError."""
         arrived = time.monotonic()
         prepared = self.prepare(analyst, statement)
+        if isinstance(prepared, PreparedRead):
+            return self._read_public(analyst, prepared, control)
         self._renewals.apply_due()  # a clock comparison except at a period boundary
         eps = self.epsilon_for(epsilon)
         plan = prepared.plan
         text = statement if isinstance(statement, str) else statement.shown() \
             if isinstance(statement, BoundStatement) else statement.sql(dialect="postgres")
-        charge, remaining = self.ledger.reserve(analyst, [plan.table.table], eps, text,
+        charge, remaining = self.ledger.reserve(analyst, _charged_tables(plan), eps, text,
                                                 prepared.fingerprint)
         outcome = "failed"
         steady = _steady_ms(plan)
@@ -538,6 +576,23 @@ class Engine:
         if failure is not None:
             raise failure
         return dataclasses.replace(answer, remaining=remaining)
+
+    def _read_public(self, analyst: str, prepared: PreparedRead,
+                     control: QueryControl | None) -> Answer:
+        """A public table's rows as stored; 54000 when there are more than ``most_cells``."""
+        read = prepared.read
+        rows = self.backend.run(prepared.sql, control, None,
+                                timeout_ms=self.policies.limits.query_timeout_ms)
+        if len(rows) > read.most_rows:
+            raise HushError(PROGRAM_LIMIT_EXCEEDED,
+                            f"public table {read.table.table} has more than {read.most_rows:,} "
+                            "rows to answer (most_cells)",
+                            "read fewer with WHERE or LIMIT, or page with LIMIT and OFFSET")
+        return Answer(columns=prepared.columns, rows=[tuple(row) for row in rows],
+                      epsilon=Decimal(0), remaining=self.ledger.remaining(analyst), accuracy=[],
+                      tables=[read.table.table],
+                      notes=[f"{read.table.table} is a public table: its rows as stored, no noise, "
+                             "nothing charged"])
 
     def _note_answered(self, charge: int) -> None:
         """Queues an 'answered' note for the notes thread, which records what has gathered in
@@ -661,12 +716,17 @@ class Engine:
         return Answer(columns=_columns(plan),
                       rows=postprocess(plan, rows), epsilon=epsilon,
                       remaining=Decimal(0), accuracy=accuracy,
-                      tables=[plan.table.table], charge_id=charge,
+                      tables=_charged_tables(plan), charge_id=charge,
                       notes=_answer_notes(plan, rewritten, values))
 
 
 def _columns(plan: Plan) -> list[OutputColumn]:
     return [OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs]
+
+
+def _described(prepared: Prepared | PreparedRead) -> list[OutputColumn]:
+    """The columns a prepared statement's answer will have."""
+    return prepared.columns if isinstance(prepared, PreparedRead) else _columns(prepared.plan)
 
 
 def _same_plan(a: Prepared, b: Prepared) -> bool:
@@ -676,10 +736,32 @@ def _same_plan(a: Prepared, b: Prepared) -> bool:
         and dataclasses.replace(a.plan, where=None) == dataclasses.replace(b.plan, where=None)
 
 
-def _plan_bytes(entry: Prepared | _LatePlan) -> int:
+def describe_joins(plan: Plan) -> str:
+    """The tables a plan reads and how they meet, for EXPLAIN."""
+    parts = []
+    for join in plan.joins:
+        name = join.table.table + (" (public)" if join.table.public else "")
+        if join.to is None:
+            parts.append(name)
+        else:
+            other = plan.joins[join.to[0]].table.table
+            verb = "semi-join" if join.kind == "semi" else "join"
+            parts.append(f"{verb} {name} on {join.table.table}.{join.column} = {other}.{join.to[1]}")
+    return "; ".join(parts) + " (rows bounded per individual over the joined rows)"
+
+
+def _charged_tables(plan: Plan) -> list[str]:
+    """The tables a query's charge names: every table it reads but public ones (they protect
+    nobody); the ledger charges their populations once each."""
+    return list(dict.fromkeys(t.table for t in plan.tables if not t.public))
+
+
+def _plan_bytes(entry: Prepared | PreparedRead | _LatePlan) -> int:
     """An estimate of a cached plan's memory: about 600 bytes per condition node (measured with
     tracemalloc on the largest accepted shapes), plus the backend SQL and the cells."""
     prepared = entry.prepared if isinstance(entry, _LatePlan) else entry
+    if isinstance(prepared, PreparedRead):
+        return 2_000 + 2 * len(prepared.sql)
     plan = prepared.plan
     nodes = sum(1 for clause in (plan.where, plan.having) if clause is not None
                 for _ in clause.walk())

@@ -169,6 +169,11 @@ class TablePolicy(_Strict):
     individual: Individual | None = None
     budget: TableBudget | None = None
     timing: Timing | None = None
+    # A public table (a list of tariffs, a calendar) holds nothing about anyone: its rows are
+    # readable as they are, cost nothing, and it may be joined many-to-one on ``key``, a column
+    # whose values are unique in it (the proxy also drops any key value that repeats).
+    public: bool = False
+    key: str | None = None
     columns: dict[str, ColumnPolicy]
 
     def column(self, name: str) -> ColumnPolicy | None:
@@ -381,9 +386,29 @@ def _table_problems(policy: TablePolicy) -> list[tuple[str, str]]:
             found.append(("individual.population", "must be a lower-case name (letters, digits, _)"))
     if policy.budget is not None and policy.budget.cap <= 0:
         found.append(("budget.cap", "must be positive"))
+    found += _public_problems(policy)
     if policy.timing is not None and not 1 <= policy.timing.answer_after_ms <= LONGEST_ANSWER_AFTER_MS:
         found.append(("timing.answer_after_ms",
                       f"must be a whole number of milliseconds from 1 to {LONGEST_ANSWER_AFTER_MS}"))
+    return found
+
+
+def _public_problems(policy: TablePolicy) -> list[tuple[str, str]]:
+    """A public table protects nobody (no individual, budget or timing); ``key`` names one of
+    its columns and is only meaningful on a public table."""
+    found: list[tuple[str, str]] = []
+    if policy.key is not None and not policy.public:
+        found.append(("key", "only a public table (public = true) declares a join key"))
+    if policy.key is not None and policy.key not in policy.columns:
+        found.append(("key", f"{policy.key!r} is not a listed column; list it under [columns]"))
+    if policy.key is not None and policy.key in policy.columns \
+            and policy.columns[policy.key].kind not in ("category", "integer", "date"):
+        found.append(("key", "a join key is a category, integer or date column"))
+    if policy.public:
+        for section in ("individual", "budget", "timing"):
+            if getattr(policy, section) is not None:
+                found.append((section, "a public table protects nobody: remove this section, "
+                                       "or set public = false"))
     return found
 
 

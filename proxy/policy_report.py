@@ -126,6 +126,10 @@ def _tables_table(policies: Policies) -> Table:
     for name in sorted(policies.tables):
         table = policies.tables[name]
         ind = table.individual
+        if table.public:
+            view.add_row(name, table.source, "nobody (public)", "-",
+                         f"key {table.key}" if table.key else "-", "none (free)")
+            continue
         view.add_row(name, table.source,
                      f"one {ind.column}" if ind else "one row",
                      table.population,

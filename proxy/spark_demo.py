@@ -1,8 +1,8 @@
 """The demo's invented water-utility scenario, loaded into Apache Spark as Parquet tables.
 
 The same rows as ``proxy.demo.load_scenario`` writes into PostgreSQL (same generator, same
-seed), as tables ``utility.households`` and ``utility.meter_readings`` of the Spark Connect
-server's catalog, stored as Parquet. The readings go in chunks of households, each appended
+seed), as tables ``utility.households``, ``utility.meter_readings`` and the public
+``utility.tariffs`` of the Spark Connect server's catalog, stored as Parquet. The readings go in chunks of households, each appended
 to the table, so the progress bar moves as they are written. Readings are sent as whole tenths
 of a litre and made DECIMAL(7,1) in Spark, the PostgreSQL table's numeric(7,1).
 """
@@ -17,7 +17,8 @@ from pathlib import Path
 import numpy as np
 from rich.console import Console
 
-from proxy.demo import (DAYS, DISTRICTS, SCHEMA, TARIFFS, YEAR, _database_name, _print_examples,
+from proxy.demo import (DAYS, DISTRICTS, SCHEMA, TARIFF_PRICES, TARIFFS, YEAR, _database_name,
+                        _print_examples,
                         _progress, _say, generate_scenario)
 from proxy.policy import PolicyError, load_policies
 
@@ -65,6 +66,10 @@ def load_scenario_into_spark(dsn: str, *, households: int = 3000, seed: int = 20
                     .mode("overwrite" if first == 0 else "append").format("parquet") \
                     .saveAsTable(f"{SCHEMA}.meter_readings")
                 bar.advance(readings_task, count * DAYS)
+            prices = pd.DataFrame(TARIFF_PRICES, columns=["tariff", "price", "description"])
+            session.createDataFrame(prices).selectExpr(
+                "tariff", "CAST(price AS DECIMAL(5,2)) AS price_per_m3", "description").write \
+                .mode("overwrite").format("parquet").saveAsTable(f"{SCHEMA}.tariffs")
     finally:
         session.stop()
     return {"households": scenario.households, "readings": scenario.readings}

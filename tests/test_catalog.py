@@ -71,7 +71,7 @@ def test_mirror_holds_no_rows_and_no_statistics(catalog: Catalog, backend: str) 
     assert real["households"] == HOUSEHOLDS and real["meter_readings"] > 0
     got = rows(catalog, "planner", "SELECT c.relname, c.reltuples, c.relpages FROM "
                "pg_catalog.pg_class c WHERE c.relnamespace = 'public'::regnamespace ORDER BY 1")
-    assert [r[0] for r in got] == ["households", "readings"]
+    assert [r[0] for r in got] == ["households", "readings", "tariffs"]
     assert all(tuples <= 0 and pages == 0 for _, tuples, pages in got)
     # Even a count that skipped the routing (which sends it to the engine) finds nothing.
     assert rows(catalog, "planner", "SELECT count(*) FROM households") == [(0,)]
@@ -104,7 +104,7 @@ def test_mirror_has_only_the_exposed_columns_typed_by_kind(catalog: Catalog,
 
 
 def test_each_account_sees_only_its_granted_tables(catalog: Catalog) -> None:
-    assert rows(catalog, "planner", PUBLIC_TABLES) == [("households",), ("readings",)]
+    assert rows(catalog, "planner", PUBLIC_TABLES) == [("households",), ("readings",), ("tariffs",)]
     assert rows(catalog, "researcher", PUBLIC_TABLES) == [("households",)]
     assert rows(catalog, "auditor", PUBLIC_TABLES) == []  # an administrator: no tables
     listed = rows(catalog, "researcher", "SELECT table_name FROM information_schema.tables "

@@ -125,7 +125,7 @@ def test_psql(demo_proxy: RunningProxy, exact) -> None:
     assert table_rows(described.stdout)[2][1] == "integer"
 
     tables = psql(demo_proxy, "-c", "\\dt")
-    assert [r[1] for r in table_rows(tables.stdout)[2:]] == ["households", "readings"]
+    assert [r[1] for r in table_rows(tables.stdout)[2:]] == ["households", "readings", "tariffs"]
     theirs = psql(demo_proxy, "-c", "\\dt", user="researcher")  # granted households only
     assert [r[1] for r in table_rows(theirs.stdout)[2:]] == ["households"]
 
@@ -276,7 +276,7 @@ def test_sqlalchemy_with_pandas(demo_proxy: RunningProxy, exact) -> None:
         assert_noisy_counts(frame.values.tolist(), exact["above"])
 
         inspector = sqlalchemy.inspect(engine)
-        assert inspector.get_table_names() == ["households", "readings"]
+        assert inspector.get_table_names() == ["households", "readings", "tariffs"]
         columns = inspector.get_columns("households")
         assert [c["name"] for c in columns] == EXPOSED
         assert [type(c["type"]).__name__ for c in columns] == [
@@ -324,7 +324,7 @@ def test_jdbc(demo_proxy: RunningProxy, exact, jdbc_classes: Path) -> None:
     assert facts["refused"] == [[NOT_SUPPORTED]]
     assert facts["param-column"] == [["district", "text"], ["households", "int8"]]
     assert_noisy_counts([(d, int(n)) for d, n in facts["param-row"]], exact["above"])
-    assert [t[0] for t in facts["table"]] == ["households", "readings"]
+    assert [t[0] for t in facts["table"]] == ["households", "readings", "tariffs"]
     assert facts["table"][0][1] == "One row per household supplied by the utility"
     assert [(c[0], c[1]) for c in facts["column"]] == [
         ("household_id", "int4"), ("district", "text"), ("occupants", "int4"),

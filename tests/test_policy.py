@@ -64,12 +64,12 @@ def problems(root: Path) -> list[str]:
 
 def test_demo_policies_load_cleanly() -> None:
     loaded = load_policies(DEMO_POLICIES)
-    assert sorted(loaded.tables) == ["households", "readings"]
+    assert sorted(loaded.tables) == ["households", "readings", "tariffs"]
     assert loaded.defaults.epsilon_per_query == Decimal("0.1")
     assert loaded.defaults.largest_epsilon_per_query == Decimal("1.0")
     assert loaded.defaults.most_cells == 10000
     assert {n: (a.budget, sorted(a.tables)) for n, a in loaded.analysts.items()} == {
-        "planner": (Decimal("3.0"), ["households", "readings"]),
+        "planner": (Decimal("3.0"), ["households", "readings", "tariffs"]),
         "researcher": (Decimal("1.0"), ["households"]),
     }
     assert list(loaded.admins) == ["auditor"]
@@ -354,7 +354,8 @@ def test_check_command_summarises_the_demo_policies() -> None:
                      "2026-01-01 .. 2026-12-31", "365 cells", "0 .. 2000", "0.1",
                      "no (100,000 cells > most_cells)", "planner", "3.0",
                      "households, readings", "researcher", "1.0", "Administrators: auditor",
-                     "2 tables, 2 analysts, 1 administrator."):
+                     "nobody (public)", "key tariff", "none (free)",
+                     "3 tables, 2 analysts, 1 administrator."):
         assert expected in text, expected
 
 
@@ -409,3 +410,22 @@ def test_connection_limit_problems_name_their_key(policies: Path, lines: str,
                                                   expected: list[str]) -> None:
     set_connections(policies, lines)
     assert problems(policies) == expected
+
+
+def test_public_table_keys_are_checked(tmp_path) -> None:
+    """public and key: a public table protects nobody and names a listed join key."""
+    folder = tmp_path / "p"
+    shutil.copytree(DEMO_POLICIES, folder)
+    tariffs = folder / "tables" / "tariffs.toml"
+    text = tariffs.read_text()
+    tariffs.write_text(text.replace('key = "tariff"', 'key = "price"') +
+                       "\n[budget]\ncap = 1.0\n")
+    (folder / "tables" / "households.toml").write_text(
+        (folder / "tables" / "households.toml").read_text().replace(
+            'table = "households"', 'table = "households"\nkey = "district"'))
+    with pytest.raises(PolicyError) as caught:
+        load_policies(folder)
+    problems = "\n".join(caught.value.problems)
+    assert "tariffs.toml: key: 'price' is not a listed column" in problems
+    assert "tariffs.toml: budget: a public table protects nobody" in problems
+    assert "households.toml: key: only a public table (public = true) declares a join key" in problems

@@ -137,8 +137,8 @@ def test_the_worked_example_loads_passes_check_and_answers(fresh_dsn: str,
     shutil.copytree(ROOT / "policies", folder)
     (folder / "tables" / "water_survey.toml").write_text(example_policy(text))
     access = (folder / "access.toml").read_text()
-    granted = access.replace('tables = ["households", "readings"]',
-                             'tables = ["households", "readings", "water_survey"]')
+    granted = access.replace('tables = ["households", "readings", "tariffs"]',
+                             'tables = ["households", "readings", "tariffs", "water_survey"]')
     assert granted != access
     (folder / "access.toml").write_text(granted)
     console = Console(file=open(tmp_path / "check.txt", "w"), width=200)

@@ -3,7 +3,8 @@
 
 Neighbouring databases: ``full`` holds everyone; ``without`` lacks the individual with the most
 rows and the largest total (person 99: 40 visits of 60 minutes, ten times the owner's declared
-``most_rows`` of 4, so only the bounds keep it in check). Each query runs through the engine's
+``most_rows`` of 4, so only the bounds keep it in check), in both tables of its population
+(``visits`` and the one-row-per-person ``residents``, which joined queries read). Each query runs through the engine's
 own steps (bounds' noise, backend query, noise, release; the ledger aside) many times on each.
 
 Test: events ``{statistic >= t}`` (and their complements, either database first) are picked on
@@ -63,16 +64,37 @@ range = [0, 60]
 """
 
 
+# One row per person, the same population as visits: joins of the two are audited too.
+RESIDENTS = """
+table = "residents"
+source = "audit.residents_{source}"
+
+[individual]
+column = "person_id"
+population = "people"
+most_rows = 1
+
+[columns.person_id]
+kind = "integer"
+range = [1, 1000]
+
+[columns.ward]
+kind = "category"
+values = ["north", "south", "east"]
+"""
+
+
 def _policies(root: Path, source: str):
     (root / "tables").mkdir(parents=True)
     (root / "tables" / "visits.toml").write_text(VISITS.format(source=source))
+    (root / "tables" / "residents.toml").write_text(RESIDENTS.format(source=source))
     (root / "access.toml").write_text(textwrap.dedent(f"""
         [defaults]
         largest_epsilon_per_query = 10
         [analysts.auditor]
         password = "{DUMMY_VERIFIER}"
         budget = 1000000
-        tables = ["visits"]
+        tables = ["visits", "residents"]
         """))
     return load_policies(root)
 
@@ -90,6 +112,12 @@ def engines(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
             UNION ALL
             SELECT 99, 'north', 60 FROM generate_series(1, 40)""")
         conn.execute("CREATE TABLE audit.without AS SELECT * FROM audit.full WHERE person_id <> 99")
+        # Neighbours leave every table of their population: person 99 lives in the north.
+        conn.execute("CREATE TABLE audit.residents_full AS SELECT p AS person_id, "
+                     "(ARRAY['north','south','east'])[1 + p % 3] AS ward "
+                     "FROM generate_series(1, 60) AS p UNION ALL SELECT 99, 'north'")
+        conn.execute("CREATE TABLE audit.residents_without AS SELECT * FROM audit.residents_full "
+                     "WHERE person_id <> 99")
     made = {}
     for name in ("full", "without"):
         policies = _policies(tmp_path_factory.mktemp(name), name)
@@ -154,6 +182,11 @@ QUERIES = [
     ("SELECT SUM(minutes) FROM visits", _first),
     ("SELECT AVG(minutes) FROM visits", _first),
     ("SELECT ward, COUNT(*) FROM visits GROUP BY ward", _north),
+    # Joined on the individual: person 99 owns 40 joined rows, ten times most_rows 4 x 1.
+    ("SELECT r.ward, COUNT(*) FROM visits v JOIN residents r ON r.person_id = v.person_id "
+     "GROUP BY r.ward", _north),
+    ("SELECT COUNT(*) FROM visits WHERE person_id IN "
+     "(SELECT person_id FROM residents WHERE ward = 'north')", _first),
 ]
 
 
@@ -164,7 +197,8 @@ def test_the_real_path_keeps_within_epsilon(engines, sql, statistic) -> None:
     assert privacy_loss_lower_bound(full, without) <= float(EPSILON)
 
 
-@pytest.mark.parametrize("sql, statistic", [QUERIES[0], QUERIES[3]], ids=["count", "group by"])
+@pytest.mark.parametrize("sql, statistic", [QUERIES[0], QUERIES[3], QUERIES[4]],
+                         ids=["count", "group by", "join"])
 def test_the_audit_catches_a_rewrite_without_clipping(engines, monkeypatch, sql, statistic) -> None:
     # Clipping switched off: every individual's factor is 1, whatever its rows and totals; the
     # sensitivities claimed stay the same, so the heavy individual's 40 rows leak.

@@ -10,7 +10,9 @@ sqlglot's PostgreSQL dialect and must be exactly one SELECT of the accepted shap
 - table: a policy table granted to the analyst, unqualified or qualified by ``public``, with an
   optional alias. Unknown tables are 42P01 and columns not in the policy 42703, worded as
   PostgreSQL words them for objects that do not exist, so an unlisted column is
-  indistinguishable from an absent one.
+  indistinguishable from an absent one. Tables of one population joined on their individual
+  columns, public tables joined on their key, and ``<individual> IN (SELECT ...)`` semi-joins
+  are read by ``proxy.sql.joins`` into one table; other joins are refused.
 - aggregates: COUNT(*), COUNT(col), SUM(col) and AVG(col) of integer or number columns,
   COUNT(DISTINCT <individual column>) on tables with [individual]. Their measures are
   deduplicated (AVG(x) = SUM(x) / COUNT(x) shares the sum of x with SUM(x)).
@@ -46,8 +48,10 @@ from proxy.sql.domains import TRUNC_UNITS, EmptyBucket, cell_count, key_size, ke
 from proxy.sql.filters import (KIND_TYPE, Typed, chain_operands, check_filter, date_node, literal,
                                mark_written_names, only_args, refuse_expression, unify, unparen,
                                written_name, written_sql)
+from proxy.sql.joins import Scope, name_of as _name, read_from, take_semi_joins
 from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narrowings, read_key,
                             restrictions)
+from proxy.sql.public import PublicRead, is_public_read, read_public
 from proxy.sql.limits import check_statement_text, check_tree
 from proxy.sql.limits import hint as limit_hint
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
@@ -64,7 +68,7 @@ HAVING_HINT = ("HAVING accepts aggregates, group keys, literals, comparisons, BE
 ORDER_HINT = "ORDER BY accepts output names, output positions, group keys and aggregates"
 LIMIT_HINT = "LIMIT and OFFSET take a non-negative integer literal"
 
-_SELECT_CLAUSES = frozenset({"expressions", "from", "from_", "where", "group", "having", "order",
+_SELECT_CLAUSES = frozenset({"expressions", "from", "from_", "joins", "where", "group", "having", "order",
                              "limit", "offset"})
 _CLAUSE_REFUSALS = {
     "with": "WITH (common table expressions) is not accepted",
@@ -72,7 +76,6 @@ _CLAUSE_REFUSALS = {
     "distinct": "DISTINCT is not accepted: GROUP BY already gives one row per declared value",
     "into": "SELECT INTO is not accepted: hushql is read-only",
     "locks": "FOR UPDATE / FOR SHARE is not accepted: hushql is read-only",
-    "joins": "joins are not accepted: query one table at a time",
     "laterals": "LATERAL is not accepted: query one table at a time",
     "windows": "window functions are not accepted",
     "sample": "TABLESAMPLE is not accepted",
@@ -82,7 +85,6 @@ _WRITES = tuple(getattr(exp, name) for name in (
     "Grant", "Revoke", "Analyze") if hasattr(exp, name))
 _STRUCTURAL = (exp.Window, exp.Subquery, exp.Select, exp.Exists)  # refused whatever they hold
 _ACCEPTED_AGGREGATES = (exp.Count, exp.Sum, exp.Avg)
-_ASCII_LOWER = str.maketrans("ABCDEFGHIJKLMNOPQRSTUVWXYZ", "abcdefghijklmnopqrstuvwxyz")
 _PG_TYPE = {"category": "text", "integer": "integer", "number": "numeric", "date": "date",
             "boolean": "boolean"}
 # The analysis type (as in proxy.sql.filters) of a key's PostgreSQL type, for HAVING.
@@ -90,8 +92,9 @@ _KEY_FAMILY = {"text": "text", "integer": "number", "bigint": "number", "numeric
                "double precision": "number", "date": "date", "boolean": "boolean"}
 
 
-def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -> Plan:
-    """The plan of one accepted SELECT by ``analyst``; HushError (SQLSTATE, message, hint) otherwise.
+def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -> Plan | PublicRead:
+    """The plan of one accepted SELECT by ``analyst`` (a ``PublicRead`` for the rows of a public
+    table); HushError (SQLSTATE, message, hint) otherwise.
 
     A string is parsed with sqlglot (PostgreSQL dialect); a parsed tree is used as is and never
     modified. Nothing here reads data or touches a database.
@@ -107,6 +110,8 @@ def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -
         tree = _parse(statement) if isinstance(statement, str) else statement
         check_tree(tree, policies.limits)
         select = _as_select(tree)
+        if is_public_read(select, policies):
+            return read_public(select, policies, frozenset(analyst_policy.tables))
         return _Analysis(select, policies, frozenset(analyst_policy.tables)).plan()
     except RecursionError:  # the parser's own recursion can run out before check_tree runs
         raise HushError(STATEMENT_TOO_COMPLEX, "the statement is nested too deeply",
@@ -162,16 +167,6 @@ def _statement_name(tree: exp.Expression) -> str:
     return tree.key.upper()
 
 
-def _name(identifier: exp.Expression | None) -> str:
-    """An identifier as PostgreSQL resolves it: quoted names exact, unquoted ones with A-Z folded
-    to lower case (PostgreSQL folds only ASCII letters in UTF-8 databases)."""
-    if not isinstance(identifier, exp.Identifier):
-        raise refused("this name is not accepted", SHAPE_HINT)
-    if "\x00" in identifier.this:
-        raise HushError(SYNTAX_ERROR, "names may not contain NUL characters", SHAPE_HINT)
-    return identifier.this if identifier.quoted else identifier.this.translate(_ASCII_LOWER)
-
-
 @dataclass(frozen=True)
 class _Aggregate:
     """An accepted aggregate call: the output kind, its measures, column and default name."""
@@ -204,8 +199,7 @@ class _Analysis:
         self.outputs: list[Output] = []
         self.keys: list[GroupKey] = []
         self.table: TablePolicy
-        self.qualifiers: frozenset[str]
-        self.alias: str | None = None
+        self.scope: Scope
 
     # ---------------------------------------------------------------------------------------
     def plan(self) -> Plan:
@@ -214,7 +208,8 @@ class _Analysis:
             if value not in (None, False, []) and key not in _SELECT_CLAUSES:
                 raise refused(_CLAUSE_REFUSALS.get(key, f"this form of SELECT is not accepted ({key})"),
                               SHAPE_HINT)
-        self._from(select.args.get("from_") or select.args.get("from"))
+        self.scope = read_from(select, self.policies, self.granted)
+        self.table = self.scope.table
         items = [self._select_item(node) for node in select.expressions]
         group = select.args.get("group")
         having = select.args.get("having")
@@ -224,10 +219,13 @@ class _Analysis:
         if group is not None:
             self._group_by(group, items)
         where = select.args.get("where")
-        condition = check_filter(where.this, self._column, bucket_reader(self.table, self._column),
-                                 self.policies.limits) if where is not None else None
+        # The WHERE without its semi-joins (a copy when it had any: the tree is never modified).
+        written = take_semi_joins(where.this, self.scope, self.policies, self.granted) \
+            if where is not None else None
+        condition = check_filter(written, self._column, bucket_reader(self.table, self._column),
+                                 self.policies.limits) if written is not None else None
         within = narrowings(condition, self.table)
-        among = restrictions(where.this, self._column) if where is not None else {}
+        among = restrictions(written, self._column) if written is not None else {}
         keys = tuple(replace(key, within=within.get(key.column), among=among.get(key))
                      for key in self.keys)
         self._check_cells(keys)
@@ -241,65 +239,15 @@ class _Analysis:
             raise refused("the query has no aggregate", SELECT_HINT)
         return Plan(table=self.table, measures=tuple(self.measures), outputs=tuple(self.outputs),
                     keys=keys, where=condition, having=having_condition,
-                    order_by=order, limit=limit, offset=offset)
+                    order_by=order, limit=limit, offset=offset, joins=self.scope.joins)
 
     # FROM ----------------------------------------------------------------------------------
-    def _from(self, clause: exp.Expression | None) -> None:
-        if clause is None:
-            raise refused("SELECT without FROM is not accepted", "name one table: FROM <table>")
-        source = clause.this
-        if not isinstance(source, exp.Table) or not isinstance(source.this, exp.Identifier):
-            raise refused("FROM accepts one table, not a function, subquery or list of values",
-                          "write FROM <table> [AS alias]")
-        for key, value in source.args.items():
-            if value not in (None, False, []) and key not in ("this", "db", "alias"):
-                raise refused(_CLAUSE_REFUSALS.get(key, f"this form of FROM is not accepted ({key})"),
-                              "write FROM <table> [AS alias]")
-        name = _name(source.this)
-        schema = _name(source.args["db"]) if source.args.get("db") is not None else None
-        if schema is not None and schema != "public":
-            raise self._no_table(f"{schema}.{name}")
-        table = self.policies.tables.get(name)
-        if table is None:
-            raise self._no_table(name)
-        if name not in self.granted:
-            raise HushError(INSUFFICIENT_PRIVILEGE, f"permission denied for table {name}",
-                            "ask an administrator to grant it; " + self._granted_list())
-        self.table = table
-        alias = source.args.get("alias")
-        if alias is not None:
-            only_args(alias, ("this",), "a table alias with column names", "write FROM <table> AS a")
-            self.alias = _name(alias.this)
-        self.qualifiers = frozenset({self.alias or name})
-
-    def _no_table(self, name: str) -> HushError:
-        return HushError(UNDEFINED_TABLE, f'relation "{name}" does not exist', self._granted_list())
-
-    def _granted_list(self) -> str:
-        names = sorted(self.granted & set(self.policies.tables))
-        return "tables you may query: " + (", ".join(names) if names else "none")
-
-    # columns -------------------------------------------------------------------------------
     def _column(self, node: exp.Column) -> tuple[str, ColumnPolicy]:
-        """Resolve a column reference against the table's policy (42P01 / 42703 when absent)."""
+        """Resolve a column reference against the FROM's tables (42P01 / 42703 / 42702)."""
         if isinstance(node.this, exp.Star):
             raise refuse_expression(node, "the select list", SELECT_HINT)
         only_args(node, ("this", "table", "db"), "a column reference", SHAPE_HINT)
-        qualifier = node.args.get("table")
-        if qualifier is not None:
-            prefix = _name(qualifier)
-            schema = node.args.get("db")
-            if schema is not None and (_name(schema) != "public" or self.alias is not None):
-                prefix = f"{_name(schema)}.{prefix}"
-            if prefix not in self.qualifiers:
-                raise HushError(UNDEFINED_TABLE, f'missing FROM-clause entry for table "{prefix}"',
-                                f"qualify columns with {next(iter(self.qualifiers))} or not at all")
-        name = _name(node.this)
-        column = self.table.columns.get(name)
-        if column is None:
-            raise HushError(UNDEFINED_COLUMN, f'column "{name}" does not exist',
-                            f"columns of {self.table.table}: " + ", ".join(self.table.columns))
-        return name, column
+        return self.scope.resolve(node)
 
     # select list ---------------------------------------------------------------------------
     def _select_item(self, node: exp.Expression) -> _SelectItem:
@@ -320,6 +268,8 @@ class _Analysis:
             return _SelectItem(alias or aggregate.name, aggregate=aggregate)
         if is_key_expression(node) and not _holds_aggregate(node):
             key, column, name = read_key(node, self._column)
+            if isinstance(node, exp.Column):  # a joined column may be named table.column inside
+                name = _name(node.this)
             return _SelectItem(alias or name, key=key, column=column)
         if literal(node) is not None:
             raise refused("constants are not accepted in the select list", SELECT_HINT)
@@ -422,7 +372,7 @@ class _Analysis:
         if isinstance(node, exp.Column) and node.args.get("table") is None \
                 and not isinstance(node.this, exp.Star):
             name = _name(node.this)
-            if name not in self.table.columns:  # PostgreSQL: input columns first, then output names
+            if name not in self.scope.unqualified:  # PostgreSQL: input columns first, then output names
                 matches = [item for item in items if item.name == name]
                 if matches:
                     return self._item_key(matches[0])

@@ -9,7 +9,9 @@ from __future__ import annotations
 from proxy.sql.analyse import (BUCKETS, HAVING_HINT, LIMIT_HINT, ORDER_HINT, SELECT_HINT,
                                SHAPE_HINT)
 from proxy.sql.filters import FUNCTION_HINT, WHERE_HINT
+from proxy.sql.joins import JOIN_HINT
 from proxy.sql.keys import BUCKET_HINT
+from proxy.sql.public import READ_HINT
 
 GROUP_BY_HINT = (BUCKET_HINT.replace("date_trunc('<unit>'", "date_trunc('<" + "|".join(BUCKETS)
                                      + ">'")
@@ -18,6 +20,8 @@ GROUP_BY_HINT = (BUCKET_HINT.replace("date_trunc('<unit>'", "date_trunc('<" + "|
 # (what, the analyser's own words for what it accepts there)
 ACCEPTED: tuple[tuple[str, str], ...] = (
     ("Statement", SHAPE_HINT),
+    ("Joins", JOIN_HINT + "; every table must be granted, and the charge names each protected one"),
+    ("Public tables", READ_HINT + " (exact rows, nothing charged)"),
     ("Select list", SELECT_HINT),
     ("WHERE", WHERE_HINT),
     ("Functions", FUNCTION_HINT + " (functions only in WHERE)"),

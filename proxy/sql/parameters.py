@@ -7,9 +7,11 @@ know whether ``occupants > $1`` means the number 2 or the text '2'. Pure; reads 
 
 from __future__ import annotations
 
+from typing import Callable
+
 import sqlglot.expressions as exp
 
-from proxy.policy import Policies
+from proxy.policy import ColumnPolicy, Policies, TablePolicy
 
 # The PostgreSQL type a column of each policy kind is compared as.
 _KIND_TYPES = {"category": "text", "integer": "bigint", "number": "numeric", "date": "date",
@@ -28,31 +30,44 @@ def parameter_types(tree: exp.Expression, policies: Policies) -> list[str | None
         return []
     count = max(int(p.name) for p in parameters)
     found: list[str | None] = [None] * count
-    table = _policy_table(tree, policies)
+    column_policy = _column_policies(tree, policies)
     for parameter in parameters:
         index = int(parameter.name) - 1
         parent = parameter.parent
         if isinstance(parent, (exp.Limit, exp.Offset)):
             found[index] = "bigint"
-        elif table is not None and isinstance(parent, _COMPARISONS):
+        elif isinstance(parent, _COMPARISONS):
             column = _compared_column(parent, parameter)
-            policy = table.columns.get(column) if column else None
+            policy = column_policy(column) if column is not None else None
             if policy is not None:
                 found[index] = "text" if isinstance(parent, (exp.Like, exp.ILike)) \
                     else _KIND_TYPES[policy.kind]
     return found
 
 
-def _policy_table(tree: exp.Expression, policies: Policies):
-    tables = list(tree.find_all(exp.Table))
-    if len(tables) != 1:
-        return None
-    return policies.tables.get(tables[0].name)
+def _column_policies(tree: exp.Expression,
+                     policies: Policies) -> Callable[[exp.Column], ColumnPolicy | None]:
+    """A lookup of a column reference's policy among the tables the statement names (joined
+    ones too, by alias or name); None when unknown or when the tables that have an unqualified
+    column disagree on its kind."""
+    named: dict[str, TablePolicy] = {}
+    for table in tree.find_all(exp.Table):
+        policy = policies.tables.get(table.name)
+        if policy is not None:
+            named[table.alias_or_name] = policy
+
+    def find(column: exp.Column) -> ColumnPolicy | None:
+        if column.table:
+            policy = named.get(column.table)
+            return policy.columns.get(column.name) if policy is not None else None
+        found = [p.columns[column.name] for p in named.values() if column.name in p.columns]
+        return found[0] if found and len({c.kind for c in found}) == 1 else None
+    return find
 
 
-def _compared_column(node: exp.Expression, parameter: exp.Expression) -> str | None:
+def _compared_column(node: exp.Expression, parameter: exp.Expression) -> exp.Column | None:
     """The column a comparison's parameter stands against (the other operand)."""
     subject = node.expression if node.this is parameter else node.this
     while isinstance(subject, exp.Paren):
         subject = subject.this
-    return subject.name if isinstance(subject, exp.Column) else None
+    return subject if isinstance(subject, exp.Column) else None

@@ -12,6 +12,9 @@ Vocabulary:
   query share the sum of ``x``, so epsilon is split among distinct measures only.
 - an *output* is one column of the answer, built from measures by post-processing.
 - a *cell* is one combination of group-key values from the declared domains.
+- a *join* (``Plan.joins``, read by ``proxy.sql.joins``): when a query reads several tables,
+  ``Plan.table`` is the one table they make (its columns named as in the plan, its individual
+  the shared one), and ``joins`` says which policy tables make it and how.
 """
 
 from __future__ import annotations
@@ -24,6 +27,7 @@ import sqlglot.expressions as exp
 
 from proxy.policy import TablePolicy
 
+JoinKind = Literal["from", "inner", "semi"]
 MeasureKind = Literal["count_rows", "count_values", "sum", "count_individuals"]
 OutputKind = Literal["key", "count", "sum", "avg"]
 
@@ -101,6 +105,23 @@ class Output:
 
 
 @dataclass(frozen=True)
+class Join:
+    """One policy table a query reads, in FROM order (the first is ``from``).
+
+    ``columns`` maps each plan column it provides to its own column (none for ``semi``, which
+    only filters). ``column`` is its own column equal to column ``to[1]`` of ``Plan.joins[to[0]]``
+    (None for ``from``). ``where`` is a semi-join's checked condition over its own columns
+    (unqualified, as ``Plan.where``)."""
+
+    table: TablePolicy
+    kind: JoinKind
+    columns: tuple[tuple[str, str], ...] = ()
+    column: str | None = None
+    to: tuple[int, str] | None = None
+    where: exp.Expression | None = None
+
+
+@dataclass(frozen=True)
 class OrderItem:
     """Sort the noisy rows by output ``output``."""
 
@@ -116,7 +137,8 @@ class Plan:
     ``where`` is a validated sqlglot condition over the table's exposed columns (unqualified
     ``exp.Column`` nodes named as in the policy) or None. ``having`` is a condition in which each
     aggregate has been replaced by ``exp.Column(this=exp.to_identifier(output_ref(i)))``, evaluated
-    on noisy values by post-processing.
+    on noisy values by post-processing. ``joins`` is empty for a query of one table; otherwise
+    it lists every table read (``Join``) and ``table`` is the table they make together.
     """
 
     table: TablePolicy
@@ -128,6 +150,12 @@ class Plan:
     order_by: tuple[OrderItem, ...] = ()
     limit: int | None = None
     offset: int | None = None
+    joins: tuple[Join, ...] = ()
+
+    @property
+    def tables(self) -> tuple[TablePolicy, ...]:
+        """Every policy table the query reads (charged, except public ones)."""
+        return tuple(j.table for j in self.joins) if self.joins else (self.table,)
 
     @property
     def visible_outputs(self) -> list[Output]:

@@ -59,6 +59,35 @@ T for sums and min(R, cells) for distinct individuals, whatever the number of ce
 least 1 (a noise scale must be positive; any upper bound is sound). Row tables are the case
 without a factor: one row moves one cell by at most 1 or M.
 
+Joins (``proxy.sql.joins`` accepts them; ``Plan.joins`` lists the tables). The query reads
+one derived table ``j`` (``_rows``) and everything above applies to its rows, with the
+individual column the one the protected tables share. Why the same sensitivities hold:
+
+- Same population, inner join on equality of the individual columns only. A joined row pairs
+  a row of table A with a row of table B whose individual values are equal (NULL never
+  equals), so it belongs to exactly one individual, the owner of both halves. Neighbours
+  remove all rows of one individual u from every table of its population, hence D' = D minus
+  u leaves every joined row of every other individual as it is and removes exactly u's joined
+  rows. That is the premise of the argument above (others' partials, totals and factors equal
+  in D and D'; the answers differ by u's scaled partials), so the sensitivities are R, T and
+  min(R, cells) as before. u owns at most ``most_rows(A) * most_rows(B)`` joined rows (each
+  of its rows in A meets at most its rows in B), so that product is the ceiling of R, and
+  ``R * max(|lo|, |hi|)`` of T; a one-row-per-individual table (most_rows 1) keeps the other
+  table's ceiling. As everywhere, an individual beyond the data owner's ceiling is still
+  bounded by the factor w: only the clipped-away figure's cap relies on the ceiling.
+- Public lookup, joined on its declared key. Its rows describe nobody and do not change
+  between neighbours. ``_joined_source`` keeps only key values that occur once in it, so each
+  row of the protected tables meets at most one public row: the join maps each joined row of
+  the protected tables to at most one row, with the same owner. Removing u removes exactly
+  u's rows again, and nobody owns more rows than before (a row table stays at one row per
+  individual: sensitivity 1 or M per row as above).
+- Semi-join ``individual IN (SELECT individual FROM B WHERE c)``, written as EXISTS over B's
+  rows with the same individual value. Whether a row of v passes depends only on v's own rows
+  in B; removing u changes no other individual's rows or their passing, and removes u's.
+The tables' populations are checked to be one (else the join would pair rows of different
+individuals, and removing one could change many others' rows); the ledger then charges every
+protected table read and their population's cap once.
+
 Choosing a bound privately (the same scan). The candidates are a geometric grid below the
 ceiling (``ceiling * (4/5)^k``, at least 1). For candidate k, ``above_k`` is the number of
 individuals whose total exceeds it; all ``above_k`` come from one histogram of the totals over
@@ -122,6 +151,9 @@ from proxy.sql.plan import GroupKey, Measure, Plan
 # Backend session settings holding, per chosen bound j, the comma-separated integer noise of
 # each candidate's score (drawn exactly by the engine before the query runs).
 BOUND_NOISE_SETTING = "hushql.bound_noise_{}"
+
+# The alias of the derived table a join reads through (``_rows``); other backends look for it.
+JOINED_ROWS_ALIAS = "j"
 
 # Candidates for a chosen bound: the ceiling times (4/5)^k, k = 0..MOST_CANDIDATES-1 (at least 1).
 _CANDIDATE_RATIO = Fraction(4, 5)
@@ -450,8 +482,86 @@ def _source(policy: TablePolicy) -> exp.Table:
     return table
 
 
+def _rows(plan: Plan) -> exp.Expression:
+    """The FROM item a plan reads: its table, or for a join one derived table ``j`` whose
+    columns are named as in the plan (module notes, "Joins"). PostgreSQL pulls the derived
+    table up into the query, so it costs nothing by itself."""
+    if not plan.joins:
+        return _source(plan.table)
+    used = _used_columns(plan)
+    provided: dict[str, exp.Expression] = {}  # the individual columns are one (equal when joined)
+    for index, join in enumerate(plan.joins):
+        for name, own in join.columns:
+            if name in used or not provided:  # a derived table needs one column at least
+                provided.setdefault(name, exp.alias_(_col(own, f"t{index}"), _ident(name),
+                                                     copy=False))
+    select = exp.Select().select(*provided.values(), copy=False)
+    for index, join in enumerate(plan.joins):
+        if join.kind == "semi":
+            select = select.where(_semi_join(plan, index), copy=False)
+            continue
+        item = _joined_source(join.table, f"t{index}")
+        if join.kind == "from":
+            select = select.from_(item, copy=False)
+        else:
+            select = select.join(item, on=_join_condition(plan, index), join_type="inner", copy=False)
+    return exp.Subquery(this=select, alias=exp.TableAlias(this=exp.to_identifier(JOINED_ROWS_ALIAS)))
+
+
+def _used_columns(plan: Plan) -> set[str]:
+    """The plan columns the query reads: keys, measures, the WHERE's and the individual's
+    (only these are named in the derived table, so an unused listed column is never read)."""
+    used = {key.column for key in plan.keys} | {m.column for m in plan.measures if m.column}
+    if plan.where is not None:
+        used |= {column.name for column in plan.where.find_all(exp.Column)}
+    if plan.table.individual is not None:
+        used.add(plan.table.individual.column)
+    return used
+
+
+def _joined_source(table: TablePolicy, alias: str) -> exp.Expression:
+    """A joined table under ``alias``; a public table keeps only the rows whose key occurs
+    once, so that no row of the protected tables meets two of its rows."""
+    source = _source(table)
+    if not table.public or table.key is None:
+        return exp.alias_(source, alias, table=True, copy=False)
+    key = _col(table.key)
+    once = exp.Select().select(key, copy=False).from_(_source(table), copy=False).group_by(
+        key.copy(), copy=False).having(exp.EQ(this=exp.Count(this=exp.Star()), expression=_num(1)),
+                                       copy=False)
+    rows = exp.Select().select(exp.Star(), copy=False).from_(source, copy=False).where(
+        exp.In(this=key.copy(), query=exp.Subquery(this=once)), copy=False)
+    return exp.Subquery(this=rows, alias=exp.TableAlias(this=exp.to_identifier(alias)))
+
+
+def _join_condition(plan: Plan, index: int) -> exp.Expression:
+    """``t<index>.column = t<to>.column`` of one join; categories compare as text."""
+    join = plan.joins[index]
+    assert join.column is not None and join.to is not None
+    sides = [_col(join.column, f"t{index}"), _col(join.to[1], f"t{join.to[0]}")]
+    if join.table.columns[join.column].kind == "category":
+        sides = [exp.cast(side, "text", copy=False) for side in sides]
+    return exp.EQ(this=sides[0], expression=sides[1])
+
+
+def _semi_join(plan: Plan, index: int) -> exp.Expression:
+    """EXISTS (a row of the semi-joined table for the same individual meeting its WHERE)."""
+    join = plan.joins[index]
+    alias = f"t{index}"
+    condition: exp.Expression = _join_condition(plan, index)
+    if join.where is not None:
+        inner = join.where.transform(
+            lambda node: exp.Column(this=node.this.copy(), table=exp.to_identifier(alias))
+            if isinstance(node, exp.Column) and node.args.get("table") is None else node)
+        condition = exp.and_(condition, exp.Paren(this=inner), copy=False)
+    rows = exp.Select().select(_num(1), copy=False).from_(
+        exp.alias_(_source(join.table), alias, table=True, copy=False), copy=False).where(
+        condition, copy=False)
+    return exp.Exists(this=rows)
+
+
 def _filtered(plan: Plan, select: exp.Select) -> exp.Select:
-    select = select.from_(_source(plan.table), copy=False)
+    select = select.from_(_rows(plan), copy=False)
     if plan.where is not None:
         select = select.where(plan.where.copy(), copy=False)
     return select
