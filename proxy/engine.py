@@ -3,6 +3,9 @@
 The order of steps is the privacy argument, so it lives here and only here:
 1. plan: analyse and rewrite (pure, cached by statement text; no data read). A refusal here
    charges nothing.
+1b. lookup: the same analyst's same question (normalised statement, epsilon, policy) answered
+   before is given its stored answer again, for nothing (post-processing of a released answer;
+   the argument is in ``proxy.stored_answers``), unless the session asks for a fresh one.
 2. reserve: the ledger charges epsilon in one committed transaction, or refuses (budget spent);
    the reservation also says what the analyst has left, which the answer reports.
 3. run: the rewritten query on the backend. From here on the charge stands whatever happens,
@@ -20,6 +23,8 @@ The order of steps is the privacy argument, so it lives here and only here:
 6. finish: the charge's outcome (answered, failed, cancelled) is noted in the ledger. It is a
    note, not a charge, so for answered queries a background worker records it after the answer
    has gone; failures and cancellations are recorded before the error is raised.
+   Before release, the answer is stored in the ledger under its question (a failure to store
+   loses only the reuse: the charge is already durable).
 
 Time. The backend query runs under the proxy's own timeout (access.toml ``[limits]
 query_timeout_ms``), never one the analyst chose: a deadline of the analyst's choosing turns
@@ -44,6 +49,9 @@ import re
 import threading
 import time
 from collections import OrderedDict
+from collections.abc import Iterator
+from contextlib import contextmanager
+from datetime import datetime, timezone
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from decimal import Decimal, InvalidOperation
@@ -54,12 +62,12 @@ import sqlglot
 import sqlglot.errors
 import sqlglot.expressions as exp
 
-from proxy import faults, noise
+from proxy import faults, noise, stored_answers
 from proxy.accounts import Accounts
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
 from proxy.backend import Backend, QueryControl
 from proxy.errors import INTERNAL_ERROR, INVALID_PARAMETER_VALUE, QUERY_CANCELED, HushError
-from proxy.ledger import Ledger
+from proxy.ledger import Ledger, StoredAnswer
 from proxy.policy import ColumnPolicy, Policies
 from proxy.sql.analyse import analyse
 from proxy.sql.domains import describe_key, key_label, key_type, key_values
@@ -70,7 +78,7 @@ from proxy.sql.postprocess import postprocess
 from proxy.spark_backend import SparkBackend, is_spark_dsn
 from proxy.sql.rewrite import BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, loss_cap, rewrite
 
-__all__ = ["Engine", "Prepared", "QueryControl", "parse_epsilon"]
+__all__ = ["Engine", "Prepared", "QueryControl", "paid_text", "parse_epsilon"]
 
 log = logging.getLogger("hushql.engine")
 
@@ -118,6 +126,8 @@ class Prepared:
     rewritten: Rewritten
     cells: list[tuple[Any, ...]]  # the key values of each cell, in the order the backend returns
     fingerprint: str
+    statement: str = ""  # the normalised statement (proxy.stored_answers)
+    policy: str = ""  # fingerprint of the table policies the plan was made under
 
 
 # Digits an epsilon may have after the decimal point (so the smallest is 1e-12). Noise scales
@@ -196,6 +206,9 @@ class Engine:
         self._notes = ThreadPoolExecutor(max_workers=1, thread_name_prefix="hushql-outcomes")
         self._answered: list[int] = []  # charges whose 'answered' note is not yet recorded
         self._answered_lock = threading.Lock()
+        # One identical question (stored-answer key) at a time: key -> (lock, users).
+        self._asking: dict[str, tuple[threading.Lock, int]] = {}
+        self._asking_lock = threading.Lock()
         from proxy.safe_config import policy_source
 
         for line in ledger.sync_budgets(policies, source=policy_source(policies)):
@@ -261,7 +274,9 @@ class Engine:
         rewritten = rewrite(plan, self._exact_columns(plan.table.table))
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         prepared = Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
-                            fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16])
+                            fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16],
+                            statement=stored_answers.normalised_statement(statement),
+                            policy=stored_answers.policy_fingerprint([plan.table]))
         if key is not None:
             with self._cache_lock:
                 if key not in self._cache:
@@ -290,8 +305,7 @@ class Engine:
 
     def describe(self, analyst: str, statement: str | exp.Expression) -> list[OutputColumn]:
         """The columns an answer would have; plans only."""
-        plan = self.prepare(analyst, statement).plan
-        return [OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs]
+        return _answer_columns(self.prepare(analyst, statement).plan)
 
     def parameter_types(self, analyst: str, tree: exp.Expression) -> list[str | None]:
         """Types of untyped ``$n`` parameters from the columns they are compared with."""
@@ -324,11 +338,14 @@ class Engine:
         return self.ledger.remaining(analyst)
 
     def explain(self, analyst: str, statement: str | exp.Expression, *,
-                epsilon: Decimal | None = None, form: str = "text") -> Answer:
-        """The plan, its sensitivities and noise, charging nothing: a two-column table (``form``
-        "text"), or one JSON document with the same items (``form`` "json")."""
+                epsilon: Decimal | None = None, form: str = "text",
+                fresh: bool = False) -> Answer:
+        """The plan, its sensitivities and noise, and whether a stored answer would be given
+        (unless ``fresh``), charging nothing: a two-column table (``form`` "text"), or one JSON
+        document with the same items (``form`` "json")."""
         prepared = self.prepare(analyst, statement)
         eps = self.epsilon_for(epsilon)
+        stored = self.ledger.stored_answer(analyst, _question(analyst, prepared, eps))
         plan, rewritten = prepared.plan, prepared.rewritten
         split = epsilon_split(rewritten, len(plan.measures), eps)
         rows: list[tuple[Value, ...]] = [
@@ -363,6 +380,7 @@ class Engine:
                          f"sensitivity {at_most}{_show(sensitivity * unit)}, noise scale "
                          f"{at_most}{_show(scale * Fraction(unit))}, "
                          f"95% bound {at_most}±{_show(noise.bound95(scale) * unit)}"))
+        rows.append(("stored answer", _stored_text(stored, fresh)))
         rows.append(("backend sql", rewritten.sql))
         return _explain_answer(rows, form, remaining=self.ledger.remaining(analyst),
                                table=plan.table.table)
@@ -370,12 +388,53 @@ class Engine:
     # ---- answering ---------------------------------------------------------------------------
 
     def answer(self, analyst: str, statement: str | exp.Expression, *,
-               epsilon: Decimal | None = None, control: QueryControl | None = None) -> Answer:
-        """Plan, reserve, run, noise and release one statement. Raises HushError."""
+               epsilon: Decimal | None = None, control: QueryControl | None = None,
+               fresh: bool = False) -> Answer:
+        """Plan, look up a stored answer (unless ``fresh``), else reserve, run, noise, store
+        and release one statement. Raises HushError."""
         arrived = time.monotonic()
         prepared = self.prepare(analyst, statement)
         self._renewals.apply_due()  # a clock comparison except at a period boundary
         eps = self.epsilon_for(epsilon)
+        question = _question(analyst, prepared, eps)
+        with self._one_at_a_time(question, control):
+            if not fresh:
+                stored = self.ledger.stored_answer(analyst, question)
+                if stored is not None:
+                    return dataclasses.replace(stored_answers.decode_answer(stored.answer),
+                                               remaining=self.ledger.remaining(analyst),
+                                               reused_from=stored.paid_at)
+            return self._answer_anew(analyst, statement, prepared, eps, question, arrived,
+                                     control)
+
+    @contextmanager
+    def _one_at_a_time(self, question: str, control: QueryControl | None) -> Iterator[None]:
+        """Holds the lock of one stored-answer key: identical questions take turns, so the
+        second finds the first's stored answer instead of paying again. A cancel ends the
+        wait with 57014."""
+        with self._asking_lock:
+            lock, users = self._asking.get(question, (threading.Lock(), 0))
+            self._asking[question] = (lock, users + 1)
+        try:
+            while not lock.acquire(timeout=0.05):
+                if control is not None and control.cancelled:
+                    raise HushError(QUERY_CANCELED, "canceling statement due to user request")
+            try:
+                yield
+            finally:
+                lock.release()
+        finally:
+            with self._asking_lock:
+                lock, users = self._asking[question]
+                if users == 1:
+                    del self._asking[question]
+                else:
+                    self._asking[question] = (lock, users - 1)
+
+    def _answer_anew(self, analyst: str, statement: str | exp.Expression, prepared: Prepared,
+                     eps: Decimal, question: str, arrived: float,
+                     control: QueryControl | None) -> Answer:
+        """Reserve, run, noise, store and release (the steps after the lookup)."""
         plan = prepared.plan
         text = statement if isinstance(statement, str) else statement.sql(dialect="postgres")
         charge, remaining = self.ledger.reserve(analyst, [plan.table.table], eps, text,
@@ -393,6 +452,7 @@ class Engine:
                 raise HushError(INTERNAL_ERROR, "the backend returned an unexpected result shape")
             answer = self._release(prepared, eps, split, true_rows, charge)
             outcome = "answered"
+            self._store(analyst, question, prepared, answer)
         except HushError as error:
             failure = error
             if error.sqlstate == QUERY_CANCELED:
@@ -453,6 +513,16 @@ class Engine:
                                  "condition, or ask the data owner to lengthen "
                                  "[timing] answer_after_ms") from None
 
+    def _store(self, analyst: str, question: str, prepared: Prepared, answer: Answer) -> None:
+        """Keep a released answer for the next asking; a failure loses only the reuse (the
+        charge is durable already), so it is logged, not raised."""
+        assert answer.charge_id is not None
+        try:
+            self.ledger.store_answer(analyst, question, prepared.statement, answer.epsilon,
+                                     answer.charge_id, stored_answers.encode_answer(answer))
+        except Exception:
+            log.exception("could not store the answer of charge %s", answer.charge_id)
+
     def _finish(self, charge: int, outcome: str) -> None:
         """Record the outcome of a charge; a failure to record it loses only the note."""
         try:
@@ -491,11 +561,38 @@ class Engine:
         accuracy = [_accuracy(plan, o, split.measure, rewritten.sensitivities(values), scales,
                               bounds, noisy, clipping)
                     for o in plan.outputs if o.visible and o.kind != "key"]
-        return Answer(columns=[OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs],
-                      rows=postprocess(plan, rows), epsilon=epsilon,
+        return Answer(columns=_answer_columns(plan), rows=postprocess(plan, rows), epsilon=epsilon,
                       remaining=Decimal(0), accuracy=accuracy,
                       tables=[plan.table.table], charge_id=charge,
                       notes=_answer_notes(plan, rewritten, values))
+
+
+def _answer_columns(plan: Plan) -> list[OutputColumn]:
+    """The columns of an answer to ``plan``: its visible outputs, aggregates marked noisy."""
+    return [OutputColumn(o.name, _output_type(plan, o), noisy=o.kind != "key")
+            for o in plan.visible_outputs]
+
+
+def _question(analyst: str, prepared: Prepared, epsilon: Decimal) -> str:
+    """The stored-answer key of a planned statement at an epsilon (proxy.stored_answers)."""
+    return stored_answers.question_key(analyst, prepared.statement, epsilon, prepared.policy,
+                                       prepared.fingerprint)
+
+
+def _stored_text(stored: StoredAnswer | None, fresh: bool) -> str:
+    """EXPLAIN's line on the stored answer."""
+    if stored is None:
+        return "none: this question is answered anew and charged, and its answer stored"
+    when = f"first paid {paid_text(stored.paid_at)} (charge {stored.charge_id})"
+    if fresh:
+        return f"stored, {when}, but hushql.fresh is on: a new answer is charged and stored"
+    return (f"stored, {when}: it is given again and charges nothing (SET hushql.fresh = on "
+            "pays for a new one)")
+
+
+def paid_text(paid_at: datetime) -> str:
+    """When an answer was paid for, as notices and EXPLAIN say it (UTC, to the second)."""
+    return f"{paid_at.astimezone(timezone.utc):%Y-%m-%d %H:%M:%S} UTC"
 
 
 def _plan_bytes(prepared: Prepared) -> int:

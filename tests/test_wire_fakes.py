@@ -83,7 +83,7 @@ class FakeEngine:
         return list(COLUMNS)
 
     def answer(self, analyst: str, statement: Any, *, epsilon: Decimal | None = None,
-               control: Any = None) -> Answer:
+               control: Any = None, fresh: bool = False) -> Answer:
         text = self._accept(statement)
         with self.lock:
             self.calls.append((analyst, statement, epsilon))
@@ -105,7 +105,7 @@ class FakeEngine:
         return Answer(list(COLUMNS), list(ROWS), eps, remaining, accuracy, ["households"])
 
     def explain(self, analyst: str, statement: Any, *, epsilon: Decimal | None = None,
-                form: str = "text") -> Answer:
+                form: str = "text", fresh: bool = False) -> Answer:
         self._accept(statement)
         eps = epsilon if epsilon is not None else Decimal("0.1")
         return Answer([OutputColumn("item", "text"), OutputColumn("value", "text")],
