@@ -64,7 +64,11 @@ def assert_noisy_counts(rows: list, exact: dict[str, int]) -> None:
 
 
 def assert_spent(notices: list[str]) -> None:
-    assert any("spent epsilon 0.1" in n for n in notices), notices
+    """A notice whose first line says what the answer cost (or, for a question the module
+    asked before, that it was reused and what it cost then), what remains and the margins."""
+    assert any(re.search(r"(spent epsilon 0\.1 |spent nothing now \(epsilon 0\.1 paid )"
+                         r".*remains; 95% margins: households ±\d+", n.splitlines()[0])
+               for n in notices if n), notices
 
 
 # ----------------------------------------------------------------------------- psql

@@ -55,7 +55,7 @@ from proxy.dsn import with_database
 from proxy.policy import ColumnPolicy, Policies
 from proxy.wire import own_database, statements, types
 from proxy.wire.catalog_guard import (CATALOG_HINT, TOO_LARGE_MARK, bounded, check_catalog_text,
-                                      claims_text, is_catalog_tree, personalise)
+                                      claims_text, is_catalog_tree, narrowed, personalise)
 
 __all__ = ["Catalog", "build_catalog", "is_catalog_tree", "claims_text", "check_catalog_text",
            "mirror_layout", "personalise", "bounded", "ROLE"]
@@ -349,7 +349,7 @@ class Catalog:
             raise HushError(TOO_MANY_CONNECTIONS, "too many catalog questions at once",
                             hint="Try again in a moment.")
         try:
-            with self._transaction(analyst, sql_text) as conn:
+            with self._transaction(analyst, sql_text, params) as conn:
                 # A server-side cursor: one statement only, and at most max_rows + 1 fetched.
                 with psycopg.RawServerCursor(conn, "hushql_catalog_answer") as cur:
                     cur.execute(bounded(self._runnable(conn, personalise(sql_text, analyst)),
@@ -400,7 +400,9 @@ class Catalog:
         return result
 
     def _runnable(self, conn: psycopg.Connection[Any], sql_text: str) -> str:
-        """The checked text as the mirror runs it: pg_database narrowed to one row."""
+        """The checked text as the mirror runs it: pg_database narrowed to one row, the
+        guard's other narrowed relations to theirs."""
+        sql_text = narrowed(sql_text)
         if not own_database.names_pg_database(sql_text):
             return sql_text
         if self._database_columns is None:
@@ -409,12 +411,13 @@ class Catalog:
         return own_database.replace_pg_database(sql_text, subquery)
 
     @contextmanager
-    def _transaction(self, analyst: str, sql_text: str) -> Iterator[psycopg.Connection[Any]]:
+    def _transaction(self, analyst: str, sql_text: str, params: Sequence[Any] | None = None
+                     ) -> Iterator[psycopg.Connection[Any]]:
         """A mirror connection inside the catalog transaction: READ ONLY, the statement and
         lock timeouts, the unprivileged role; rolled back afterwards, whatever happens. The
         text is checked first; mirror errors become HushErrors."""
         try:
-            with self._pool_for(analyst, sql_text).connection() as conn:
+            with self._pool_for(analyst, sql_text, params).connection() as conn:
                 try:
                     conn.execute(sql.SQL(
                         "SET LOCAL statement_timeout = {}; SET LOCAL lock_timeout = {}; "
@@ -444,13 +447,15 @@ class Catalog:
         return HushError(state if state[:2] == "53" else INTERNAL_ERROR,
                          "the catalog query failed", hint=CATALOG_HINT)
 
-    def _pool_for(self, analyst: str, sql_text: str) -> ConnectionPool:
-        """The mirror pool for this analyst, once the text has passed the checks."""
+    def _pool_for(self, analyst: str, sql_text: str, params: Sequence[Any] | None = None
+                  ) -> ConnectionPool:
+        """The mirror pool for this analyst, once the text has passed the checks (with the
+        parameter values it runs with; None: it is only prepared)."""
         if self.unavailable is not None:
             raise HushError(FEATURE_NOT_SUPPORTED, "catalog queries are not available on this "
                             "server", hint=self.unavailable)
         try:
-            check_catalog_text(sql_text)
+            check_catalog_text(sql_text, params)
         except HushError as err:
             # By SQLSTATE only: the message can quote a literal of the query.
             log.info("catalog refused analyst=%s sqlstate=%s", analyst[:64], err.sqlstate)
