@@ -100,7 +100,9 @@ def test_mirror_has_only_the_exposed_columns_typed_by_kind(catalog: Catalog,
         ("litres", "numeric")]
     described = rows(catalog, "planner", "SELECT pg_catalog.col_description("
                      "'households'::regclass, 3)")
-    assert described == [("People living in the household",)]  # the policy's description
+    # The description, then kind, range and unit (the demo policies/tables/households.toml).
+    assert described == [("People living in the household; integer from 1 to 8 (sums count "
+                          "values outside as the nearest end), measured in people",)]
 
 
 def test_each_account_sees_only_its_granted_tables(catalog: Catalog) -> None:
@@ -194,7 +196,6 @@ REFUSED = [
     "SELECT * FROM pg_catalog.pg_stat_database",
     "SELECT pg_stat_get_live_tuples(1259)",
     "SELECT * FROM pg_locks",
-    "SELECT * FROM pg_settings",
     "SELECT rolpassword FROM pg_authid",
     "SELECT pg_read_file('PG_VERSION')",
     "SELECT * FROM pg_ls_dir('.')",
@@ -234,6 +235,28 @@ REFUSED = [
     "SELECT (1) lo_import('/etc/hostname')",
     "SELECT * FROM (SELECT 1) set_config('role', 'postgres', false)",  # misread as an alias
 ]
+
+
+def test_server_wide_relations_are_answered_in_part(catalog: Catalog) -> None:
+    """pg_settings keeps only the readable settings the proxy does not tell itself (JDBC's key
+    queries read max_index_keys); pg_tablespace only the two built-in tablespaces."""
+    names = {r[0] for r in rows(catalog, "planner", "SELECT name FROM pg_settings")}
+    assert "max_index_keys" in names and "search_path" in names
+    assert not names & {"data_directory", "config_file", "hba_file", "port", "server_version",
+                        "listen_addresses", "shared_buffers"}
+    assert rows(catalog, "planner", "SELECT setting FROM pg_catalog.pg_settings s WHERE "
+                "s.name = 'data_directory'") == []
+    spaces = rows(catalog, "planner", "SELECT pg_catalog.pg_tablespace.spcname FROM "
+                  "pg_catalog.pg_tablespace ORDER BY 1")
+    assert spaces == [("pg_default",), ("pg_global",)]
+    # current_setting with its name as a parameter: checked against the value it runs with.
+    assert rows(catalog, "planner", "SELECT current_setting($1::varchar)",
+                ["default_table_access_method"]) == [("heap",)]
+    with pytest.raises(HushError) as caught:
+        catalog.run("planner", "SELECT current_setting($1::varchar)", ["data_directory"])
+    assert caught.value.sqlstate == "42501"
+    with pytest.raises(HushError):
+        catalog.run("planner", "SELECT current_setting($1)", [])  # no value: refused
 
 
 @pytest.mark.parametrize("query", REFUSED)

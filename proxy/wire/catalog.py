@@ -37,6 +37,7 @@ import logging
 import secrets
 import threading
 from contextlib import contextmanager
+from decimal import Decimal
 from dataclasses import dataclass
 from typing import Any, Iterable, Iterator, Sequence
 
@@ -52,7 +53,7 @@ from proxy.errors import (FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, INTERNA
                           PROGRAM_LIMIT_EXCEEDED, QUERY_CANCELED, TOO_MANY_CONNECTIONS,
                           HushError)
 from proxy.dsn import with_database
-from proxy.policy import ColumnPolicy, Policies
+from proxy.policy import ColumnPolicy, Policies, TablePolicy
 from proxy.wire import own_database, statements, types
 from proxy.wire.catalog_guard import (CATALOG_HINT, TOO_LARGE_MARK, bounded, check_catalog_text,
                                       claims_text, is_catalog_tree, narrowed, personalise)
@@ -65,7 +66,8 @@ log = logging.getLogger("hushql.catalog")
 ROLE = "hushql_catalog"
 MIRROR_PREFIX = "hushql_mirror_"
 # Bumped whenever the way mirrors are built changes, so old mirrors are not reused.
-LAYOUT_VERSION = 1
+# 2: comments carry each column's kind, range or values, unit and step, and the table's unit.
+LAYOUT_VERSION = 2
 STATEMENT_TIMEOUT_MS = 3000
 MAX_ROWS = 100_000
 # The largest catalog answer, in bytes of PostgreSQL's text for its rows. What the supported
@@ -106,14 +108,55 @@ def column_type(column: ColumnPolicy) -> str:
 
 
 def mirror_layout(policies: Policies, tables: Iterable[str]) -> tuple[MirrorTable, ...]:
-    """The empty tables a mirror of these granted tables holds, sorted by name."""
+    """The empty tables a mirror of these granted tables holds, sorted by name, with the
+    policy as comments (psql's \\d+, JDBC's REMARKS, SQLAlchemy's inspector show them)."""
     out = []
     for name in sorted(set(tables)):
         policy = policies.tables[name]
-        out.append(MirrorTable(name, policy.description, tuple(
-            MirrorColumn(col, column_type(c), c.description)
+        identifying = policy.individual.column if policy.individual is not None else None
+        out.append(MirrorTable(name, table_comment(policy), tuple(
+            MirrorColumn(col, column_type(c), column_comment(c, col == identifying))
             for col, c in policy.columns.items())))
     return tuple(out)
+
+
+def column_facts(column: ColumnPolicy) -> str:
+    """What may be asked of a column, in words: its kind and declared range, values, step and
+    unit (the declared domain is public: it is the policy, not the data)."""
+    def shown(value: object) -> str:
+        return format(value, "f") if isinstance(value, Decimal) else str(value)
+    if column.kind == "category":
+        facts = "category, one of: " + ", ".join(column.values or [])
+    elif column.kind == "boolean":
+        facts = "boolean, true or false"
+    else:
+        facts = f"{column.kind} from {shown(column.low)} to {shown(column.high)}"
+        if column.kind == "number":
+            facts += f" in steps of {shown(column.unit)}"
+        if column.kind in ("integer", "number"):
+            facts += " (sums count values outside as the nearest end)"
+    return facts + (f", measured in {column.measured_in}" if column.measured_in else "")
+
+
+def column_comment(column: ColumnPolicy, identifying: bool = False) -> str:
+    """A mirror column's comment: its description (if any), then ``column_facts``."""
+    parts = [column.description] if column.description else []
+    parts.append(column_facts(column))
+    if identifying:
+        parts.append("identifies the individual whose contributions are bounded")
+    return "; ".join(parts)
+
+
+def table_comment(policy: TablePolicy) -> str:
+    """A mirror table's comment: its description, then whom it protects."""
+    parts = [policy.description] if policy.description else []
+    if policy.individual is None:
+        parts.append("each row is one individual")
+    else:
+        parts.append(f"individuals: rows sharing {policy.individual.column} are one individual "
+                     f"of population {policy.population}, at most {policy.most_rows} "
+                     f"row{'s' if policy.most_rows != 1 else ''} each")
+    return "; ".join(parts)
 
 
 def mirror_name(backend_database: str, layout: tuple[MirrorTable, ...]) -> str:
