@@ -16,7 +16,9 @@ import re
 import shutil
 import subprocess
 from pathlib import Path
+from types import SimpleNamespace
 
+from decimal import Decimal
 from fractions import Fraction
 
 import psycopg
@@ -186,6 +188,52 @@ def test_psycopg_sync(demo_proxy: RunningProxy, exact) -> None:
         types = conn.execute("SELECT typname FROM pg_catalog.pg_type WHERE oid = any(%s::oid[]) "
                              "ORDER BY 1", ["{23,25}"]).fetchall()
         assert types == [("int4",), ("text",)]
+
+
+def test_psycopg_notices_fresh_answers_and_my_tables(demo_proxy: RunningProxy, exact) -> None:
+    """The notice's fields as the protocol names them (Message one line, then Detail and
+    Hint); a repeated question reused for nothing, hushql.fresh paying again; and
+    hushql.my_tables with the budget SHOW hushql.remaining tells."""
+    question = COUNT.replace("count(*)", "count(*) ") + " LIMIT 3"  # a question of this test's
+    notices: list[SimpleNamespace] = []  # a Diagnostic's fields live only in the handler
+    with psycopg.connect(demo_proxy.conninfo(user="researcher"), autocommit=True) as conn:
+        conn.add_notice_handler(lambda d: notices.append(SimpleNamespace(
+            message_primary=d.message_primary, message_detail=d.message_detail,
+            message_hint=d.message_hint)))
+
+        def remaining() -> Decimal:
+            return Decimal(conn.execute("SHOW hushql.remaining").fetchone()[0])
+
+        before = remaining()
+        first = conn.execute(question).fetchall()
+        assert_noisy_counts(first, exact["all"])
+        paid = notices[-1]
+        assert "\n" not in paid.message_primary and paid.message_primary.startswith(
+            "this answer spent epsilon 0.1 of your privacy budget; ")
+        assert "households: within ±" in paid.message_detail
+        assert "hushql.fresh" in paid.message_hint
+        assert remaining() == before - Decimal("0.1")
+
+        again = conn.execute(question.lower()).fetchall()  # the same question, spelt otherwise
+        assert again == first and remaining() == before - Decimal("0.1")
+        assert notices[-1].message_primary.startswith(
+            "this answer was given before and is reused: it spent nothing now (epsilon 0.1 paid ")
+        assert "as it was when first paid for" in notices[-1].message_detail
+
+        conn.execute("SET hushql.fresh = on")
+        conn.execute(question).fetchall()
+        assert remaining() == before - Decimal("0.2")
+        assert notices[-1].message_primary.startswith("this answer spent epsilon 0.1")
+        conn.execute("RESET hushql.fresh")
+        # EXPLAIN says an answer is stored (the newest, paid for by the fresh asking).
+        explained = dict(conn.execute("EXPLAIN " + question).fetchall())
+        assert explained["stored answer"].startswith("stored, first paid")
+
+        facts = conn.execute("SELECT column_name, kind, low, high, remaining_budget FROM "
+                             "hushql.my_tables WHERE table_name = 'households' "
+                             "ORDER BY column_name").fetchall()
+        assert [f[0] for f in facts] == sorted(EXPOSED)
+        assert ("occupants", "integer", "1", "8", remaining()) in facts
 
 
 def test_psycopg_async(demo_proxy: RunningProxy, exact) -> None:

@@ -150,7 +150,8 @@ class FakeCatalog:
     def is_catalog_query(self, tree: exp.Expression) -> bool:
         return any(t.db == "pg_catalog" for t in tree.find_all(exp.Table))
 
-    def run(self, analyst: str, sql: str, params: list[Any]) -> tuple[list[Any], list[tuple]]:
+    def run(self, analyst: str, sql: str, params: list[Any],
+            remaining: Decimal | None = None) -> tuple[list[Any], list[tuple]]:
         self.runs.append((analyst, sql, list(params)))
         return [OutputColumn("relname", "name"), OutputColumn("oid", "oid")], \
             [("households", 16384), ("readings", 16390)]

@@ -95,8 +95,12 @@ class CatalogQuestions(Protocol):
         """Claims a text sqlglot could not parse (PostgreSQL-only syntax in client queries)."""
         ...
 
-    def run(self, analyst: str, sql_text: str, params: Sequence[Any] = ()
-            ) -> tuple[CatalogColumns, list[tuple[Any, ...]]]: ...
+    def run(self, analyst: str, sql_text: str, params: Sequence[Any] = (),
+            remaining: Decimal | None = None
+            ) -> tuple[CatalogColumns, list[tuple[Any, ...]]]:
+        """Columns and rows; ``remaining`` (the analyst's budget left) fills
+        hushql.my_tables."""
+        ...
 
     def describe(self, analyst: str, sql_text: str) -> CatalogColumns: ...
 

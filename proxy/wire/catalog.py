@@ -53,8 +53,10 @@ from proxy.errors import (FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, INTERNA
                           PROGRAM_LIMIT_EXCEEDED, QUERY_CANCELED, TOO_MANY_CONNECTIONS,
                           HushError)
 from proxy.dsn import with_database
-from proxy.policy import ColumnPolicy, Policies, TablePolicy
+from proxy.policy import ColumnPolicy, Policies
 from proxy.wire import own_database, statements, types
+from proxy.wire.askable import (column_comment, my_tables_rows, names_my_tables, table_comment,
+                                with_my_tables)
 from proxy.wire.catalog_guard import (CATALOG_HINT, TOO_LARGE_MARK, bounded, check_catalog_text,
                                       claims_text, is_catalog_tree, narrowed, personalise)
 
@@ -118,45 +120,6 @@ def mirror_layout(policies: Policies, tables: Iterable[str]) -> tuple[MirrorTabl
             MirrorColumn(col, column_type(c), column_comment(c, col == identifying))
             for col, c in policy.columns.items())))
     return tuple(out)
-
-
-def column_facts(column: ColumnPolicy) -> str:
-    """What may be asked of a column, in words: its kind and declared range, values, step and
-    unit (the declared domain is public: it is the policy, not the data)."""
-    def shown(value: object) -> str:
-        return format(value, "f") if isinstance(value, Decimal) else str(value)
-    if column.kind == "category":
-        facts = "category, one of: " + ", ".join(column.values or [])
-    elif column.kind == "boolean":
-        facts = "boolean, true or false"
-    else:
-        facts = f"{column.kind} from {shown(column.low)} to {shown(column.high)}"
-        if column.kind == "number":
-            facts += f" in steps of {shown(column.unit)}"
-        if column.kind in ("integer", "number"):
-            facts += " (sums count values outside as the nearest end)"
-    return facts + (f", measured in {column.measured_in}" if column.measured_in else "")
-
-
-def column_comment(column: ColumnPolicy, identifying: bool = False) -> str:
-    """A mirror column's comment: its description (if any), then ``column_facts``."""
-    parts = [column.description] if column.description else []
-    parts.append(column_facts(column))
-    if identifying:
-        parts.append("identifies the individual whose contributions are bounded")
-    return "; ".join(parts)
-
-
-def table_comment(policy: TablePolicy) -> str:
-    """A mirror table's comment: its description, then whom it protects."""
-    parts = [policy.description] if policy.description else []
-    if policy.individual is None:
-        parts.append("each row is one individual")
-    else:
-        parts.append(f"individuals: rows sharing {policy.individual.column} are one individual "
-                     f"of population {policy.population}, at most {policy.most_rows} "
-                     f"row{'s' if policy.most_rows != 1 else ''} each")
-    return "; ".join(parts)
 
 
 def mirror_name(backend_database: str, layout: tuple[MirrorTable, ...]) -> str:
@@ -383,9 +346,11 @@ class Catalog:
 
     # ---- answering -----------------------------------------------------------------------
 
-    def run(self, analyst: str, sql_text: str, params: Sequence[Any] = ()
+    def run(self, analyst: str, sql_text: str, params: Sequence[Any] = (),
+            remaining: Decimal | None = None
             ) -> tuple[list[tuple[str, int | str]], list[tuple[Any, ...]]]:
-        """Runs one checked catalog SELECT in the analyst's mirror: (columns, rows). Raises
+        """Runs one checked catalog SELECT in the analyst's mirror: (columns, rows);
+        ``remaining`` is the analyst's budget left, for ``hushql.my_tables``. Raises
         HushError (42501 refused, 54000 too many rows or bytes, 53300 too many at once, 57014
         timeout, or the mirror's own error about the query)."""
         if not self._at_once.acquire(timeout=WAIT_SECONDS):
@@ -395,8 +360,8 @@ class Catalog:
             with self._transaction(analyst, sql_text, params) as conn:
                 # A server-side cursor: one statement only, and at most max_rows + 1 fetched.
                 with psycopg.RawServerCursor(conn, "hushql_catalog_answer") as cur:
-                    cur.execute(bounded(self._runnable(conn, personalise(sql_text, analyst)),
-                                        self.max_bytes),
+                    cur.execute(bounded(self._runnable(conn, personalise(sql_text, analyst),
+                                                       analyst, remaining), self.max_bytes),
                                 list(params))
                     described = list(cur.description or [])[:-1]
                     rows = [row[:-1] for row in cur.fetchmany(self.max_rows + 1)]
@@ -430,7 +395,7 @@ class Catalog:
         the catalog transaction; raises HushError with the mirror's refusal."""
         with self._transaction(analyst, sql_text) as conn:
             result = conn.pgconn.prepare(
-                b"", self._runnable(conn, personalise(sql_text, analyst)).encode())
+                b"", self._runnable(conn, personalise(sql_text, analyst), analyst).encode())
             if result.status == ExecStatus.COMMAND_OK:
                 result = conn.pgconn.describe_prepared(b"")
         if result.status != ExecStatus.COMMAND_OK:
@@ -442,10 +407,13 @@ class Catalog:
                               field(DiagnosticField.MESSAGE_HINT))
         return result
 
-    def _runnable(self, conn: psycopg.Connection[Any], sql_text: str) -> str:
+    def _runnable(self, conn: psycopg.Connection[Any], sql_text: str, analyst: str,
+                  remaining: Decimal | None = None) -> str:
         """The checked text as the mirror runs it: pg_database narrowed to one row, the
-        guard's other narrowed relations to theirs."""
+        guard's other narrowed relations to theirs, hushql.my_tables as the analyst's rows."""
         sql_text = narrowed(sql_text)
+        if names_my_tables(sql_text):
+            sql_text = with_my_tables(sql_text, my_tables_rows(self.policies, analyst, remaining))
         if not own_database.names_pg_database(sql_text):
             return sql_text
         if self._database_columns is None:

@@ -24,7 +24,7 @@ Rules:
   replaced, in the text sent to the mirror, by literals: the proxy's version string, the
   analyst's name, and ``off``.
 - **Routing.** ``is_catalog_query`` is True only when every relation a query names is a catalog
-  relation, a CTE or a function; any policy table name (``SELECT * FROM households LIMIT 0``)
+  relation, ``hushql.my_tables`` (proxy.wire.askable), a CTE or a function; any policy table name (``SELECT * FROM households LIMIT 0``)
   sends the query to the engine, which refuses raw rows. Because a mirror holds no rows, a
   routing mistake can reveal no data; the checks guard the server.
 """
@@ -37,7 +37,7 @@ from sqlglot import exp
 
 from proxy import __version__
 from proxy.errors import FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, HushError
-from proxy.wire import own_database, settings, statements
+from proxy.wire import askable, own_database, settings, statements
 from proxy.wire.statements import Token
 
 __all__ = ["check_catalog_text", "is_catalog_tree", "claims_text", "looks_like_catalog",
@@ -367,6 +367,8 @@ def is_catalog_tree(tree: exp.Expression, policy_tables: Iterable[str]) -> bool:
         if table.catalog:
             return False
         schema = table.db.lower()
+        if (schema, name) == (askable.SCHEMA, askable.RELATION):
+            continue  # the analyst's own policy facts (proxy.wire.askable)
         if schema in CATALOG_SCHEMAS or (not schema and (name.startswith("pg_") or name in ctes)):
             continue
         return False

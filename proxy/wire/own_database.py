@@ -52,9 +52,11 @@ def own_database_subquery(columns: Sequence[str], database: str) -> str:
                    "pg_catalog.current_database())").format(sql.SQL(", ").join(shown)).as_string()
 
 
-def replace_pg_database(text: str, subquery: str, relation: str = RELATION) -> str:
-    """``text`` with every relation reference to pg_database (or another pg_catalog
-    ``relation``, by the same rules) replaced by ``subquery``."""
+def replace_pg_database(text: str, subquery: str, relation: str = RELATION,
+                        schema: str = "pg_catalog", bare: bool = True) -> str:
+    """``text`` with every relation reference to pg_database (or another ``relation`` of
+    ``schema``, by the same rules) replaced by ``subquery``; with ``bare`` False only the
+    references qualified by ``schema`` (an unqualified name may be the query's own CTE)."""
     tokens = statements.tokenize(text)
     out: list[str] = []
     position = 0
@@ -64,9 +66,11 @@ def replace_pg_database(text: str, subquery: str, relation: str = RELATION) -> s
         following = tokens[i + 1] if i + 1 < len(tokens) else None
         start = token.start
         qualified = i >= 2 and _is_op(tokens[i - 1], ".") \
-            and tokens[i - 2].kind in ("word", "ident") and tokens[i - 2].value.lower() == "pg_catalog"
+            and tokens[i - 2].kind in ("word", "ident") and tokens[i - 2].value.lower() == schema
         if qualified:
             start = tokens[i - 2].start
+        elif not bare:
+            continue
         if _is_op(following, "."):
             # A qualifier: pg_database.datname is left to resolve to the subquery (named after
             # the relation); pg_catalog.pg_database.datname loses its schema to do the same.

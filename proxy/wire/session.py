@@ -42,6 +42,7 @@ from proxy.errors import (BUDGET_EXHAUSTED, DUPLICATE_CURSOR, DUPLICATE_PREPARED
 from proxy.sql.limits import check_statement_text
 from proxy.wire import codec, guard, settings, statements, types
 from proxy.wire.boundary import Answering, CatalogQuestions
+from proxy.wire.askable import names_my_tables
 from proxy.wire.catalog_guard import looks_like_catalog
 from proxy.wire.states import FAILED_BLOCK_HINT, TransactionMachine, TxEvent, TxStatus, TxStep
 from proxy.wire.statements import (DeallocateStatement, DiscardStatement, EmptyStatement,
@@ -671,8 +672,11 @@ class Session:
                        [answer_notice(answer)])
 
     async def _catalog(self, st: QueryStatement, values: list[Any]) -> Outcome:
+        remaining = None
+        if names_my_tables(st.text):  # the relation shows the budget left
+            remaining = await self._blocking(self.engine.remaining, self.analyst)
         columns, rows = await self._blocking(self._catalog_questions().run, self.analyst,
-                                             st.text, values)
+                                             st.text, values, remaining)
         return Outcome(types.ResultShape.of(columns), list(rows), "SELECT")
 
     def _catalog_questions(self) -> CatalogQuestions:
