@@ -397,13 +397,15 @@ class Engine:
         self._renewals.apply_due()  # a clock comparison except at a period boundary
         eps = self.epsilon_for(epsilon)
         question = _question(analyst, prepared, eps)
+        if fresh:  # paid for whatever is stored; identical fresh questions each pay
+            return self._answer_anew(analyst, statement, prepared, eps, question, arrived,
+                                     control)
         with self._one_at_a_time(question, control):
-            if not fresh:
-                stored = self.ledger.stored_answer(analyst, question)
-                if stored is not None:
-                    return dataclasses.replace(stored_answers.decode_answer(stored.answer),
-                                               remaining=self.ledger.remaining(analyst),
-                                               reused_from=stored.paid_at)
+            stored = self.ledger.stored_answer(analyst, question)
+            if stored is not None:
+                return dataclasses.replace(stored_answers.decode_answer(stored.answer),
+                                           remaining=self.ledger.remaining(analyst),
+                                           reused_from=stored.paid_at)
             return self._answer_anew(analyst, statement, prepared, eps, question, arrived,
                                      control)
 

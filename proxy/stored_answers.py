@@ -10,7 +10,8 @@ The privacy argument.
   question (a desktop tool's automatic ``SELECT count(*)``) from wasting the budget.
 - Stored answers never cross analysts: the key starts with the analyst's name and the lookup
   is by analyst. (Another analyst has not seen the figures; giving them would be a release to
-  them that nobody paid for.)
+  them that nobody paid for.) For the same reason they are not among the administrators'
+  ledger relations (proxy.wire.ledger_relations): administrators see charges, not answers.
 - The key holds everything the released figures depend on besides the data: the analyst; the
   normalised statement (the parsed tree's canonical SQL with unquoted identifiers folded to
   lower case as PostgreSQL folds them, and with bound parameter values as literals); the
@@ -26,6 +27,7 @@ The privacy argument.
   noise over the current data (and stores that answer for the next asking).
 - Concurrency: the engine lets one identical question (same key) run at a time in a process,
   so two arriving at once are charged once and the second gets the first's stored answer.
+  Fresh questions do not wait: each pays and stores its own answer (the newest is given).
   Across several proxy processes sharing a ledger (``serve --workers``), two identical
   questions arriving at the very same moment on two processes may each be charged once; each
   is stored, and later askings get the most recent. Nothing is released uncharged either way.

@@ -664,8 +664,8 @@ class Session:
             log.info("answer analyst=%s epsilon=%s outcome=%s", self.analyst,
                      epsilon if epsilon is not None else "default", err.sqlstate)
             raise
-        log.info("answer analyst=%s epsilon=%s outcome=%s", self.analyst, answer.epsilon,
-                 "reused" if answer.reused_from is not None else "ok")
+        log.info("answer analyst=%s epsilon=%s outcome=ok%s", self.analyst, answer.epsilon,
+                 " stored=reused" if answer.reused_from is not None else "")
         columns, rows = (with_margins(answer) if self._on(settings.ACCURACY_COLUMNS)
                          else (answer.columns, answer.rows))
         return Outcome(types.ResultShape.of(columns), list(rows), "SELECT",
