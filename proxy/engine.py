@@ -401,13 +401,25 @@ class Engine:
             return self._answer_anew(analyst, statement, prepared, eps, question, arrived,
                                      control)
         with self._one_at_a_time(question, control):
-            stored = self.ledger.stored_answer(analyst, question)
+            stored = self._stored(analyst, question)
             if stored is not None:
-                return dataclasses.replace(stored_answers.decode_answer(stored.answer),
-                                           remaining=self.ledger.remaining(analyst),
-                                           reused_from=stored.paid_at)
+                return dataclasses.replace(stored, remaining=self.ledger.remaining(analyst))
             return self._answer_anew(analyst, statement, prepared, eps, question, arrived,
                                      control)
+
+    def _stored(self, analyst: str, question: str) -> Answer | None:
+        """The stored answer to ``question``, marked reused; None when there is none or it
+        cannot be read back (then the question is answered, and paid for, anew)."""
+        found = self.ledger.stored_answer(analyst, question)
+        if found is None:
+            return None
+        try:
+            answer = stored_answers.decode_answer(found.answer)
+        except (KeyError, TypeError, ValueError):
+            log.warning("stored answer of charge %s could not be read; answering anew",
+                        found.charge_id)
+            return None
+        return dataclasses.replace(answer, reused_from=found.paid_at)
 
     @contextmanager
     def _one_at_a_time(self, question: str, control: QueryControl | None) -> Iterator[None]:

@@ -5,6 +5,7 @@ statement is a new question; identical questions at once are charged once."""
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import threading
 from decimal import Decimal
@@ -223,3 +224,55 @@ def test_the_key_holds_analyst_statement_epsilon_policy_and_rewrite() -> None:
         assert question_key(*changed) != key
     # Quoted identifiers keep their case (PostgreSQL folds only unquoted ones).
     assert normalised_statement('SELECT COUNT(*) FROM "People"') != base[1]
+
+
+def test_margin_columns_follow_each_aggregate() -> None:
+    """hushql.accuracy_columns: one <name>_margin95 column per noisy column, the same bound in
+    every row, NULL where there is no finite bound; keys get none."""
+    from proxy.answer import margin_columns, with_margins
+
+    columns = [OutputColumn("district", "text"), OutputColumn("households", "bigint", True),
+               OutputColumn("mean", "double precision", True)]
+    answer = Answer(columns, [("a", 3, 1.5), ("b", 0, None)], Decimal("0.1"), Decimal(1),
+                    [Accuracy("households", Decimal("0.05"), Decimal(1), Fraction(20),
+                              Decimal("59"), ""),
+                     Accuracy("mean", Decimal("0.05"), None, None, None, "ratio")])
+    shown, rows = with_margins(answer)
+    assert [c.name for c in shown] == ["district", "households", "mean", "households_margin95",
+                                       "mean_margin95"]
+    assert shown == margin_columns(columns)  # what Describe says is what Execute sends
+    assert rows == [("a", 3, 1.5, 59.0, None), ("b", 0, None, 59.0, None)]
+
+
+def test_the_notice_keeps_the_essentials_on_its_first_line() -> None:
+    """Message: one line with cost, budget left and margins (the JDBC driver keeps only it);
+    Detail and Hint carry the rest (protocol "Error and Notice Message Fields")."""
+    from proxy.wire.session import answer_notice
+
+    answer = Answer([OutputColumn("n", "bigint", True)], [(5,)], Decimal("0.1"), Decimal("2.9"),
+                    [Accuracy("n", Decimal("0.1"), Decimal(1), Fraction(10), Decimal("30"),
+                              "discrete Laplace")], notes=["rows without a key are not counted"])
+    fields = {f: v for f, v in answer_notice(answer).fields}
+    assert fields["M"] == ("this answer spent epsilon 0.1 of your privacy budget; 2.9 remains; "
+                           "95% margins: n ±30")
+    assert "n: within ±30 of the exact value in 95% of answers" in fields["D"]
+    assert "rows without a key are not counted" in fields["D"] and "hushql.fresh" in fields["H"]
+    paid = dt.datetime(2026, 3, 4, 5, 6, 7, tzinfo=dt.timezone.utc)
+    reused = dataclasses.replace(answer, reused_from=paid)
+    fields = {f: v for f, v in answer_notice(reused).fields}
+    assert fields["M"].startswith("this answer was given before and is reused: it spent nothing "
+                                  "now (epsilon 0.1 paid 2026-03-04 05:06:07 UTC); 2.9 remains")
+    assert "\n" not in fields["M"]
+
+
+def test_an_unreadable_stored_answer_is_answered_anew(engines, clinic_dsn) -> None:
+    """Fail closed: a stored answer this program cannot read back (a damaged row) is never
+    given; the question is paid for and answered anew."""
+    make, schema = engines
+    engine = make()
+    engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
+    with psycopg.connect(clinic_dsn, autocommit=True) as conn:
+        conn.execute(f"UPDATE {schema}.stored_answers SET answer = '{{\"object\": \"Nothing\"}}'")
+    again = engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
+    assert again.reused_from is None
+    assert charges(clinic_dsn, schema, "tester") == 2
