@@ -403,13 +403,14 @@ class Engine:
         with self._one_at_a_time(question, control):
             stored = self._stored(analyst, question)
             if stored is not None:
-                return dataclasses.replace(stored, remaining=self.ledger.remaining(analyst))
+                return stored
             return self._answer_anew(analyst, statement, prepared, eps, question, arrived,
                                      control)
 
     def _stored(self, analyst: str, question: str) -> Answer | None:
-        """The stored answer to ``question``, marked reused; None when there is none or it
-        cannot be read back (then the question is answered, and paid for, anew)."""
+        """The stored answer to ``question``, marked reused, with the budget left now; None
+        when there is none or it cannot be read back (then the question is answered, and paid
+        for, anew)."""
         found = self.ledger.stored_answer(analyst, question)
         if found is None:
             return None
@@ -419,7 +420,7 @@ class Engine:
             log.warning("stored answer of charge %s could not be read; answering anew",
                         found.charge_id)
             return None
-        return dataclasses.replace(answer, reused_from=found.paid_at)
+        return dataclasses.replace(answer, reused_from=found.paid_at, remaining=found.remaining)
 
     @contextmanager
     def _one_at_a_time(self, question: str, control: QueryControl | None) -> Iterator[None]:

@@ -687,11 +687,13 @@ class Reservation(NamedTuple):
 
 class StoredAnswer(NamedTuple):
     """An answer kept in the ledger: its JSON (as psycopg reads jsonb), when it was first paid
-    for, and the charge that paid."""
+    for, the charge that paid, and what the analyst has left now (read in the same round
+    trip)."""
 
     answer: Any
     paid_at: dt.datetime
     charge_id: int
+    remaining: Decimal
 
 
 class LedgerError(Exception):
@@ -946,7 +948,7 @@ class Ledger:
         """The newest answer stored for ``analyst`` under ``question``, or None."""
         with self._connection() as conn:
             row = conn.execute(self._sql.stored_answer, [analyst, question]).fetchone()
-        return None if row is None else StoredAnswer(row[0], row[1], int(row[2]))
+        return None if row is None else StoredAnswer(row[0], row[1], int(row[2]), row[3])
 
     def finish(self, charge_id: int, outcome: str) -> None:
         """Record how a reserved charge ended; its epsilon stays spent whatever the outcome.
@@ -1130,8 +1132,9 @@ class _Statements:
             "answer) VALUES (%s, %s, %s, %s, %s, %s::jsonb)")
         # The charge's own time: when the answer was paid for.
         self.stored_answer = (
-            f"SELECT a.answer, c.reserved_at, a.charge_id FROM {s}.stored_answers a "
-            f"JOIN {s}.charges c ON c.id = a.charge_id "
+            f"SELECT a.answer, c.reserved_at, a.charge_id, greatest(b.budget - b.spent, 0) "
+            f"FROM {s}.stored_answers a JOIN {s}.charges c ON c.id = a.charge_id "
+            f"JOIN {s}.analyst_budgets b ON b.analyst = a.analyst "
             "WHERE a.analyst = %s AND a.question = %s ORDER BY a.id DESC LIMIT 1")
         self.spent = f"SELECT spent FROM {s}.analyst_budgets WHERE analyst = %s"
         self.table_remaining = (
