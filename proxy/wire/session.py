@@ -82,9 +82,10 @@ class Outcome:
 def answer_notice(answer: Answer) -> codec.NoticeResponse:
     """The NOTICE that goes with every answer: what it cost, what is left, how accurate it is.
 
-    Its fields follow the protocol's "Error and Notice Message Fields" (PostgreSQL 15
-    documentation, chapter 55.8, protocol-error-fields.html): Message is "terse (typically one
-    line)", Detail carries the rest and may run to several lines, Hint is advice. Drivers keep
+    Its fields follow the protocol's "Error and Notice Message Fields" (PostgreSQL
+    documentation, Frontend/Backend Protocol, protocol-error-fields.html): Message is "terse
+    (typically one line)", Detail carries the rest and "might run to multiple lines", Hint is
+    advice. Drivers keep
     different parts (the JDBC driver's warning text is the Message alone), so the Message is
     one line holding the essentials: the cost, the budget left and each column's 95% margin;
     the Detail says it all in full."""
