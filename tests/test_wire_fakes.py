@@ -31,8 +31,9 @@ from proxy.wire.server import start_in_thread
 PASSWORD = "correct horse"
 ANALYST = "planner"
 
-COLUMNS = [OutputColumn("district", "text"), OutputColumn("households", "bigint"),
-           OutputColumn("avg_occupants", "double precision"), OutputColumn("litres", "numeric")]
+COLUMNS = [OutputColumn("district", "text"), OutputColumn("households", "bigint", noisy=True),
+           OutputColumn("avg_occupants", "double precision", noisy=True),
+           OutputColumn("litres", "numeric", noisy=True)]
 ROWS = [("Northbank", 120, 2.5, Decimal("1234.5")), ("Old Mill", 80, 3.25, Decimal("-0.1")),
         ("Harbourside", 0, None, Decimal("0"))]
 
@@ -57,6 +58,7 @@ class FakeEngine:
         self.budget = budget
         self.spent = Decimal(0)
         self.calls: list[tuple[str, Any, Decimal | None]] = []
+        self.fresh: list[bool] = []  # each answer's fresh flag, in order
         self.described: list[Any] = []
         self.cancelled = threading.Event()
         self.started = threading.Event()
@@ -87,6 +89,7 @@ class FakeEngine:
         text = self._accept(statement)
         with self.lock:
             self.calls.append((analyst, statement, epsilon))
+            self.fresh.append(fresh)
         if "slow_query" in text:
             self.started.set()
             for _ in range(500):
