@@ -50,10 +50,10 @@ import threading
 import time
 from collections import OrderedDict
 from collections.abc import Iterator
-from contextlib import contextmanager
-from datetime import datetime, timezone
 from concurrent.futures import ThreadPoolExecutor
+from contextlib import contextmanager
 from dataclasses import dataclass
+from datetime import datetime, timezone
 from decimal import Decimal, InvalidOperation
 from fractions import Fraction
 from typing import Any
