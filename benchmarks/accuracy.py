@@ -52,7 +52,7 @@ def measure(engine: Engine, plain: dict, sql: str, runs: int, epsilon: Decimal) 
     """Relative errors, coverage and (for AVG) stated/measured bound over ``runs`` answers."""
     errors, absolute, covered, total, stated = [], [], 0, 0, []
     for _ in range(runs):
-        answer = engine.answer("planner", sql, epsilon=epsilon)
+        answer = engine.answer("planner", sql, epsilon=epsilon, fresh=True)  # new noise each run
         accuracy = answer.accuracy[0]
         for row in answer.rows:
             key, value = (row[0], row[-1]) if len(row) > 1 else (None, row[0])

@@ -113,7 +113,7 @@ def main() -> int:
                     for name in ("declared_bounds", "chosen_bounds"):
                         sql = private_sql.format(t=name)
                         found[name] = median_ms(
-                            lambda: engine.answer("planner", sql, epsilon=Decimal(1)), args.repeat)
+                            lambda: engine.answer("planner", sql, epsilon=Decimal(1), fresh=True), args.repeat)
                     declared, chosen = found["declared_bounds"], found["chosen_bounds"]
                     table.add_row(label, f"{plain:.0f}", f"{declared:.0f}", f"{declared / plain:.2f}",
                                   f"{chosen:.0f}", f"{chosen / plain:.2f}",

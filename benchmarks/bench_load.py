@@ -94,7 +94,8 @@ async def _client(host: str, port: int, database: str, analyst: str, password: s
 
     counts = ClientCounts(analyst)
     conn = await asyncpg.connect(host=host, port=port, user=analyst, password=password,
-                                 database=database, ssl=False, timeout=60)
+                                 database=database, ssl=False, timeout=60,
+                                 server_settings={"hushql.fresh": "on"})  # each answer charged
     try:
         for command in setup:
             await conn.execute(command)

@@ -180,6 +180,7 @@ class Prober:
                                                    password=PLANNER_PASSWORD,
                                                    dbname=DEMO_DATABASE), autocommit=True)
         self.proxy.execute("SET hushql.epsilon = 0.001")
+        self.proxy.execute("SET hushql.fresh = on")  # every answer runs on the backend
         self.direct = psycopg.connect(backend_dsn, autocommit=True)
 
     def refusal(self, heavy: str) -> str | None:

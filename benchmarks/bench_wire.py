@@ -188,7 +188,10 @@ async def _connect(target: Target) -> Any:
 
     return await asyncpg.connect(host=target.host, port=target.port, user=target.user,
                                  password=target.password, database=target.database, ssl=False,
-                                 timeout=CONNECT_TIMEOUT_S, statement_cache_size=100)
+                                 timeout=CONNECT_TIMEOUT_S, statement_cache_size=100,
+                                 # Every answer computed anew, not a stored one given again
+                                 # (PostgreSQL keeps it as an unused custom setting).
+                                 server_settings={"hushql.fresh": "on"})
 
 
 async def _connect_all(target: Target, count: int, at_once: int = 16) -> list[Any]:

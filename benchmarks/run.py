@@ -122,7 +122,8 @@ def main() -> None:
         with psycopg.connect(dsn, autocommit=True) as direct:
             for label, dp_sql, exact_sql, target in cases:
                 exact = median_ms(lambda: direct.execute(exact_sql).fetchall(), args.repeat)
-                private = median_ms(lambda: engine.answer("planner", dp_sql, epsilon=None), args.repeat)
+                private = median_ms(lambda: engine.answer("planner", dp_sql, epsilon=None,
+                                                          fresh=True), args.repeat)
                 table.add_row(label, f"{private:.1f}", f"{exact:.1f}", f"{private / exact:.2f}", target)
         engine.close()
         console.print(table)

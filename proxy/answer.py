@@ -21,10 +21,12 @@ Value = Union[str, int, Decimal, float, _dt.date, bool, None]
 
 @dataclass(frozen=True)
 class OutputColumn:
-    """One column of an answer: its name and PostgreSQL type."""
+    """One column of an answer: its name and PostgreSQL type; ``noisy`` when it holds an
+    aggregate (it then has an accuracy entry of the same name), False for group keys."""
 
     name: str
     type: ColumnType
+    noisy: bool = False
 
 
 @dataclass(frozen=True)
@@ -76,3 +78,33 @@ class Answer:
     tables: list[str] = field(default_factory=list)
     charge_id: int | None = None
     notes: list[str] = field(default_factory=list)  # facts about the answer, true of any data
+    # When the answer was first paid for, if it is a stored answer given again (it then cost
+    # nothing now; ``epsilon`` is what it cost then).
+    reused_from: _dt.datetime | None = None
+
+    @property
+    def cost(self) -> Decimal:
+        """Epsilon this answer spent now: 0 for a stored answer given again."""
+        return Decimal(0) if self.reused_from is not None else self.epsilon
+
+
+MARGIN_SUFFIX = "_margin95"
+"""Appended to an aggregate column's name to name the column of its 95% margin."""
+
+
+def margin_columns(columns: list[OutputColumn]) -> list[OutputColumn]:
+    """The answer's columns followed by one ``<name>_margin95`` column (double precision) per
+    noisy column: what the session shows when the analyst asks for accuracy columns, so that
+    clients that drop notices (pandas, JDBC result sets) still carry the accuracy."""
+    return list(columns) + [OutputColumn(c.name + MARGIN_SUFFIX, "double precision")
+                            for c in columns if c.noisy]
+
+
+def with_margins(answer: Answer) -> tuple[list[OutputColumn], list[tuple[Value, ...]]]:
+    """``margin_columns`` and the rows with each noisy column's 95% half-width appended (the
+    same in every row: for derived values it is the widest over the cells; NULL where no finite
+    bound exists). Post-processing of released figures only."""
+    bounds = {a.column: a.bound95 for a in answer.accuracy}
+    extra = [bounds.get(c.name) for c in answer.columns if c.noisy]
+    tail = tuple(None if b is None else float(b) for b in extra)
+    return margin_columns(answer.columns), [tuple(row) + tail for row in answer.rows]

@@ -110,6 +110,8 @@ def _parser() -> argparse.ArgumentParser:
     ask.add_argument("--epsilon", help="epsilon for this query (default from access.toml)")
     ask.add_argument("--explain", action="store_true",
                      help="show the plan, sensitivity and noise instead of answering (free)")
+    ask.add_argument("--fresh", action="store_true",
+                     help="pay for a new answer even if this question was answered before")
     ask.add_argument("sql", help="one SELECT statement")
 
     check = commands.add_parser("check", help="validate a policy folder")
@@ -242,9 +244,9 @@ def _run_ask(args: argparse.Namespace, console: Console) -> int:
     engine = _connect(_load(args), args, pool_size=2)
     try:
         if args.explain:
-            answer = engine.explain(args.analyst, args.sql, epsilon=epsilon)
+            answer = engine.explain(args.analyst, args.sql, epsilon=epsilon, fresh=args.fresh)
         else:
-            answer = engine.answer(args.analyst, args.sql, epsilon=epsilon)
+            answer = engine.answer(args.analyst, args.sql, epsilon=epsilon, fresh=args.fresh)
     finally:
         engine.close()
     print_answer(answer, console, show_cost=not args.explain)
@@ -259,8 +261,15 @@ def print_answer(answer, console: Console, *, show_cost: bool = True) -> None:
     console.print(table)
     if not show_cost:
         return
-    console.print(f"epsilon spent: {answer.epsilon}   remaining: {answer.remaining}",
-                  highlight=False)
+    if answer.reused_from is not None:
+        from proxy.engine import paid_text
+
+        console.print(f"epsilon spent: 0 (asked before: the stored answer, epsilon "
+                      f"{answer.epsilon} paid {paid_text(answer.reused_from)}; --fresh pays for "
+                      f"a new one)   remaining: {answer.remaining}", highlight=False)
+    else:
+        console.print(f"epsilon spent: {answer.epsilon}   remaining: {answer.remaining}",
+                      highlight=False)
     for item in answer.accuracy:
         scale = "" if item.scale is None else f", noise scale {float(item.scale):.4g}"
         bound = "unbounded" if item.bound95 is None else f"±{item.bound95}"

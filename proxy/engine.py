@@ -3,6 +3,9 @@
 The order of steps is the privacy argument, so it lives here and only here:
 1. plan: analyse and rewrite (pure, cached by statement text; no data read). A refusal here
    charges nothing.
+1b. lookup: the same analyst's same question (normalised statement, epsilon, policy) answered
+   before is given its stored answer again, for nothing (post-processing of a released answer;
+   the argument is in ``proxy.stored_answers``), unless the session asks for a fresh one.
 2. reserve: the ledger charges epsilon in one committed transaction, or refuses (budget spent);
    the reservation also says what the analyst has left, which the answer reports.
 3. run: the rewritten query on the backend. From here on the charge stands whatever happens,
@@ -20,6 +23,8 @@ The order of steps is the privacy argument, so it lives here and only here:
 6. finish: the charge's outcome (answered, failed, cancelled) is noted in the ledger. It is a
    note, not a charge, so for answered queries a background worker records it after the answer
    has gone; failures and cancellations are recorded before the error is raised.
+   Before release, the answer is stored in the ledger under its question (a failure to store
+   loses only the reuse: the charge is already durable).
 
 Time. The backend query runs under the proxy's own timeout (access.toml ``[limits]
 query_timeout_ms``), never one the analyst chose: a deadline of the analyst's choosing turns
@@ -45,7 +50,10 @@ import re
 import threading
 import time
 from collections import OrderedDict
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
+from datetime import datetime, timezone
 from decimal import Decimal, InvalidOperation
 from fractions import Fraction
 from typing import Any
@@ -54,13 +62,13 @@ import sqlglot
 import sqlglot.errors
 import sqlglot.expressions as exp
 
-from proxy import faults, noise
+from proxy import faults, noise, stored_answers
 from proxy.accounts import Accounts
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
 from proxy.backend import Backend, QueryControl
 from proxy.errors import (INTERNAL_ERROR, INVALID_PARAMETER_VALUE, PROGRAM_LIMIT_EXCEEDED,
                           QUERY_CANCELED, HushError)
-from proxy.ledger import Ledger
+from proxy.ledger import Ledger, StoredAnswer
 from proxy.policy import ColumnPolicy, Policies
 from proxy.sql.analyse import analyse
 from proxy.sql.domains import describe_key, key_label, key_type, key_values
@@ -74,7 +82,7 @@ from proxy.sql.statement import BoundStatement
 from proxy.spark_backend import SparkBackend, is_spark_dsn
 from proxy.sql.rewrite import BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, loss_cap, rewrite
 
-__all__ = ["Engine", "Prepared", "QueryControl", "Statement", "parse_epsilon"]
+__all__ = ["Engine", "Prepared", "QueryControl", "Statement", "paid_text", "parse_epsilon"]
 
 # What the engine answers: a statement's text (plans cached by it), a parsed tree (long texts,
 # not cached), or a parameterised statement with its values (plans cached per class of values).
@@ -126,6 +134,8 @@ class Prepared:
     rewritten: Rewritten
     cells: list[tuple[Any, ...]]  # the key values of each cell, in the order the backend returns
     fingerprint: str
+    statement: str = ""  # the normalised statement (proxy.stored_answers)
+    policy: str = ""  # fingerprint of the table policies the plan was made under
 
 
 @dataclass(frozen=True)
@@ -236,6 +246,9 @@ class Engine:
         self._answered: queue.SimpleQueue[int | threading.Event | None] = queue.SimpleQueue()
         self._notes: threading.Thread | None = None
         self._notes_lock = threading.Lock()
+        # One identical question (stored-answer key) at a time: key -> (lock, users).
+        self._asking: dict[str, tuple[threading.Lock, int]] = {}
+        self._asking_lock = threading.Lock()
         from proxy.safe_config import policy_source
 
         for line in ledger.sync_budgets(policies, source=policy_source(policies)):
@@ -344,7 +357,9 @@ class Engine:
         rewritten = rewrite(plan, self._plan_exact_columns(plan))
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         return Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
-                        fingerprint=_fingerprint(rewritten.sql))
+                        fingerprint=_fingerprint(rewritten.sql),
+                        statement=stored_answers.normalised_statement(statement),
+                        policy=stored_answers.policy_fingerprint(list(plan.tables)))
 
     @staticmethod
     def _bound_key(analyst: str, bound: BoundStatement, late: frozenset[int]
@@ -414,8 +429,11 @@ class Engine:
                       for slot in set(entry.template.slots)}
         sql = entry.template.fill(renderings)
         prepared = entry.prepared
+        # The stored-answer key's statement was normalised with the markers: the values join it.
+        values = " ".join(f"${slot}={renderings[slot]}" for slot in sorted(renderings))
         return dataclasses.replace(prepared, rewritten=dataclasses.replace(prepared.rewritten, sql=sql),
-                                   fingerprint=_fingerprint(sql))
+                                   fingerprint=_fingerprint(sql),
+                                   statement=f"{prepared.statement} /* late values: {values} */")
 
     def _plan_exact_columns(self, plan: Plan) -> frozenset[str]:
         """The plan's columns summed exactly: of its table, or of the joined tables under the
@@ -482,9 +500,11 @@ class Engine:
         return self.ledger.remaining(analyst)
 
     def explain(self, analyst: str, statement: Statement, *,
-                epsilon: Decimal | None = None, form: str = "text") -> Answer:
-        """The plan, its sensitivities and noise, charging nothing: a two-column table (``form``
-        "text"), or one JSON document with the same items (``form`` "json")."""
+                epsilon: Decimal | None = None, form: str = "text",
+                fresh: bool = False) -> Answer:
+        """The plan, its sensitivities and noise, and whether a stored answer would be given
+        (unless ``fresh``), charging nothing: a two-column table (``form`` "text"), or one JSON
+        document with the same items (``form`` "json")."""
         prepared = self.prepare(analyst, statement)
         if isinstance(prepared, PreparedRead):
             return _explain_answer(
@@ -493,6 +513,7 @@ class Engine:
                  ("backend sql", prepared.sql)], form,
                 remaining=self.ledger.remaining(analyst), table=prepared.read.table.table)
         eps = self.epsilon_for(epsilon)
+        stored = self.ledger.stored_answer(analyst, _question(analyst, prepared, eps))
         plan, rewritten = prepared.plan, prepared.rewritten
         split = epsilon_split(rewritten, len(plan.measures), eps)
         rows: list[tuple[Value, ...]] = [
@@ -528,6 +549,7 @@ class Engine:
                          f"sensitivity {at_most}{_show(sensitivity * unit)}, noise scale "
                          f"{at_most}{_show(scale * Fraction(unit))}, "
                          f"95% bound {at_most}±{_show(noise.bound95(scale) * unit)}"))
+        rows.append(("stored answer", _stored_text(stored, fresh)))
         rows.append(("backend sql", rewritten.sql))
         return _explain_answer(rows, form, remaining=self.ledger.remaining(analyst),
                                table=plan.table.table)
@@ -535,14 +557,70 @@ class Engine:
     # ---- answering ---------------------------------------------------------------------------
 
     def answer(self, analyst: str, statement: Statement, *,
-               epsilon: Decimal | None = None, control: QueryControl | None = None) -> Answer:
-        """Plan, reserve, run, noise and release one statement. Raises HushError."""
+               epsilon: Decimal | None = None, control: QueryControl | None = None,
+               fresh: bool = False) -> Answer:
+        """Plan, look up a stored answer (unless ``fresh``), else reserve, run, noise, store
+        and release one statement. Raises HushError."""
         arrived = time.monotonic()
         prepared = self.prepare(analyst, statement)
         if isinstance(prepared, PreparedRead):
             return self._read_public(analyst, prepared, control)
         self._renewals.apply_due()  # a clock comparison except at a period boundary
         eps = self.epsilon_for(epsilon)
+        question = _question(analyst, prepared, eps)
+        if fresh:  # paid for whatever is stored; identical fresh questions each pay
+            return self._answer_anew(analyst, statement, prepared, eps, question, arrived,
+                                     control)
+        with self._one_at_a_time(question, control):
+            stored = self._stored(analyst, question)
+            if stored is not None:
+                return stored
+            return self._answer_anew(analyst, statement, prepared, eps, question, arrived,
+                                     control)
+
+    def _stored(self, analyst: str, question: str) -> Answer | None:
+        """The stored answer to ``question``, marked reused, with the budget left now; None
+        when there is none or it cannot be read back (then the question is answered, and paid
+        for, anew)."""
+        found = self.ledger.stored_answer(analyst, question)
+        if found is None:
+            return None
+        try:
+            answer = stored_answers.decode_answer(found.answer)
+        except (KeyError, TypeError, ValueError):
+            log.warning("stored answer of charge %s could not be read; answering anew",
+                        found.charge_id)
+            return None
+        return dataclasses.replace(answer, reused_from=found.paid_at, remaining=found.remaining)
+
+    @contextmanager
+    def _one_at_a_time(self, question: str, control: QueryControl | None) -> Iterator[None]:
+        """Holds the lock of one stored-answer key: identical questions take turns, so the
+        second finds the first's stored answer instead of paying again. A cancel ends the
+        wait with 57014."""
+        with self._asking_lock:
+            lock, users = self._asking.get(question, (threading.Lock(), 0))
+            self._asking[question] = (lock, users + 1)
+        try:
+            while not lock.acquire(timeout=0.05):
+                if control is not None and control.cancelled:
+                    raise HushError(QUERY_CANCELED, "canceling statement due to user request")
+            try:
+                yield
+            finally:
+                lock.release()
+        finally:
+            with self._asking_lock:
+                lock, users = self._asking[question]
+                if users == 1:
+                    del self._asking[question]
+                else:
+                    self._asking[question] = (lock, users - 1)
+
+    def _answer_anew(self, analyst: str, statement: Statement, prepared: Prepared,
+                     eps: Decimal, question: str, arrived: float,
+                     control: QueryControl | None) -> Answer:
+        """Reserve, run, noise, store and release (the steps after the lookup)."""
         plan = prepared.plan
         text = statement if isinstance(statement, str) else statement.shown() \
             if isinstance(statement, BoundStatement) else statement.sql(dialect="postgres")
@@ -561,6 +639,7 @@ class Engine:
                 raise HushError(INTERNAL_ERROR, "the backend returned an unexpected result shape")
             answer = self._release(prepared, eps, split, true_rows, charge)
             outcome = "answered"
+            self._store(analyst, question, prepared, answer)
         except HushError as error:
             failure = error
             if error.sqlstate == QUERY_CANCELED:
@@ -675,6 +754,16 @@ class Engine:
                                  "condition, or ask the data owner to lengthen "
                                  "[timing] answer_after_ms") from None
 
+    def _store(self, analyst: str, question: str, prepared: Prepared, answer: Answer) -> None:
+        """Keep a released answer for the next asking; a failure loses only the reuse (the
+        charge is durable already), so it is logged, not raised."""
+        assert answer.charge_id is not None
+        try:
+            self.ledger.store_answer(analyst, question, prepared.statement, answer.epsilon,
+                                     answer.charge_id, stored_answers.encode_answer(answer))
+        except Exception:
+            log.exception("could not store the answer of charge %s", answer.charge_id)
+
     def _finish(self, charge: int, outcome: str) -> None:
         """Record the outcome of a charge; a failure to record it loses only the note."""
         try:
@@ -713,20 +802,15 @@ class Engine:
         accuracy = [_accuracy(plan, o, split.measure, rewritten.sensitivities(values), scales,
                               bounds, noisy, clipping)
                     for o in plan.outputs if o.visible and o.kind != "key"]
-        return Answer(columns=_columns(plan),
-                      rows=postprocess(plan, rows), epsilon=epsilon,
+        return Answer(columns=_answer_columns(plan), rows=postprocess(plan, rows), epsilon=epsilon,
                       remaining=Decimal(0), accuracy=accuracy,
                       tables=_charged_tables(plan), charge_id=charge,
                       notes=_answer_notes(plan, rewritten, values))
 
 
-def _columns(plan: Plan) -> list[OutputColumn]:
-    return [OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs]
-
-
 def _described(prepared: Prepared | PreparedRead) -> list[OutputColumn]:
     """The columns a prepared statement's answer will have."""
-    return prepared.columns if isinstance(prepared, PreparedRead) else _columns(prepared.plan)
+    return prepared.columns if isinstance(prepared, PreparedRead) else _answer_columns(prepared.plan)
 
 
 def _same_plan(a: Prepared, b: Prepared) -> bool:
@@ -754,6 +838,34 @@ def _charged_tables(plan: Plan) -> list[str]:
     """The tables a query's charge names: every table it reads but public ones (they protect
     nobody); the ledger charges their populations once each."""
     return list(dict.fromkeys(t.table for t in plan.tables if not t.public))
+
+
+def _answer_columns(plan: Plan) -> list[OutputColumn]:
+    """The columns of an answer to ``plan``: its visible outputs, aggregates marked noisy."""
+    return [OutputColumn(o.name, _output_type(plan, o), noisy=o.kind != "key")
+            for o in plan.visible_outputs]
+
+
+def _question(analyst: str, prepared: Prepared, epsilon: Decimal) -> str:
+    """The stored-answer key of a planned statement at an epsilon (proxy.stored_answers)."""
+    return stored_answers.question_key(analyst, prepared.statement, epsilon, prepared.policy,
+                                       prepared.fingerprint)
+
+
+def _stored_text(stored: StoredAnswer | None, fresh: bool) -> str:
+    """EXPLAIN's line on the stored answer."""
+    if stored is None:
+        return "none: this question is answered anew and charged, and its answer stored"
+    when = f"first paid {paid_text(stored.paid_at)} (charge {stored.charge_id})"
+    if fresh:
+        return f"stored, {when}, but hushql.fresh is on: a new answer is charged and stored"
+    return (f"stored, {when}: it is given again and charges nothing (SET hushql.fresh = on "
+            "pays for a new one)")
+
+
+def paid_text(paid_at: datetime) -> str:
+    """When an answer was paid for, as notices and EXPLAIN say it (UTC, to the second)."""
+    return f"{paid_at.astimezone(timezone.utc):%Y-%m-%d %H:%M:%S} UTC"
 
 
 def _plan_bytes(entry: Prepared | PreparedRead | _LatePlan) -> int:

@@ -40,6 +40,10 @@ Why it is shaped like this:
   adds up against one cap (the smallest cap its tables declare); a table without an
   ``[individual]`` section is a population of its own. Each table's own ``spent`` is kept too,
   for the books.
+- Stored answers (schema version 6, ``proxy.stored_answers``): storing one is a lone INSERT
+  that takes no budget row lock; its foreign key takes only a KEY SHARE lock on the charge row
+  that paid for it, which ``finish`` (a non-key update) does not conflict with, so storing
+  joins no lock order and cannot deadlock with reservations.
 - Epsilon is ``Decimal`` in Python and ``NUMERIC`` in PostgreSQL, never a float: 0.1 charged 30
   times is exactly 3.0. Sums, differences and comparisons happen in PostgreSQL (arbitrary
   precision); Python never does arithmetic on a budget.
@@ -522,6 +526,30 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         SELECT population AS name, cap, spent, updated_at FROM {schema}.population_budgets
         """,
     )),
+    # Same question, same answer (proxy.stored_answers): each answered charge may store its
+    # released answer, to be given again for nothing. Rows are only ever added (a fresh answer
+    # is a new row; the newest is given). Not in the hash chain: storing spends nothing, and
+    # each row names the chained charge that paid for it.
+    ("stored answers: a released answer given again without a new charge", (
+        """
+        CREATE TABLE {schema}.stored_answers (
+            id          bigserial PRIMARY KEY,
+            stored_at   timestamptz NOT NULL DEFAULT now(),
+            analyst     text NOT NULL,
+            question    text NOT NULL,
+            statement   text NOT NULL,
+            epsilon     numeric NOT NULL CHECK (epsilon > 0),
+            charge_id   bigint NOT NULL UNIQUE REFERENCES {schema}.charges (id),
+            answer      jsonb NOT NULL
+        )
+        """,
+        "COMMENT ON COLUMN {schema}.stored_answers.question IS "
+        "'SHA-256 of the analyst, normalised statement, epsilon and policy (proxy.stored_answers)'",
+        "COMMENT ON COLUMN {schema}.stored_answers.statement IS "
+        "'the first characters of the normalised statement'",
+        "CREATE INDEX stored_answers_by_question ON {schema}.stored_answers "
+        "(analyst, question, id)",
+    )),
 ]
 
 
@@ -653,6 +681,17 @@ def _copy(error: BaseException) -> BaseException:
 class Reservation(NamedTuple):
     """A durable charge: its id (for ``finish``) and the analyst's budget left after it."""
 
+    charge_id: int
+    remaining: Decimal
+
+
+class StoredAnswer(NamedTuple):
+    """An answer kept in the ledger: its JSON (as psycopg reads jsonb), when it was first paid
+    for, the charge that paid, and what the analyst has left now (read in the same round
+    trip)."""
+
+    answer: Any
+    paid_at: dt.datetime
     charge_id: int
     remaining: Decimal
 
@@ -895,6 +934,22 @@ class Ledger:
         assert all(row is not None for row in rows)
         return rows  # type: ignore[return-value]
 
+    def store_answer(self, analyst: str, question: str, statement: str, epsilon: Decimal,
+                     charge_id: int, answer: str) -> None:
+        """Keep the released ``answer`` (JSON text) paid for by ``charge_id`` under the key
+        ``question``; ``statement`` is kept as an excerpt. A charge stores at most one answer
+        (a second raises psycopg's UniqueViolation)."""
+        with self._connection() as conn:
+            conn.execute(self._sql.store_answer, [analyst, question,
+                                                  statement[:STATEMENT_EXCERPT], epsilon,
+                                                  charge_id, answer])
+
+    def stored_answer(self, analyst: str, question: str) -> StoredAnswer | None:
+        """The newest answer stored for ``analyst`` under ``question``, or None."""
+        with self._connection() as conn:
+            row = conn.execute(self._sql.stored_answer, [analyst, question]).fetchone()
+        return None if row is None else StoredAnswer(row[0], row[1], int(row[2]), row[3])
+
     def finish(self, charge_id: int, outcome: str) -> None:
         """Record how a reserved charge ended; its epsilon stays spent whatever the outcome.
 
@@ -1072,6 +1127,15 @@ class _Statements:
             f"LATERAL {s}.finish_charge(ids.id, %s) AS f (recorded)")
         self.remaining = (
             f"SELECT greatest(budget - spent, 0) FROM {s}.analyst_budgets WHERE analyst = %s")
+        self.store_answer = (
+            f"INSERT INTO {s}.stored_answers (analyst, question, statement, epsilon, charge_id, "
+            "answer) VALUES (%s, %s, %s, %s, %s, %s::jsonb)")
+        # The charge's own time: when the answer was paid for.
+        self.stored_answer = (
+            f"SELECT a.answer, c.reserved_at, a.charge_id, greatest(b.budget - b.spent, 0) "
+            f"FROM {s}.stored_answers a JOIN {s}.charges c ON c.id = a.charge_id "
+            f"JOIN {s}.analyst_budgets b ON b.analyst = a.analyst "
+            "WHERE a.analyst = %s AND a.question = %s ORDER BY a.id DESC LIMIT 1")
         self.spent = f"SELECT spent FROM {s}.analyst_budgets WHERE analyst = %s"
         self.table_remaining = (
             # GREATEST skips NULLs, so "no cap" must stay NULL explicitly.

@@ -137,6 +137,8 @@ class ColumnPolicy(_Strict):
     # Still read, so that `hushql check` can say so with a hint rather than "unknown key".
     bucket: str | None = None
     description: str | None = None
+    # What one unit of the column is, in words ("litres", "people"), for analysts to read.
+    measured_in: str | None = None
 
     @property
     def low(self) -> Any:

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import asyncio
 import secrets
+from decimal import Decimal
 from collections.abc import Iterator
 
 import psycopg
@@ -23,6 +24,7 @@ from proxy.wire import catalog as catalog_module
 from proxy.wire import catalog_guard, codec
 from proxy.wire.catalog import ROLE, Catalog, build_catalog
 from proxy.wire.catalog_guard import check_catalog_text, claims_text, is_catalog_tree
+from proxy.wire.ledger_relations import names_ledger_schema
 from proxy.wire.session import Session
 from tests.conftest import with_database
 from tests.proxy_fixtures import DEMO_POLICIES, UNLISTED_COLUMN, add_unlisted_column
@@ -100,7 +102,9 @@ def test_mirror_has_only_the_exposed_columns_typed_by_kind(catalog: Catalog,
         ("litres", "numeric")]
     described = rows(catalog, "planner", "SELECT pg_catalog.col_description("
                      "'households'::regclass, 3)")
-    assert described == [("People living in the household",)]  # the policy's description
+    # The description, then kind, range and unit (the demo policies/tables/households.toml).
+    assert described == [("People living in the household; integer from 1 to 8 (sums count "
+                          "values outside as the nearest end), measured in people",)]
 
 
 def test_each_account_sees_only_its_granted_tables(catalog: Catalog) -> None:
@@ -114,6 +118,39 @@ def test_each_account_sees_only_its_granted_tables(catalog: Catalog) -> None:
     with pytest.raises(HushError) as caught:
         catalog.run("stranger", "SELECT 1", [])
     assert caught.value.sqlstate == "42501"
+
+
+def test_my_tables_lists_the_accounts_own_policy(catalog: Catalog) -> None:
+    """hushql.my_tables: one row per granted column, from the policy (the demo's
+    policies/tables/*.toml), with the budget left the session passes in; ordinary SQL over it."""
+    policies = load_policies(DEMO_POLICIES)
+    query = ("SELECT table_name, column_name, kind, low, high, step, allowed_values, measured_in, "
+             "aggregates, group_by, identifies_individual, remaining_budget "
+             "FROM hushql.my_tables ORDER BY table_name, column_name")
+    found = catalog.run("researcher", query, [], Decimal("0.75"))[1]
+    households = policies.tables["households"].columns
+    assert [r[1] for r in found] == sorted(households)  # researcher: households only
+    by_column = {r[1]: r for r in found}
+    assert by_column["occupants"] == ("households", "occupants", "integer", "1", "8", None, None,
+                                      "people", "COUNT, SUM, AVG", True, False, Decimal("0.75"))
+    assert by_column["district"][6] == ", ".join(households["district"].values or [])
+    assert by_column["household_id"][10] is True  # the individual's column
+    planner = catalog.run("planner", "SELECT m.column_name, m.step FROM hushql.my_tables AS m "
+                          "WHERE m.table_name = $1 AND kind = 'number'", ["readings"])[1]
+    assert planner == [("litres", Decimal("0.1"))]
+    assert rows(catalog, "auditor", "SELECT count(*) FROM hushql.my_tables") == [(0,)]
+    # Described without running, and without a budget figure.
+    assert [c[0] for c in catalog.describe("planner", "SELECT * FROM hushql.my_tables")][:3] == [
+        "table_name", "column_name", "kind"]
+    # Only the qualified name is replaced: an unqualified my_tables is the query's own CTE.
+    assert rows(catalog, "planner", "WITH my_tables AS (SELECT 1 AS n) SELECT n FROM "
+                "my_tables") == [(1,)]
+    tree = sqlglot.parse_one("SELECT * FROM hushql.my_tables", read="postgres")
+    assert is_catalog_tree(tree, POLICY_TABLES)
+    assert not names_ledger_schema(tree, "") and names_ledger_schema(
+        sqlglot.parse_one("SELECT * FROM hushql.my_tables JOIN hushql.budgets ON true"), "")
+    assert not names_ledger_schema(None, 'SELECT * FROM "hushql".my_tables')
+    assert names_ledger_schema(None, "SELECT * FROM hushql.charges")
 
 
 def test_mirrors_are_reused_and_rebuilt_when_tampered(catalog: Catalog, backend: str) -> None:
@@ -194,7 +231,6 @@ REFUSED = [
     "SELECT * FROM pg_catalog.pg_stat_database",
     "SELECT pg_stat_get_live_tuples(1259)",
     "SELECT * FROM pg_locks",
-    "SELECT * FROM pg_settings",
     "SELECT rolpassword FROM pg_authid",
     "SELECT pg_read_file('PG_VERSION')",
     "SELECT * FROM pg_ls_dir('.')",
@@ -234,6 +270,28 @@ REFUSED = [
     "SELECT (1) lo_import('/etc/hostname')",
     "SELECT * FROM (SELECT 1) set_config('role', 'postgres', false)",  # misread as an alias
 ]
+
+
+def test_server_wide_relations_are_answered_in_part(catalog: Catalog) -> None:
+    """pg_settings keeps only the readable settings the proxy does not tell itself (JDBC's key
+    queries read max_index_keys); pg_tablespace only the two built-in tablespaces."""
+    names = {r[0] for r in rows(catalog, "planner", "SELECT name FROM pg_settings")}
+    assert "max_index_keys" in names and "search_path" in names
+    assert not names & {"data_directory", "config_file", "hba_file", "port", "server_version",
+                        "listen_addresses", "shared_buffers"}
+    assert rows(catalog, "planner", "SELECT setting FROM pg_catalog.pg_settings s WHERE "
+                "s.name = 'data_directory'") == []
+    spaces = rows(catalog, "planner", "SELECT pg_catalog.pg_tablespace.spcname FROM "
+                  "pg_catalog.pg_tablespace ORDER BY 1")
+    assert spaces == [("pg_default",), ("pg_global",)]
+    # current_setting with its name as a parameter: checked against the value it runs with.
+    assert rows(catalog, "planner", "SELECT current_setting($1::varchar)",
+                ["default_table_access_method"]) == [("heap",)]
+    with pytest.raises(HushError) as caught:
+        catalog.run("planner", "SELECT current_setting($1::varchar)", ["data_directory"])
+    assert caught.value.sqlstate == "42501"
+    with pytest.raises(HushError):
+        catalog.run("planner", "SELECT current_setting($1)", [])  # no value: refused
 
 
 @pytest.mark.parametrize("query", REFUSED)

@@ -16,9 +16,15 @@ import re
 import shutil
 import subprocess
 from pathlib import Path
+from types import SimpleNamespace
+
+from decimal import Decimal
+from fractions import Fraction
 
 import psycopg
 import pytest
+
+from proxy import noise
 
 from tests.proxy_fixtures import UNLISTED_COLUMN, RunningProxy
 from tests.proxy_fixtures import demo_proxy, tls_proxy  # noqa: F401  (fixtures)
@@ -34,6 +40,13 @@ EXPOSED = ["household_id", "district", "occupants", "tariff", "has_garden"]
 COLUMNS_QUERY = ("SELECT column_name FROM information_schema.columns WHERE table_name = {} "
                  "ORDER BY ordinal_position")
 OCCUPANTS = 2  # the parameter: households with more than two occupants
+# The column comment the mirror carries for occupants: the demo policy's description, kind,
+# range and unit (policies/tables/households.toml).
+OCCUPANTS_COMMENT = ("People living in the household; integer from 1 to 8 (sums count values "
+                     "outside as the nearest end), measured in people")
+HOUSEHOLDS_COMMENT = ("One row per household supplied by the utility; individuals: rows sharing "
+                      "household_id are one individual of population households, at most 1 row "
+                      "each")
 
 # Each answer here spends the default epsilon 0.1 on one COUNT over a table with one row per
 # household: sensitivity 1, discrete Laplace noise of scale b = 1 / 0.1 = 10. Its tail is
@@ -64,7 +77,11 @@ def assert_noisy_counts(rows: list, exact: dict[str, int]) -> None:
 
 
 def assert_spent(notices: list[str]) -> None:
-    assert any("spent epsilon 0.1" in n for n in notices), notices
+    """A notice whose first line says what the answer cost (or, for a question the module
+    asked before, that it was reused and what it cost then), what remains and the margins."""
+    assert any(re.search(r"(spent epsilon 0\.1 |spent nothing now \(epsilon 0\.1 paid )"
+                         r".*remains; 95% margins: households ±\d+", n.splitlines()[0])
+               for n in notices if n), notices
 
 
 # ----------------------------------------------------------------------------- psql
@@ -124,6 +141,19 @@ def test_psql(demo_proxy: RunningProxy, exact) -> None:
     assert listed == EXPOSED and UNLISTED_COLUMN not in described.stdout
     assert table_rows(described.stdout)[2][1] == "integer"
 
+    # \d+ shows the policy in the Description column.
+    detailed = psql(demo_proxy, "-c", "\\d+ households")
+    assert detailed.returncode == 0, detailed.stderr
+    header = table_rows(detailed.stdout)[1]
+    by_name = {r[0]: dict(zip(header, r)) for r in table_rows(detailed.stdout)[2:] if len(r) > 1}
+    assert by_name["occupants"]["Description"] == OCCUPANTS_COMMENT
+    assert by_name["district"]["Description"] == ("category, one of: Northbank, Old Mill, "
+                                                  "Harbourside")
+    # (\dt+ asks for table sizes, which are refused; the comment itself is answered.)
+    commented = psql(demo_proxy, "-t", "-c",
+                     "SELECT obj_description('households'::regclass, 'pg_class')")
+    assert commented.stdout.strip() == HOUSEHOLDS_COMMENT, commented.stderr
+
     tables = psql(demo_proxy, "-c", "\\dt")
     assert [r[1] for r in table_rows(tables.stdout)[2:]] == ["households", "readings", "tariffs"]
     theirs = psql(demo_proxy, "-c", "\\dt", user="researcher")  # granted households only
@@ -158,6 +188,52 @@ def test_psycopg_sync(demo_proxy: RunningProxy, exact) -> None:
         types = conn.execute("SELECT typname FROM pg_catalog.pg_type WHERE oid = any(%s::oid[]) "
                              "ORDER BY 1", ["{23,25}"]).fetchall()
         assert types == [("int4",), ("text",)]
+
+
+def test_psycopg_notices_fresh_answers_and_my_tables(demo_proxy: RunningProxy, exact) -> None:
+    """The notice's fields as the protocol names them (Message one line, then Detail and
+    Hint); a repeated question reused for nothing, hushql.fresh paying again; and
+    hushql.my_tables with the budget SHOW hushql.remaining tells."""
+    question = COUNT.replace("count(*)", "count(*) ") + " LIMIT 3"  # a question of this test's
+    notices: list[SimpleNamespace] = []  # a Diagnostic's fields live only in the handler
+    with psycopg.connect(demo_proxy.conninfo(user="researcher"), autocommit=True) as conn:
+        conn.add_notice_handler(lambda d: notices.append(SimpleNamespace(
+            message_primary=d.message_primary, message_detail=d.message_detail,
+            message_hint=d.message_hint)))
+
+        def remaining() -> Decimal:
+            return Decimal(conn.execute("SHOW hushql.remaining").fetchone()[0])
+
+        before = remaining()
+        first = conn.execute(question).fetchall()
+        assert_noisy_counts(first, exact["all"])
+        paid = notices[-1]
+        assert "\n" not in paid.message_primary and paid.message_primary.startswith(
+            "this answer spent epsilon 0.1 of your privacy budget; ")
+        assert "households: within ±" in paid.message_detail
+        assert "hushql.fresh" in paid.message_hint
+        assert remaining() == before - Decimal("0.1")
+
+        again = conn.execute(question.lower()).fetchall()  # the same question, spelt otherwise
+        assert again == first and remaining() == before - Decimal("0.1")
+        assert notices[-1].message_primary.startswith(
+            "this answer was given before and is reused: it spent nothing now (epsilon 0.1 paid ")
+        assert "as it was when first paid for" in notices[-1].message_detail
+
+        conn.execute("SET hushql.fresh = on")
+        conn.execute(question).fetchall()
+        assert remaining() == before - Decimal("0.2")
+        assert notices[-1].message_primary.startswith("this answer spent epsilon 0.1")
+        conn.execute("RESET hushql.fresh")
+        # EXPLAIN says an answer is stored (the newest, paid for by the fresh asking).
+        explained = dict(conn.execute("EXPLAIN " + question).fetchall())
+        assert explained["stored answer"].startswith("stored, first paid")
+
+        facts = conn.execute("SELECT column_name, kind, low, high, remaining_budget FROM "
+                             "hushql.my_tables WHERE table_name = 'households' "
+                             "ORDER BY column_name").fetchall()
+        assert [f[0] for f in facts] == sorted(EXPOSED)
+        assert ("occupants", "integer", "1", "8", remaining()) in facts
 
 
 def test_psycopg_async(demo_proxy: RunningProxy, exact) -> None:
@@ -281,8 +357,28 @@ def test_sqlalchemy_with_pandas(demo_proxy: RunningProxy, exact) -> None:
         assert [c["name"] for c in columns] == EXPOSED
         assert [type(c["type"]).__name__ for c in columns] == [
             "INTEGER", "TEXT", "INTEGER", "TEXT", "BOOLEAN"]
-        assert columns[2]["comment"] == "People living in the household"
+        assert columns[2]["comment"] == OCCUPANTS_COMMENT
+        assert inspector.get_table_comment("households")["text"] == HOUSEHOLDS_COMMENT
         assert inspector.get_pk_constraint("households")["constrained_columns"] == []
+        assert inspector.get_foreign_keys("readings") == []
+
+        # Reflection (current_setting with a parameter, pg_tablespace) now works, and
+        # read_sql_table then asks for every row, which is refused as any raw read is.
+        table = sqlalchemy.Table("households", sqlalchemy.MetaData(), autoload_with=engine)
+        assert [c.name for c in table.columns] == EXPOSED
+        assert table.comment == HOUSEHOLDS_COMMENT
+        with pytest.raises(pandas.errors.DatabaseError) as caught:
+            pandas.read_sql_table("households", engine)
+        assert caught.value.__cause__.orig.sqlstate == NOT_SUPPORTED
+
+        # The accuracy as columns: pandas drops notices, so the margins travel in the frame.
+        with engine.connect() as conn:
+            conn.exec_driver_sql("SET hushql.accuracy_columns = on")
+            frame = pandas.read_sql(COUNT, conn)
+        assert list(frame.columns) == ["district", "households", "households_margin95"]
+        assert str(frame["households_margin95"].dtype) == "float64"
+        # COUNT at epsilon 0.1: sensitivity 1, scale 10 (the module's SCALE).
+        assert set(frame["households_margin95"]) == {float(noise.bound95(Fraction(SCALE)))}
     finally:
         engine.dispose()
 
@@ -325,10 +421,20 @@ def test_jdbc(demo_proxy: RunningProxy, exact, jdbc_classes: Path) -> None:
     assert facts["param-column"] == [["district", "text"], ["households", "int8"]]
     assert_noisy_counts([(d, int(n)) for d, n in facts["param-row"]], exact["above"])
     assert [t[0] for t in facts["table"]] == ["households", "readings", "tariffs"]
-    assert facts["table"][0][1] == "One row per household supplied by the utility"
+    assert facts["table"][0][1] == HOUSEHOLDS_COMMENT
     assert [(c[0], c[1]) for c in facts["column"]] == [
         ("household_id", "int4"), ("district", "text"), ("occupants", "int4"),
         ("tariff", "text"), ("has_garden", "bool")]
+    assert facts["column"][2][3] == OCCUPANTS_COMMENT  # REMARKS: the policy, in words
+    assert facts["imported-keys"] == [["0"]] and facts["exported-keys"] == [["0"]]
+    assert facts["margin-column"] == [["district", "text"], ["households", "int8"],
+                                      ["households_margin95", "float8"]]
+    margin = float(noise.bound95(Fraction(SCALE)))
+    assert [(d, float(m)) for d, _, m in facts["margin-row"]] == [(d, margin) for d in DISTRICTS]
+    # The same question again: the stored answer, for nothing, with its counts.
+    assert [(d, int(n)) for d, n, _ in facts["margin-row"]] == [
+        (d, int(n)) for d, n in facts["dp-row"]]
+    assert any("spent nothing now" in m for _, m in facts["notice"]), facts["notice"]
     assert facts["primary-keys"] == [["0"]]
     assert facts["size"] == [["42501"]]  # pg_database_size refused
 

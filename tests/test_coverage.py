@@ -52,7 +52,7 @@ def answers(module_dsn: str):
                 for sql, plain_sql in QUERIES:
                     plain = {key: float(value) for key, value in conn.execute(plain_sql).fetchall()}
                     for _ in range(RUNS):
-                        answer = engine.answer("planner", sql, epsilon=Decimal(1))
+                        answer = engine.answer("planner", sql, epsilon=Decimal(1), fresh=True)
                         for row in answer.rows:
                             key = row[0] if len(row) > 1 else None
                             if row[-1] is not None:

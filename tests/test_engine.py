@@ -161,7 +161,7 @@ def cell_noise(engine: Engine, dsn: str, epsilon: str, queries: int) -> list[int
     draws: list[int] = []
     for _ in range(queries):
         answer = engine.answer("tester", "SELECT age, COUNT(*) FROM people GROUP BY age",
-                               epsilon=Decimal(epsilon))
+                               epsilon=Decimal(epsilon), fresh=True)  # new noise each time
         draws += [count - truth[age] for age, count in answer.rows if age in truth]
     return draws
 
@@ -239,7 +239,7 @@ def coverage(engine: Engine, queries: int) -> float:
     inside = total = 0
     for _ in range(queries):
         answer = engine.answer("tester", "SELECT species, COUNT(*) FROM penguins GROUP BY species",
-                               epsilon=Decimal("0.5"))
+                               epsilon=Decimal("0.5"), fresh=True)
         bound = answer.accuracy[0].bound95
         for species, count in answer.rows:
             inside += abs(count - PUBLISHED_SPECIES[species]) <= bound

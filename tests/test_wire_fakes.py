@@ -32,8 +32,9 @@ from proxy.wire.server import start_in_thread
 PASSWORD = "correct horse"
 ANALYST = "planner"
 
-COLUMNS = [OutputColumn("district", "text"), OutputColumn("households", "bigint"),
-           OutputColumn("avg_occupants", "double precision"), OutputColumn("litres", "numeric")]
+COLUMNS = [OutputColumn("district", "text"), OutputColumn("households", "bigint", noisy=True),
+           OutputColumn("avg_occupants", "double precision", noisy=True),
+           OutputColumn("litres", "numeric", noisy=True)]
 ROWS = [("Northbank", 120, 2.5, Decimal("1234.5")), ("Old Mill", 80, 3.25, Decimal("-0.1")),
         ("Harbourside", 0, None, Decimal("0"))]
 
@@ -58,6 +59,7 @@ class FakeEngine:
         self.budget = budget
         self.spent = Decimal(0)
         self.calls: list[tuple[str, Any, Decimal | None]] = []
+        self.fresh: list[bool] = []  # each answer's fresh flag, in order
         self.described: list[Any] = []
         self.cancelled = threading.Event()
         self.started = threading.Event()
@@ -91,10 +93,11 @@ class FakeEngine:
         return None  # the fake plans nothing ahead: every Describe goes through describe
 
     def answer(self, analyst: str, statement: Any, *, epsilon: Decimal | None = None,
-               control: Any = None) -> Answer:
+               control: Any = None, fresh: bool = False) -> Answer:
         text = self._accept(statement)
         with self.lock:
             self.calls.append((analyst, statement, epsilon))
+            self.fresh.append(fresh)
         if "slow_query" in text:
             self.started.set()
             for _ in range(500):
@@ -113,7 +116,7 @@ class FakeEngine:
         return Answer(list(COLUMNS), list(ROWS), eps, remaining, accuracy, ["households"])
 
     def explain(self, analyst: str, statement: Any, *, epsilon: Decimal | None = None,
-                form: str = "text") -> Answer:
+                form: str = "text", fresh: bool = False) -> Answer:
         self._accept(statement)
         eps = epsilon if epsilon is not None else Decimal("0.1")
         return Answer([OutputColumn("item", "text"), OutputColumn("value", "text")],
@@ -158,7 +161,8 @@ class FakeCatalog:
     def is_catalog_query(self, tree: exp.Expression) -> bool:
         return any(t.db == "pg_catalog" for t in tree.find_all(exp.Table))
 
-    def run(self, analyst: str, sql: str, params: list[Any]) -> tuple[list[Any], list[tuple]]:
+    def run(self, analyst: str, sql: str, params: list[Any],
+            remaining: Decimal | None = None) -> tuple[list[Any], list[tuple]]:
         self.runs.append((analyst, sql, list(params)))
         return [OutputColumn("relname", "name"), OutputColumn("oid", "oid")], \
             [("households", 16384), ("readings", 16390)]

@@ -397,3 +397,32 @@ def test_an_error_undoes_the_settings_of_its_implicit_transaction(engine: FakeEn
     assert _show(s, "hushql.epsilon") == "0.7"  # committed before the error
     _q(s, "SET hushql.epsilon = 0.8")
     assert _show(s, "hushql.epsilon") == "0.8"
+
+
+def test_fresh_and_accuracy_columns_settings(engine: FakeEngine) -> None:
+    """hushql.fresh reaches the engine; hushql.accuracy_columns adds a <name>_margin95 column
+    per noisy column, in the description (Describe before Execute) and in the rows."""
+    s = _session(engine)
+    _q(s, COUNT)
+    _q(s, "SET hushql.fresh = on")
+    _q(s, COUNT)
+    _q(s, "RESET hushql.fresh")
+    _q(s, COUNT)
+    assert engine.fresh == [False, True, False]
+    assert _errors(_q(s, "SET hushql.fresh = maybe")) == ["22023"]
+
+    _q(s, "SET hushql.accuracy_columns = on")
+    out = _send(s, codec.Parse("", COUNT), codec.Bind("", "", (), (), ()),
+                codec.Describe("P", ""), codec.Execute("", 0), codec.Sync())
+    [described] = [m for m in out if isinstance(m, codec.RowDescription)]
+    assert [f.name for f in described.fields] == [
+        "district", "households", "avg_occupants", "litres", "households_margin95",
+        "avg_occupants_margin95", "litres_margin95"]
+    rows = _rows(out)
+    assert len(rows) == len(ROWS)
+    # The fake's accuracy: households ±30; avg_occupants without a finite bound; litres none.
+    assert {(float(r[4]), r[5], r[6]) for r in rows} == {(30.0, None, None)}, rows
+    _q(s, "SET hushql.accuracy_columns = off")
+    plain = [m for m in _q(s, COUNT) if isinstance(m, codec.RowDescription)]
+    assert [f.name for f in plain[0].fields] == ["district", "households", "avg_occupants",
+                                                 "litres"]

@@ -25,6 +25,8 @@ from tests.serve_processes import (drop_mirrors, policies_with_budgets, read_boo
 
 QUERY = "SELECT COUNT(*) FROM households"
 READINGS_QUERY = "SELECT COUNT(*) FROM readings"
+# Every asking pays for a new answer (hushql.fresh): these tests count charges.
+FRESH = "-c hushql.fresh=on"
 
 
 @pytest.fixture(scope="module")
@@ -115,10 +117,11 @@ def test_workers_share_one_port_and_cancels_reach_the_query_wherever_they_land(
     with serving(demo_dsn, tmp_path / "serve.log", workers=2, pool_size=36,
                  env={"HUSHQL_TEST_FAULTS": "during-query=20"}) as served:
         served.wait_for_log("serving (pid", count=2)
-        conns = [served.connect() for _ in range(4)]
+        # Fresh answers: the same question asked again must reach the backend each time.
+        conns = [served.connect(options=FRESH) for _ in range(4)]
         # The kernel picks the worker; connect until both hold some (at most 16 in all).
         while len({slot_of(c.info.backend_pid) for c in conns}) < 2 and len(conns) < 16:
-            conns.append(served.connect())
+            conns.append(served.connect(options=FRESH))
         slots = {slot_of(c.info.backend_pid) for c in conns}
         assert slots == {0, 1}, f"{len(conns)} connections all went to slot(s) {slots}"
         started = time.monotonic()
@@ -196,7 +199,7 @@ def test_two_serve_processes_on_one_ledger_never_overspend_nor_lose_a_charge(
             """Per query text, the outcome of each try: "ok" or the SQLSTATE."""
             outcomes: dict[str, list[str]] = {QUERY: [], READINGS_QUERY: []}
             try:
-                conn = (first, second)[index % 2].connect(autocommit=True)
+                conn = (first, second)[index % 2].connect(autocommit=True, options=FRESH)
             except psycopg.Error as error:
                 barrier.abort()  # the others stop waiting; this error is the one to see
                 raise AssertionError(f"client {index} could not log in: {error}") from None

@@ -37,6 +37,7 @@ import logging
 import secrets
 import threading
 from contextlib import contextmanager
+from decimal import Decimal
 from dataclasses import dataclass
 from typing import Any, Iterable, Iterator, Sequence
 
@@ -54,8 +55,10 @@ from proxy.errors import (FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, INTERNA
 from proxy.dsn import with_database
 from proxy.policy import ColumnPolicy, Policies
 from proxy.wire import own_database, statements, types
+from proxy.wire.askable import (column_comment, my_tables_rows, names_my_tables, table_comment,
+                                with_my_tables)
 from proxy.wire.catalog_guard import (CATALOG_HINT, TOO_LARGE_MARK, bounded, check_catalog_text,
-                                      claims_text, is_catalog_tree, personalise)
+                                      claims_text, is_catalog_tree, narrowed, personalise)
 
 __all__ = ["Catalog", "build_catalog", "is_catalog_tree", "claims_text", "check_catalog_text",
            "mirror_layout", "personalise", "bounded", "ROLE"]
@@ -65,7 +68,8 @@ log = logging.getLogger("hushql.catalog")
 ROLE = "hushql_catalog"
 MIRROR_PREFIX = "hushql_mirror_"
 # Bumped whenever the way mirrors are built changes, so old mirrors are not reused.
-LAYOUT_VERSION = 1
+# 2: comments carry each column's kind, range or values, unit and step, and the table's unit.
+LAYOUT_VERSION = 2
 STATEMENT_TIMEOUT_MS = 3000
 MAX_ROWS = 100_000
 # The largest catalog answer, in bytes of PostgreSQL's text for its rows. What the supported
@@ -106,12 +110,14 @@ def column_type(column: ColumnPolicy) -> str:
 
 
 def mirror_layout(policies: Policies, tables: Iterable[str]) -> tuple[MirrorTable, ...]:
-    """The empty tables a mirror of these granted tables holds, sorted by name."""
+    """The empty tables a mirror of these granted tables holds, sorted by name, with the
+    policy as comments (psql's \\d+, JDBC's REMARKS, SQLAlchemy's inspector show them)."""
     out = []
     for name in sorted(set(tables)):
         policy = policies.tables[name]
-        out.append(MirrorTable(name, policy.description, tuple(
-            MirrorColumn(col, column_type(c), c.description)
+        identifying = policy.individual.column if policy.individual is not None else None
+        out.append(MirrorTable(name, table_comment(policy), tuple(
+            MirrorColumn(col, column_type(c), column_comment(c, col == identifying))
             for col, c in policy.columns.items())))
     return tuple(out)
 
@@ -340,20 +346,22 @@ class Catalog:
 
     # ---- answering -----------------------------------------------------------------------
 
-    def run(self, analyst: str, sql_text: str, params: Sequence[Any] = ()
+    def run(self, analyst: str, sql_text: str, params: Sequence[Any] = (),
+            remaining: Decimal | None = None
             ) -> tuple[list[tuple[str, int | str]], list[tuple[Any, ...]]]:
-        """Runs one checked catalog SELECT in the analyst's mirror: (columns, rows). Raises
+        """Runs one checked catalog SELECT in the analyst's mirror: (columns, rows);
+        ``remaining`` is the analyst's budget left, for ``hushql.my_tables``. Raises
         HushError (42501 refused, 54000 too many rows or bytes, 53300 too many at once, 57014
         timeout, or the mirror's own error about the query)."""
         if not self._at_once.acquire(timeout=WAIT_SECONDS):
             raise HushError(TOO_MANY_CONNECTIONS, "too many catalog questions at once",
                             hint="Try again in a moment.")
         try:
-            with self._transaction(analyst, sql_text) as conn:
+            with self._transaction(analyst, sql_text, params) as conn:
                 # A server-side cursor: one statement only, and at most max_rows + 1 fetched.
                 with psycopg.RawServerCursor(conn, "hushql_catalog_answer") as cur:
-                    cur.execute(bounded(self._runnable(conn, personalise(sql_text, analyst)),
-                                        self.max_bytes),
+                    cur.execute(bounded(self._runnable(conn, personalise(sql_text, analyst),
+                                                       analyst, remaining), self.max_bytes),
                                 list(params))
                     described = list(cur.description or [])[:-1]
                     rows = [row[:-1] for row in cur.fetchmany(self.max_rows + 1)]
@@ -387,7 +395,7 @@ class Catalog:
         the catalog transaction; raises HushError with the mirror's refusal."""
         with self._transaction(analyst, sql_text) as conn:
             result = conn.pgconn.prepare(
-                b"", self._runnable(conn, personalise(sql_text, analyst)).encode())
+                b"", self._runnable(conn, personalise(sql_text, analyst), analyst).encode())
             if result.status == ExecStatus.COMMAND_OK:
                 result = conn.pgconn.describe_prepared(b"")
         if result.status != ExecStatus.COMMAND_OK:
@@ -399,8 +407,13 @@ class Catalog:
                               field(DiagnosticField.MESSAGE_HINT))
         return result
 
-    def _runnable(self, conn: psycopg.Connection[Any], sql_text: str) -> str:
-        """The checked text as the mirror runs it: pg_database narrowed to one row."""
+    def _runnable(self, conn: psycopg.Connection[Any], sql_text: str, analyst: str,
+                  remaining: Decimal | None = None) -> str:
+        """The checked text as the mirror runs it: pg_database narrowed to one row, the
+        guard's other narrowed relations to theirs, hushql.my_tables as the analyst's rows."""
+        sql_text = narrowed(sql_text)
+        if names_my_tables(sql_text):
+            sql_text = with_my_tables(sql_text, my_tables_rows(self.policies, analyst, remaining))
         if not own_database.names_pg_database(sql_text):
             return sql_text
         if self._database_columns is None:
@@ -409,12 +422,13 @@ class Catalog:
         return own_database.replace_pg_database(sql_text, subquery)
 
     @contextmanager
-    def _transaction(self, analyst: str, sql_text: str) -> Iterator[psycopg.Connection[Any]]:
+    def _transaction(self, analyst: str, sql_text: str, params: Sequence[Any] | None = None
+                     ) -> Iterator[psycopg.Connection[Any]]:
         """A mirror connection inside the catalog transaction: READ ONLY, the statement and
         lock timeouts, the unprivileged role; rolled back afterwards, whatever happens. The
         text is checked first; mirror errors become HushErrors."""
         try:
-            with self._pool_for(analyst, sql_text).connection() as conn:
+            with self._pool_for(analyst, sql_text, params).connection() as conn:
                 try:
                     conn.execute(sql.SQL(
                         "SET LOCAL statement_timeout = {}; SET LOCAL lock_timeout = {}; "
@@ -444,13 +458,15 @@ class Catalog:
         return HushError(state if state[:2] == "53" else INTERNAL_ERROR,
                          "the catalog query failed", hint=CATALOG_HINT)
 
-    def _pool_for(self, analyst: str, sql_text: str) -> ConnectionPool:
-        """The mirror pool for this analyst, once the text has passed the checks."""
+    def _pool_for(self, analyst: str, sql_text: str, params: Sequence[Any] | None = None
+                  ) -> ConnectionPool:
+        """The mirror pool for this analyst, once the text has passed the checks (with the
+        parameter values it runs with; None: it is only prepared)."""
         if self.unavailable is not None:
             raise HushError(FEATURE_NOT_SUPPORTED, "catalog queries are not available on this "
                             "server", hint=self.unavailable)
         try:
-            check_catalog_text(sql_text)
+            check_catalog_text(sql_text, params)
         except HushError as err:
             # By SQLSTATE only: the message can quote a literal of the query.
             log.info("catalog refused analyst=%s sqlstate=%s", analyst[:64], err.sqlstate)

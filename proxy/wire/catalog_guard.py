@@ -24,7 +24,7 @@ Rules:
   replaced, in the text sent to the mirror, by literals: the proxy's version string, the
   analyst's name, and ``off``.
 - **Routing.** ``is_catalog_query`` is True only when every relation a query names is a catalog
-  relation, a CTE or a function; any policy table name (``SELECT * FROM households LIMIT 0``)
+  relation, ``hushql.my_tables`` (proxy.wire.askable), a CTE or a function; any policy table name (``SELECT * FROM households LIMIT 0``)
   sends the query to the engine, which refuses raw rows. Because a mirror holds no rows, a
   routing mistake can reveal no data; the checks guard the server.
 """
@@ -37,11 +37,11 @@ from sqlglot import exp
 
 from proxy import __version__
 from proxy.errors import FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, HushError
-from proxy.wire import own_database, settings, statements
+from proxy.wire import askable, own_database, settings, statements
 from proxy.wire.statements import Token
 
 __all__ = ["check_catalog_text", "is_catalog_tree", "claims_text", "looks_like_catalog",
-           "personalise", "bounded", "CATALOG_HINT", "VERSION_STRING"]
+           "personalise", "bounded", "narrowed", "CATALOG_HINT", "VERSION_STRING"]
 
 CATALOG_HINT = ("Catalog questions are answered from an empty copy of your granted tables; "
                 "sizes, statistics, files and server activity are not available.")
@@ -147,11 +147,26 @@ READABLE_SETTINGS = frozenset({
     "transaction_isolation", "default_transaction_read_only", "transaction_read_only",
     "max_identifier_length", "max_index_keys", "block_size", "lc_collate", "lc_ctype",
     "extra_float_digits", "bytea_output", "jit", "is_superuser", "client_min_messages",
+    # SQLAlchemy's table reflection compares each table's access method with the default.
+    "default_table_access_method",
 })
 WRITABLE_SETTINGS = frozenset({"search_path", "application_name", "datestyle", "intervalstyle",
                                "extra_float_digits", "bytea_output", "client_min_messages",
                                "jit"})
 _SETTING_FUNCTIONS = {"current_setting": READABLE_SETTINGS, "set_config": WRITABLE_SETTINGS}
+
+# Server-wide relations clients read, answered only in part: each reference is replaced (by
+# proxy.wire.own_database's rules) with a subquery keeping the rows a client needs. JDBC's
+# key queries read max_index_keys from pg_settings; SQLAlchemy's reflection joins
+# pg_tablespace for a table's tablespace (the mirror's tables are in pg_default). The
+# settings are the readable ones the proxy does not answer itself (its version is told, not
+# the server's); the catalog role reads no file names (sourcefile is NULL for roles outside
+# pg_read_all_settings, PostgreSQL documentation, "pg_settings").
+NARROWED_RELATIONS: dict[str, str] = {
+    "pg_settings": "(SELECT * FROM pg_catalog.pg_settings WHERE name IN ({}))",
+    "pg_tablespace": "(SELECT * FROM pg_catalog.pg_tablespace "
+                     "WHERE spcname IN ('pg_default', 'pg_global'))",
+}
 
 # Words that may stand before "(" without being a function call: SQL keywords and the type
 # names that take modifiers (varchar(10)). Upper case, as the lexer gives words.
@@ -181,9 +196,11 @@ def _refuse(what: str) -> HushError:
                      hint=CATALOG_HINT)
 
 
-def check_catalog_text(text: str) -> None:
+def check_catalog_text(text: str, params: Sequence[object] | None = None) -> None:
     """Raises HushError (42501, 0A000, 42601) unless ``text`` is one catalog SELECT whose every
-    function call and ``pg_*`` name is allowed. Reads the text as PostgreSQL will."""
+    function call and ``pg_*`` name is allowed. Reads the text as PostgreSQL will. A setting
+    name given as a parameter is checked against ``params`` (the values it will run with);
+    None means the text is only prepared or described, which evaluates nothing."""
     tokens = statements.tokenize(text)
     if not tokens:
         raise HushError(FEATURE_NOT_SUPPORTED, "empty catalog query")
@@ -204,11 +221,11 @@ def check_catalog_text(text: str) -> None:
         if name in _DENIED_WORDS:
             raise _refuse(f"system column {name}")
         if _is_call(tokens, i):
-            _check_call(tokens, i, name)
+            _check_call(tokens, i, name, params)
         elif _after_as(tokens, i):
             continue  # an alias of the query's own: "... AS pg_get_expr_1"
         elif name.startswith("pg_") and name not in ("pg_catalog", own_database.RELATION) \
-                and name not in ALLOWED_RELATIONS:
+                and name not in ALLOWED_RELATIONS and name not in NARROWED_RELATIONS:
             raise _refuse(f"relation {name}" if name not in ALLOWED_FUNCTIONS
                           else f"{name} without a call")
         elif name in _SETTING_FUNCTIONS or name.startswith(_NEVER_BARE):
@@ -294,9 +311,11 @@ def _matching(tokens: Sequence[Token], open_at: int) -> int:
     return len(tokens) - 1
 
 
-def _check_call(tokens: Sequence[Token], i: int, name: str) -> None:
+def _check_call(tokens: Sequence[Token], i: int, name: str,
+                params: Sequence[object] | None) -> None:
     """Raises unless the call at i is to an allowed function, unqualified or qualified by a
-    catalog schema, with a listed setting name where it takes one."""
+    catalog schema, with a listed setting name where it takes one: a literal, or a parameter
+    whose value (when it has one) is listed; either may carry a ``::type`` cast."""
     if _is_op(tokens[i - 1] if i else None, "."):
         qualifier = tokens[i - 2] if i >= 2 else None
         if qualifier is None or qualifier.kind not in ("word", "ident") \
@@ -310,11 +329,25 @@ def _check_call(tokens: Sequence[Token], i: int, name: str) -> None:
         # The setting's name must be exactly one literal ('name' followed by "," or ")"), so
         # no expression can turn it into role or session_authorization.
         arg = tokens[i + 2] if i + 2 < len(tokens) else None
-        end = tokens[i + 3] if i + 3 < len(tokens) else None
-        if arg is None or arg.kind != "string" or arg.value.lower() not in allowed_settings \
-                or not (_is_op(end, ",") or _is_op(end, ")")):
-            shown = arg.value[:40] if arg is not None and arg.kind == "string" else "that setting"
+        after = i + 3
+        if _is_op(_at(tokens, after), ":") and _is_op(_at(tokens, after + 1), ":") \
+                and _at(tokens, after + 2) is not None \
+                and _at(tokens, after + 2).kind in ("word", "ident"):  # type: ignore[union-attr]
+            after += 3
+        end = _at(tokens, after)
+        value: object = arg.value if arg is not None and arg.kind == "string" else None
+        if arg is not None and arg.kind == "param" and params is not None:
+            index = int(arg.value) - 1
+            value = params[index] if 0 <= index < len(params) else None
+        listed = (arg is not None and arg.kind == "param" and params is None) or (
+            isinstance(value, str) and value.lower() in allowed_settings)
+        if not listed or not (_is_op(end, ",") or _is_op(end, ")")):
+            shown = value[:40] if isinstance(value, str) else "that setting"
             raise _refuse(f"{name} of {shown}")
+
+
+def _at(tokens: Sequence[Token], i: int) -> Token | None:
+    return tokens[i] if 0 <= i < len(tokens) else None
 
 
 def is_catalog_tree(tree: exp.Expression, policy_tables: Iterable[str]) -> bool:
@@ -334,6 +367,8 @@ def is_catalog_tree(tree: exp.Expression, policy_tables: Iterable[str]) -> bool:
         if table.catalog:
             return False
         schema = table.db.lower()
+        if (schema, name) == (askable.SCHEMA, askable.RELATION):
+            continue  # the analyst's own policy facts (proxy.wire.askable)
         if schema in CATALOG_SCHEMAS or (not schema and (name.startswith("pg_") or name in ctes)):
             continue
         return False
@@ -420,6 +455,17 @@ def personalise(text: str, analyst: str) -> str:
         i += 1
     for start, stop, value in reversed(edits):
         text = text[:start] + value + text[stop:]
+    return text
+
+
+def narrowed(text: str) -> str:
+    """``text`` with every reference to a ``NARROWED_RELATIONS`` relation replaced by its
+    subquery. Runs on checked text."""
+    told = sorted(READABLE_SETTINGS - set(_TOLD_SETTINGS))
+    for relation, subquery in NARROWED_RELATIONS.items():
+        if own_database.names_pg_database(text, relation):
+            body = subquery.format(", ".join(f"'{name}'" for name in told))
+            text = own_database.replace_pg_database(text, body, relation)
     return text
 
 

@@ -19,6 +19,7 @@ import logging
 import re
 import threading
 from collections.abc import Sequence
+from decimal import Decimal
 from typing import Any
 
 import psycopg
@@ -35,6 +36,7 @@ from proxy.errors import (
     HushError,
 )
 from proxy.policy import Policies
+from proxy.wire import askable
 from proxy.wire.boundary import CatalogQuestions
 from proxy.wire.catalog import (
     _ALL_OIDS,
@@ -50,7 +52,8 @@ SCHEMA = "hushql"
 RELATIONS = frozenset({"budgets", "charges", "grants", "populations"})
 READER_ROLE = "hushql_ledger_reader"
 
-_NAMES_SCHEMA = re.compile(r'(?i)(?<![\w$])"?hushql"?\s*\.')
+# "hushql." and the name after it ("" when none follows, which counts as a ledger relation).
+_NAMES_SCHEMA = re.compile(r'(?i)(?<![\w$])"?hushql"?\s*\.\s*"?([\w$]*)')
 # Errors about the query's own text (syntax, access, data, features, cardinality, writing in a
 # read-only transaction): the ledger
 # holds nothing private, so an administrator may see them (PostgreSQL Appendix A classes).
@@ -58,10 +61,14 @@ _QUERY_ERROR_CLASSES = frozenset({"42", "22", "0A", "21", "25"})
 
 
 def names_ledger_schema(tree: exp.Expression | None, text: str) -> bool:
-    """Whether a statement refers to schema hushql (from its tree, else from its text)."""
+    """Whether a statement refers to a ledger relation of schema hushql (from its tree, else
+    from its text); ``hushql.my_tables``, every account's own, is the catalog's
+    (proxy.wire.askable)."""
     if tree is not None:
-        return any(t.db.lower() == SCHEMA for t in tree.find_all(exp.Table))
-    return bool(_NAMES_SCHEMA.search(text))
+        return any(t.db.lower() == SCHEMA and t.name.lower() != askable.RELATION
+                   for t in tree.find_all(exp.Table))
+    return any(found.group(1).lower() != askable.RELATION
+               for found in _NAMES_SCHEMA.finditer(text))
 
 
 def _only_ledger_relations(text: str) -> bool:
@@ -148,12 +155,14 @@ class LedgerRelations:
 
     # ---- answering -----------------------------------------------------------------------
 
-    def run(self, user: str, sql_text: str, params: Sequence[Any] = ()
+    def run(self, user: str, sql_text: str, params: Sequence[Any] = (),
+            remaining: Decimal | None = None
             ) -> tuple[list[tuple[str, int | str]], list[tuple[Any, ...]]]:
         """(columns, rows) of one query; HushError 42501 when ``user`` may not read the ledger
-        relations or the query reaches beyond them."""
+        relations or the query reaches beyond them. Other queries go to the catalog (with
+        ``remaining``, for hushql.my_tables)."""
         if not names_ledger_schema(None, sql_text):
-            return self._inner().run(user, sql_text, params)
+            return self._inner().run(user, sql_text, params, remaining)
         self._check(user, sql_text)
         return self._query(sql_text, params, describe_only=False)
 

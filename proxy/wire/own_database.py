@@ -7,7 +7,8 @@ text checks and before it runs, by a subquery over the mirror's own row (``datna
 current_database()``) in which ``datname`` is the proxy's database name. Rules:
 
 - Only relation references are replaced; a column qualifier (``pg_database.datname``) is left,
-  and resolves to the subquery, which keeps the relation's name as its alias.
+  and resolves to the subquery, which keeps the relation's name as its alias
+  (``pg_catalog.pg_database.datname`` loses its schema so that it does too).
 - A reference the rules cannot place makes the text malformed, so the mirror refuses it: the
   failure is a syntax error, never another database's row.
 """
@@ -35,9 +36,10 @@ COLUMNS_QUERY = ("SELECT attname FROM pg_catalog.pg_attribute WHERE attrelid = "
                  "attisdropped ORDER BY attnum")
 
 
-def names_pg_database(text: str) -> bool:
-    """Whether the text mentions pg_database at all (as a word or quoted name)."""
-    return any(t.kind in ("word", "ident") and t.value.lower() == RELATION
+def names_pg_database(text: str, relation: str = RELATION) -> bool:
+    """Whether the text mentions pg_database (or another ``relation``) at all (as a word or
+    quoted name)."""
+    return any(t.kind in ("word", "ident") and t.value.lower() == relation
                for t in statements.tokenize(text))
 
 
@@ -50,24 +52,35 @@ def own_database_subquery(columns: Sequence[str], database: str) -> str:
                    "pg_catalog.current_database())").format(sql.SQL(", ").join(shown)).as_string()
 
 
-def replace_pg_database(text: str, subquery: str) -> str:
-    """``text`` with every relation reference to pg_database replaced by ``subquery``."""
+def replace_pg_database(text: str, subquery: str, relation: str = RELATION,
+                        schema: str = "pg_catalog", bare: bool = True) -> str:
+    """``text`` with every relation reference to pg_database (or another ``relation`` of
+    ``schema``, by the same rules) replaced by ``subquery``; with ``bare`` False only the
+    references qualified by ``schema`` (an unqualified name may be the query's own CTE)."""
     tokens = statements.tokenize(text)
     out: list[str] = []
     position = 0
     for i, token in enumerate(tokens):
-        if token.kind not in ("word", "ident") or token.value.lower() != RELATION:
+        if token.kind not in ("word", "ident") or token.value.lower() != relation:
             continue
         following = tokens[i + 1] if i + 1 < len(tokens) else None
-        if _is_op(following, "."):
-            continue  # a qualifier: pg_database.datname
         start = token.start
-        if i >= 2 and _is_op(tokens[i - 1], ".") and tokens[i - 2].kind in ("word", "ident") \
-                and tokens[i - 2].value.lower() == "pg_catalog":
+        qualified = i >= 2 and _is_op(tokens[i - 1], ".") \
+            and tokens[i - 2].kind in ("word", "ident") and tokens[i - 2].value.lower() == schema
+        if qualified:
             start = tokens[i - 2].start
+        elif not bare:
+            continue
+        if _is_op(following, "."):
+            # A qualifier: pg_database.datname is left to resolve to the subquery (named after
+            # the relation); pg_catalog.pg_database.datname loses its schema to do the same.
+            if qualified:
+                out += [text[position:start], relation]
+                position = token.end
+            continue
         has_alias = following is not None and (following.kind == "ident" or (
             following.kind == "word" and following.value not in _ENDS_FROM_ITEM))
-        out += [text[position:start], subquery, "" if has_alias else f" AS {RELATION}"]
+        out += [text[position:start], subquery, "" if has_alias else f" AS {relation}"]
         position = token.end
     out.append(text[position:])
     return "".join(out)

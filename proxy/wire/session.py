@@ -34,8 +34,8 @@ from typing import Any, Callable, Sequence
 
 from sqlglot import exp
 
-from proxy.answer import Answer
-from proxy.engine import QueryControl
+from proxy.answer import Answer, margin_columns, with_margins
+from proxy.engine import QueryControl, paid_text
 from proxy.errors import (BUDGET_EXHAUSTED, DUPLICATE_CURSOR, DUPLICATE_PREPARED_STATEMENT, FEATURE_NOT_SUPPORTED,
                           IN_FAILED_SQL_TRANSACTION, INTERNAL_ERROR, INVALID_CURSOR_NAME,
                           INVALID_PARAMETER_VALUE, INVALID_SAVEPOINT, INVALID_SQL_STATEMENT_NAME,
@@ -45,6 +45,7 @@ from proxy.sql.limits import check_statement_text
 from proxy.sql.statement import BoundStatement
 from proxy.wire import codec, guard, settings, statements, types
 from proxy.wire.boundary import Answering, CatalogQuestions
+from proxy.wire.askable import names_my_tables
 from proxy.wire.catalog_guard import looks_like_catalog
 from proxy.wire.states import FAILED_BLOCK_HINT, TransactionMachine, TxEvent, TxStatus, TxStep
 from proxy.wire.statements import (DeallocateStatement, DiscardStatement, EmptyStatement,
@@ -82,9 +83,24 @@ class Outcome:
 
 
 def answer_notice(answer: Answer) -> codec.NoticeResponse:
-    """The NOTICE that goes with every answer: what it cost, what is left, how accurate it is."""
-    message = (f"this answer spent epsilon {answer.epsilon} of your privacy budget; "
-               f"{answer.remaining} remains")
+    """The NOTICE that goes with every answer: what it cost, what is left, how accurate it is.
+
+    Its fields follow the protocol's "Error and Notice Message Fields" (PostgreSQL
+    documentation, Frontend/Backend Protocol, protocol-error-fields.html): Message is "terse
+    (typically one line)", Detail carries the rest and "might run to multiple lines", Hint is
+    advice. Drivers keep
+    different parts (the JDBC driver's warning text is the Message alone), so the Message is
+    one line holding the essentials: the cost, the budget left and each column's 95% margin;
+    the Detail says it all in full."""
+    margins = ", ".join(f"{a.column} ±{a.bound95}" if a.bound95 is not None
+                        else f"{a.column} unbounded" for a in answer.accuracy)
+    if answer.reused_from is not None:
+        cost = (f"this answer was given before and is reused: it spent nothing now (epsilon "
+                f"{answer.epsilon} paid {paid_text(answer.reused_from)})")
+    else:
+        cost = f"this answer spent epsilon {answer.epsilon} of your privacy budget"
+    message = f"{cost}; {answer.remaining} remains" + (f"; 95% margins: {margins}"
+                                                        if margins else "")
     parts = []
     for a in answer.accuracy:
         if a.bound95 is None:
@@ -94,11 +110,18 @@ def answer_notice(answer: Answer) -> codec.NoticeResponse:
             scale = "" if a.scale is None else f", noise scale {float(a.scale):.4g}"
             parts.append(f"{a.column}: within ±{a.bound95} of the exact value in 95% of "
                          f"answers{scale}{a.clipping_text}")
-    detail = "; ".join(parts + answer.notes) if parts or answer.notes else None
-    return codec.NoticeResponse.build(
-        "NOTICE", SUCCESSFUL_COMPLETION, message, detail=detail,
-        hint="The figures carry deliberate random noise; SET hushql.epsilon changes the trade "
-             "between cost and accuracy." if parts else None)
+    if answer.reused_from is not None:
+        parts.append("a stored answer describes the data as it was when first paid for")
+    detail = ".\n".join(parts + answer.notes) + "." if parts or answer.notes else None
+    hints = []
+    if parts:
+        hints.append("The figures carry deliberate random noise; SET hushql.epsilon changes "
+                     "the trade between cost and accuracy, and SET hushql.accuracy_columns = "
+                     "on adds each column's margin to the result.")
+    hints.append("The same question at the same epsilon gets this answer again for nothing; "
+                 "SET hushql.fresh = on pays for new noise over the data as it is now.")
+    return codec.NoticeResponse.build("NOTICE", SUCCESSFUL_COMPLETION, message, detail=detail,
+                                      hint=" ".join(hints))
 
 
 def error_response(error: HushError, severity: str = "ERROR") -> codec.ErrorResponse:
@@ -547,6 +570,8 @@ class Session:
             columns = self.engine.describe_planned(self.analyst, target)
             if columns is None:
                 columns = await self._blocking(self.engine.describe, self.analyst, target)
+            if self._on(settings.ACCURACY_COLUMNS):
+                columns = margin_columns(columns)
             return types.ResultShape.of(columns)
         return None
 
@@ -632,24 +657,31 @@ class Session:
         nothing."""
         target = bound if bound is not None else _target(st.query)
         return await self._blocking(self.engine.explain, self.analyst, target,
-                                    epsilon=self._epsilon(), form=st.format)
+                                    epsilon=self._epsilon(), form=st.format,
+                                    fresh=self._on(settings.FRESH))
 
     async def _answer(self, target: str | exp.Expression | BoundStatement) -> Outcome:
         epsilon = self._epsilon()
         try:
             answer = await self._controlled(self.engine.answer, self.analyst, target,
-                                            epsilon=epsilon)
+                                            epsilon=epsilon, fresh=self._on(settings.FRESH))
         except HushError as err:
             log.info("answer analyst=%s epsilon=%s outcome=%s", self.analyst,
                      epsilon if epsilon is not None else "default", err.sqlstate)
             raise
-        log.info("answer analyst=%s epsilon=%s outcome=ok", self.analyst, answer.epsilon)
-        return Outcome(types.ResultShape.of(answer.columns), list(answer.rows), "SELECT",
+        log.info("answer analyst=%s epsilon=%s outcome=ok%s", self.analyst, answer.epsilon,
+                 " stored=reused" if answer.reused_from is not None else "")
+        columns, rows = (with_margins(answer) if self._on(settings.ACCURACY_COLUMNS)
+                         else (answer.columns, answer.rows))
+        return Outcome(types.ResultShape.of(columns), list(rows), "SELECT",
                        [answer_notice(answer)])
 
     async def _catalog(self, st: QueryStatement, values: list[Any]) -> Outcome:
+        remaining = None
+        if names_my_tables(st.text):  # the relation shows the budget left
+            remaining = await self._blocking(self.engine.remaining, self.analyst)
         columns, rows = await self._blocking(self._catalog_questions().run, self.analyst,
-                                             st.text, values)
+                                             st.text, values, remaining)
         return Outcome(types.ResultShape.of(columns), list(rows), "SELECT")
 
     def _catalog_questions(self) -> CatalogQuestions:
@@ -658,6 +690,10 @@ class Session:
             raise HushError(FEATURE_NOT_SUPPORTED, "catalog queries are not available on this "
                             "server", hint=CATALOG_HINT)
         return self.catalog
+
+    def _on(self, key: str) -> bool:
+        """Whether a boolean session setting is on."""
+        return self.values[key] == "on"
 
     def _epsilon(self) -> Decimal | None:
         value = self.values[settings.EPSILON]

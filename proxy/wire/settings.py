@@ -28,6 +28,8 @@ SERVER_VERSION_NUM = "150000"
 
 EPSILON = "hushql.epsilon"
 REMAINING = "hushql.remaining"
+FRESH = "hushql.fresh"
+ACCURACY_COLUMNS = "hushql.accuracy_columns"
 
 
 def _bad(name: str, value: str, hint: str) -> HushError:
@@ -211,6 +213,12 @@ SETTINGS: Mapping[str, Setting] = {s.name.lower(): s for s in (
     Setting("jit", "off", _boolean, False, "Accepted for compatibility."),
     Setting(EPSILON, "", None, False, "Epsilon charged per query (policy default if unset)."),
     Setting(REMAINING, "", None, False, "Epsilon left in this analyst's budget."),
+    Setting(FRESH, "off", _boolean, False,
+            "on: pay for a new answer even to a question answered before (new noise, the data "
+            "as it is now); off: the stored answer is given again for nothing."),
+    Setting(ACCURACY_COLUMNS, "off", _boolean, False,
+            "on: each aggregate column is followed by a <name>_margin95 column holding its "
+            "95% margin of error."),
 )}
 
 # Time limits a client may set but that never apply (see the module docstring).

@@ -84,8 +84,41 @@ public final class HushqlClientCheck {
             try (ResultSet rs = md.getColumns(null, "public", "households", "%")) {
                 while (rs.next()) {
                     say("column", rs.getString("COLUMN_NAME"), rs.getString("TYPE_NAME"),
-                        Integer.toString(rs.getInt("DATA_TYPE")));
+                        Integer.toString(rs.getInt("DATA_TYPE")),
+                        String.valueOf(rs.getString("REMARKS")).replace('\n', ' '));
                 }
+            }
+            try (ResultSet rs = md.getImportedKeys(null, "public", "readings")) {
+                int keys = 0;
+                while (rs.next()) {
+                    keys++;
+                }
+                say("imported-keys", Integer.toString(keys));
+            }
+            try (ResultSet rs = md.getExportedKeys(null, "public", "households")) {
+                int keys = 0;
+                while (rs.next()) {
+                    keys++;
+                }
+                say("exported-keys", Integer.toString(keys));
+            }
+
+            // The accuracy as columns, for tools that show result sets but not warnings; and
+            // the same question again, answered from the stored answer.
+            try (Statement st = conn.createStatement()) {
+                st.execute("SET hushql.accuracy_columns = on");
+                try (ResultSet rs = st.executeQuery(COUNT)) {
+                    ResultSetMetaData meta = rs.getMetaData();
+                    for (int i = 1; i <= meta.getColumnCount(); i++) {
+                        say("margin-column", meta.getColumnLabel(i), meta.getColumnTypeName(i));
+                    }
+                    while (rs.next()) {
+                        say("margin-row", rs.getString(1), Long.toString(rs.getLong(2)),
+                            Double.toString(rs.getDouble(3)));
+                    }
+                    printWarnings(st.getWarnings());
+                }
+                st.execute("SET hushql.accuracy_columns = off");
             }
             try (ResultSet rs = md.getPrimaryKeys(null, "public", "households")) {
                 int keys = 0;
