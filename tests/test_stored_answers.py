@@ -276,3 +276,27 @@ def test_an_unreadable_stored_answer_is_answered_anew(engines, clinic_dsn) -> No
     again = engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
     assert again.reused_from is None
     assert charges(clinic_dsn, schema, "tester") == 2
+
+
+def test_parameter_values_are_part_of_the_question(engines, clinic_dsn) -> None:
+    """A prepared statement whose value binds late (planned once for every value of its class)
+    is a new question for each value, and the same question for the same value again."""
+    from proxy.wire import statements, types
+
+    make, schema = engines
+    engine = make()
+    text = "SELECT COUNT(*) FROM people WHERE age = $1"
+    tree = statements.single(text).tree
+    assert tree is not None
+
+    def ask(value: int):
+        bound = statements.bound(text, statements.fold_casts(tree, (types.INT8,)), [value],
+                                 (types.INT8,))
+        return engine.answer("tester", bound, epsilon=Decimal("0.5"))
+
+    firsts = [ask(value) for value in (30, 31, 32)]
+    assert all(a.reused_from is None for a in firsts)
+    assert charges(clinic_dsn, schema, "tester") == 3
+    again = ask(31)
+    assert again.reused_from is not None and again.rows == firsts[1].rows
+    assert charges(clinic_dsn, schema, "tester") == 3
