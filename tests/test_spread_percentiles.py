@@ -279,3 +279,33 @@ def test_too_many_candidates_are_refused(policies) -> None:
     assert caught.value.sqlstate == "54000" and "BETWEEN" in (caught.value.hint or "")
     analyse("SELECT median(person_id) FROM people WHERE person_id BETWEEN 1 AND 5000",
             policies, "tester")
+
+
+def test_chosen_bounds_answer_percentiles_and_spread(clinic_dsn: str, tmp_path) -> None:
+    """With bounds chosen per query (visits, most_rows 10), both shapes are answered: the
+    histogram's target for the bound is set from the visible cells, the bound lands among its
+    candidates, and the answers are of the right shape and near PostgreSQL's."""
+    from proxy.backend import Backend
+    from proxy.ledger import Ledger
+
+    chosen = load_policies(write_policies(tmp_path / "chosen", most_rows=10, bounds="chosen",
+                                          largest="1000"))
+    engine = Engine(chosen, Backend(clinic_dsn, pool_size=2),
+                    Ledger(clinic_dsn, schema="ledger_chosen_spread"))
+    try:
+        median = engine.answer("tester", "SELECT ward, median(minutes) FROM visits GROUP BY ward",
+                               epsilon=Decimal(20))
+        spread_answer = engine.answer("tester", "SELECT STDDEV(minutes) FROM visits",
+                                      epsilon=Decimal(20))
+    finally:
+        engine.close()
+    assert [row[0] for row in median.rows] == list(WARDS)
+    reference = dict(exact(clinic_dsn, "SELECT ward, percentile_cont(0.5) WITHIN GROUP (ORDER BY "
+                                       "minutes) FROM clinic.visits WHERE minutes BETWEEN 0 AND 60 "
+                                       "GROUP BY ward"))
+    for ward, value in median.rows:
+        assert abs(value - float(reference[ward])) <= 6, ward  # minutes spread over [0, 60]
+    (truth,), = exact(clinic_dsn, "SELECT stddev_samp(CASE WHEN minutes > 60 THEN 60 ELSE minutes "
+                                  "END) FROM clinic.visits")
+    # scaled-down individuals change the spread a little: a loose check of the shape
+    assert abs(spread_answer.rows[0][0] - float(truth)) <= 0.1 * float(truth)
