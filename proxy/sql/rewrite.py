@@ -123,8 +123,15 @@ Percentiles (histograms)
 A percentile plan adds one innermost key, ``floor(x / step) * step`` over the column's declared
 range (narrowed by WHERE), and its one measure is ``count_values(x)``: the backend returns per
 cell a histogram of the values in step buckets, never a value. Its L1 sensitivity over all
-cells and buckets is that of a count: 1 on row tables, R with individuals (u's scaled counts add
-up to at most R). The engine never releases the histogram: it selects each percentile by the
+cells and buckets is that of a count: 1 on row tables, R with individuals. There, rounding each
+(individual, cell, bucket) count toward zero would erase an individual's histogram (its counts
+are mostly 0 or 1, and ``trunc(1 * w) = 0`` for any factor below 1), so a histogram is scaled by
+cumulative rounding instead: with ``N_i`` the individual's running count over its (cell,
+bucket) partials in ordinal order, partial i keeps ``floor(w N_i) - floor(w N_{i-1})``, computed
+as the same exact integer minimum of divisions as other partials (``floor(w x)`` is monotone in
+x, so each kept count is >= 0). The kept counts telescope to ``floor(w n) <= R`` over all cells
+and buckets, and they are an even, rank-keeping thinning of the individual's own values; every
+other individual's kept counts come from its own rows only. The engine never releases the histogram: it selects each percentile by the
 exponential mechanism, whose utility moves by at most the histogram's change in that cell; the
 argument is in ``proxy.selection``. Values outside the declared range, like keys outside their
 domains, fall in no bucket and are not ranked.
@@ -268,7 +275,8 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
                          row_sensitivities=tuple(_unit_sensitivity(policy, m) for m in plan.measures),
                          measure_kinds=kinds, buckets=buckets)
     bounds, measure_bounds = _bounds(plan, cells)
-    tree = _individual_table_query(plan, bounds, measure_bounds, cells, exact_columns)
+    tree = _individual_table_query(plan, bounds, measure_bounds, cells, exact_columns,
+                                   cumulative=buckets > 1)
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
                      measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
                      measure_multiples=tuple(_row_multiple(policy, m) for m in plan.measures),
@@ -638,7 +646,7 @@ def _scaled(value: str, bounds: tuple[Bound, ...]) -> str:
 
 
 def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
-                            cells: int, exact: frozenset[str]) -> exp.Select:
+                            cells: int, exact: frozenset[str], cumulative: bool = False) -> exp.Select:
     """The per-individual rewrite (module notes): partials per (individual, cell) in the
     domains, totals per individual, the bounds (declared, or chosen by noisy max over the
     candidates), one factor per individual scaling all its partials, sums per cell, and per
@@ -668,6 +676,11 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
             scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN 1 ELSE 0 END AS m{n}")
         elif measure.kind in ("sum", "centred_sum"):
             scaled.append(f"SIGN(q.m{n}) * {_scaled(f'ABS(q.m{n})', bounds)}"
+                          f" AS m{n}")
+        elif cumulative:  # a histogram: cumulative rounding (module notes, "Percentiles")
+            running = (f"SUM(q.m{n}) OVER (PARTITION BY q.who ORDER BY "
+                       f"{', '.join(f'q.i{j}' for j in range(len(plan.keys)))})")
+            scaled.append(f"{_scaled(running, bounds)} - {_scaled(f'({running} - q.m{n})', bounds)}"
                           f" AS m{n}")
         else:
             scaled.append(f"{_scaled(f'q.m{n}', bounds)} AS m{n}")
