@@ -356,6 +356,9 @@ class Engine:
         chosen = any(b.chosen for b in rewritten.bounds)
         for measure, sensitivity in zip(plan.measures, rewritten.declared_sensitivities
                                         if rewritten.bounds else rewritten.sensitivities()):
+            if plan.ranked is not None:  # a histogram: never released, selected from
+                rows.append(_selection_line(plan, rewritten, measure, sensitivity, split, chosen))
+                continue
             unit = _measure_unit(plan, measure)
             scale = Fraction(sensitivity) / Fraction(split.measure)
             at_most = "at most " if chosen else ""
@@ -540,6 +543,19 @@ class Engine:
                       remaining=Decimal(0), accuracy=accuracy,
                       tables=[plan.table.table], charge_id=charge,
                       notes=_answer_notes(plan, rewritten, values))
+
+
+def _selection_line(plan: Plan, rewritten: Rewritten, measure: Measure, sensitivity: int,
+                    split: EpsilonSplit, chosen: bool) -> tuple[Value, ...]:
+    """EXPLAIN's line for a percentile plan's histogram: what is selected from it and how."""
+    percentiles = sum(1 for o in plan.outputs if o.kind in PERCENTILE_KINDS)
+    share = Fraction(split.measure) / percentiles
+    at_most = "at most " if chosen else ""
+    within = selection.rank_bound95(rewritten.buckets, share, sensitivity)
+    return (f"histogram {_measure_label(measure.kind, measure.column)}",
+            f"{rewritten.buckets} values per cell, never released; sensitivity {at_most}"
+            f"{sensitivity} (rows); each of {percentiles} percentile(s) chosen by the exponential "
+            f"mechanism with epsilon {_show(share)}: 95% within ±{at_most}{within} ranks")
 
 
 def _percentile_value(column: ColumnPolicy, output: Output, candidate: Any) -> Value:

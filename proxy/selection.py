@@ -38,7 +38,9 @@ a rational, by exact Bernoulli(exp(-x)) sampling (``proxy.noise.bernoulli_exp``,
 & Steinke 2020). An accepted k has probability ``w_k / sum w`` (rejection sampling with a
 uniform proposal); the minimum's weight is 1, so each round accepts with probability at least
 1/K and the expected number of rounds is at most K (``MOST_PERCENTILE_CANDIDATES`` in
-``proxy.sql.analyse`` bounds K).
+``proxy.sql.analyse`` bounds K). The number of rounds depends on the data (on the sum of the
+weights), so the time a selection takes does too: tables that must not show data in answer
+times declare a steady answer time (``[timing]``), which covers it.
 
 Accuracy (public, from epsilon, Delta and K only). For any ``s > 0`` the chosen candidate has
 ``d_k >= m + (2 Delta / epsilon)(ln K + s)`` with probability at most ``exp(-s)`` (the weight of
@@ -51,44 +53,57 @@ in 95% of answers the value returned is the lower edge of a bucket holding a pos
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 from fractions import Fraction
 from typing import Sequence
 
 from proxy import noise
 
 
-def distances(histogram: Sequence[int], fraction: Fraction, discrete: bool) -> list[Fraction]:
-    """Each candidate bucket's distance ``d_k`` from the requested position (module notes).
+def distances(histogram: Sequence[int], fraction: Fraction, discrete: bool) -> Gaps:
+    """Each candidate bucket's distance ``d_k`` from the requested position (module notes), as
+    integers over one common denominator (exact, and cheap for tens of thousands of buckets).
 
     Negative counts cannot come from the backend; they are read as 0."""
     counts = [max(0, int(h)) for h in histogram]
     n = sum(counts)
     if discrete:
-        target = Fraction(max(0, math.ceil(fraction * n) - 1))
-    else:
-        target = fraction * (n - 1)
+        scale, target = 1, max(0, math.ceil(fraction * n) - 1)
+    else:  # t = p (n - 1), times the denominator of p
+        scale, target = fraction.denominator, fraction.numerator * (n - 1)
     result = []
     below = 0
     for count in counts:
         last = below + count - 1  # the bucket's last position (below - 1 when empty)
-        result.append(max(below - target, target - last, Fraction(0)))
+        result.append(max(below * scale - target, target - last * scale, 0))
         below += count
-    return result
+    return Gaps(tuple(result), scale)
 
 
-def choose(gaps: Sequence[Fraction], epsilon: Fraction, sensitivity: int) -> int:
-    """The index k drawn with probability proportional to ``exp(-epsilon d_k / (2 sensitivity))``
-    for ``d = gaps``, exactly (module notes); needs at least one candidate."""
-    if not gaps:
+@dataclass(frozen=True)
+class Gaps:
+    """Distances ``d_k = scaled[k] / denominator``."""
+
+    scaled: tuple[int, ...]
+    denominator: int
+
+    def __getitem__(self, k: int) -> Fraction:
+        return Fraction(self.scaled[k], self.denominator)
+
+
+def choose(gaps: Gaps, epsilon: Fraction, sensitivity: int) -> int:
+    """The index k drawn with probability proportional to ``exp(-epsilon d_k / (2 sensitivity))``,
+    exactly (module notes); needs at least one candidate."""
+    if not gaps.scaled:
         raise ValueError("no candidates to choose among")
     if epsilon <= 0 or sensitivity < 1:
         raise ValueError("epsilon must be positive and the sensitivity at least 1")
-    gamma = Fraction(epsilon) / (2 * sensitivity)
-    least = min(gaps)
-    count = len(gaps)
+    gamma = Fraction(epsilon) / (2 * sensitivity * gaps.denominator)
+    least = min(gaps.scaled)
+    count = len(gaps.scaled)
     while True:
         k = noise.uniform_below(count)
-        if noise.bernoulli_exp(gamma * (gaps[k] - least)):
+        if noise.bernoulli_exp(gamma * (gaps.scaled[k] - least)):
             return k
 
 

@@ -181,7 +181,7 @@ def _frequencies(epsilon: Fraction, draws: int) -> list[int]:
 
 def _expected(epsilon: float) -> list[float]:
     gaps = selection.distances(HISTOGRAM, Fraction(1, 2), discrete=False)
-    weights = [math.exp(-epsilon * float(g) / 2) for g in gaps]
+    weights = [math.exp(-epsilon * float(gaps[k]) / 2) for k in range(len(HISTOGRAM))]
     return [w / sum(weights) for w in weights]
 
 
@@ -198,9 +198,11 @@ def test_sampler_matches_the_exponential_mechanism() -> None:
 def test_distances_follow_postgresql_positions() -> None:
     """A bucket is at distance 0 exactly when the requested position falls in it."""
     gaps = selection.distances([2, 0, 3], Fraction(1, 2), discrete=False)  # t = 0.5 * 4 = 2
-    assert gaps == [Fraction(1), Fraction(1), Fraction(0)]  # the empty bucket holds no position
+    assert [gaps[k] for k in range(3)] == [1, 1, 0]  # the empty bucket holds no position
     gaps = selection.distances([2, 0, 3], Fraction(2, 5), discrete=True)  # ceil(2) - 1 = 1
     assert gaps[0] == 0 and gaps[2] == 1
+    gaps = selection.distances([2, 0, 3], Fraction(1, 3), discrete=False)  # t = 4 / 3
+    assert [gaps[k] for k in range(3)] == [Fraction(1, 3), Fraction(2, 3), Fraction(2, 3)]
 
 
 # ---- percentiles: answers ----------------------------------------------------------------------
@@ -245,7 +247,9 @@ def test_percentile_with_individuals(engine: Engine, clinic_dsn: str) -> None:
     people within the bound lands near PostgreSQL's."""
     explained = {item: value for item, value in engine.explain(
         "tester", f"SELECT median(fee) FROM visits WHERE {FEW_VISITS}").rows}
-    assert explained["measure count(fee)"].startswith("sensitivity 3,")
+    line = explained["histogram count(fee)"]
+    assert "201 values per cell, never released; sensitivity 3 (rows)" in line
+    assert f"±{selection.rank_bound95(201, Fraction(1), 3)} ranks" in line
     answer = engine.answer("tester", f"SELECT median(fee) FROM visits WHERE {FEW_VISITS}",
                            epsilon=Decimal(10))
     (value,), = answer.rows
