@@ -526,6 +526,7 @@ class Engine:
         for c, cell in enumerate(prepared.cells):
             histogram = [int(row[key_count]) for row in true_rows[c * buckets:(c + 1) * buckets]]
             rows.append([cell[o.key] if o.kind == "key"  # type: ignore[index]
+                         else None if not buckets  # WHERE leaves the column no value to rank
                          else _percentile_value(column, o, candidates[selection.choose(
                              selection.distances(histogram, Fraction(o.fraction),  # type: ignore[arg-type]
                                                  o.kind == "percentile_disc"),

@@ -313,3 +313,18 @@ def test_chosen_bounds_answer_percentiles_and_spread(clinic_dsn: str, tmp_path) 
                                   "END) FROM clinic.visits")
     # scaled-down individuals change the spread a little: a loose check of the shape
     assert abs(spread_answer.rows[0][0] - float(truth)) <= 0.1 * float(truth)
+
+
+def test_percentile_edges(engine: Engine) -> None:
+    """HAVING and ORDER BY over percentiles and variances work on the noisy outputs; a WHERE
+    that leaves the column no value to rank answers NULL (PostgreSQL's answer for no rows)."""
+    answer = engine.answer("tester", "SELECT ward, median(age) AS m FROM people GROUP BY ward "
+                                     "HAVING median(age) >= 0 ORDER BY m DESC", epsilon=Decimal(5))
+    assert [row[1] for row in answer.rows] == sorted((row[1] for row in answer.rows), reverse=True)
+    assert len(answer.rows) == 3
+    answer = engine.answer("tester", "SELECT ward, VARIANCE(age) AS v FROM people GROUP BY ward "
+                                     "HAVING VARIANCE(age) > 1e9", epsilon=Decimal(5))
+    assert answer.rows == []  # no variance of ages in [0, 100] exceeds 2500
+    answer = engine.answer("tester", "SELECT median(age) FROM people WHERE age > 200",
+                           epsilon=Decimal(1))
+    assert answer.rows == [(None,)]
