@@ -405,7 +405,7 @@ class _Analysis:
         if type(node) in _SPREADS:
             return self._spread_aggregate(node, _SPREADS[type(node)])
         if type(node) in _EXTREMES:
-            argument = node.this.sql(dialect="postgres") if node.this is not None else "col"
+            argument = _short(node.this) if node.this is not None else "col"
             raise refused(f"the aggregate {written_name(node)}() is not accepted: the most extreme "
                           "value is one row's value, which no noise can hide",
                           f"ask for a high or low percentile instead, which is answered privately: "
