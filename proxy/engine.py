@@ -62,7 +62,7 @@ import sqlglot
 import sqlglot.errors
 import sqlglot.expressions as exp
 
-from proxy import faults, noise, stored_answers
+from proxy import faults, noise, selection, spread, stored_answers
 from proxy.accounts import Accounts
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
 from proxy.backend import Backend, QueryControl
@@ -74,7 +74,7 @@ from proxy.sql.analyse import analyse
 from proxy.sql.domains import describe_key, key_label, key_type, key_values
 from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
-from proxy.sql.plan import Measure, Output, Plan
+from proxy.sql.plan import PERCENTILE_KINDS, SPREAD_KINDS, Measure, Output, Plan
 from proxy.sql.public import KIND_TYPES, PublicRead, read_sql
 from proxy.sql.postprocess import postprocess
 from proxy.sql import statement as slots
@@ -542,6 +542,9 @@ class Engine:
         chosen = any(b.chosen for b in rewritten.bounds)
         for measure, sensitivity in zip(plan.measures, rewritten.declared_sensitivities
                                         if rewritten.bounds else rewritten.sensitivities()):
+            if plan.ranked is not None:  # a histogram: never released, selected from
+                rows.append(_selection_line(plan, rewritten, measure, sensitivity, split, chosen))
+                continue
             unit = _measure_unit(plan, measure)
             scale = Fraction(sensitivity) / Fraction(split.measure)
             at_most = "at most " if chosen else ""
@@ -635,9 +638,10 @@ class Engine:
             true_rows = self._run_in_time(prepared, control,
                                           _bound_settings(prepared.rewritten, split), arrived,
                                           steady)
-            if len(true_rows) != len(prepared.cells):
+            if len(true_rows) != len(prepared.cells) * prepared.rewritten.buckets:
                 raise HushError(INTERNAL_ERROR, "the backend returned an unexpected result shape")
-            answer = self._release(prepared, eps, split, true_rows, charge)
+            release = self._release_ranked if plan.ranked is not None else self._release
+            answer = release(prepared, eps, split, true_rows, charge)
             outcome = "answered"
             self._store(analyst, question, prepared, answer)
         except HushError as error:
@@ -808,6 +812,73 @@ class Engine:
                       notes=_answer_notes(plan, rewritten, values))
 
 
+    def _release_ranked(self, prepared: Prepared, epsilon: Decimal, split: EpsilonSplit,
+                        true_rows: list[tuple[Any, ...]], charge: int) -> Answer:
+        """A percentile plan's answer: per cell, each percentile chosen from the cell's
+        histogram by the exact exponential mechanism (``proxy.selection``), the measures'
+        epsilon split evenly among the percentiles; the histogram itself is never released."""
+        plan, rewritten = prepared.plan, prepared.rewritten
+        assert plan.ranked is not None
+        key_count, bound_count, buckets = len(plan.keys) + 1, len(rewritten.bounds), rewritten.buckets
+        if any(len(row) != key_count + 1 + 2 * bound_count for row in true_rows):
+            raise HushError(INTERNAL_ERROR, "the backend returned an unexpected result shape")
+        values = tuple(int(v) for v in true_rows[0][key_count + 1:key_count + 1 + bound_count]) \
+            if true_rows else ()
+        for bound, value in zip(rewritten.bounds, values):
+            if value not in (bound.candidates or (bound.ceiling,)):
+                raise HushError(INTERNAL_ERROR, "the backend returned an unexpected bound")
+        sensitivity = rewritten.sensitivities(values)[0]
+        chosen = [o for o in plan.outputs if o.kind in PERCENTILE_KINDS]
+        share = Fraction(split.measure) / len(chosen)
+        column = plan.table.columns[plan.ranked.column]
+        candidates = key_values(column, plan.ranked)
+        rows: list[list[Value]] = []
+        for c, cell in enumerate(prepared.cells):
+            histogram = [int(row[key_count]) for row in true_rows[c * buckets:(c + 1) * buckets]]
+            rows.append([cell[o.key] if o.kind == "key"  # type: ignore[index]
+                         else None if not buckets  # WHERE leaves the column no value to rank
+                         else _percentile_value(column, o, candidates[selection.choose(
+                             selection.distances(histogram, Fraction(o.fraction),  # type: ignore[arg-type]
+                                                 o.kind == "percentile_disc"),
+                             share, sensitivity)])
+                         for o in plan.outputs])
+        within = selection.rank_bound95(buckets, share, sensitivity)
+        accuracy = [Accuracy(column=o.name, epsilon=Decimal(share.numerator) / share.denominator,
+                             sensitivity=Decimal(sensitivity), scale=None, bound95=None,
+                             note=f"exponential mechanism over {buckets} values (multiples of "
+                                  f"{column.unit}): in 95% of answers the value returned is a "
+                                  f"bucket holding a rank within ±{within} of the requested rank")
+                    for o in plan.outputs if o.visible and o.kind in PERCENTILE_KINDS]
+        return Answer(columns=_answer_columns(plan),
+                      rows=postprocess(plan, rows), epsilon=epsilon,
+                      remaining=Decimal(0), accuracy=accuracy,
+                      tables=_charged_tables(plan), charge_id=charge,
+                      notes=_answer_notes(plan, rewritten, values))
+
+
+def _selection_line(plan: Plan, rewritten: Rewritten, measure: Measure, sensitivity: int,
+                    split: EpsilonSplit, chosen: bool) -> tuple[Value, ...]:
+    """EXPLAIN's line for a percentile plan's histogram: what is selected from it and how."""
+    percentiles = sum(1 for o in plan.outputs if o.kind in PERCENTILE_KINDS)
+    share = Fraction(split.measure) / percentiles
+    at_most = "at most " if chosen else ""
+    within = selection.rank_bound95(rewritten.buckets, share, sensitivity)
+    return (f"histogram {_measure_label(measure.kind, measure.column)}",
+            f"{rewritten.buckets} values per cell, never released; sensitivity {at_most}"
+            f"{sensitivity} (rows); each of {percentiles} percentile(s) chosen by the exponential "
+            f"mechanism with epsilon {_show(share)}: 95% within ±{at_most}{within} ranks")
+
+
+def _percentile_value(column: ColumnPolicy, output: Output, candidate: Any) -> Value:
+    """A chosen bucket's lower edge as the percentile's value: percentile_cont answers double
+    precision, percentile_disc the column's own type (as PostgreSQL types them)."""
+    if output.kind == "percentile_cont":
+        return float(candidate)
+    return int(candidate) if column.kind == "integer" else Decimal(candidate)
+
+
+
+
 def _described(prepared: Prepared | PreparedRead) -> list[OutputColumn]:
     """The columns a prepared statement's answer will have."""
     return prepared.columns if isinstance(prepared, PreparedRead) else _answer_columns(prepared.plan)
@@ -944,12 +1015,17 @@ def _cell_values(plan: Plan) -> list[tuple[Any, ...]]:
 
 def _measure_unit(plan: Plan, measure: Measure) -> Decimal:
     """What one unit of a measure is worth: the column's step for sums, 1 for counts."""
-    return plan.table.columns[measure.column].unit if measure.kind == "sum" else Decimal(1)  # type: ignore[index]
+    if measure.kind == "centred_squares":
+        return plan.table.columns[measure.column].unit ** 2  # type: ignore[index]
+    return plan.table.columns[measure.column].unit if measure.kind in ("sum", "centred_sum") \
+        else Decimal(1)  # type: ignore[index]
 
 
 def _measure_label(kind: str, column: str | None) -> str:
     return {"count_rows": "count(*)", "count_values": f"count({column})", "sum": f"sum({column})",
-            "count_individuals": "count(distinct individual)"}[kind]
+            "count_individuals": "count(distinct individual)",
+            "centred_sum": f"sum({column} - centre)",
+            "centred_squares": f"sum(({column} - centre)^2)"}[kind]
 
 
 def _show(value: Fraction | Decimal | int) -> str:
@@ -966,8 +1042,10 @@ def _output_type(plan: Plan, output: Output) -> ColumnType:
         return key_type(plan.table.columns[key.column], key)
     if output.kind == "count":
         return "bigint"
-    if output.kind == "sum":
+    if output.kind in ("sum", "percentile_disc"):
         column = plan.table.columns[plan.measures[output.measures[0]].column]  # type: ignore[index]
+        if output.kind == "percentile_disc" and column.kind == "integer":
+            return "integer"
         return "bigint" if column.kind == "integer" else "numeric"
     return "double precision"
 
@@ -980,6 +1058,8 @@ def _output_value(plan: Plan, output: Output, cell: tuple[Any, ...], measures: l
     if output.kind == "count":
         return max(0, first)
     column = plan.table.columns[plan.measures[output.measures[0]].column]  # type: ignore[index]
+    if output.kind in SPREAD_KINDS:
+        return _spread_value(column, output, measures)
     if output.kind == "sum":
         return first if column.kind == "integer" else Decimal(first) * column.unit
     count = measures[output.measures[1]]
@@ -990,6 +1070,45 @@ def _output_value(plan: Plan, output: Output, cell: tuple[Any, ...], measures: l
     return round(min(high, max(low, float(Decimal(first) * column.unit) / count)), 6)
 
 
+def _spread_value(column: ColumnPolicy, output: Output, measures: list[int]) -> Value:
+    """A variance or standard deviation from its noisy count, centred sum and centred squares
+    (``proxy.spread``), in the column's units; None when the count leaves no divisor."""
+    count, total, squares = (measures[i] for i in output.measures)
+    low, high = (int(v / column.unit) for v in column.range)  # type: ignore[union-attr]
+    estimate = spread.variance(count, total, squares, output.kind.endswith("_samp"),
+                               spread.largest_variance(low, high))
+    if estimate is None:
+        return None
+    unit = float(column.unit)
+    if output.kind.startswith("stddev"):
+        return round(math.sqrt(estimate) * unit, 6)
+    return round(float(estimate) * unit * unit, 6)
+
+
+def _spread_accuracy(plan: Plan, output: Output, share: Decimal, scales: list[Fraction],
+                     noisy: list[list[int]]) -> Accuracy:
+    """A variance's or standard deviation's 95% bound: the widest over cells of the interval
+    propagation in ``proxy.spread`` (the whole clamped range where the count is too small)."""
+    column = plan.table.columns[output.column]  # type: ignore[index]
+    low, high = (int(v / column.unit) for v in column.range)  # type: ignore[union-attr]
+    cap = spread.largest_variance(low, high)
+    sample, root = output.kind.endswith("_samp"), output.kind.startswith("stddev")
+    parts = spread.widths(tuple(scales[i] for i in output.measures))  # type: ignore[arg-type]
+    widest = 0.0
+    for count, total, squares in zip(*(noisy[i] for i in output.measures)):
+        estimate = spread.variance(count, total, squares, sample, cap)
+        if estimate is None:  # no divisor: anything in the clamped range
+            estimate, span = cap / 2, (Fraction(0), cap)
+        else:
+            span = spread.variance_range(count, total, squares, parts, sample, cap)
+        widest = max(widest, spread.half_width(estimate, span, root))
+    unit = float(column.unit)
+    return Accuracy(column=output.name, epsilon=share * 3, sensitivity=None, scale=None,
+                    bound95=Decimal(repr(round(widest * (unit if root else unit * unit), 6))),
+                    note="from a noisy count, centred sum and centred sum of squares, each "
+                         "bounded at 98.3% and propagated by interval arithmetic")
+
+
 def _bound_settings(rewritten: Rewritten, split: EpsilonSplit) -> dict[str, str] | None:
     """Settings for the bounds' noisy-max choice: per chosen bound, ``A,z_1,...,z_G`` with the
     target A (public: cells and epsilon) and exact discrete Laplace noise of scale
@@ -998,7 +1117,8 @@ def _bound_settings(rewritten: Rewritten, split: EpsilonSplit) -> dict[str, str]
     for j, bound in enumerate(rewritten.bounds):
         if not bound.chosen:
             continue
-        target = math.ceil(Fraction(ABOVE_FACTOR * rewritten.cells) / Fraction(split.measure))
+        cells = rewritten.cells // rewritten.buckets  # a percentile's histogram: its cells
+        target = math.ceil(Fraction(ABOVE_FACTOR * cells) / Fraction(split.measure))
         scale = Fraction(2 * SCORE_SENSITIVITY) / Fraction(split.bound)
         draws = noise.sample_discrete_laplace(scale, len(bound.candidates))
         # A public preference for smaller candidates, PREFER_SMALLER noise scales per step up:
@@ -1025,13 +1145,20 @@ def _clip_upper(rewritten: Rewritten, j: int, values: tuple[int, ...], lost: int
 def _answer_notes(plan: Plan, rewritten: Rewritten, values: tuple[int, ...]) -> list[str]:
     """Facts about how the answer was computed, true of any data (no data-dependent count)."""
     notes = []
-    ranged = sorted({m.column for m in plan.measures if m.kind == "sum"})  # type: ignore[type-var]
+    ranged = sorted({m.column for m in plan.measures  # type: ignore[type-var]
+                     if m.kind in ("sum", "centred_sum")})
     for name in ranged:
         column = plan.table.columns[name]  # type: ignore[index]
         notes.append(f"values of {name} outside its declared range [{column.low}, {column.high}] "
                      f"are counted as the nearest end, NULLs not at all")
     if plan.keys:
         notes.append("rows whose group keys lie outside the declared values are not counted")
+    if plan.ranked is not None:
+        column = plan.table.columns[plan.ranked.column]
+        notes.append(f"percentiles of {plan.ranked.column} rank its values in buckets of "
+                     f"{column.unit} inside its declared range [{column.low}, {column.high}] "
+                     "(values outside it, and NULLs, are not ranked) and answer a bucket's "
+                     "lower edge")
     if plan.table.individual is not None:
         notes.append(f"rows without a {plan.table.individual.column} are not counted")
         for bound, value in zip(rewritten.bounds, values):
@@ -1051,6 +1178,8 @@ def _accuracy(plan: Plan, output: Output, share: Decimal, sensitivities: tuple[i
     first = output.measures[0]
     measure = plan.measures[first]
     unit = _measure_unit(plan, measure)
+    if output.kind in SPREAD_KINDS:
+        return _spread_accuracy(plan, output, share, scales, noisy)
     if output.kind in ("count", "sum"):
         low_by = high_by = None
         if clipping[first] is not None and measure.kind != "count_individuals":

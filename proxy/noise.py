@@ -73,7 +73,7 @@ from typing import Callable
 
 import numpy as np
 
-__all__ = ["sample_discrete_laplace", "bound", "bound95", "variance"]
+__all__ = ["sample_discrete_laplace", "bound", "bound95", "variance", "uniform_below", "bernoulli_exp"]
 
 # The only source of randomness in this module: n bytes from the operating system's CSPRNG.
 # Looked up at call time so tests can substitute a deterministic stream.
@@ -389,3 +389,22 @@ def variance(scale: Fraction) -> float:
     if half == 0.0:
         return math.inf
     return 0.5 / half / half
+
+
+def uniform_below(n: int) -> int:
+    """One uniform integer in ``[0, n)`` from the OS byte source, for any n >= 1 (exact)."""
+    return _randbelow(n)
+
+
+def bernoulli_exp(x: Fraction) -> bool:
+    """Bernoulli(exp(-x)) for a rational ``x >= 0``, exactly: ``exp(-x)`` is the product of
+    ``floor(x)`` draws of Bernoulli(exp(-1)) and one of Bernoulli(exp(-(x - floor(x)))) (CKS 2020,
+    Algorithm 1 for each), stopping at the first failure."""
+    if x < 0:
+        raise ValueError("bernoulli_exp needs x >= 0")
+    whole = x.numerator // x.denominator
+    for _ in range(whole):
+        if not _bernoulli_exp_int(1, 1):
+            return False
+    rest = x - whole
+    return _bernoulli_exp_int(rest.numerator, rest.denominator)

@@ -109,6 +109,11 @@ SAME_ON_BOTH = [
     "FROM visits WHERE minutes > 5 GROUP BY 1, 2",
     "SELECT visited, COUNT(*) FROM visits WHERE visited BETWEEN '2026-03-01' AND '2026-03-09' GROUP BY visited",
     "SELECT extract(dow FROM visited), floor(minutes / 10) * 10, SUM(fee) FROM visits GROUP BY 1, 2",
+    # spreads (centred sums of squares) and percentile histograms (cumulative thinning)
+    "SELECT ward, VARIANCE(age), STDDEV_POP(weight) FROM people GROUP BY ward",
+    "SELECT ward, VAR_POP(minutes), STDDEV(fee) FROM visits GROUP BY ward",
+    "SELECT ward, median(age) FROM people GROUP BY ward",
+    "SELECT ward, percentile_disc(0.9) WITHIN GROUP (ORDER BY fee) FROM visits GROUP BY ward",
 ]
 
 # Tables with individuals with a chosen bound forced below its ceiling (scaling individuals

@@ -16,6 +16,11 @@ sqlglot's PostgreSQL dialect and must be exactly one SELECT of the accepted shap
 - aggregates: COUNT(*), COUNT(col), SUM(col) and AVG(col) of integer or number columns,
   COUNT(DISTINCT <individual column>) on tables with [individual]. Their measures are
   deduplicated (AVG(x) = SUM(x) / COUNT(x) shares the sum of x with SUM(x)).
+  VARIANCE, VAR_SAMP, VAR_POP, STDDEV, STDDEV_SAMP and STDDEV_POP of integer or number columns
+  (a count, a centred sum and a centred sum of squares). Percentiles (percentile_cont(p) and
+  percentile_disc(p) WITHIN GROUP (ORDER BY col), median(col)) of one column, asked alone: the
+  plan's ``ranked`` key makes the backend return a histogram per cell. MIN and MAX are refused
+  with a hint naming the percentile that answers them privately.
 - keys: columns with a declared domain (a date column groups by day) and buckets of one column
   (date_trunc, extract/date_part, CASE over literal conditions, width_bucket, floor(x / w) * w),
   read by ``proxy.sql.keys``. GROUP BY names them by expression, select alias or position
@@ -33,6 +38,7 @@ clauses, and every expression node against the forms each clause accepts.
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
+from decimal import Decimal
 
 import sqlglot
 import sqlglot.errors
@@ -54,15 +60,25 @@ from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narro
 from proxy.sql.public import PublicRead, is_public_read, read_public
 from proxy.sql.limits import check_statement_text, check_tree
 from proxy.sql.limits import hint as limit_hint
-from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
+from proxy.sql.plan import (PERCENTILE_KINDS, GroupKey, Measure, OrderItem, Output, Plan,
+                            output_ref)
 
 BUCKETS = tuple(TRUNC_UNITS)  # the date_trunc units a group key accepts
 
 SHAPE_HINT = ("hushql answers read-only aggregate queries: SELECT <group keys>, COUNT(*) | COUNT(col) "
-              "| SUM(col) | AVG(col) FROM <table> [WHERE ...] [GROUP BY <keys>] [HAVING ...] "
+              "| SUM(col) | AVG(col) | VARIANCE(col) | STDDEV(col) | percentile_cont(p) WITHIN GROUP "
+              "(ORDER BY col) FROM <table> [WHERE ...] [GROUP BY <keys>] [HAVING ...] "
               "[ORDER BY ...] [LIMIT n] [OFFSET n]")
-SELECT_HINT = ("select group keys (as written in GROUP BY) and the aggregates COUNT(*), COUNT(col), SUM(col), AVG(col); "
+AGGREGATES_HINT = ("accepted aggregates: COUNT(*), COUNT(col), SUM(col), AVG(col), VARIANCE(col), "
+                   "VAR_SAMP(col), VAR_POP(col), STDDEV(col), STDDEV_SAMP(col), STDDEV_POP(col), "
+                   "percentile_cont(p) | percentile_disc(p) WITHIN GROUP (ORDER BY col), median(col)")
+SELECT_HINT = ("select group keys (as written in GROUP BY) and the aggregates COUNT(*), COUNT(col), SUM(col), AVG(col), "
+               "VARIANCE/VAR_SAMP/VAR_POP/STDDEV/STDDEV_SAMP/STDDEV_POP(col), "
+               "or percentiles of one column alone; "
                "do arithmetic on the answers in your client")
+PERCENTILE_HINT = ("write percentile_cont(p) or percentile_disc(p) WITHIN GROUP (ORDER BY <number "
+                   "or integer column>), p a literal in [0, 1], or median(<column>); percentiles "
+                   "of one column are asked without other aggregates")
 HAVING_HINT = ("HAVING accepts aggregates, group keys, literals, comparisons, BETWEEN, IN, "
                "IS [NOT] NULL, AND/OR/NOT and + - *")
 ORDER_HINT = "ORDER BY accepts output names, output positions, group keys and aggregates"
@@ -85,6 +101,18 @@ _WRITES = tuple(getattr(exp, name) for name in (
     "Grant", "Revoke", "Analyze") if hasattr(exp, name))
 _STRUCTURAL = (exp.Window, exp.Subquery, exp.Select, exp.Exists)  # refused whatever they hold
 _ACCEPTED_AGGREGATES = (exp.Count, exp.Sum, exp.Avg)
+# Output kind of each spread aggregate (sqlglot reads VARIANCE as VAR_SAMP, STDDEV as STDDEV).
+_SPREADS: dict[type, str] = {exp.Variance: "var_samp", exp.VariancePop: "var_pop",
+                             exp.Stddev: "stddev_samp", exp.StddevSamp: "stddev_samp",
+                             exp.StddevPop: "stddev_pop"}
+# MIN and MAX are refused; the percentile named in their hint answers them privately.
+_EXTREMES: dict[type, str] = {exp.Min: "0.01", exp.Max: "0.99"}
+# Candidates of a percentile (multiples of the step in the column's range, narrowed by WHERE),
+# and backend histogram rows (cells times candidates), at most: the proxy reads the histogram
+# and samples among the candidates in Python.
+MOST_PERCENTILE_CANDIDATES = 25_000
+MOST_HISTOGRAM_ROWS = 250_000
+_ASCII_LOWER = str.maketrans("ABCDEFGHIJKLMNOPQRSTUVWXYZ", "abcdefghijklmnopqrstuvwxyz")
 _PG_TYPE = {"category": "text", "integer": "integer", "number": "numeric", "date": "date",
             "boolean": "boolean"}
 # The analysis type (as in proxy.sql.filters) of a key's PostgreSQL type, for HAVING.
@@ -175,6 +203,7 @@ class _Aggregate:
     measures: tuple[Measure, ...]
     column: str | None
     name: str
+    fraction: Decimal | None = None  # a percentile's p
 
 
 @dataclass(frozen=True)
@@ -239,7 +268,35 @@ class _Analysis:
             raise refused("the query has no aggregate", SELECT_HINT)
         return Plan(table=self.table, measures=tuple(self.measures), outputs=tuple(self.outputs),
                     keys=keys, where=condition, having=having_condition,
-                    order_by=order, limit=limit, offset=offset, joins=self.scope.joins)
+                    order_by=order, limit=limit, offset=offset, joins=self.scope.joins,
+                    ranked=self._ranked(keys, within))
+
+    def _ranked(self, keys: tuple[GroupKey, ...], within: dict) -> GroupKey | None:
+        """The histogram key of a percentile plan (``Plan.ranked``), None for other plans;
+        refused when percentiles are mixed with other aggregates or columns, or when the
+        histogram would be too large (54000)."""
+        kinds = {o.kind for o in self.outputs if o.kind != "key"}
+        if not kinds & set(PERCENTILE_KINDS):
+            return None
+        columns = {o.column for o in self.outputs if o.kind != "key"}
+        if not kinds <= set(PERCENTILE_KINDS) or len(columns) != 1:
+            raise refused("percentiles are answered only alongside percentiles of the same column",
+                          "ask other aggregates, or percentiles of another column, in a separate "
+                          "query; " + PERCENTILE_HINT)
+        name = next(iter(columns))
+        column = self.table.columns[name]  # type: ignore[index]
+        ranked = GroupKey(name, "floor", arguments=(column.unit,), within=within.get(name))
+        candidates = key_size(column, ranked)
+        rows = cell_count([key_size(self.table.columns[k.column], k) for k in keys]) * candidates
+        if candidates > MOST_PERCENTILE_CANDIDATES or rows > MOST_HISTOGRAM_ROWS:
+            raise HushError(PROGRAM_LIMIT_EXCEEDED,
+                            f"a percentile of {name} would choose among {candidates:,} values "
+                            f"(multiples of its step {column.unit}) in each of "
+                            f"{rows // max(1, candidates):,} cells",
+                            f"at most {MOST_PERCENTILE_CANDIDATES:,} values per cell and "
+                            f"{MOST_HISTOGRAM_ROWS:,} values over all cells: narrow {name} in "
+                            f"WHERE ({name} BETWEEN <low> AND <high>) or group by fewer cells")
+        return ranked
 
     # FROM ----------------------------------------------------------------------------------
     def _column(self, node: exp.Column) -> tuple[str, ColumnPolicy]:
@@ -260,10 +317,10 @@ class _Analysis:
             raise refused("SELECT * is not accepted: hushql never returns rows", SELECT_HINT)
         if isinstance(node, _STRUCTURAL):
             raise refuse_expression(node, "the select list", SELECT_HINT)
-        if isinstance(node, (exp.Filter, exp.WithinGroup)):
-            raise refused("FILTER and WITHIN GROUP are not accepted on aggregates",
+        if isinstance(node, exp.Filter):
+            raise refused("FILTER is not accepted on aggregates",
                           "filter rows with WHERE; " + SELECT_HINT)
-        if isinstance(node, exp.AggFunc):
+        if isinstance(node, (exp.AggFunc, exp.WithinGroup)):
             aggregate = self._aggregate(node)
             return _SelectItem(alias or aggregate.name, aggregate=aggregate)
         if is_key_expression(node) and not _holds_aggregate(node):
@@ -281,7 +338,8 @@ class _Analysis:
     def _select_output(self, item: _SelectItem) -> Output:
         if item.aggregate is not None:
             a = item.aggregate
-            return Output(item.name, a.kind, measures=self._measure_ids(a), column=a.column)
+            return Output(item.name, a.kind, measures=self._measure_ids(a), column=a.column,
+                          fraction=a.fraction)
         if item.key is None or item.key not in self.keys:
             raise self._not_grouped(item.column or item.name)
         return Output(item.name, "key", key=self.keys.index(item.key), column=item.key.column)
@@ -292,10 +350,21 @@ class _Analysis:
                          "aggregate function", SELECT_HINT)
 
     # aggregates ----------------------------------------------------------------------------
-    def _aggregate(self, node: exp.AggFunc) -> _Aggregate:
+    def _aggregate(self, node: exp.Expression) -> _Aggregate:
+        if isinstance(node, (exp.WithinGroup, exp.Median, exp.PercentileCont, exp.PercentileDisc)):
+            return self._percentile_aggregate(node)
+        if type(node) in _SPREADS:
+            return self._spread_aggregate(node, _SPREADS[type(node)])
+        if type(node) in _EXTREMES:
+            argument = _short(node.this) if node.this is not None else "col"
+            raise refused(f"the aggregate {written_name(node)}() is not accepted: the most extreme "
+                          "value is one row's value, which no noise can hide",
+                          f"ask for a high or low percentile instead, which is answered privately: "
+                          f"percentile_cont({_EXTREMES[type(node)]}) WITHIN GROUP (ORDER BY "
+                          f"{argument})")
         if not isinstance(node, _ACCEPTED_AGGREGATES):
             raise refused(f"the aggregate {written_name(node)}() is not accepted",
-                          "accepted aggregates: COUNT(*), COUNT(col), SUM(col), AVG(col)"
+                          AGGREGATES_HINT
                           + (", COUNT(DISTINCT <individual column>)" if self.table.individual else ""))
         only_args(node, ("this", "big_int"), f"{node.sql_name()}()", SELECT_HINT)
         argument = unparen(node.this) if node.this is not None else None
@@ -304,11 +373,7 @@ class _Analysis:
         function = "sum" if isinstance(node, exp.Sum) else "avg"
         if isinstance(argument, exp.Distinct):
             raise refused(f"{function.upper()}(DISTINCT ...) is not accepted", SELECT_HINT)
-        name, column = self._aggregate_column(argument, function)
-        if not column.summable:
-            raise HushError(UNDEFINED_FUNCTION, f"function {function}({_PG_TYPE[column.kind]}) does not exist",
-                            f"{function.upper()} takes integer or number columns: "
-                            + (", ".join(n for n, c in self.table.columns.items() if c.summable) or "none"))
+        name, column = self._summable_argument(argument, function)
         if function == "sum":
             return _Aggregate("sum", (Measure("sum", name),), name, "sum")
         return _Aggregate("avg", (Measure("sum", name), Measure("count_values", name)), name, "avg")
@@ -331,6 +396,60 @@ class _Analysis:
                           else "use COUNT(*) or COUNT(col)")
         name, _ = self._aggregate_column(argument, "count")
         return _Aggregate("count", (Measure("count_values", name),), name, "count")
+
+    def _summable_argument(self, argument: exp.Expression | None, function: str) -> tuple[str, ColumnPolicy]:
+        """The integer or number column an aggregate reads (42883 for other kinds)."""
+        name, column = self._aggregate_column(argument, function)
+        if not column.summable:
+            raise HushError(UNDEFINED_FUNCTION, f"function {function}({_PG_TYPE[column.kind]}) does not exist",
+                            f"{function.upper()} takes integer or number columns: "
+                            + (", ".join(n for n, c in self.table.columns.items() if c.summable) or "none"))
+        return name, column
+
+    def _spread_aggregate(self, node: exp.Expression, kind: str) -> _Aggregate:
+        """VARIANCE and STDDEV and their _samp/_pop forms: a count, a centred sum and a centred
+        sum of squares of the column (post-processed by ``proxy.spread``)."""
+        function = written_name(node).lower()
+        only_args(node, ("this",), f"{function}()", SELECT_HINT)
+        argument = unparen(node.this) if node.this is not None else None
+        if isinstance(argument, exp.Distinct):
+            raise refused(f"{function.upper()}(DISTINCT ...) is not accepted", SELECT_HINT)
+        name, _ = self._summable_argument(argument, function)
+        return _Aggregate(kind, (Measure("count_values", name), Measure("centred_sum", name),
+                                 Measure("centred_squares", name)), name, function)
+
+    def _percentile_aggregate(self, node: exp.Expression) -> _Aggregate:
+        """percentile_cont(p) / percentile_disc(p) WITHIN GROUP (ORDER BY col), or median(col):
+        a histogram of the column per cell, from which the engine selects privately."""
+        if isinstance(node, exp.Median):
+            only_args(node, ("this",), "median()", PERCENTILE_HINT)
+            name, _ = self._summable_argument(unparen(node.this), "median")
+            return _Aggregate("percentile_cont", (Measure("count_values", name),), name,
+                              "median", fraction=Decimal("0.5"))
+        if not isinstance(node, exp.WithinGroup):
+            raise refused(f"{written_name(node)}() needs WITHIN GROUP (ORDER BY <column>)",
+                          PERCENTILE_HINT)
+        only_args(node, ("this", "expression"), "WITHIN GROUP", PERCENTILE_HINT)
+        function, order = node.this, node.expression
+        if not isinstance(function, (exp.PercentileCont, exp.PercentileDisc)):
+            raise refused(f"WITHIN GROUP is accepted only on percentile_cont and percentile_disc, "
+                          f"not {_short(function)}", PERCENTILE_HINT)
+        written = "percentile_cont" if isinstance(function, exp.PercentileCont) else "percentile_disc"
+        only_args(function, ("this",), f"{written}()", PERCENTILE_HINT)
+        value = _fraction(function.this)
+        if value is None:
+            raise refused(f"{written}() takes one numeric literal between 0 and 1", PERCENTILE_HINT)
+        if not isinstance(order, exp.Order) or len(order.expressions) != 1:
+            raise refused(f"{written}() orders by exactly one column", PERCENTILE_HINT)
+        ordered = order.expressions[0]
+        only_args(ordered, ("this", "desc", "nulls_first"), "WITHIN GROUP (ORDER BY ...)",
+                  PERCENTILE_HINT)
+        if ordered.args.get("desc"):
+            raise refused(f"{written}() ... ORDER BY <column> DESC is not accepted",
+                          f"write {written}(1 - p) WITHIN GROUP (ORDER BY <column>) instead")
+        name, _ = self._summable_argument(unparen(ordered.this), written)
+        return _Aggregate(written, (Measure("count_values", name),), name, written,
+                          fraction=value)
 
     def _aggregate_column(self, argument: exp.Expression | None, function: str) -> tuple[str, ColumnPolicy]:
         if isinstance(argument, exp.Column) and not isinstance(argument.this, exp.Star):
@@ -440,10 +559,12 @@ class _Analysis:
     def _output_for_aggregate(self, aggregate: _Aggregate) -> int:
         measures = self._measure_ids(aggregate)
         for index, output in enumerate(self.outputs):
-            if output.kind == aggregate.kind and output.measures == measures:
+            if output.kind == aggregate.kind and output.measures == measures \
+                    and output.fraction == aggregate.fraction:
                 return index
         self.outputs.append(Output(aggregate.name, aggregate.kind, measures=measures,
-                                   column=aggregate.column, visible=False))
+                                   column=aggregate.column, visible=False,
+                                   fraction=aggregate.fraction))
         return len(self.outputs) - 1
 
     def _output_for_key(self, node: exp.Expression) -> int:
@@ -625,6 +746,18 @@ class _Analysis:
 def _output_column(index: int) -> exp.Column:
     """The placeholder standing for output ``index`` in Plan.having (see plan.output_ref)."""
     return exp.Column(this=exp.to_identifier(output_ref(index)))
+
+
+def _fraction(node: exp.Expression | None) -> Decimal | None:
+    """A percentile's p: a plain numeric literal in [0, 1] (exactly as written), else None."""
+    node = unparen(node) if node is not None else None
+    if not isinstance(node, exp.Literal) or node.is_string:
+        return None
+    try:
+        value = Decimal(node.this)
+    except ArithmeticError:
+        return None
+    return value if value.is_finite() and 0 <= value <= 1 else None
 
 
 def _holds_aggregate(node: exp.Expression) -> bool:

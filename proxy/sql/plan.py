@@ -8,7 +8,9 @@ noisy rows. A plan is immutable and holds no data, so it can be cached by statem
 Vocabulary:
 - a *measure* is one integer-valued quantity the backend computes per cell and the engine
   noises: a row count, a count of non-null values, a clamped sum in units of the column's step,
-  or a count of distinct individuals. Measures are deduplicated: ``AVG(x)`` and ``SUM(x)`` in one
+  or a count of distinct individuals; for VARIANCE and STDDEV, the sum and the sum of squares
+  of the clamped values in step units less the range's centre (``centred_sum``,
+  ``centred_squares``: see ``proxy.sql.rewrite``). Measures are deduplicated: ``AVG(x)`` and ``SUM(x)`` in one
   query share the sum of ``x``, so epsilon is split among distinct measures only.
 - an *output* is one column of the answer, built from measures by post-processing.
 - a *cell* is one combination of group-key values from the declared domains.
@@ -28,8 +30,12 @@ import sqlglot.expressions as exp
 from proxy.policy import TablePolicy
 
 JoinKind = Literal["from", "inner", "semi"]
-MeasureKind = Literal["count_rows", "count_values", "sum", "count_individuals"]
-OutputKind = Literal["key", "count", "sum", "avg"]
+MeasureKind = Literal["count_rows", "count_values", "sum", "count_individuals", "centred_sum",
+                      "centred_squares"]
+OutputKind = Literal["key", "count", "sum", "avg", "var_samp", "var_pop", "stddev_samp",
+                     "stddev_pop", "percentile_cont", "percentile_disc"]
+SPREAD_KINDS = ("var_samp", "var_pop", "stddev_samp", "stddev_pop")
+PERCENTILE_KINDS = ("percentile_cont", "percentile_disc")
 
 
 @dataclass(frozen=True)
@@ -92,7 +98,10 @@ class Output:
     """One answer column.
 
     ``key`` indexes ``Plan.keys`` for kind "key"; ``measures`` indexes ``Plan.measures`` for
-    aggregates: count -> (count,), sum -> (sum,), avg -> (sum, count_values). Hidden outputs
+    aggregates: count -> (count,), sum -> (sum,), avg -> (sum, count_values), the variances and
+    standard deviations -> (count_values, centred_sum, centred_squares), a percentile ->
+    (count_values,) over the plan's ranked cells (``Plan.ranked``); ``fraction`` is a
+    percentile's p. Hidden outputs
     (``visible`` False) exist only because HAVING or ORDER BY names an aggregate not selected.
     """
 
@@ -102,6 +111,7 @@ class Output:
     measures: tuple[int, ...] = ()
     column: str | None = None
     visible: bool = True
+    fraction: Decimal | None = None
 
 
 @dataclass(frozen=True)
@@ -139,6 +149,11 @@ class Plan:
     aggregate has been replaced by ``exp.Column(this=exp.to_identifier(output_ref(i)))``, evaluated
     on noisy values by post-processing. ``joins`` is empty for a query of one table; otherwise
     it lists every table read (``Join``) and ``table`` is the table they make together.
+
+    ``ranked`` is set for percentile plans only: the bucket key (``floor(x / step) * step``) of
+    the percentile column, added after ``keys`` as the innermost key of the backend query, so
+    that its only measure, ``count_values``, is a histogram per cell; the engine selects each
+    percentile from it by the exponential mechanism (``proxy.selection``) instead of noising it.
     """
 
     table: TablePolicy
@@ -150,6 +165,7 @@ class Plan:
     order_by: tuple[OrderItem, ...] = ()
     limit: int | None = None
     offset: int | None = None
+    ranked: GroupKey | None = None
     joins: tuple[Join, ...] = ()
 
     @property

@@ -129,12 +129,47 @@ second scan. Report noisy max with noise drawn before the query (exact integer s
    zero (under one unit per partial). Removing u moves ``clipped_j`` by at most ``cap_j``, its
    sensitivity. The caps rely on the data owner's ceiling (most_rows): an individual breaking it
    is still bounded in the answer, but its clipped-away amount may then be understated.
+
+Spread (VARIANCE, STDDEV and their forms)
+-----------------------------------------
+Three measures: the count of values, ``centred_sum = sum(v - c)`` and ``centred_squares =
+sum((v - c)^2)``, where v is a row's clamped value in step units (integers clamped, numbers
+clamped then rounded to the step, so each term is an exact integer) and ``c = floor((lo +
+hi) / 2)`` the range's centre in step units. Centring changes nothing the engine computes (the
+variance ``(Q - S^2 / C) / (C - 1)`` is the same for any shift) but shrinks the sensitivities:
+one row moves the centred sum by at most ``F = max(c - lo, hi - c)`` (about half of
+``max(|lo|, |hi|)`` when the range starts at 0) and the sum of squares by at most ``F^2``
+(instead of ``max(lo^2, hi^2)``). Row tables: those are the L1 sensitivities over all cells (one
+row is in one cell). Tables with individuals: the centred measures belong to the rows bound R.
+Their partials are scaled by the individual's factor ``w <= R / n_rows`` (rounded toward zero,
+signs kept), so u's scaled centred sum adds up over all cells, in L1, to at most ``w * n_rows *
+F <= R * F``, and its scaled squares to at most ``R * F^2``: the sensitivities are R times the
+row's ``measure_multiples``. The chosen bound of rows, its clipped-away figure and the
+composition are as above (the centred measures add nothing to a bound's subject).
+
+Percentiles (histograms)
+------------------------
+A percentile plan adds one innermost key, ``floor(x / step) * step`` over the column's declared
+range (narrowed by WHERE), and its one measure is ``count_values(x)``: the backend returns per
+cell a histogram of the values in step buckets, never a value. Its L1 sensitivity over all
+cells and buckets is that of a count: 1 on row tables, R with individuals. There, rounding each
+(individual, cell, bucket) count toward zero would erase an individual's histogram (its counts
+are mostly 0 or 1, and ``trunc(1 * w) = 0`` for any factor below 1), so a histogram is scaled by
+cumulative rounding instead: with ``N_i`` the individual's running count over its (cell,
+bucket) partials in ordinal order, partial i keeps ``floor(w N_i) - floor(w N_{i-1})``, computed
+as the same exact integer minimum of divisions as other partials (``floor(w x)`` is monotone in
+x, so each kept count is >= 0). The kept counts telescope to ``floor(w n) <= R`` over all cells
+and buckets, and they are an even, rank-keeping thinning of the individual's own values; every
+other individual's kept counts come from its own rows only. The engine never releases the histogram: it selects each percentile by the
+exponential mechanism, whose utility moves by at most the histogram's change in that cell; the
+argument is in ``proxy.selection``. Values outside the declared range, like keys outside their
+domains, fall in no bucket and are not ranked.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from decimal import Decimal
 from fractions import Fraction
 from typing import Sequence
@@ -226,13 +261,19 @@ class Rewritten:
     measure_bounds: tuple[int, ...]  # per measure, index into bounds (-1 on row tables)
     row_sensitivities: tuple[int, ...]  # per measure, on row tables
     measure_kinds: tuple[str, ...] = ()
+    # per measure, what one row adds at most, in units of its bound (1 but for the centred
+    # measures, which are bounded through the rows bound: module notes, "Spread")
+    measure_multiples: tuple[int, ...] = ()
+    buckets: int = 1  # candidates per cell of a percentile plan's histogram (``cells`` counts them)
 
     def sensitivities(self, values: tuple[int, ...] = ()) -> tuple[int, ...]:
         """The L1 sensitivity of each measure given the bounds' values (module notes, 3)."""
         if not self.bounds:
             return self.row_sensitivities
-        return tuple(max(1, min(values[b], self.cells) if kind == "count_individuals" else values[b])
-                     for b, kind in zip(self.measure_bounds, self.measure_kinds))
+        multiples = self.measure_multiples or tuple(1 for _ in self.measure_kinds)
+        return tuple(max(1, min(values[b], self.cells) if kind == "count_individuals"
+                         else values[b] * multiple)
+                     for b, kind, multiple in zip(self.measure_bounds, self.measure_kinds, multiples))
 
     @property
     def declared_sensitivities(self) -> tuple[int, ...]:
@@ -248,22 +289,30 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
     (individual, cell) partial, instead of per row.
     """
     policy = plan.table
+    buckets = 1
+    if plan.ranked is not None:  # a percentile plan: its histogram is the innermost key
+        buckets = key_size(_key_column(policy, plan.ranked), plan.ranked)
+        plan = replace(plan, keys=plan.keys + (plan.ranked,), ranked=None)
     cells = cell_count([key_size(_key_column(policy, k), k) for k in plan.keys])
     kinds = tuple(m.kind for m in plan.measures)
     if cells == 0:  # the WHERE leaves some key no value: no cell, nothing to read or to noise
         return Rewritten(sql=_no_cells(plan).sql(dialect="postgres"), cells=0, bounds=(),
                          measure_bounds=tuple(-1 for _ in plan.measures),
-                         row_sensitivities=tuple(1 for _ in plan.measures), measure_kinds=kinds)
+                         row_sensitivities=tuple(1 for _ in plan.measures), measure_kinds=kinds,
+                         buckets=buckets)
     if policy.individual is None:
         tree = _row_table_query(plan, exact_columns)
         return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=(),
                          measure_bounds=tuple(-1 for _ in plan.measures),
                          row_sensitivities=tuple(_unit_sensitivity(policy, m) for m in plan.measures),
-                         measure_kinds=kinds)
+                         measure_kinds=kinds, buckets=buckets)
     bounds, measure_bounds = _bounds(plan, cells)
-    tree = _individual_table_query(plan, bounds, measure_bounds, cells, exact_columns)
+    tree = _individual_table_query(plan, bounds, measure_bounds, cells, exact_columns,
+                                   cumulative=buckets > 1)
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
-                     measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds)
+                     measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
+                     measure_multiples=tuple(_row_multiple(policy, m) for m in plan.measures),
+                     buckets=buckets)
 
 
 def _no_cells(plan: Plan) -> exp.Select:
@@ -312,8 +361,46 @@ def _unit_sensitivity(policy: TablePolicy, measure: Measure) -> int:
         raise ValueError("COUNT(DISTINCT individual) needs an [individual] section")
     if measure.kind in ("count_rows", "count_values"):
         return 1
+    if measure.kind in CENTRED:
+        return _row_multiple(policy, measure)
     low, high = _unit_range(policy.columns[measure.column])  # type: ignore[index]
     return max(1, max(abs(low), abs(high)))
+
+
+# Measures of the clamped values less the range's centre (module notes, "Spread").
+CENTRED = ("centred_sum", "centred_squares")
+
+
+def centre(column: ColumnPolicy) -> int:
+    """The centre c of a summable column's range in step units: floor((lo + hi) / 2)."""
+    low, high = _unit_range(column)
+    return (low + high) // 2
+
+
+def _row_multiple(policy: TablePolicy, measure: Measure) -> int:
+    """What one row adds at most to a centred measure (|x - c| or (x - c)^2, in step units),
+    at least 1; 1 for the other measures (their bound is in their own units)."""
+    if measure.kind not in CENTRED:
+        return 1
+    column = policy.columns[measure.column]  # type: ignore[index]
+    low, high = _unit_range(column)
+    farthest = max(centre(column) - low, high - centre(column))
+    return max(1, farthest if measure.kind == "centred_sum" else farthest * farthest)
+
+
+def _centred_value(policy: TablePolicy, name: str) -> exp.Expression:
+    """One row's clamped value in step units less the centre, exactly (NULL stays NULL): the
+    integer column clamped (bigint), or the number column clamped and rounded to its step
+    (numeric)."""
+    column = policy.columns[name]
+    low, high = _unit_range(column)
+    if column.kind == "integer":  # bigint: |x - c|^2 of a clamped 32-bit integer fits 63 bits
+        units = exp.cast(_clamp(_col(name), low, high), "bigint", copy=False)
+    else:
+        units = exp.cast(exp.Anonymous(this="round", expressions=[exp.Div(
+            this=_clamp_between(_col(name), _decimal(column.low), _decimal(column.high)),
+            expression=_decimal(column.unit), typed=True)]), "numeric", copy=False)
+    return exp.Paren(this=exp.Sub(this=units, expression=_num(centre(column))))
 
 
 def _unit_range(column: ColumnPolicy) -> tuple[int, int]:
@@ -424,6 +511,11 @@ def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
         return exp.Count(this=exp.Star())
     if measure.kind == "count_values":
         return exp.Count(this=_col(measure.column))  # type: ignore[arg-type]
+    if measure.kind == "centred_sum":
+        return exp.Sum(this=_centred_value(policy, measure.column))  # type: ignore[arg-type]
+    if measure.kind == "centred_squares":
+        value = _centred_value(policy, measure.column)  # type: ignore[arg-type]
+        return exp.Sum(this=exp.Mul(this=value, expression=value.copy()))
     if measure.kind == "sum":
         total: exp.Expression = exp.Sum(this=_row_value(policy, measure, exact))
         column = policy.columns[measure.column]  # type: ignore[index]
@@ -664,7 +756,7 @@ def _scaled(value: str, bounds: tuple[Bound, ...]) -> str:
 
 
 def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
-                            cells: int, exact: frozenset[str]) -> exp.Select:
+                            cells: int, exact: frozenset[str], cumulative: bool = False) -> exp.Select:
     """The per-individual rewrite (module notes): partials per (individual, cell) in the
     domains, totals per individual, the bounds (declared, or chosen by noisy max over the
     candidates), one factor per individual scaling all its partials, sums per cell, and per
@@ -692,8 +784,13 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     for n, measure in enumerate(plan.measures):
         if measure.kind == "count_individuals":
             scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN 1 ELSE 0 END AS m{n}")
-        elif measure.kind == "sum":
+        elif measure.kind in ("sum", "centred_sum"):
             scaled.append(f"SIGN(q.m{n}) * {_scaled(f'ABS(q.m{n})', bounds)}"
+                          f" AS m{n}")
+        elif cumulative:  # a histogram: cumulative rounding (module notes, "Percentiles")
+            running = (f"SUM(q.m{n}) OVER (PARTITION BY q.who ORDER BY "
+                       f"{', '.join(f'q.i{j}' for j in range(len(plan.keys)))})")
+            scaled.append(f"{_scaled(running, bounds)} - {_scaled(f'({running} - q.m{n})', bounds)}"
                           f" AS m{n}")
         else:
             scaled.append(f"{_scaled(f'q.m{n}', bounds)} AS m{n}")
