@@ -423,21 +423,23 @@ SPARK_TRANSFORMS: dict[str, str] = {
 }
 
 
-def to_spark_sql(postgres_sql: str, types: Mapping[str, str] | None = None) -> str:
+def to_spark_sql(postgres_sql: str, types: Mapping[str, str] | None = None, *,
+                 pretty: bool = False) -> str:
     """The rewrite's PostgreSQL query written for Spark SQL (pure). ``types`` maps the column
-    names of the tables it reads (lower case) to PostgreSQL type names (``postgres_type_name``).
+    names of the tables it reads (lower case) to PostgreSQL type names (``postgres_type_name``);
+    ``pretty`` lays it out over lines (EXPLAIN), the same statement.
 
     Raises NotOnSpark when a part cannot be written with PostgreSQL's exact values."""
-    return _to_spark_sql(postgres_sql, tuple(sorted((types or {}).items())))
+    return _to_spark_sql(postgres_sql, tuple(sorted((types or {}).items())), pretty)
 
 
 @functools.lru_cache(maxsize=1024)
-def _to_spark_sql(postgres_sql: str, types: tuple[tuple[str, str], ...]) -> str:
+def _to_spark_sql(postgres_sql: str, types: tuple[tuple[str, str], ...], pretty: bool) -> str:
     tree = sqlglot.parse_one(postgres_sql, read="postgres")
     writer = _Writer(dict(types))
     for name in SPARK_TRANSFORMS:
         tree = tree.transform(getattr(writer, name), copy=False)
-    return tree.sql(dialect="spark")
+    return tree.sql(dialect="spark", pretty=pretty)
 
 
 def source_tables(postgres_sql: str) -> list[str]:
@@ -488,8 +490,7 @@ class _TagCanceller:
 
 
 class SparkBackend:
-    """Runs rewritten queries on a Spark Connect server; the same contract as proxy.backend's
-    Backend (``run``, ``column_types``, ``close``)."""
+    """Runs rewritten queries on a Spark Connect server: a ``proxy.backend.QueryBackend``."""
 
     def __init__(self, dsn: str, *, statement_timeout_ms: int = 300_000) -> None:
         from pyspark.sql import SparkSession
@@ -559,9 +560,14 @@ class SparkBackend:
         PostgreSQL's exact values (the engine asks before charging)."""
         self._spark_text(sql)
 
-    def _spark_text(self, sql: str) -> str:
+    def sent_sql(self, sql: str) -> str:
+        """The Spark SQL sent for a rewritten query, laid out over lines for EXPLAIN; its
+        ``:hushql_...`` parameters are bound per query. HushError 0A000 as ``check``."""
+        return self._spark_text(sql, pretty=True)
+
+    def _spark_text(self, sql: str, *, pretty: bool = False) -> str:
         try:
-            return to_spark_sql(sql, self._types_of(sql))
+            return to_spark_sql(sql, self._types_of(sql), pretty=pretty)
         except NotOnSpark as error:
             raise HushError(FEATURE_NOT_SUPPORTED,
                             f"this query cannot be answered on the Spark backend: {error}",

@@ -229,6 +229,35 @@ def test_engine_refuses_on_spark_without_charging(engine) -> None:
     assert engine.ledger.remaining("tester") == before
 
 
+def explained_sql(engine, sql: str) -> str:
+    """The "backend sql" item of EXPLAIN, its continuation rows joined by newlines."""
+    rows = [tuple(row) for row in engine.explain("tester", sql).rows]
+    start = [item for item, _ in rows].index("backend sql")
+    lines = [rows[start][1]]
+    for item, value in rows[start + 1:]:
+        if item:
+            break
+        lines.append(value)
+    return "\n".join(lines)
+
+
+def test_explain_shows_the_spark_sql_that_runs(engine, clinic) -> None:
+    """EXPLAIN on Spark shows the Spark SQL sent, not the PostgreSQL rewrite: run as it reads
+    (its parameters bound as the engine binds them), it gives the rows the backend gives."""
+    backend, _, _ = clinic
+    sql = "SELECT ward, floor(minutes / 10) * 10 AS m, COUNT(*), SUM(minutes) FROM visits GROUP BY 1, 2"
+    shown = explained_sql(engine, sql)
+    rewritten = engine.prepare("tester", sql).rewritten
+    assert len(shown.splitlines()) >= 10  # laid out over lines
+    # Spark's own spellings (SPARK_TRANSFORMS), never PostgreSQL's.
+    assert ":hushql_bound_noise_0" in shown and "current_setting" not in shown.lower()
+    assert " DIV " in shown and "current_setting" in rewritten.sql.lower()
+    settings = forced_settings(rewritten, bound_values(rewritten, "low"))
+    arguments = {name.replace(".", "_"): value for name, value in settings.items()}
+    assert as_ints(backend._session.sql(shown, args=arguments).collect()) == \
+        as_ints(backend.run(rewritten.sql, None, settings))
+
+
 def test_a_cancelled_query_is_57014(clinic) -> None:
     backend, _, _ = clinic
     control = QueryControl()
