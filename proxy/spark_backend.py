@@ -36,6 +36,7 @@ import functools
 import logging
 import threading
 import uuid
+import warnings
 from collections.abc import Mapping
 from decimal import Decimal
 from typing import Any
@@ -48,6 +49,11 @@ from proxy.errors import FEATURE_NOT_SUPPORTED, INTERNAL_ERROR, QUERY_CANCELED, 
 from proxy.policy import Policies
 
 log = logging.getLogger("hushql.spark")
+# pyspark warns on import that it does not "fully support" the pandas installed; this module
+# sends no pandas data (the demo loader sends plain columns), and the warning would be the
+# first thing an operator reads on every start.
+warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas",
+                        category=FutureWarning)
 
 SPARK_SCHEME = "sc://"
 
@@ -86,6 +92,9 @@ _EXACT_TYPES = ("numeric", "smallint", "integer", "bigint")
 # The widest DECIMAL column whose floors and buckets Spark computes exactly (see narrow_exact):
 # its digits, a literal's (under 10) and the quotient's extra scale stay within 38.
 _MOST_DIGITS = 18
+# The most digits of a DECIMAL that Spark keeps in a long (Decimal.MAX_LONG_DIGITS): sums of
+# such decimals are added without BigDecimal objects. A SUM adds 10 digits to its input's.
+_FAST_DIGITS = 18
 
 
 def _is_cast_to_bare_decimal(node: exp.Expression) -> bool:
@@ -335,6 +344,34 @@ class _Writer:
             raise NotOnSpark(f"a cast to NUMERIC of {operand.sql()[:40]}")
         return node
 
+    def narrow_clamps(self, node: exp.Expression) -> exp.Expression:
+        """``CASE WHEN d < lo THEN lo WHEN d > hi THEN hi ELSE d END`` over a DECIMAL(p, s)
+        column d with number literals (a clamp) -> the same CASE cast to the narrowest DECIMAL
+        holding d's digits and the literals', at least DECIMAL(_FAST_DIGITS - 10, ...). Spark
+        types an integer literal as DECIMAL(10, 0) when it meets a decimal, so the CASE would be
+        DECIMAL(11, 1) for a DECIMAL(7, 1) column and its SUM DECIMAL(21, 1), which Spark adds
+        in BigDecimals; a SUM of at most _FAST_DIGITS digits it adds in longs. Every value of the
+        CASE (d itself or a literal) fits the type, so the cast changes none."""
+        if not isinstance(node, exp.Case) or node.args.get("this") is not None:
+            return node
+        column = node.args.get("default")
+        kind = self.types.get(_column_name(column) or "", "") if column is not None else ""
+        base, _, size = kind.partition("(")
+        if base != "numeric" or not size:
+            return node
+        precision, _, scale_text = size.rstrip(")").partition(",")
+        try:
+            literals = [_number(branch.args["true"]) for branch in node.args["ifs"]]
+        except NotOnSpark:
+            return node
+        scale = max([int(scale_text or 0)] + [-lit.as_tuple().exponent for lit in literals])
+        whole = max([int(precision) - int(scale_text or 0)] +
+                    [len(str(int(abs(lit)))) for lit in literals])
+        digits = max(whole + scale, _FAST_DIGITS - 10)
+        if digits > 38:
+            return node
+        return exp.cast(node.copy(), exp.DataType.build(f"DECIMAL({digits}, {scale})"))
+
     def integer_signs(self, node: exp.Expression) -> exp.Expression:
         """``sign(x)``: Spark's returns a double, which would turn the scaled partials it
         multiplies into doubles (inexact past 2^53) -> ``CAST(sign(x) AS INT)``."""
@@ -420,6 +457,8 @@ SPARK_TRANSFORMS: dict[str, str] = {
     "integral_decimals": "an unsized NUMERIC is DECIMAL(10, 0) in Spark; the rewrite's integral "
         "values get DECIMAL(38, 0), other casts are refused",
     "date_plus_days": "date + integer is date_add in Spark, which takes an INT",
+    "narrow_clamps": "a clamp of a decimal column between literals holds only the column's "
+        "and the literals' digits; typed that narrowly, Spark sums it in longs, not BigDecimals",
 }
 
 

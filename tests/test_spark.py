@@ -8,13 +8,20 @@ The clinic tables are loaded into PostgreSQL and copied, row for row, into Spark
 - removing one individual's rows moves Spark's answers by no more than the sensitivity;
 - the engine over Spark answers with noise and a charge in the PostgreSQL ledger, refuses what
   it refuses on PostgreSQL without running anything, cancels and times out;
-- the places where Spark SQL differs from PostgreSQL are pinned.
+- the places where Spark SQL differs from PostgreSQL are pinned;
+- a real ``hushql serve --backend sc://`` process answers psql and psycopg the demo's
+  questions with noise, a charge and a notice; ``hushql demo --no-load`` serves what was loaded.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import os
+import shutil
+import subprocess
+import sys
 from decimal import Decimal
+from pathlib import Path
 
 import psycopg
 import pytest
@@ -25,7 +32,9 @@ from proxy.policy import load_policies
 from proxy.sql.analyse import analyse
 from proxy.sql.rewrite import Rewritten, rewrite
 from tests.bounds_helpers import forced_settings, run_with_bounds
+from proxy.demo import DEMO_DATABASE
 from tests.policy_fixtures import load_clinic, write_policies
+from tests.serve_processes import PASSWORDS, ROOT, read_books, serving
 from tests.spark_server import spark_dsn  # noqa: F401  (the session's Spark server)
 
 PEOPLE_COLUMNS = "person_id INT, ward STRING, age INT, weight DECIMAL(10,2), smoker BOOLEAN, admitted DATE"
@@ -392,6 +401,98 @@ def test_the_number_series_transform_lists_the_same_integers(clinic) -> None:
     assert "range(-2, 3 + 1)" in to_spark_sql(sql).lower()
     backend, conn, _ = clinic
     assert backend.run(sql) == conn.execute(sql).fetchall()
+
+
+# ---- the demo's questions through `hushql serve --backend sc://` -------------------------------
+
+# The demo's questions (README, proxy.demo's examples): (SQL, rows in the answer).
+DEMO_QUESTIONS = [
+    ("SELECT COUNT(*) FROM households", 1),
+    ("SELECT SUM(litres) FROM readings", 1),
+    ("SELECT district, AVG(occupants) FROM households GROUP BY district", 3),
+    ("SELECT date_trunc('month', reading_date) AS month, SUM(litres) FROM readings "
+     "GROUP BY 1 ORDER BY 1", 12),
+]
+
+
+@pytest.fixture(scope="module")
+def spark_scenario(spark_dsn: str) -> str:  # noqa: F811
+    """The demo scenario (a few households) loaded into the Spark server, as `hushql demo` does."""
+    from proxy.spark_demo import load_scenario_into_spark
+
+    load_scenario_into_spark(spark_dsn, households=40, progress=False)
+    return spark_dsn
+
+
+def run_cli(*arguments: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "proxy.cli", *arguments], cwd=ROOT, text=True,
+                          capture_output=True, timeout=300)
+
+
+def test_serve_on_spark_answers_psql_with_noise_a_charge_and_a_notice(
+        spark_scenario: str, module_dsn: str, tmp_path: Path) -> None:
+    """The issue's acceptance check: a real psql, then psycopg for each of the demo's
+    questions, through a `hushql serve --backend sc://... --ledger postgresql://...` process."""
+    with serving(spark_scenario, tmp_path / "serve.log", extra=("--ledger", module_dsn)) as served:
+        # psql itself (the client analysts use): the answer on stdout, the charge as a NOTICE.
+        done = subprocess.run(
+            ["psql", "-X", "-h", "127.0.0.1", "-p", str(served.port), "-U", "planner",
+             "-d", DEMO_DATABASE, "-c", "SELECT COUNT(*) FROM households"],
+            env={**os.environ, "PGPASSWORD": PASSWORDS["planner"]}, text=True,
+            capture_output=True, timeout=120)
+        assert done.returncode == 0, done.stderr
+        assert "(1 row)" in done.stdout
+        assert "NOTICE:  this answer spent epsilon" in done.stderr
+        with served.connect() as conn:
+            conn.autocommit = True
+            notices: list[str] = []
+            conn.add_notice_handler(lambda diagnostic: notices.append(diagnostic.message_primary))
+            for sql, cells in DEMO_QUESTIONS:
+                before = read_books(module_dsn)
+                rows = conn.execute(sql).fetchall()
+                after = read_books(module_dsn)
+                assert len(rows) == cells, sql
+                assert all(value is not None for row in rows for value in row), sql
+                assert notices.pop().startswith("this answer spent epsilon"), sql
+                [charge] = after.charges[len(before.charges):]  # one charge per answer
+                assert charge[1] == "planner" and charge[3] > 0, sql
+                assert after.consistent()
+            # EXPLAIN through the wire: Spark SQL (backquoted names), nothing charged.
+            before = read_books(module_dsn)
+            explained = conn.execute("EXPLAIN SELECT district, SUM(litres) FROM readings "
+                                     "GROUP BY district").fetchall()
+            shown = "\n".join(value for _, value in explained)
+            assert "`utility`.`meter_readings`" in shown and "current_setting" not in shown
+            # A refused query: its SQLSTATE and hint, no charge.
+            with pytest.raises(psycopg.errors.FeatureNotSupported) as refused:
+                conn.execute("SELECT * FROM households")
+            assert refused.value.diag.message_hint
+            assert read_books(module_dsn).charges == before.charges
+
+
+def test_demo_no_load_on_spark_serves_the_tables_loaded_before(spark_scenario: str,
+                                                             module_dsn: str) -> None:
+    done = run_cli("demo", "--backend", spark_scenario, "--ledger", module_dsn, "--no-load",
+                   "--no-serve")
+    assert done.returncode == 0, done.stderr
+    assert "Loaded" not in done.stdout  # nothing written again
+    # The command it prints to serve later names the ledger too (a Spark backend needs one).
+    assert f"demo --no-load --backend {spark_scenario} --ledger {module_dsn}" in done.stdout
+
+
+def test_demo_no_load_on_spark_refuses_in_one_line_when_the_tables_are_missing(
+        spark_scenario: str, module_dsn: str, tmp_path: Path) -> None:
+    policies = tmp_path / "policies"
+    shutil.copytree(ROOT / "policies", policies)
+    households = policies / "tables" / "households.toml"
+    households.write_text(households.read_text().replace('source = "utility.households"',
+                                                         'source = "never_loaded.households"'))
+    done = run_cli("demo", "--backend", spark_scenario, "--ledger", module_dsn, "--no-load",
+                   "--no-serve", "--policies", str(policies))
+    assert done.returncode == 1
+    [line] = done.stderr.splitlines()
+    assert line.startswith("hushql demo --no-load: the scenario is not loaded on ")
+    assert "never_loaded.households" in line and "--no-serve" in line
 
 
 # ---- refused on Spark (pure: no server needed) ------------------------------------------------
