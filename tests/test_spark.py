@@ -394,6 +394,25 @@ def test_date_buckets_and_fields_as_postgresql(clinic) -> None:
     assert normal(on_spark) == normal(on_postgres)
 
 
+def test_clamps_of_decimals_are_narrowed_and_sum_to_postgresql_s_values(clinic) -> None:
+    """narrow_clamps: a clamp of a DECIMAL(7,1) between integer literals is typed DECIMAL(8,1)
+    (summed in longs by Spark) and every sum is still PostgreSQL's, halves and ends included."""
+    from proxy.spark_backend import to_spark_sql
+
+    clamp = "CASE WHEN t.x < 0 THEN 0 WHEN t.x > 2000 THEN 2000 ELSE t.x END"
+    values = ", ".join(f"({v})" for v in ("CAST(-3.0 AS NUMERIC(7,1))", "2500.5", "1999.9",
+                                            "0.1", "NULL", "123456.7", "0.0"))
+    sql = f"SELECT SUM({clamp}), COUNT({clamp}), MIN({clamp}) FROM (VALUES {values}) AS t(x)"
+    written = to_spark_sql(sql, {"x": "numeric(7,1)"})
+    assert "AS DECIMAL(8, 1)" in written
+    # More decimals in a literal widen the type (6 whole digits of the column, 3 decimals).
+    assert "AS DECIMAL(9, 3)" in to_spark_sql(
+        "SELECT SUM(CASE WHEN t.x < -0.125 THEN -0.125 WHEN t.x > 99999 THEN 99999 ELSE t.x END) "
+        "FROM t", {"x": "numeric(7,1)"})
+    _, conn, _ = clinic
+    assert spark_rows(clinic, written) == [tuple(conn.execute(sql).fetchone())]
+
+
 def test_the_number_series_transform_lists_the_same_integers(clinic) -> None:
     from proxy.spark_backend import to_spark_sql
 
