@@ -451,8 +451,10 @@ def run_cli(*arguments: str) -> subprocess.CompletedProcess[str]:
 def test_serve_on_spark_answers_psql_with_noise_a_charge_and_a_notice(
         spark_scenario: str, module_dsn: str, tmp_path: Path) -> None:
     """The issue's acceptance check: a real psql, then psycopg for each of the demo's
-    questions, through a `hushql serve --backend sc://... --ledger postgresql://...` process."""
-    with serving(spark_scenario, tmp_path / "serve.log", extra=("--ledger", module_dsn)) as served:
+    questions, through `hushql serve --backend sc://... --ledger postgresql://... --workers 2`
+    (two processes, each with its own Spark Connect session, charging one ledger)."""
+    with serving(spark_scenario, tmp_path / "serve.log", workers=2,
+                 extra=("--ledger", module_dsn)) as served:
         # psql itself (the client analysts use): the answer on stdout, the charge as a NOTICE.
         done = subprocess.run(
             ["psql", "-X", "-h", "127.0.0.1", "-p", str(served.port), "-U", "planner",
