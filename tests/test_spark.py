@@ -473,7 +473,10 @@ def test_serve_on_spark_answers_psql_with_noise_a_charge_and_a_notice(
                 rows = conn.execute(sql).fetchall()
                 after = read_books(module_dsn)
                 assert len(rows) == cells, sql
-                assert all(value is not None for row in rows for value in row), sql
+                # Counts and sums always answer; an average is NULL where the noisy count is
+                # not positive (proxy.engine), which a district of few households can get.
+                if "AVG" not in sql:
+                    assert all(value is not None for row in rows for value in row), sql
                 assert notices.pop().startswith("this answer spent epsilon"), sql
                 [charge] = after.charges[len(before.charges):]  # one charge per answer
                 assert charge[1] == "planner" and charge[3] > 0, sql
