@@ -17,6 +17,7 @@ import weakref
 from typing import Any, Protocol
 
 import psycopg
+import sqlglot
 from psycopg_pool import ConnectionPool, PoolTimeout
 
 from proxy import faults
@@ -81,6 +82,33 @@ class QueryControl:
         with self._lock:
             self._connection = connection
             return not self.cancelled
+
+
+class QueryBackend(Protocol):
+    """What the engine needs from the engine holding the protected tables: ``Backend`` here
+    (PostgreSQL) or ``proxy.spark_backend.SparkBackend``. Every method takes the rewrite's
+    PostgreSQL text; a backend that speaks another dialect translates it itself."""
+
+    def run(self, sql: str, control: QueryControl | None = None,
+            settings: dict[str, str] | None = None, *,
+            timeout_ms: int | None = None) -> list[tuple[Any, ...]]:
+        """All rows of one rewritten query; HushError 57014 / 08006 / XX000 (no backend text)."""
+        ...
+
+    def check(self, sql: str) -> None:
+        """HushError 0A000 when the query cannot run exactly here (asked before any charge)."""
+        ...
+
+    def sent_sql(self, sql: str) -> str:
+        """The text this backend sends for a rewritten query, laid out over lines for
+        EXPLAIN (pure: runs nothing)."""
+        ...
+
+    def column_types(self, relation: str) -> dict[str, str]:
+        """Column name -> PostgreSQL type name of a backend relation."""
+        ...
+
+    def close(self) -> None: ...
 
 
 class Backend:
@@ -184,6 +212,14 @@ class Backend:
     def check(self, sql: str) -> None:
         """Raise HushError when this backend cannot run a rewritten query exactly; PostgreSQL
         runs every one (the rewrite is written for it)."""
+
+    def sent_sql(self, sql: str) -> str:
+        """The rewritten query as sent, over several lines (sqlglot's pretty printer); as it
+        is if it cannot be laid out."""
+        try:
+            return sqlglot.parse_one(sql, read="postgres").sql(dialect="postgres", pretty=True)
+        except sqlglot.errors.SqlglotError:
+            return sql
 
     def column_types(self, relation: str) -> dict[str, str]:
         """Column name -> PostgreSQL type name of a backend relation (schema-qualified or not)."""

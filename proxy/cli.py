@@ -79,7 +79,8 @@ def _parser() -> argparse.ArgumentParser:
     demo.add_argument("--no-serve", action="store_true",
                       help="load the scenario without serving it, and print how to serve it")
     demo.add_argument("--no-load", action="store_true",
-                      help="serve a scenario loaded before with --no-serve (needs --backend)")
+                      help="serve a scenario loaded before with --no-serve (needs --backend; "
+                           "on Spark, the tables must still be in its catalog)")
     demo.add_argument("--households", type=int, default=3000,
                       help="households to invent, each with a year of daily readings "
                            "(default 3000)")
@@ -395,7 +396,8 @@ def _run_demo(args: argparse.Namespace, console: Console) -> int:
         preflight.check_spark_reachable(args.backend, "--backend")
         preflight.check_reachable(args.ledger, "ledger", "--ledger")
         return run_spark_demo(args.backend, args.ledger, Path(args.policies), args.listen,
-                              None if args.no_serve else serve, households=args.households)
+                              None if args.no_serve else serve, households=args.households,
+                              load=not args.no_load)
     if args.no_load and not args.backend:
         raise HushError(CONFIG_FILE_ERROR, "--no-load serves a scenario loaded before, so it "
                         "needs --backend naming the database it was loaded into")

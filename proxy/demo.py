@@ -404,7 +404,8 @@ def _print_examples(out: Console, backend: str, policies_dir: Path,
             lines.append(f"psql {_shell_quote(url)}    # the demo's invented planner account")
         else:
             # The demo's published passwords are served by `hushql demo` only, never by `serve`.
-            lines.append(f"{hushql} demo --no-load --backend {_shell_quote(backend)} "
+            ledger_flag = "" if ledger is None else f" --ledger {_shell_quote(ledger)}"
+            lines.append(f"{hushql} demo --no-load --backend {_shell_quote(backend)}{ledger_flag} "
                          f"--listen {_shell_quote(f'{host}:{port}')}"
                          f"    # then connect to database {database} as planner / {planner}")
     out.rule("hushql demo: try these")

@@ -58,14 +58,12 @@ from decimal import Decimal, InvalidOperation
 from fractions import Fraction
 from typing import Any
 
-import sqlglot
-import sqlglot.errors
 import sqlglot.expressions as exp
 
 from proxy import faults, noise, selection, spread, stored_answers
 from proxy.accounts import Accounts
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
-from proxy.backend import Backend, QueryControl
+from proxy.backend import Backend, QueryBackend, QueryControl
 from proxy.errors import (INTERNAL_ERROR, INVALID_PARAMETER_VALUE, PROGRAM_LIMIT_EXCEEDED,
                           QUERY_CANCELED, HushError)
 from proxy.ledger import Ledger, StoredAnswer
@@ -225,7 +223,7 @@ def _decimal_places(value: Decimal) -> int:
 class Engine:
     """Answers analysts' statements from a backend, charging a ledger. Thread-safe."""
 
-    def __init__(self, policies: Policies, backend: Backend | SparkBackend, ledger: Ledger, *,
+    def __init__(self, policies: Policies, backend: QueryBackend, ledger: Ledger, *,
                  plan_cache_size: int = 1024,
                  plan_cache_bytes: int = 64 * 1024 * 1024) -> None:
         self.policies = policies
@@ -265,7 +263,7 @@ class Engine:
 
         A Spark Connect backend (``sc://``) needs ``ledger_dsn``: the ledger stays in PostgreSQL.
         """
-        backend: Backend | SparkBackend
+        backend: QueryBackend
         if is_spark_dsn(backend_dsn):
             if not ledger_dsn:
                 raise ValueError("a Spark backend needs a PostgreSQL ledger DSN")
@@ -510,7 +508,7 @@ class Engine:
             return _explain_answer(
                 [("table", prepared.read.table.table),
                  ("public", "rows as stored: no noise, nothing charged"),
-                 ("backend sql", prepared.sql)], form,
+                 ("backend sql", self.backend.sent_sql(prepared.sql))], form,
                 remaining=self.ledger.remaining(analyst), table=prepared.read.table.table)
         eps = self.epsilon_for(epsilon)
         stored = self.ledger.stored_answer(analyst, _question(analyst, prepared, eps))
@@ -553,7 +551,7 @@ class Engine:
                          f"{at_most}{_show(scale * Fraction(unit))}, "
                          f"95% bound {at_most}±{_show(noise.bound95(scale) * unit)}"))
         rows.append(("stored answer", _stored_text(stored, fresh)))
-        rows.append(("backend sql", rewritten.sql))
+        rows.append(("backend sql", self.backend.sent_sql(rewritten.sql)))
         return _explain_answer(rows, form, remaining=self.ledger.remaining(analyst),
                                table=plan.table.table)
 
@@ -974,12 +972,10 @@ def _hold_until(deadline: float, control: QueryControl | None) -> None:
 
 def _explain_answer(items: list[tuple[Value, ...]], form: str, *, remaining: Decimal,
                     table: str) -> Answer:
-    """EXPLAIN's (item, value) pairs formatted for people: as a table whose backend SQL is
-    pretty-printed one line per row, or (form "json") as one row and one json column named
+    """EXPLAIN's (item, value) pairs formatted for people: as a table with one line of each
+    value per row (the backend SQL comes laid out over lines), or (form "json") as one row and one json column named
     QUERY PLAN, as PostgreSQL answers EXPLAIN (FORMAT JSON), holding an object of the items."""
-    pairs = [(str(item), "" if value is None else str(value)) for item, value in items]
-    pretty = [(item, _pretty_sql(value) if item == "backend sql" else value)
-              for item, value in pairs]
+    pretty = [(str(item), "" if value is None else str(value)) for item, value in items]
     if form == "json":
         document = json.dumps(dict(pretty), indent=2)
         return Answer(columns=[OutputColumn("QUERY PLAN", "json")], rows=[(document,)],
@@ -994,14 +990,6 @@ def _explain_answer(items: list[tuple[Value, ...]], form: str, *, remaining: Dec
     return Answer(columns=[OutputColumn("item", "text"), OutputColumn("value", "text")],
                   rows=rows, epsilon=Decimal(0), remaining=remaining, accuracy=[],
                   tables=[table])
-
-
-def _pretty_sql(text: str) -> str:
-    """Backend SQL over several lines (sqlglot's pretty printer); as it was if it cannot."""
-    try:
-        return sqlglot.parse_one(text, read="postgres").sql(dialect="postgres", pretty=True)
-    except sqlglot.errors.SqlglotError:
-        return text
 
 
 def _cell_values(plan: Plan) -> list[tuple[Any, ...]]:

@@ -36,6 +36,7 @@ import functools
 import logging
 import threading
 import uuid
+import warnings
 from collections.abc import Mapping
 from decimal import Decimal
 from typing import Any
@@ -49,6 +50,11 @@ from proxy.policy import Policies
 from proxy.sql.rewrite import JOINED_ROWS_ALIAS
 
 log = logging.getLogger("hushql.spark")
+# pyspark warns on import that it does not "fully support" the pandas installed; this module
+# sends no pandas data (the demo loader sends plain columns), and the warning would be the
+# first thing an operator reads on every start.
+warnings.filterwarnings("ignore", message="PySpark does not yet fully support pandas",
+                        category=FutureWarning)
 
 SPARK_SCHEME = "sc://"
 
@@ -87,6 +93,9 @@ _EXACT_TYPES = ("numeric", "smallint", "integer", "bigint")
 # The widest DECIMAL column whose floors and buckets Spark computes exactly (see narrow_exact):
 # its digits, a literal's (under 10) and the quotient's extra scale stay within 38.
 _MOST_DIGITS = 18
+# The most digits of a DECIMAL that Spark keeps in a long (Decimal.MAX_LONG_DIGITS): sums of
+# such decimals are added without BigDecimal objects. A SUM adds 10 digits to its input's.
+_FAST_DIGITS = 18
 
 
 def _is_cast_to_bare_decimal(node: exp.Expression) -> bool:
@@ -336,6 +345,34 @@ class _Writer:
             raise NotOnSpark(f"a cast to NUMERIC of {operand.sql()[:40]}")
         return node
 
+    def narrow_clamps(self, node: exp.Expression) -> exp.Expression:
+        """``CASE WHEN d < lo THEN lo WHEN d > hi THEN hi ELSE d END`` over a DECIMAL(p, s)
+        column d with number literals (a clamp) -> the same CASE cast to the narrowest DECIMAL
+        holding d's digits and the literals', at least DECIMAL(_FAST_DIGITS - 10, ...). Spark
+        types an integer literal as DECIMAL(10, 0) when it meets a decimal, so the CASE would be
+        DECIMAL(11, 1) for a DECIMAL(7, 1) column and its SUM DECIMAL(21, 1), which Spark adds
+        in BigDecimals; a SUM of at most _FAST_DIGITS digits it adds in longs. Every value of the
+        CASE (d itself or a literal) fits the type, so the cast changes none."""
+        if not isinstance(node, exp.Case) or node.args.get("this") is not None:
+            return node
+        column = node.args.get("default")
+        kind = self.types.get(_column_name(column) or "", "") if column is not None else ""
+        base, _, size = kind.partition("(")
+        if base != "numeric" or not size:
+            return node
+        precision, _, scale_text = size.rstrip(")").partition(",")
+        try:
+            literals = [_number(branch.args["true"]) for branch in node.args["ifs"]]
+        except NotOnSpark:
+            return node
+        scale = max([int(scale_text or 0)] + [-lit.as_tuple().exponent for lit in literals])
+        whole = max([int(precision) - int(scale_text or 0)] +
+                    [len(str(int(abs(lit)))) for lit in literals])
+        digits = max(whole + scale, _FAST_DIGITS - 10)
+        if digits > 38:
+            return node
+        return exp.cast(node.copy(), exp.DataType.build(f"DECIMAL({digits}, {scale})"))
+
     def integer_signs(self, node: exp.Expression) -> exp.Expression:
         """``sign(x)``: Spark's returns a double, which would turn the scaled partials it
         multiplies into doubles (inexact past 2^53) -> ``CAST(sign(x) AS INT)``."""
@@ -421,24 +458,28 @@ SPARK_TRANSFORMS: dict[str, str] = {
     "integral_decimals": "an unsized NUMERIC is DECIMAL(10, 0) in Spark; the rewrite's integral "
         "values get DECIMAL(38, 0), other casts are refused",
     "date_plus_days": "date + integer is date_add in Spark, which takes an INT",
+    "narrow_clamps": "a clamp of a decimal column between literals holds only the column's "
+        "and the literals' digits; typed that narrowly, Spark sums it in longs, not BigDecimals",
 }
 
 
-def to_spark_sql(postgres_sql: str, types: Mapping[str, str] | None = None) -> str:
+def to_spark_sql(postgres_sql: str, types: Mapping[str, str] | None = None, *,
+                 pretty: bool = False) -> str:
     """The rewrite's PostgreSQL query written for Spark SQL (pure). ``types`` maps the column
-    names of the tables it reads (lower case) to PostgreSQL type names (``postgres_type_name``).
+    names of the tables it reads (lower case) to PostgreSQL type names (``postgres_type_name``);
+    ``pretty`` lays it out over lines (EXPLAIN), the same statement.
 
     Raises NotOnSpark when a part cannot be written with PostgreSQL's exact values."""
-    return _to_spark_sql(postgres_sql, tuple(sorted((types or {}).items())))
+    return _to_spark_sql(postgres_sql, tuple(sorted((types or {}).items())), pretty)
 
 
 @functools.lru_cache(maxsize=1024)
-def _to_spark_sql(postgres_sql: str, types: tuple[tuple[str, str], ...]) -> str:
+def _to_spark_sql(postgres_sql: str, types: tuple[tuple[str, str], ...], pretty: bool) -> str:
     tree = sqlglot.parse_one(postgres_sql, read="postgres")
     writer = _Writer(dict(types))
     for name in SPARK_TRANSFORMS:
         tree = tree.transform(getattr(writer, name), copy=False)
-    return tree.sql(dialect="spark")
+    return tree.sql(dialect="spark", pretty=pretty)
 
 
 def refuse_joins(postgres_sql: str) -> None:
@@ -497,8 +538,7 @@ class _TagCanceller:
 
 
 class SparkBackend:
-    """Runs rewritten queries on a Spark Connect server; the same contract as proxy.backend's
-    Backend (``run``, ``column_types``, ``close``)."""
+    """Runs rewritten queries on a Spark Connect server: a ``proxy.backend.QueryBackend``."""
 
     def __init__(self, dsn: str, *, statement_timeout_ms: int = 300_000) -> None:
         from pyspark.sql import SparkSession
@@ -571,9 +611,14 @@ class SparkBackend:
         refuse_joins(sql)
         self._spark_text(sql)
 
-    def _spark_text(self, sql: str) -> str:
+    def sent_sql(self, sql: str) -> str:
+        """The Spark SQL sent for a rewritten query, laid out over lines for EXPLAIN; its
+        ``:hushql_...`` parameters are bound per query. HushError 0A000 as ``check``."""
+        return self._spark_text(sql, pretty=True)
+
+    def _spark_text(self, sql: str, *, pretty: bool = False) -> str:
         try:
-            return to_spark_sql(sql, self._types_of(sql))
+            return to_spark_sql(sql, self._types_of(sql), pretty=pretty)
         except NotOnSpark as error:
             raise HushError(FEATURE_NOT_SUPPORTED,
                             f"this query cannot be answered on the Spark backend: {error}",

@@ -18,9 +18,10 @@ import numpy as np
 from rich.console import Console
 
 from proxy.demo import (DAYS, DISTRICTS, SCHEMA, TARIFF_PRICES, TARIFFS, YEAR, _database_name,
-                        _print_examples,
-                        _progress, _say, generate_scenario)
-from proxy.policy import PolicyError, load_policies
+                        _print_examples, _progress, _say, _shell_quote, generate_scenario,
+                        hushql_command)
+from proxy.policy import Policies, PolicyError, load_policies
+from proxy.spark_backend import source_problems
 
 HOUSEHOLD_COLUMNS = ("CAST(household_id AS INT) AS household_id", "district",
                      "CAST(occupants AS INT) AS occupants", "tariff", "has_garden")
@@ -78,19 +79,25 @@ def load_scenario_into_spark(dsn: str, *, households: int = 3000, seed: int = 20
 def run_spark_demo(backend: str, ledger: str, policies_dir: Path,
                    listen: tuple[str, int] | None,
                    serve_callback: Callable[[str], None] | None = None, *,
-                   console: Console | None = None, households: int = 3000) -> int:
+                   console: Console | None = None, households: int = 3000,
+                   load: bool = True) -> int:
     """``hushql demo --backend sc://... --ledger postgresql://...``: load the scenario into
-    Spark, print how to query it, then serve it (``serve_callback(backend)`` blocks). Returns
-    the exit code: 1 when the policies are broken or Spark cannot take the tables."""
+    Spark (unless ``load`` is false: then the tables the policies name must be there already,
+    as ``--no-serve`` left them), print how to query it, then serve it
+    (``serve_callback(backend)`` blocks). Returns the exit code: 1 when the policies are
+    broken, Spark cannot take the tables, or (without loading) they are missing."""
     out = console or Console()
     err = console or Console(stderr=True)
     try:
-        load_policies(policies_dir)
+        policies = load_policies(policies_dir)
     except PolicyError as error:
         _say(err, f"The policies in {policies_dir} have problems:")
         for line in error.problems:
             _say(err, line)
         return 1
+    if not load:
+        return _serve_loaded(backend, ledger, policies_dir, policies, listen, serve_callback,
+                             out, err)
     started = time.perf_counter()
     try:
         counts = load_scenario_into_spark(backend, households=households)
@@ -102,6 +109,29 @@ def run_spark_demo(backend: str, ledger: str, policies_dir: Path,
     seconds = time.perf_counter() - started
     _say(out, f"Loaded {counts['households']:,} households and {counts['readings']:,} "
               f"readings into Spark in {seconds:.1f} s.")
+    return _examples_then_serve(backend, ledger, policies_dir, listen, serve_callback, out)
+
+
+def _serve_loaded(backend: str, ledger: str, policies_dir: Path, policies: Policies,
+                  listen: tuple[str, int] | None, serve_callback: Callable[[str], None] | None,
+                  out: Console, err: Console) -> int:
+    """``--no-load``: serve the tables a previous run wrote, after checking that every table,
+    column and type the policies name is on the server (one line when not)."""
+    try:
+        problems = source_problems(policies, backend)
+    except Exception as error:  # Spark Connect's errors; the operator's terminal, one line
+        problems = [f"the server did not answer ({type(error).__name__})"]
+    if problems:
+        _say(err, f"hushql demo --no-load: the scenario is not loaded on {backend} "
+                  f"({problems[0]}); load it first with: {hushql_command()} demo --backend "
+                  f"{_shell_quote(backend)} --ledger {_shell_quote(ledger)} --no-serve")
+        return 1
+    return _examples_then_serve(backend, ledger, policies_dir, listen, serve_callback, out)
+
+
+def _examples_then_serve(backend: str, ledger: str, policies_dir: Path,
+                         listen: tuple[str, int] | None,
+                         serve_callback: Callable[[str], None] | None, out: Console) -> int:
     _print_examples(out, backend, policies_dir, listen, _database_name(ledger),
                     serving=serve_callback is not None, ledger=ledger)
     if serve_callback is not None:

@@ -2,7 +2,9 @@
 pyspark package (its ``bin/spark-submit`` runs the Connect server class) on Java from PATH,
 with a local master on both cores and a small driver; stopped at the end of the session.
 
-Tests using ``spark_dsn`` skip, with the reason, when java or pyspark is absent.
+Tests using ``spark_dsn`` skip, with the reason, when java or pyspark is absent. With
+``HUSHQL_TEST_SPARK=sc://HOST:PORT`` they use that server instead (to run them again without
+the start-up wait); the tests write tables in its catalog (databases clinic and utility).
 """
 
 from __future__ import annotations
@@ -52,6 +54,10 @@ def spark_dsn(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     home = spark_home()
     if home is None:
         pytest.skip("pyspark is not installed (pip install -e '.[spark]')")
+    given = os.environ.get("HUSHQL_TEST_SPARK")
+    if given:
+        yield given
+        return
     if shutil.which("java") is None:
         pytest.skip("java is not on PATH (Spark needs Java 17)")
     folder = tmp_path_factory.mktemp("spark")

@@ -8,13 +8,20 @@ The clinic tables are loaded into PostgreSQL and copied, row for row, into Spark
 - removing one individual's rows moves Spark's answers by no more than the sensitivity;
 - the engine over Spark answers with noise and a charge in the PostgreSQL ledger, refuses what
   it refuses on PostgreSQL without running anything, cancels and times out;
-- the places where Spark SQL differs from PostgreSQL are pinned.
+- the places where Spark SQL differs from PostgreSQL are pinned;
+- a real ``hushql serve --backend sc://`` process answers psql and psycopg the demo's
+  questions with noise, a charge and a notice; ``hushql demo --no-load`` serves what was loaded.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import os
+import shutil
+import subprocess
+import sys
 from decimal import Decimal
+from pathlib import Path
 
 import psycopg
 import pytest
@@ -25,7 +32,9 @@ from proxy.policy import load_policies
 from proxy.sql.analyse import analyse
 from proxy.sql.rewrite import Rewritten, rewrite
 from tests.bounds_helpers import forced_settings, run_with_bounds
+from proxy.demo import DEMO_DATABASE
 from tests.policy_fixtures import load_clinic, write_policies
+from tests.serve_processes import PASSWORDS, ROOT, read_books, serving
 from tests.spark_server import spark_dsn  # noqa: F401  (the session's Spark server)
 
 PEOPLE_COLUMNS = "person_id INT, ward STRING, age INT, weight DECIMAL(10,2), smoker BOOLEAN, admitted DATE"
@@ -234,6 +243,35 @@ def test_engine_refuses_on_spark_without_charging(engine) -> None:
     assert engine.ledger.remaining("tester") == before
 
 
+def explained_sql(engine, sql: str) -> str:
+    """The "backend sql" item of EXPLAIN, its continuation rows joined by newlines."""
+    rows = [tuple(row) for row in engine.explain("tester", sql).rows]
+    start = [item for item, _ in rows].index("backend sql")
+    lines = [rows[start][1]]
+    for item, value in rows[start + 1:]:
+        if item:
+            break
+        lines.append(value)
+    return "\n".join(lines)
+
+
+def test_explain_shows_the_spark_sql_that_runs(engine, clinic) -> None:
+    """EXPLAIN on Spark shows the Spark SQL sent, not the PostgreSQL rewrite: run as it reads
+    (its parameters bound as the engine binds them), it gives the rows the backend gives."""
+    backend, _, _ = clinic
+    sql = "SELECT ward, floor(minutes / 10) * 10 AS m, COUNT(*), SUM(minutes) FROM visits GROUP BY 1, 2"
+    shown = explained_sql(engine, sql)
+    rewritten = engine.prepare("tester", sql).rewritten
+    assert len(shown.splitlines()) >= 10  # laid out over lines
+    # Spark's own spellings (SPARK_TRANSFORMS), never PostgreSQL's.
+    assert ":hushql_bound_noise_0" in shown and "current_setting" not in shown.lower()
+    assert " DIV " in shown and "current_setting" in rewritten.sql.lower()
+    settings = forced_settings(rewritten, bound_values(rewritten, "low"))
+    arguments = {name.replace(".", "_"): value for name, value in settings.items()}
+    assert as_ints(backend._session.sql(shown, args=arguments).collect()) == \
+        as_ints(backend.run(rewritten.sql, None, settings))
+
+
 def test_a_cancelled_query_is_57014(clinic) -> None:
     backend, _, _ = clinic
     control = QueryControl()
@@ -361,6 +399,25 @@ def test_date_buckets_and_fields_as_postgresql(clinic) -> None:
     assert normal(on_spark) == normal(on_postgres)
 
 
+def test_clamps_of_decimals_are_narrowed_and_sum_to_postgresql_s_values(clinic) -> None:
+    """narrow_clamps: a clamp of a DECIMAL(7,1) between integer literals is typed DECIMAL(8,1)
+    (summed in longs by Spark) and every sum is still PostgreSQL's, halves and ends included."""
+    from proxy.spark_backend import to_spark_sql
+
+    clamp = "CASE WHEN t.x < 0 THEN 0 WHEN t.x > 2000 THEN 2000 ELSE t.x END"
+    values = ", ".join(f"({v})" for v in ("CAST(-3.0 AS NUMERIC(7,1))", "2500.5", "1999.9",
+                                            "0.1", "NULL", "123456.7", "0.0"))
+    sql = f"SELECT SUM({clamp}), COUNT({clamp}), MIN({clamp}) FROM (VALUES {values}) AS t(x)"
+    written = to_spark_sql(sql, {"x": "numeric(7,1)"})
+    assert "AS DECIMAL(8, 1)" in written
+    # More decimals in a literal widen the type (6 whole digits of the column, 3 decimals).
+    assert "AS DECIMAL(9, 3)" in to_spark_sql(
+        "SELECT SUM(CASE WHEN t.x < -0.125 THEN -0.125 WHEN t.x > 99999 THEN 99999 ELSE t.x END) "
+        "FROM t", {"x": "numeric(7,1)"})
+    _, conn, _ = clinic
+    assert spark_rows(clinic, written) == [tuple(conn.execute(sql).fetchone())]
+
+
 def test_the_number_series_transform_lists_the_same_integers(clinic) -> None:
     from proxy.spark_backend import to_spark_sql
 
@@ -368,6 +425,103 @@ def test_the_number_series_transform_lists_the_same_integers(clinic) -> None:
     assert "range(-2, 3 + 1)" in to_spark_sql(sql).lower()
     backend, conn, _ = clinic
     assert backend.run(sql) == conn.execute(sql).fetchall()
+
+
+# ---- the demo's questions through `hushql serve --backend sc://` -------------------------------
+
+# The demo's questions (README, proxy.demo's examples): (SQL, rows in the answer).
+DEMO_QUESTIONS = [
+    ("SELECT COUNT(*) FROM households", 1),
+    ("SELECT SUM(litres) FROM readings", 1),
+    ("SELECT district, AVG(occupants) FROM households GROUP BY district", 3),
+    ("SELECT date_trunc('month', reading_date) AS month, SUM(litres) FROM readings "
+     "GROUP BY 1 ORDER BY 1", 12),
+]
+
+
+@pytest.fixture(scope="module")
+def spark_scenario(spark_dsn: str) -> str:  # noqa: F811
+    """The demo scenario (a few households) loaded into the Spark server, as `hushql demo` does."""
+    from proxy.spark_demo import load_scenario_into_spark
+
+    load_scenario_into_spark(spark_dsn, households=40, progress=False)
+    return spark_dsn
+
+
+def run_cli(*arguments: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "proxy.cli", *arguments], cwd=ROOT, text=True,
+                          capture_output=True, timeout=300)
+
+
+def test_serve_on_spark_answers_psql_with_noise_a_charge_and_a_notice(
+        spark_scenario: str, module_dsn: str, tmp_path: Path) -> None:
+    """The issue's acceptance check: a real psql, then psycopg for each of the demo's
+    questions, through `hushql serve --backend sc://... --ledger postgresql://... --workers 2`
+    (two processes, each with its own Spark Connect session, charging one ledger)."""
+    with serving(spark_scenario, tmp_path / "serve.log", workers=2,
+                 extra=("--ledger", module_dsn)) as served:
+        # psql itself (the client analysts use): the answer on stdout, the charge as a NOTICE.
+        done = subprocess.run(
+            ["psql", "-X", "-h", "127.0.0.1", "-p", str(served.port), "-U", "planner",
+             "-d", DEMO_DATABASE, "-c", "SELECT COUNT(*) FROM households"],
+            env={**os.environ, "PGPASSWORD": PASSWORDS["planner"]}, text=True,
+            capture_output=True, timeout=120)
+        assert done.returncode == 0, done.stderr
+        assert "(1 row)" in done.stdout
+        assert "NOTICE:  this answer spent epsilon" in done.stderr
+        with served.connect() as conn:
+            conn.autocommit = True
+            notices: list[str] = []
+            conn.add_notice_handler(lambda diagnostic: notices.append(diagnostic.message_primary))
+            for sql, cells in DEMO_QUESTIONS:
+                before = read_books(module_dsn)
+                rows = conn.execute(sql).fetchall()
+                after = read_books(module_dsn)
+                assert len(rows) == cells, sql
+                # Counts and sums always answer; an average is NULL where the noisy count is
+                # not positive (proxy.engine), which a district of few households can get.
+                if "AVG" not in sql:
+                    assert all(value is not None for row in rows for value in row), sql
+                assert notices.pop().startswith("this answer spent epsilon"), sql
+                [charge] = after.charges[len(before.charges):]  # one charge per answer
+                assert charge[1] == "planner" and charge[3] > 0, sql
+                assert after.consistent()
+            # EXPLAIN through the wire: Spark SQL (backquoted names), nothing charged.
+            before = read_books(module_dsn)
+            explained = conn.execute("EXPLAIN SELECT district, SUM(litres) FROM readings "
+                                     "GROUP BY district").fetchall()
+            shown = "\n".join(value for _, value in explained)
+            assert "`utility`.`meter_readings`" in shown and "current_setting" not in shown
+            # A refused query: its SQLSTATE and hint, no charge.
+            with pytest.raises(psycopg.errors.FeatureNotSupported) as refused:
+                conn.execute("SELECT * FROM households")
+            assert refused.value.diag.message_hint
+            assert read_books(module_dsn).charges == before.charges
+
+
+def test_demo_no_load_on_spark_serves_the_tables_loaded_before(spark_scenario: str,
+                                                             module_dsn: str) -> None:
+    done = run_cli("demo", "--backend", spark_scenario, "--ledger", module_dsn, "--no-load",
+                   "--no-serve")
+    assert done.returncode == 0, done.stderr
+    assert "Loaded" not in done.stdout  # nothing written again
+    # The command it prints to serve later names the ledger too (a Spark backend needs one).
+    assert f"demo --no-load --backend {spark_scenario} --ledger {module_dsn}" in done.stdout
+
+
+def test_demo_no_load_on_spark_refuses_in_one_line_when_the_tables_are_missing(
+        spark_scenario: str, module_dsn: str, tmp_path: Path) -> None:
+    policies = tmp_path / "policies"
+    shutil.copytree(ROOT / "policies", policies)
+    households = policies / "tables" / "households.toml"
+    households.write_text(households.read_text().replace('source = "utility.households"',
+                                                         'source = "never_loaded.households"'))
+    done = run_cli("demo", "--backend", spark_scenario, "--ledger", module_dsn, "--no-load",
+                   "--no-serve", "--policies", str(policies))
+    assert done.returncode == 1
+    [line] = done.stderr.splitlines()
+    assert line.startswith("hushql demo --no-load: the scenario is not loaded on ")
+    assert "never_loaded.households" in line and "--no-serve" in line
 
 
 # ---- refused on Spark (pure: no server needed) ------------------------------------------------
