@@ -44,11 +44,12 @@ import re
 import threading
 import time
 from collections import OrderedDict
+from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from decimal import Decimal, InvalidOperation
 from fractions import Fraction
-from typing import Any
+from typing import Any, TypeVar
 
 import sqlglot
 import sqlglot.errors
@@ -191,7 +192,7 @@ class Engine:
         self._cache_bytes = plan_cache_bytes
         self._cache_weight = 0
         self._cache_lock = threading.Lock()
-        self._exact: dict[str, frozenset[str]] = {}
+        self._facts: dict[str, SourceFacts] = {}
         # Records answered outcomes after the answer is released, in order, on one thread.
         self._notes = ThreadPoolExecutor(max_workers=1, thread_name_prefix="hushql-outcomes")
         self._answered: list[int] = []  # charges whose 'answered' note is not yet recorded
@@ -238,7 +239,7 @@ class Engine:
             self.policies = policies
             self._renewals = renewals
             self._cache.clear()
-            self._exact.clear()
+            self._facts.clear()
 
     def close(self) -> None:
         """Record pending outcomes, then close the pools."""
@@ -258,7 +259,8 @@ class Engine:
                     self._cache.move_to_end(key)
                     return cached
         plan = analyse(statement, self.policies, analyst)
-        rewritten = rewrite(plan, self._exact_columns(plan.table.table))
+        facts = self._source_facts(plan.table.table)
+        rewritten = rewrite(plan, facts.exact_columns, facts.unique_columns)
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         prepared = Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                             fingerprint=hashlib.sha256(rewritten.sql.encode()).hexdigest()[:16])
@@ -272,20 +274,22 @@ class Engine:
                     self._cache_weight -= _plan_bytes(self._cache.popitem(last=False)[1])
         return prepared
 
-    def _exact_columns(self, table: str) -> frozenset[str]:
-        """Number columns of ``table`` whose backend type is numeric (summed exactly); looked up
-        once per table. On any doubt, none: sums are then rounded to steps per row."""
+    def _source_facts(self, table: str) -> SourceFacts:
+        """What the backend's catalog says about ``table``'s source; looked up once per table,
+        and again after a reload. On any doubt, nothing: sums are then rounded to steps per row,
+        and individuals are bounded by the per-individual query."""
         with self._cache_lock:
-            known = self._exact.get(table)
+            known = self._facts.get(table)
         if known is None:
-            try:
-                types = self.backend.column_types(self.policies.tables[table].source)
-            except Exception:
-                log.warning("could not read the column types of table %s", table)
-                types = {}
-            known = frozenset(name for name, kind in types.items() if kind.startswith("numeric"))
+            source = self.policies.tables[table].source
+            types = _looked_up(table, "column types", self.backend.column_types, source, {})
+            known = SourceFacts(
+                exact_columns=frozenset(name for name, kind in types.items()
+                                        if kind.startswith("numeric")),
+                unique_columns=_looked_up(table, "unique columns", self.backend.unique_columns,
+                                          source, frozenset()))
             with self._cache_lock:
-                self._exact[table] = known
+                self._facts[table] = known
         return known
 
     def describe(self, analyst: str, statement: str | exp.Expression) -> list[OutputColumn]:
@@ -351,8 +355,12 @@ class Engine:
                              f"{_show(bound.ceiling * unit)}), epsilon {split.bound:.6g}; "
                              f"clipped-away total reported with epsilon {split.clip:.6g}"))
             else:
+                held = (f"; held by the database, which keeps {plan.table.individual.column} "
+                        "unique (one row per individual), so nothing is scaled"
+                        if rewritten.unique_individual else "")
                 rows.append((f"bound on {what} per individual",
-                             f"declared: {_show(bound.ceiling * unit)} (the policy's most_rows)"))
+                             f"declared: {_show(bound.ceiling * unit)} (the policy's most_rows)"
+                             f"{held}"))
         chosen = any(b.chosen for b in rewritten.bounds)
         for measure, sensitivity in zip(plan.measures, rewritten.declared_sensitivities
                                         if rewritten.bounds else rewritten.sensitivities()):
@@ -496,6 +504,28 @@ class Engine:
                       remaining=Decimal(0), accuracy=accuracy,
                       tables=[plan.table.table], charge_id=charge,
                       notes=_answer_notes(plan, rewritten, values))
+
+
+@dataclass(frozen=True)
+class SourceFacts:
+    """Facts of a table's backend source from the catalog (never its rows) that the rewrite
+    uses: numeric columns (summed exactly), columns an enforced constraint keeps unique."""
+
+    exact_columns: frozenset[str]
+    unique_columns: frozenset[str]
+
+
+_Fact = TypeVar("_Fact")
+
+
+def _looked_up(table: str, what: str, lookup: Callable[[str], _Fact], source: str,
+               none: _Fact) -> _Fact:
+    """``lookup(source)``, or ``none`` (logged) when the backend cannot answer."""
+    try:
+        return lookup(source)
+    except Exception:
+        log.warning("could not read the %s of table %s", what, table)
+        return none
 
 
 def _plan_bytes(prepared: Prepared) -> int:
@@ -661,6 +691,10 @@ def _answer_notes(plan: Plan, rewritten: Rewritten, values: tuple[int, ...]) -> 
         notes.append("rows whose group keys lie outside the declared values are not counted")
     if plan.table.individual is not None:
         notes.append(f"rows without a {plan.table.individual.column} are not counted")
+        if rewritten.unique_individual:  # the bounds hold of themselves (proxy.sql.rewrite, 8)
+            notes.append(f"each individual has at most one row (the database keeps "
+                         f"{plan.table.individual.column} unique), so nothing is scaled down")
+            return notes
         for bound, value in zip(rewritten.bounds, values):
             unit = Decimal(1) if bound.subject == "rows" else plan.table.columns[bound.subject].unit
             what = "rows" if bound.subject == "rows" else f"total {bound.subject}"

@@ -489,7 +489,7 @@ class _TagCanceller:
 
 class SparkBackend:
     """Runs rewritten queries on a Spark Connect server; the same contract as proxy.backend's
-    Backend (``run``, ``column_types``, ``close``)."""
+    Backend (``run``, ``column_types``, ``unique_columns``, ``close``)."""
 
     def __init__(self, dsn: str, *, statement_timeout_ms: int = 300_000) -> None:
         from pyspark.sql import SparkSession
@@ -553,6 +553,11 @@ class SparkBackend:
         """Column name -> PostgreSQL type name of a Spark table (``db.table``)."""
         schema = self._session.table(relation).schema
         return {field.name: postgres_type_name(field.dataType.simpleString()) for field in schema}
+
+    def unique_columns(self, relation: str) -> frozenset[str]:
+        """None: Spark enforces no constraint, so no table gets the one-row-per-individual
+        query (``proxy.sql.rewrite``, module notes 8)."""
+        return frozenset()
 
     def check(self, sql: str) -> None:
         """Raise HushError 0A000 when a rewritten query cannot be written for Spark with
