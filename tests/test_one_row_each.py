@@ -256,3 +256,31 @@ def test_explain_and_notes_say_the_database_holds_the_bound(homes) -> None:
         one_row = [n for n in answer.notes if n.startswith("each individual has at most one row")]
         assert (len(scaled), len(one_row)) == ((0, 1) if unique else (2, 0)), answer.notes
         assert "rows without a household_id are not counted" in answer.notes
+
+
+def test_the_constraint_is_read_once_and_again_on_reload(homes, module_dsn: str,
+                                                         tmp_path: Path) -> None:
+    conn, _, _ = homes
+    with psycopg.connect(module_dsn, autocommit=True) as admin:
+        admin.execute("CREATE TABLE homes.changing AS SELECT * FROM homes.keyed")
+    policies = _policies(tmp_path / "policies", {"changing": ("changing", 1, "chosen")})
+    engine = Engine(policies, Backend(module_dsn, pool_size=1),
+                    Ledger(module_dsn, schema="ledger_one_row_reload"))
+    sql = "SELECT COUNT(*) FROM changing"
+
+    def fast() -> bool:
+        return engine.prepare("tester", sql).rewritten.unique_individual
+
+    try:
+        assert not fast()
+        with psycopg.connect(module_dsn, autocommit=True) as admin:
+            admin.execute("ALTER TABLE homes.changing ADD PRIMARY KEY (household_id)")
+        assert not fast()  # read when the table was first planned
+        engine.reload(policies)
+        assert fast()
+        with psycopg.connect(module_dsn, autocommit=True) as admin:
+            admin.execute("ALTER TABLE homes.changing DROP CONSTRAINT changing_pkey")
+        engine.reload(policies)
+        assert not fast()
+    finally:
+        engine.close()
