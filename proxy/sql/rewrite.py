@@ -103,12 +103,13 @@ second scan. Report noisy max with noise drawn before the query (exact integer s
 
 8. One row per individual, held by the database. When the backend enforces that the individual
    column is unique in the source relation (``unique_columns``: a PRIMARY KEY or UNIQUE
-   constraint, valid, immediate, non-partial, on that one column alone, as the engine reads it
-   from the backend's catalog; never the data owner's word) and no bound of the plan is chosen
-   (all declared: always so for most_rows = 1), the per-individual steps are skipped: the query
-   is the row tables' one over the rows whose individual is not NULL (as in 1), with each
-   declared bound's value and a clipped-away total of 0 appended, so that the engine reads,
-   noises and states the same things as on the per-individual path.
+   constraint, valid, immediate, non-partial, on that one column alone, of an ordinary table
+   without inheritance children, as ``proxy.backend`` reads it from the catalog; never the data
+   owner's word; Spark reports none) and no bound of the plan is chosen (all declared: always
+   so for most_rows = 1), the per-individual steps are skipped: the query is the row tables' one
+   over the rows whose individual is not NULL (as in 1), with each declared bound's value and a
+   clipped-away total of 0 appended, so that the engine reads, noises and states the same
+   things as on the per-individual path.
 
    Same measures. Each individual owns at most one row, so in step 2 ``n_rows <= 1 <= R``
    (most_rows >= 1) and for a sum ``tot = |one row's clamped value| <= M <= T`` (T =
@@ -125,7 +126,8 @@ second scan. Report noisy max with noise drawn before the query (exact integer s
    moves by at most 1 (counts, distinct individuals) or M (sums) in L1: the row tables'
    sensitivities. The noise stays scaled to the declared sensitivities R, T and min(R, cells),
    which are at least these (equal when most_rows = 1), so the stated sensitivity is unchanged
-   and still an upper bound, and the answer's distribution is the per-individual path's.
+   and still an upper bound; but for the numeric rounding above, the answer's distribution is
+   the per-individual path's.
    The fact is read when a table is first planned and again after a policy reload; a constraint
    dropped on a running proxy needs a reload (as any change of a source's columns does).
 """
