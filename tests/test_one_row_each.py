@@ -284,3 +284,22 @@ def test_the_constraint_is_read_once_and_again_on_reload(homes, module_dsn: str,
         assert not fast()
     finally:
         engine.close()
+
+
+def test_the_demo_households_take_the_fast_query_and_readings_do_not(fresh_dsn: str) -> None:
+    from proxy.demo import load_scenario
+
+    load_scenario(fresh_dsn, households=40, progress=False)
+    policies = load_policies(Path(__file__).resolve().parent.parent / "policies")
+    backend = Backend(fresh_dsn, pool_size=1)
+    try:
+        # households: PRIMARY KEY (household_id); readings: (household_id, reading_date).
+        unique = {name: backend.unique_columns(policies.tables[name].source)
+                  for name in ("households", "readings")}
+    finally:
+        backend.close()
+    assert unique == {"households": frozenset({"household_id"}), "readings": frozenset()}
+    for name, sql in (("households", "SELECT COUNT(*) FROM households WHERE occupants = 3"),
+                      ("readings", "SELECT COUNT(*) FROM readings")):
+        rewritten = rewrite(analyse(sql, policies, "planner"), frozenset(), unique[name])
+        assert rewritten.unique_individual is (name == "households")
