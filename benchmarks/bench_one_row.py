@@ -8,7 +8,10 @@ key on household_id and most_rows = 1, so the rewrite may skip the per-individua
 (k = 1..8, interleaved) it prints the median of PostgreSQL's own "Execution Time" (EXPLAIN
 ANALYZE) and of the client's round trip, for the plain query, the per-individual rewrite (as
 without the constraint) and the one-row query, with ratios to the plain query measured in the
-same run. Nothing here asserts a speed.
+same run. Then the same counts answered by the engine in-process (plan cached, ledger charge,
+backend query, noise), first with the primary key, then after dropping it and reloading the
+policies (the per-individual query), with the plain query's round trip for the ratio. Nothing
+here asserts a speed.
 """
 
 from __future__ import annotations
@@ -18,15 +21,20 @@ import json
 import os
 import statistics
 import sys
+import tempfile
 import time
 import uuid
+from decimal import Decimal
 from pathlib import Path
 
 import psycopg
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
+from benchmarks.common import generous_policies, median_ms  # noqa: E402
 from proxy.backend import Backend  # noqa: E402
+from proxy.engine import Engine  # noqa: E402
+from proxy.ledger import Ledger  # noqa: E402
 from proxy.demo import load_scenario  # noqa: E402
 from proxy.dsn import with_database  # noqa: E402
 from proxy.policy import load_policies  # noqa: E402
@@ -91,9 +99,44 @@ def main() -> None:
         print(f"medians of {args.repeat} rounds x 8 values of k; load average "
               f"{' '.join(f'{x:.1f}' for x in os.getloadavg())}")
         print(json.dumps({"one_row_sql": shapes["one row"][2]}))
+        _engine_answers(dsn, args.repeat)
     finally:
         with psycopg.connect(args.backend, autocommit=True) as admin:
             admin.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+
+
+def _engine_answers(dsn: str, repeat: int) -> None:
+    """Median in-process answer time of the counts with the key, then without, vs plain."""
+    with tempfile.TemporaryDirectory() as folder:
+        policies = load_policies(generous_policies(Path(folder)))
+        engine = Engine(policies, Backend(dsn, pool_size=2), Ledger(dsn, pool_size=2))
+        queries = [QUERY.format(k=k) for k in range(1, 9)]
+        turn = iter(range(10 ** 9))
+
+        def answer() -> None:
+            engine.answer("planner", queries[next(turn) % 8], epsilon=Decimal("0.1"))
+
+        try:
+            with psycopg.connect(dsn, autocommit=True) as conn:
+                def plain() -> None:
+                    conn.execute(PLAIN.format(k=1 + next(turn) % 8)).fetchall()
+
+                fast = engine.prepare("planner", queries[0]).rewritten.unique_individual
+                rows = [("plain, direct", median_ms(plain, repeat * 8)),
+                        (f"engine, key (one row: {fast})", median_ms(answer, repeat * 8))]
+                conn.execute("ALTER TABLE utility.households DROP CONSTRAINT households_pkey "
+                             "CASCADE")
+                engine.reload(policies)
+                slow = engine.prepare("planner", queries[0]).rewritten.unique_individual
+                rows.append((f"engine, no key (one row: {slow})", median_ms(answer, repeat * 8)))
+                rows.append(("plain, direct", median_ms(plain, repeat * 8)))
+        finally:
+            engine.close()
+    base = statistics.median([rows[0][1], rows[-1][1]])
+    print(f"{'in-process answer':<34}{'median ms':>11}{'x plain':>9}")
+    for label, ms in rows:
+        print(f"{label:<34}{ms:>11.3f}{ms / base:>9.2f}")
+    print(f"load average {' '.join(f'{x:.1f}' for x in os.getloadavg())}")
 
 
 if __name__ == "__main__":
