@@ -108,6 +108,11 @@ class QueryBackend(Protocol):
         """Column name -> PostgreSQL type name of a backend relation."""
         ...
 
+    def unique_columns(self, relation: str) -> frozenset[str]:
+        """Columns the backend itself keeps unique in ``relation`` (enforced constraints only;
+        none where it enforces none)."""
+        ...
+
     def close(self) -> None: ...
 
 
@@ -230,5 +235,34 @@ class Backend:
                 (relation,), prepare=False)
             return dict(cursor.fetchall())
 
+    def unique_columns(self, relation: str) -> frozenset[str]:
+        """Columns the database itself keeps unique in a backend relation: each the one key of a
+        valid, immediate, non-partial btree unique index (a PRIMARY KEY or UNIQUE constraint, or
+        CREATE UNIQUE INDEX) with the type's default equality and the column's own collation, so
+        that no two rows share a value by GROUP BY's equality. Only ordinary tables without
+        inheritance children (whose rows a query would also read) qualify; views none."""
+        with self._pool.connection() as connection, connection.cursor() as cursor:
+            cursor.execute(_UNIQUE_COLUMNS, (relation,), prepare=False)
+            return frozenset(name for (name,) in cursor.fetchall())
+
     def close(self) -> None:
         self._pool.close()
+
+
+# pg_index's fields (PostgreSQL documentation, "pg_index"): indkey, indclass and indcollation
+# are 0-based vectors; indimmediate is false for a DEFERRABLE constraint; indisvalid is false
+# for an index still being built or failed. relhassubclass may stay true after the last child
+# is dropped (then no column qualifies: the safe side), never false while one exists.
+_UNIQUE_COLUMNS = """
+SELECT a.attname
+FROM pg_catalog.pg_index i
+JOIN pg_catalog.pg_class t ON t.oid = i.indrelid
+JOIN pg_catalog.pg_class x ON x.oid = i.indexrelid
+JOIN pg_catalog.pg_am am ON am.oid = x.relam
+JOIN pg_catalog.pg_opclass o ON o.oid = i.indclass[0]
+JOIN pg_catalog.pg_attribute a ON a.attrelid = i.indrelid AND a.attnum = i.indkey[0]
+WHERE i.indrelid = to_regclass(%s) AND t.relkind = 'r' AND NOT t.relhassubclass
+  AND i.indisunique AND i.indimmediate AND i.indisvalid AND i.indnkeyatts = 1
+  AND i.indpred IS NULL AND i.indexprs IS NULL AND am.amname = 'btree' AND o.opcdefault
+  AND i.indcollation[0] = a.attcollation AND NOT a.attisdropped
+"""

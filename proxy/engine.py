@@ -50,13 +50,13 @@ import re
 import threading
 import time
 from collections import OrderedDict
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from decimal import Decimal, InvalidOperation
 from fractions import Fraction
-from typing import Any
+from typing import Any, TypeVar
 
 import sqlglot.expressions as exp
 
@@ -238,7 +238,7 @@ class Engine:
         self._cache_bytes = plan_cache_bytes
         self._cache_weight = 0
         self._cache_lock = threading.Lock()
-        self._exact: dict[str, frozenset[str]] = {}
+        self._facts: dict[str, SourceFacts] = {}
         # Records answered outcomes after the answer is released, in batches, on one thread
         # started at the first note (so after a fork).
         self._answered: queue.SimpleQueue[int | threading.Event | None] = queue.SimpleQueue()
@@ -290,7 +290,7 @@ class Engine:
             self._renewals = renewals
             self._cache.clear()
             self._late.clear()
-            self._exact.clear()
+            self._facts.clear()
 
     def close(self) -> None:
         """Record pending outcomes, then close the pools."""
@@ -352,7 +352,7 @@ class Engine:
             read = PreparedRead(plan, read_sql(plan))
             self.backend.check(read.sql)
             return read
-        rewritten = rewrite(plan, self._plan_exact_columns(plan))
+        rewritten = rewrite(plan, self._plan_exact_columns(plan), self._plan_unique_columns(plan))
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         return Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                         fingerprint=_fingerprint(rewritten.sql),
@@ -437,24 +437,31 @@ class Engine:
         """The plan's columns summed exactly: of its table, or of the joined tables under the
         names the plan gives them."""
         if not plan.joins:
-            return self._exact_columns(plan.table.table)
+            return self._source_facts(plan.table.table).exact_columns
         return frozenset(name for join in plan.joins for name, own in join.columns
-                         if own in self._exact_columns(join.table.table))
+                         if own in self._source_facts(join.table.table).exact_columns)
 
-    def _exact_columns(self, table: str) -> frozenset[str]:
-        """Number columns of ``table`` whose backend type is numeric (summed exactly); looked up
-        once per table. On any doubt, none: sums are then rounded to steps per row."""
+    def _plan_unique_columns(self, plan: Plan) -> frozenset[str]:
+        """Columns the backend keeps unique in the plan's one table (none for joins: the
+        one-row query is for single tables, ``proxy.sql.rewrite`` notes 8)."""
+        return frozenset() if plan.joins else self._source_facts(plan.table.table).unique_columns
+
+    def _source_facts(self, table: str) -> SourceFacts:
+        """What the backend's catalog says about ``table``'s source; looked up once per table,
+        and again after a reload. On any doubt, nothing: sums are then rounded to steps per row,
+        and individuals are bounded by the per-individual query."""
         with self._cache_lock:
-            known = self._exact.get(table)
+            known = self._facts.get(table)
         if known is None:
-            try:
-                types = self.backend.column_types(self.policies.tables[table].source)
-            except Exception:
-                log.warning("could not read the column types of table %s", table)
-                types = {}
-            known = frozenset(name for name, kind in types.items() if kind.startswith("numeric"))
+            source = self.policies.tables[table].source
+            types = _looked_up(table, "column types", self.backend.column_types, source, {})
+            known = SourceFacts(
+                exact_columns=frozenset(name for name, kind in types.items()
+                                        if kind.startswith("numeric")),
+                unique_columns=_looked_up(table, "unique columns", self.backend.unique_columns,
+                                          source, frozenset()))
             with self._cache_lock:
-                self._exact[table] = known
+                self._facts[table] = known
         return known
 
     def describe(self, analyst: str, statement: Statement) -> list[OutputColumn]:
@@ -535,8 +542,12 @@ class Engine:
                              f"{_show(bound.ceiling * unit)}), epsilon {split.bound:.6g}; "
                              f"clipped-away total reported with epsilon {split.clip:.6g}"))
             else:
+                held = (f"; held by the database, which keeps {plan.table.individual.column} "
+                        "unique (one row per individual), so nothing is scaled"
+                        if rewritten.unique_individual else "")
                 rows.append((f"bound on {what} per individual",
-                             f"declared: {_show(bound.ceiling * unit)} (the policy's most_rows)"))
+                             f"declared: {_show(bound.ceiling * unit)} (the policy's most_rows)"
+                             f"{held}"))
         chosen = any(b.chosen for b in rewritten.bounds)
         for measure, sensitivity in zip(plan.measures, rewritten.declared_sensitivities
                                         if rewritten.bounds else rewritten.sensitivities()):
@@ -937,6 +948,28 @@ def paid_text(paid_at: datetime) -> str:
     return f"{paid_at.astimezone(timezone.utc):%Y-%m-%d %H:%M:%S} UTC"
 
 
+@dataclass(frozen=True)
+class SourceFacts:
+    """Facts of a table's backend source from the catalog (never its rows) that the rewrite
+    uses: numeric columns (summed exactly), columns an enforced constraint keeps unique."""
+
+    exact_columns: frozenset[str]
+    unique_columns: frozenset[str]
+
+
+_Fact = TypeVar("_Fact")
+
+
+def _looked_up(table: str, what: str, lookup: Callable[[str], _Fact], source: str,
+               none: _Fact) -> _Fact:
+    """``lookup(source)``, or ``none`` (logged) when the backend cannot answer."""
+    try:
+        return lookup(source)
+    except Exception:
+        log.warning("could not read the %s of table %s", what, table)
+        return none
+
+
 def _plan_bytes(entry: Prepared | PreparedRead | _LatePlan) -> int:
     """An estimate of a cached plan's memory: about 600 bytes per condition node (measured with
     tracemalloc on the largest accepted shapes), plus the backend SQL and the cells."""
@@ -1149,6 +1182,10 @@ def _answer_notes(plan: Plan, rewritten: Rewritten, values: tuple[int, ...]) -> 
                      "lower edge")
     if plan.table.individual is not None:
         notes.append(f"rows without a {plan.table.individual.column} are not counted")
+        if rewritten.unique_individual:  # the bounds hold of themselves (proxy.sql.rewrite, 8)
+            notes.append(f"each individual has at most one row (the database keeps "
+                         f"{plan.table.individual.column} unique), so nothing is scaled down")
+            return notes
         for bound, value in zip(rewritten.bounds, values):
             unit = Decimal(1) if bound.subject == "rows" else plan.table.columns[bound.subject].unit
             what = "rows" if bound.subject == "rows" else f"total {bound.subject}"

@@ -603,6 +603,11 @@ class SparkBackend:
         schema = self._session.table(relation).schema
         return {field.name: postgres_type_name(field.dataType.simpleString()) for field in schema}
 
+    def unique_columns(self, relation: str) -> frozenset[str]:
+        """None: Spark enforces no constraint, so no table gets the one-row-per-individual
+        query (``proxy.sql.rewrite``, module notes 8)."""
+        return frozenset()
+
     def check(self, sql: str) -> None:
         """Raise HushError 0A000 when a rewritten query cannot be written for Spark with
         PostgreSQL's exact values (the engine asks before charging). Joins are not written

@@ -164,6 +164,36 @@ other individual's kept counts come from its own rows only. The engine never rel
 exponential mechanism, whose utility moves by at most the histogram's change in that cell; the
 argument is in ``proxy.selection``. Values outside the declared range, like keys outside their
 domains, fall in no bucket and are not ranked.
+
+8. One row per individual, held by the database. When the backend enforces that the individual
+   column is unique in the source relation (``unique_columns``: a PRIMARY KEY or UNIQUE
+   constraint, valid, immediate, non-partial, on that one column alone, of an ordinary table
+   without inheritance children, as ``proxy.backend`` reads it from the catalog; never the data
+   owner's word; Spark reports none) and no bound of the plan is chosen (all declared: always
+   so for most_rows = 1), the per-individual steps are skipped: the query is the row tables' one
+   over the rows whose individual is not NULL (as in 1), with each declared bound's value and a
+   clipped-away total of 0 appended, so that the engine reads, noises and states the same
+   things as on the per-individual path.
+
+   Same measures. Each individual owns at most one row, so in step 2 ``n_rows <= 1 <= R``
+   (most_rows >= 1) and for a sum ``tot = |one row's clamped value| <= M <= T`` (T =
+   most_rows * max(1, |lo|, |hi|)); so ``w = 1`` and every partial is kept whole: the cells
+   equal the row query's counts and sums over the same rows, nothing is clipped (the declared
+   clipped figure is never noised or shown), and COUNT(DISTINCT individual) counts each
+   individual in the one cell holding its row (its per-individual test ``touched <= R`` holds).
+   One difference: a numeric column's clamped values are turned into step units once per cell
+   here, not once per (individual, cell): closer to the exact sum, and of the same sensitivity
+   (the row tables' argument above: monotone rounding, one row moves the total by at most M).
+   A chosen bound takes the per-individual path: it could fall below one row's value and clip.
+
+   Same noise. Neighbours differ by one individual's rows, here at most one row, so the answer
+   moves by at most 1 (counts, distinct individuals) or M (sums) in L1: the row tables'
+   sensitivities. The noise stays scaled to the declared sensitivities R, T and min(R, cells),
+   which are at least these (equal when most_rows = 1), so the stated sensitivity is unchanged
+   and still an upper bound; but for the numeric rounding above, the answer's distribution is
+   the per-individual path's.
+   The fact is read when a table is first planned and again after a policy reload; a constraint
+   dropped on a running proxy needs a reload (as any change of a source's columns does).
 """
 
 from __future__ import annotations
@@ -265,6 +295,9 @@ class Rewritten:
     # measures, which are bounded through the rows bound: module notes, "Spread")
     measure_multiples: tuple[int, ...] = ()
     buckets: int = 1  # candidates per cell of a percentile plan's histogram (``cells`` counts them)
+    # The backend's unique constraint holds each individual to one row: the query does not
+    # scale, the declared bounds hold of themselves (module notes, 8).
+    unique_individual: bool = False
 
     def sensitivities(self, values: tuple[int, ...] = ()) -> tuple[int, ...]:
         """The L1 sensitivity of each measure given the bounds' values (module notes, 3)."""
@@ -281,12 +314,15 @@ class Rewritten:
         return self.sensitivities(tuple(b.ceiling for b in self.bounds))
 
 
-def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritten:
+def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
+            unique_columns: frozenset[str] = frozenset()) -> Rewritten:
     """Build the backend query and sensitivities of an analysed plan. Pure.
 
     ``exact_columns`` names number columns whose backend type is exact (numeric): their clamped
     values are summed exactly and turned into step units once per cell (row tables) or once per
-    (individual, cell) partial, instead of per row.
+    (individual, cell) partial, instead of per row. ``unique_columns`` names columns the backend
+    itself keeps unique in the source (enforced constraints only): when it holds the individual
+    column and no bound is chosen, the per-individual steps are skipped (module notes, 8).
     """
     policy = plan.table
     buckets = 1
@@ -307,12 +343,17 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
                          row_sensitivities=tuple(_unit_sensitivity(policy, m) for m in plan.measures),
                          measure_kinds=kinds, buckets=buckets)
     bounds, measure_bounds = _bounds(plan, cells)
-    tree = _individual_table_query(plan, bounds, measure_bounds, cells, exact_columns,
-                                   cumulative=buckets > 1)
+    unique = (policy.individual.column in unique_columns and not any(b.chosen for b in bounds)
+              and not plan.joins and buckets == 1)  # one table, no percentile histogram
+    if unique:
+        tree = _one_row_each_query(plan, bounds, exact_columns)
+    else:
+        tree = _individual_table_query(plan, bounds, measure_bounds, cells, exact_columns,
+                                       cumulative=buckets > 1)
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
                      measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
                      measure_multiples=tuple(_row_multiple(policy, m) for m in plan.measures),
-                     buckets=buckets)
+                     buckets=buckets, unique_individual=unique)
 
 
 def _no_cells(plan: Plan) -> exp.Select:
@@ -516,6 +557,9 @@ def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
     if measure.kind == "centred_squares":
         value = _centred_value(policy, measure.column)  # type: ignore[arg-type]
         return exp.Sum(this=exp.Mul(this=value, expression=value.copy()))
+    if measure.kind == "count_individuals":  # tables with individuals only (module notes, 8)
+        assert policy.individual is not None
+        return exp.Count(this=exp.Distinct(expressions=[_col(policy.individual.column)]))
     if measure.kind == "sum":
         total: exp.Expression = exp.Sum(this=_row_value(policy, measure, exact))
         column = policy.columns[measure.column]  # type: ignore[index]
@@ -708,17 +752,31 @@ def _in_domains(plan: Plan, grouped: exp.Select, alias: str) -> exp.Select:
     return select
 
 
-def _row_table_query(plan: Plan, exact: frozenset[str]) -> exp.Select:
+def _row_table_query(plan: Plan, exact: frozenset[str],
+                     only: exp.Expression | None = None) -> exp.Select:
+    """One aggregate over the (filtered) rows, per cell; ``only`` further limits the rows."""
     policy = plan.table
     measures = [exp.alias_(exp.Coalesce(this=_aggregate(policy, m, exact), expressions=[_num(0)]),
                            f"m{n}", copy=False)
                 for n, m in enumerate(plan.measures)]
-    if not plan.keys:
-        return _filtered(plan, exp.Select().select(*measures, copy=False))
     keys = [exp.alias_(_key_expression(policy, k), f"k{j}", copy=False) for j, k in enumerate(plan.keys)]
-    grouped = _filtered(plan, exp.Select().select(*keys, *measures, copy=False)).group_by(
-        *[_num(j + 1) for j in range(len(keys))], copy=False)
+    select = _filtered(plan, exp.Select().select(*keys, *measures, copy=False))
+    if only is not None:
+        select = select.where(only, copy=False)
+    if not plan.keys:
+        return select
+    grouped = select.group_by(*[_num(j + 1) for j in range(len(keys))], copy=False)
     return _finish(plan, grouped, by_ordinal=False)
+
+
+def _one_row_each_query(plan: Plan, bounds: tuple[Bound, ...], exact: frozenset[str]) -> exp.Select:
+    """When the backend keeps each individual to one row (module notes, 8): the row query over
+    the rows with an individual, then each declared bound's value and a clipped-away 0."""
+    assert plan.table.individual is not None and not any(b.chosen for b in bounds)
+    owned = exp.Not(this=exp.Is(this=_col(plan.table.individual.column), expression=exp.Null()))
+    tail = [exp.alias_(_num(b.ceiling), f"b{j}", copy=False) for j, b in enumerate(bounds)] + [
+        exp.alias_(_num(0), f"clipped{j}", copy=False) for j in range(len(bounds))]
+    return _row_table_query(plan, exact, owned).select(*tail, copy=False)
 
 
 def _select(text: str) -> exp.Select:

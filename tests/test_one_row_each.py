@@ -1,0 +1,305 @@
+"""One row per individual, held by the database (proxy.sql.rewrite, module notes 8).
+
+When the backend enforces that the individual column is unique and no bound is chosen, the
+rewrite skips the per-individual steps. Checked here on real PostgreSQL: which constraints count
+(only enforced, single-column, non-partial, immediate ones on an ordinary table), that the fast
+query's noise-free cells equal the per-individual query's and PostgreSQL's own answer, that
+removing one household moves each measure by no more than the sensitivity stated, and that the
+engine's EXPLAIN and notes say what is applied.
+"""
+
+from __future__ import annotations
+
+import textwrap
+from decimal import Decimal
+from pathlib import Path
+
+import psycopg
+import pytest
+
+from proxy.backend import Backend
+from proxy.engine import Engine
+from proxy.ledger import Ledger
+from proxy.policy import Policies, load_policies
+from proxy.spark_backend import SparkBackend
+from proxy.sql.analyse import analyse
+from proxy.sql.rewrite import rewrite
+from tests.bounds_helpers import run_with_bounds
+from tests.policy_fixtures import DUMMY_VERIFIER
+
+# Every table has the same columns; the policy of each differs only in name, source, most_rows
+# and bounds.
+TABLE = """
+table = "{name}"
+source = "homes.{source}"
+
+[individual]
+column = "household_id"
+population = "homes"
+most_rows = {most_rows}
+bounds = "{bounds}"
+
+[columns.household_id]
+kind = "integer"
+range = [1, 100000]
+
+[columns.district]
+kind = "category"
+values = ["Northbank", "Old Mill", "Harbourside"]
+
+[columns.occupants]
+kind = "integer"
+range = [1, 8]
+
+[columns.floor_area]
+kind = "number"
+range = [20, 300]
+step = 0.5
+"""
+
+# Source relations over the same rows, each with a different (or no) uniqueness on household_id.
+# True: the database enforces that household_id is unique there.
+SOURCES = {
+    "keyed": (True, "ALTER TABLE homes.keyed ADD PRIMARY KEY (household_id)"),
+    "unique_nulls": (True, "ALTER TABLE homes.unique_nulls ADD UNIQUE (household_id)"),
+    "plain": (False, ""),
+    "partial": (False, "CREATE UNIQUE INDEX ON homes.partial (household_id) "
+                       "WHERE household_id > 10"),
+    "pair": (False, "ALTER TABLE homes.pair ADD UNIQUE (household_id, district)"),
+    "deferred": (False, "ALTER TABLE homes.deferred ADD UNIQUE (household_id) "
+                        "DEFERRABLE INITIALLY IMMEDIATE"),
+    # A primary key on the parent, but the child's rows (which it does not cover) are read too.
+    "parent": (False, "ALTER TABLE homes.parent ADD PRIMARY KEY (household_id); "
+                      "CREATE TABLE homes.child () INHERITS (homes.parent); "
+                      "INSERT INTO homes.child SELECT * FROM homes.parent WHERE household_id < 50"),
+    "view": (False, None),
+}
+HOUSEHOLDS = 900
+
+
+def _load(dsn: str) -> None:
+    """The same invented households in each source: occupants and floor areas partly outside the
+    declared ranges, NULL areas, districts outside the domain; rows without an individual in the
+    tables that allow them."""
+    with psycopg.connect(dsn, autocommit=True) as conn:
+        conn.execute("DROP SCHEMA IF EXISTS homes CASCADE; CREATE SCHEMA homes")
+        rows = f"""
+            SELECT g AS household_id,
+                   (ARRAY['Northbank', 'Old Mill', 'Harbourside', 'Riverside'])[1 + g % 4] AS district,
+                   CASE WHEN g % 31 = 0 THEN 12 WHEN g % 37 = 0 THEN 0 ELSE 1 + g % 6 END AS occupants,
+                   CASE WHEN g % 23 = 0 THEN NULL WHEN g % 41 = 0 THEN 900.25
+                        ELSE 18 + (g * 7) % 250 + (g % 4) * 0.25 END::numeric(6, 2) AS floor_area
+            FROM generate_series(1, {HOUSEHOLDS}) AS g"""
+        for name, (_, constraint) in SOURCES.items():
+            if constraint is None:
+                continue
+            conn.execute(f"CREATE TABLE homes.{name} AS {rows}")
+            if name in ("unique_nulls", "plain"):  # rows of no identifiable household
+                conn.execute(f"INSERT INTO homes.{name} SELECT NULL, 'Old Mill', 3, 50 "
+                             "FROM generate_series(1, 7)")
+            if constraint:
+                conn.execute(constraint)
+        conn.execute("CREATE VIEW homes.view AS SELECT * FROM homes.keyed")
+
+
+def _policies(root: Path, tables: dict[str, tuple[str, int, str]]) -> Policies:
+    """A policy folder: table name -> (source, most_rows, bounds), all granted to ``tester``."""
+    (root / "tables").mkdir(parents=True)
+    for name, (source, most_rows, bounds) in tables.items():
+        (root / "tables" / f"{name}.toml").write_text(
+            TABLE.format(name=name, source=source, most_rows=most_rows, bounds=bounds))
+    (root / "access.toml").write_text(textwrap.dedent(f"""
+        [defaults]
+        epsilon_per_query = 1.0
+        largest_epsilon_per_query = 100
+
+        [analysts.tester]
+        password = "{DUMMY_VERIFIER}"
+        budget = 1000
+        tables = {list(tables)!r}
+        """).replace("'", '"'))
+    return load_policies(root)
+
+
+@pytest.fixture(scope="module")
+def homes(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
+    _load(module_dsn)
+    policies = _policies(tmp_path_factory.mktemp("policies"), {
+        **{name: (name, 1, "chosen") for name in SOURCES},
+        "keyed_declared": ("keyed", 3, "declared"),
+        "keyed_chosen": ("keyed", 3, "chosen")})
+    backend = Backend(module_dsn, pool_size=2)
+    engine = Engine(policies, backend, Ledger(module_dsn, schema="ledger_one_row"))
+    with psycopg.connect(module_dsn) as conn:
+        yield conn, policies, engine
+    engine.close()
+
+
+QUERIES = [
+    "SELECT COUNT(*) FROM {t} WHERE occupants = 3",
+    "SELECT district, COUNT(*), SUM(occupants), AVG(occupants), COUNT(DISTINCT household_id) "
+    "FROM {t} GROUP BY district",
+    "SELECT district, SUM(floor_area), COUNT(floor_area) FROM {t} WHERE occupants >= 2 "
+    "GROUP BY district",
+]
+
+# PostgreSQL's own answer of each query over the rows with a household, clamped as the policy
+# declares (occupants is never NULL; floor_area's clamp keeps NULL), one row per declared
+# district in domain order (the no-key query has one cell). Sums of floor_area in steps of 0.5,
+# rounded once per cell: floor(x + 0.5).
+DISTRICTS = "(VALUES (0, 'Northbank'), (1, 'Old Mill'), (2, 'Harbourside')) AS d(i, v)"
+AREA = "CASE WHEN floor_area < 20 THEN 20 WHEN floor_area > 300 THEN 300 ELSE floor_area END"
+EXACT = [
+    "SELECT count(*) FROM homes.{s} WHERE occupants = 3 AND household_id IS NOT NULL",
+    f"SELECT count(h.*), coalesce(sum(least(greatest(h.occupants, 1), 8)), 0), count(h.occupants), "
+    f"count(DISTINCT h.household_id) FROM {DISTRICTS} LEFT JOIN homes.{{s}} h "
+    f"ON h.district = d.v AND h.household_id IS NOT NULL GROUP BY d.i ORDER BY d.i",
+    f"SELECT coalesce(floor(sum({AREA}) / 0.5 + 0.5), 0), count(h.floor_area) FROM {DISTRICTS} "
+    f"LEFT JOIN homes.{{s}} h ON h.district = d.v AND h.household_id IS NOT NULL "
+    f"AND h.occupants >= 2 GROUP BY d.i ORDER BY d.i",
+]
+
+
+def _measures(plan, rows) -> list[tuple[int, ...]]:
+    keys = len(plan.keys)
+    return [tuple(int(v) for v in row[keys:keys + len(plan.measures)]) for row in rows]
+
+
+def test_only_an_enforced_single_column_constraint_counts(homes) -> None:
+    conn, policies, engine = homes
+    for name, (unique, _) in SOURCES.items():
+        found = engine.backend.unique_columns(f"homes.{name}")
+        assert found == (frozenset({"household_id"}) if unique else frozenset()), name
+        prepared = engine.prepare("tester", f"SELECT COUNT(*) FROM {name} WHERE occupants = 3")
+        assert prepared.rewritten.unique_individual is unique, name
+        # The slow path's per-individual totals are in the SQL exactly when it is taken.
+        assert ("n_rows" in prepared.rewritten.sql) is not unique, name
+    # Declared bounds above one row keep the fast path; a chosen bound could fall below one
+    # row's value, so it keeps the per-individual query.
+    assert engine.prepare("tester", "SELECT SUM(occupants) FROM keyed_declared") \
+        .rewritten.unique_individual
+    assert not engine.prepare("tester", "SELECT SUM(occupants) FROM keyed_chosen") \
+        .rewritten.unique_individual
+    # Spark enforces no constraint: no table takes the fast path there.
+    assert SparkBackend.__new__(SparkBackend).unique_columns("homes.keyed") == frozenset()
+
+
+@pytest.mark.parametrize("exact", [frozenset(), frozenset({"floor_area"})], ids=["per-row", "exact"])
+@pytest.mark.parametrize("n", range(len(QUERIES)), ids=[q[:40] for q in QUERIES])
+def test_fast_cells_equal_postgresql_and_the_per_individual_query(homes, n: int,
+                                                                  exact: frozenset[str]) -> None:
+    conn, policies, _ = homes
+    for table in ("keyed", "unique_nulls"):
+        plan = analyse(QUERIES[n].format(t=table), policies, "tester")
+        fast = rewrite(plan, exact, frozenset({"household_id"}))
+        slow = rewrite(plan, exact)
+        assert fast.unique_individual and not slow.unique_individual
+        assert (fast.bounds, fast.declared_sensitivities) == (slow.bounds, slow.declared_sensitivities)
+        fast_rows, slow_rows = run_with_bounds(conn, fast), run_with_bounds(conn, slow)
+        # Same keys and bound values as the per-individual query, nothing clipped. (The slow
+        # query's clipped figure of a declared bound is never noised nor shown; it also counts
+        # a cap for each household whose partial is NULL, so it is not compared.)
+        keys, measures, count = len(plan.keys), len(plan.measures), len(fast.bounds)
+        assert [r[:keys] + r[keys + measures:keys + measures + count] for r in fast_rows] == \
+            [r[:keys] + r[keys + measures:keys + measures + count] for r in slow_rows]
+        assert all(v == 0 for r in fast_rows for v in r[keys + measures + count:])
+        got = _measures(plan, fast_rows)
+        if not exact:  # the same rounding (per row): equal cells
+            assert got == _measures(plan, slow_rows), table
+        expected = conn.execute(EXACT[n].format(s=table)).fetchall()
+        if exact or "floor_area" not in QUERIES[n]:  # per cell rounding is PostgreSQL's
+            # AVG's count is a count of occupants: the exact query's third column.
+            assert got == [tuple(int(v) for v in row) for row in expected], table
+
+
+def test_one_household_moves_each_measure_at_most_its_stated_sensitivity(homes) -> None:
+    conn, policies, _ = homes
+    sql = ("SELECT district, COUNT(*), SUM(occupants), SUM(floor_area), "
+           "COUNT(DISTINCT household_id) FROM keyed GROUP BY district")
+    plan = analyse(sql, policies, "tester")
+    rewritten = rewrite(plan, frozenset({"floor_area"}), frozenset({"household_id"}))
+    assert rewritten.unique_individual
+    # most_rows 1: R = 1 row, T = 8 occupants and 300 / 0.5 = 600 steps; the row tables' 1 and M.
+    sensitivities = rewritten.sensitivities(tuple(b.ceiling for b in rewritten.bounds))
+    assert sensitivities == (1, 8, 600, 1)
+    full = _measures(plan, run_with_bounds(conn, rewritten))
+    largest = [0] * len(plan.measures)
+    # Ordinary households, and ones outside the ranges (12 occupants, 900.25 square metres,
+    # no area, 0 occupants) or outside the districts (g % 4 = 3).
+    for household in (1, 2, 6, 31, 41, 23, 37, 3, 62, 82, 123, 246):
+        with conn.transaction(force_rollback=True):
+            conn.execute("DELETE FROM homes.keyed WHERE household_id = %s", (household,))
+            without = _measures(plan, run_with_bounds(conn, rewritten))
+        for m in range(len(plan.measures)):
+            move = sum(abs(a[m] - b[m]) for a, b in zip(full, without))
+            assert move <= sensitivities[m], (household, plan.measures[m])
+            largest[m] = max(largest[m], move)
+    # The check can fail: the largest moves reach each sensitivity (600 steps from the 900.25
+    # area clamped at 300; 8 from the household of 12).
+    assert largest == list(sensitivities)
+
+
+def test_explain_and_notes_say_the_database_holds_the_bound(homes) -> None:
+    _, _, engine = homes
+    for table, unique in (("keyed", True), ("plain", False)):
+        sql = f"SELECT district, COUNT(*), SUM(occupants) FROM {table} GROUP BY district"
+        explained = dict(engine.explain("tester", sql, epsilon=Decimal(1)).rows)
+        held = "held by the database, which keeps household_id unique"
+        assert (held in explained["bound on rows per individual"]) is unique
+        assert explained["bound on rows per individual"].startswith(
+            "declared: 1 (the policy's most_rows)")
+        assert explained["measure count(*)"].startswith("sensitivity 1,")
+        assert explained["measure sum(occupants)"].startswith("sensitivity 8,")
+        answer = engine.answer("tester", sql, epsilon=Decimal(1))
+        assert [a.sensitivity for a in answer.accuracy] == [1, 8]
+        scaled = [n for n in answer.notes if "scaled down to at most" in n]
+        one_row = [n for n in answer.notes if n.startswith("each individual has at most one row")]
+        assert (len(scaled), len(one_row)) == ((0, 1) if unique else (2, 0)), answer.notes
+        assert "rows without a household_id are not counted" in answer.notes
+
+
+def test_the_constraint_is_read_once_and_again_on_reload(homes, module_dsn: str,
+                                                         tmp_path: Path) -> None:
+    conn, _, _ = homes
+    with psycopg.connect(module_dsn, autocommit=True) as admin:
+        admin.execute("CREATE TABLE homes.changing AS SELECT * FROM homes.keyed")
+    policies = _policies(tmp_path / "policies", {"changing": ("changing", 1, "chosen")})
+    engine = Engine(policies, Backend(module_dsn, pool_size=1),
+                    Ledger(module_dsn, schema="ledger_one_row_reload"))
+    sql = "SELECT COUNT(*) FROM changing"
+
+    def fast() -> bool:
+        return engine.prepare("tester", sql).rewritten.unique_individual
+
+    try:
+        assert not fast()
+        with psycopg.connect(module_dsn, autocommit=True) as admin:
+            admin.execute("ALTER TABLE homes.changing ADD PRIMARY KEY (household_id)")
+        assert not fast()  # read when the table was first planned
+        engine.reload(policies)
+        assert fast()
+        with psycopg.connect(module_dsn, autocommit=True) as admin:
+            admin.execute("ALTER TABLE homes.changing DROP CONSTRAINT changing_pkey")
+        engine.reload(policies)
+        assert not fast()
+    finally:
+        engine.close()
+
+
+def test_the_demo_households_take_the_fast_query_and_readings_do_not(fresh_dsn: str) -> None:
+    from proxy.demo import load_scenario
+
+    load_scenario(fresh_dsn, households=40, progress=False)
+    policies = load_policies(Path(__file__).resolve().parent.parent / "policies")
+    backend = Backend(fresh_dsn, pool_size=1)
+    try:
+        # households: PRIMARY KEY (household_id); readings: (household_id, reading_date).
+        unique = {name: backend.unique_columns(policies.tables[name].source)
+                  for name in ("households", "readings")}
+    finally:
+        backend.close()
+    assert unique == {"households": frozenset({"household_id"}), "readings": frozenset()}
+    for name, sql in (("households", "SELECT COUNT(*) FROM households WHERE occupants = 3"),
+                      ("readings", "SELECT COUNT(*) FROM readings")):
+        rewritten = rewrite(analyse(sql, policies, "planner"), frozenset(), unique[name])
+        assert rewritten.unique_individual is (name == "households")
