@@ -61,12 +61,12 @@ from proxy.backend import Backend, QueryControl
 from proxy.errors import INTERNAL_ERROR, INVALID_PARAMETER_VALUE, QUERY_CANCELED, HushError
 from proxy.ledger import Ledger
 from proxy.policy import ColumnPolicy, Policies
-from proxy.sql.analyse import analyse
+from proxy.sql.analyse import analyse, output_type
 from proxy.sql.domains import describe_key, key_label, key_type, key_values
 from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
-from proxy.sql.postprocess import postprocess
+from proxy.sql.postprocess import carried_accuracy, postprocess
 from proxy.spark_backend import SparkBackend, is_spark_dsn
 from proxy.sql.rewrite import BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, loss_cap, rewrite
 
@@ -488,9 +488,12 @@ class Engine:
                          for o in plan.outputs])
         clipping = [None if not rewritten.bounds else clip_uppers[rewritten.measure_bounds[n]]
                     for n in range(measure_count)]
-        accuracy = [_accuracy(plan, o, split.measure, rewritten.sensitivities(values), scales,
+        parts = {i: _accuracy(plan, o, split.measure, rewritten.sensitivities(values), scales,
                               bounds, noisy, clipping)
-                    for o in plan.outputs if o.visible and o.kind != "key"]
+                 for i, o in enumerate(plan.outputs) if o.kind not in ("key", "expression")}
+        accuracy = [parts[i] if o.kind != "expression" else carried_accuracy(plan, i, parts)
+                    for i, o in enumerate(plan.outputs) if o.visible and o.kind != "key"]
+        accuracy = [a for a in accuracy if a is not None]
         return Answer(columns=[OutputColumn(o.name, _output_type(plan, o)) for o in plan.visible_outputs],
                       rows=postprocess(plan, rows), epsilon=epsilon,
                       remaining=Decimal(0), accuracy=accuracy,
@@ -588,19 +591,14 @@ def _show(value: Fraction | Decimal | int) -> str:
 
 
 def _output_type(plan: Plan, output: Output) -> ColumnType:
-    if output.kind == "key":
-        key = plan.keys[output.key]  # type: ignore[index]
-        return key_type(plan.table.columns[key.column], key)
-    if output.kind == "count":
-        return "bigint"
-    if output.kind == "sum":
-        column = plan.table.columns[plan.measures[output.measures[0]].column]  # type: ignore[index]
-        return "bigint" if column.kind == "integer" else "numeric"
-    return "double precision"
+    return output_type(plan.table, plan.keys, plan.measures, output)  # type: ignore[return-value]
 
 
 def _output_value(plan: Plan, output: Output, cell: tuple[Any, ...], measures: list[int]) -> Value:
-    """One output of one cell from its noisy measures (post-processing only)."""
+    """One output of one cell from its noisy measures (post-processing only); expressions are
+    computed from the other outputs by ``postprocess``."""
+    if output.kind == "expression":
+        return None
     if output.kind == "key":
         return cell[output.key]  # type: ignore[index]
     first = measures[output.measures[0]]

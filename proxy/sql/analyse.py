@@ -43,24 +43,25 @@ from proxy.errors import (AMBIGUOUS_COLUMN, DATATYPE_MISMATCH, GROUPING_ERROR,
                           HushError, refused)
 from proxy.policy import ColumnPolicy, Policies, TablePolicy
 from proxy.sql.domains import TRUNC_UNITS, EmptyBucket, cell_count, key_size, key_type
-from proxy.sql.filters import (KIND_TYPE, Typed, chain_operands, check_filter, date_node, literal,
-                               mark_written_names, only_args, refuse_expression, unify, unparen,
-                               written_name, written_sql)
+from proxy.sql.filters import (ExpressionChecker, Typed, check_filter, literal, mark_written_names,
+                               only_args, refuse_expression, unparen, written_name, written_sql)
 from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narrowings, read_key,
                             restrictions)
 from proxy.sql.limits import check_statement_text, check_tree
 from proxy.sql.limits import hint as limit_hint
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
+from proxy.sql.vocabulary import CAST_TYPES, HAVING, SELECT, column_types, rule, sum_type
 
 BUCKETS = tuple(TRUNC_UNITS)  # the date_trunc units a group key accepts
 
 SHAPE_HINT = ("hushql answers read-only aggregate queries: SELECT <group keys>, COUNT(*) | COUNT(col) "
               "| SUM(col) | AVG(col) FROM <table> [WHERE ...] [GROUP BY <keys>] [HAVING ...] "
               "[ORDER BY ...] [LIMIT n] [OFFSET n]")
-SELECT_HINT = ("select group keys (as written in GROUP BY) and the aggregates COUNT(*), COUNT(col), SUM(col), AVG(col); "
-               "do arithmetic on the answers in your client")
+SELECT_HINT = ("select group keys (as written in GROUP BY), the aggregates COUNT(*), COUNT(col), "
+               "SUM(col), AVG(col), and + - * /, round(x[, n]), ::integer, ::bigint, "
+               "::numeric(p, s), ::float and coalesce over them")
 HAVING_HINT = ("HAVING accepts aggregates, group keys, literals, comparisons, BETWEEN, IN, "
-               "IS [NOT] NULL, AND/OR/NOT and + - *")
+               "IS [NOT] NULL, IS [NOT] DISTINCT FROM, AND/OR/NOT, + - * and coalesce")
 ORDER_HINT = "ORDER BY accepts output names, output positions, group keys and aggregates"
 LIMIT_HINT = "LIMIT and OFFSET take a non-negative integer literal"
 
@@ -83,11 +84,10 @@ _WRITES = tuple(getattr(exp, name) for name in (
 _STRUCTURAL = (exp.Window, exp.Subquery, exp.Select, exp.Exists)  # refused whatever they hold
 _ACCEPTED_AGGREGATES = (exp.Count, exp.Sum, exp.Avg)
 _ASCII_LOWER = str.maketrans("ABCDEFGHIJKLMNOPQRSTUVWXYZ", "abcdefghijklmnopqrstuvwxyz")
-_PG_TYPE = {"category": "text", "integer": "integer", "number": "numeric", "date": "date",
-            "boolean": "boolean"}
-# The analysis type (as in proxy.sql.filters) of a key's PostgreSQL type, for HAVING.
-_KEY_FAMILY = {"text": "text", "integer": "number", "bigint": "number", "numeric": "number",
-               "double precision": "number", "date": "date", "boolean": "boolean"}
+# The analysis type (as in proxy.sql.filters) of an output's PostgreSQL type.
+_TYPE_FAMILY = {"text": "text", "integer": "number", "bigint": "number", "numeric": "number",
+                "double precision": "number", "date": "date", "boolean": "boolean"}
+_SQL_TYPES = {name: kind for kind, name in CAST_TYPES.items()}
 
 
 def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -> Plan:
@@ -190,6 +190,7 @@ class _SelectItem:
     aggregate: _Aggregate | None = None
     key: GroupKey | None = None
     column: str | None = None  # the column of a key candidate (key is None when it has no domain)
+    expression: exp.Expression | None = None  # post-processing over aggregates and keys
 
 
 class _Analysis:
@@ -218,7 +219,8 @@ class _Analysis:
         items = [self._select_item(node) for node in select.expressions]
         group = select.args.get("group")
         having = select.args.get("having")
-        if not any(item.aggregate for item in items) and group is None and having is None:
+        if not any(item.aggregate or (item.expression is not None and _holds_aggregate(item.expression))
+                   for item in items) and group is None and having is None:
             raise refused("SELECT without aggregates is not accepted: hushql never returns rows",
                           SELECT_HINT)
         if group is not None:
@@ -231,8 +233,13 @@ class _Analysis:
         keys = tuple(replace(key, within=within.get(key.column), among=among.get(key))
                      for key in self.keys)
         self._check_cells(keys)
-        for item in items:
-            self.outputs.append(self._select_output(item))
+        # Expressions last: the outputs they name but nobody selected are appended as hidden
+        # ones, after the selected outputs, which keep their positions.
+        self.outputs += [self._select_output(item) if item.expression is None
+                         else Output(item.name, "expression") for item in items]
+        for position, item in enumerate(items):
+            if item.expression is not None:
+                self.outputs[position] = self._expression_output(item)
         having_condition = self._having(having.this) if having is not None else None
         order = self._order_by(select.args.get("order"), len(items))
         limit = self._count(select.args.get("limit"), "LIMIT")
@@ -312,10 +319,9 @@ class _Analysis:
             raise refused("SELECT * is not accepted: hushql never returns rows", SELECT_HINT)
         if isinstance(node, _STRUCTURAL):
             raise refuse_expression(node, "the select list", SELECT_HINT)
-        if isinstance(node, (exp.Filter, exp.WithinGroup)):
-            raise refused("FILTER and WITHIN GROUP are not accepted on aggregates",
-                          "filter rows with WHERE; " + SELECT_HINT)
-        if isinstance(node, exp.AggFunc):
+        if isinstance(node, exp.WithinGroup):
+            raise refused("WITHIN GROUP is not accepted on aggregates", SELECT_HINT)
+        if isinstance(node, (exp.AggFunc, exp.Filter)):
             aggregate = self._aggregate(node)
             return _SelectItem(alias or aggregate.name, aggregate=aggregate)
         if is_key_expression(node) and not _holds_aggregate(node):
@@ -323,12 +329,16 @@ class _Analysis:
             return _SelectItem(alias or name, key=key, column=column)
         if literal(node) is not None:
             raise refused("constants are not accepted in the select list", SELECT_HINT)
+        if rule(node, SELECT) is not None:
+            return _SelectItem(alias or _expression_name(node), expression=node)
         if _holds_aggregate(node):
             raise refused(f"aggregates inside expressions are not accepted ({_short(node)})",
                           SELECT_HINT)
         raise refuse_expression(node, "the select list", SELECT_HINT)
 
     def _select_output(self, item: _SelectItem) -> Output:
+        if item.expression is not None:
+            return self._expression_output(item)
         if item.aggregate is not None:
             a = item.aggregate
             return Output(item.name, a.kind, measures=self._measure_ids(a), column=a.column)
@@ -343,6 +353,8 @@ class _Analysis:
 
     # aggregates ----------------------------------------------------------------------------
     def _aggregate(self, node: exp.AggFunc) -> _Aggregate:
+        if isinstance(node, exp.Filter):
+            raise refused("FILTER is not accepted on aggregates", "filter rows with WHERE")
         if not isinstance(node, _ACCEPTED_AGGREGATES):
             raise refused(f"the aggregate {written_name(node)}() is not accepted",
                           "accepted aggregates: COUNT(*), COUNT(col), SUM(col), AVG(col)"
@@ -356,7 +368,7 @@ class _Analysis:
             raise refused(f"{function.upper()}(DISTINCT ...) is not accepted", SELECT_HINT)
         name, column = self._aggregate_column(argument, function)
         if not column.summable:
-            raise HushError(UNDEFINED_FUNCTION, f"function {function}({_PG_TYPE[column.kind]}) does not exist",
+            raise HushError(UNDEFINED_FUNCTION, f"function {function}({column_types(column).sql}) does not exist",
                             f"{function.upper()} takes integer or number columns: "
                             + (", ".join(n for n, c in self.table.columns.items() if c.summable) or "none"))
         if function == "sum":
@@ -439,6 +451,12 @@ class _Analysis:
                       self._groupable_hint())
 
     def _item_key(self, item: _SelectItem) -> tuple[GroupKey | None, str]:
+        if item.expression is not None:
+            if _holds_aggregate(item.expression):
+                raise HushError(GROUPING_ERROR, "aggregate functions are not allowed in GROUP BY",
+                                self._groupable_hint())
+            raise refused(f"GROUP BY accepts columns and buckets of one column, not "
+                          f"{_short(item.expression)}", self._groupable_hint())
         if item.aggregate is not None:
             raise HushError(GROUPING_ERROR, "aggregate functions are not allowed in GROUP BY",
                             self._groupable_hint())
@@ -508,100 +526,54 @@ class _Analysis:
                                    key=index, column=key.column, visible=False))
         return len(self.outputs) - 1
 
-    def _output_type(self, index: int) -> str:
-        output = self.outputs[index]
-        if output.kind != "key":
-            return "number"
-        key = self.keys[output.key]  # type: ignore[index]
-        return _KEY_FAMILY[key_type(self.table.columns[key.column], key)]
+    def _output_sql_type(self, index: int) -> str:
+        return output_type(self.table, self.keys, self.measures, self.outputs[index])
 
-    # HAVING --------------------------------------------------------------------------------
+    # HAVING and select-list expressions ----------------------------------------------------
     def _having(self, node: exp.Expression) -> exp.Expression:
-        checked = self._having_term(node)
-        if checked.type not in ("boolean", "null"):
-            raise HushError(DATATYPE_MISMATCH, "argument of HAVING must be a condition", HAVING_HINT)
-        return checked.node
+        return self._in_proxy(HAVING, HAVING_HINT).condition(node, "HAVING")
 
-    def _having_term(self, node: exp.Expression) -> Typed:
-        constant = literal(node)
-        if constant is not None:
-            return constant
-        if isinstance(node, exp.Paren):
-            inner = self._having_term(node.this)
-            return Typed(exp.Paren(this=inner.node), inner.type, literal=inner.literal,
-                         string=inner.string)
-        if isinstance(node, (exp.And, exp.Or)):
-            parts = [self._having_condition(p) for p in chain_operands(node)]
-            built = parts[0]
-            for part in parts[1:]:
-                built = type(node)(this=built, expression=part)
-            return Typed(built, "boolean")
-        if isinstance(node, exp.Not):
-            return Typed(exp.Not(this=self._having_condition(node.this)), "boolean")
-        if isinstance(node, (exp.EQ, exp.NEQ, exp.LT, exp.LTE, exp.GT, exp.GTE)):
-            items = [self._having_term(node.this), self._having_term(node.expression)]
-            a, b = self._having_operands(items, "HAVING comparison")
-            return Typed(type(node)(this=a, expression=b), "boolean")
-        if isinstance(node, exp.Between):
-            only_args(node, ("this", "low", "high"), "BETWEEN in HAVING", HAVING_HINT)
-            items = [self._having_term(node.this), self._having_term(node.args["low"]),
-                     self._having_term(node.args["high"])]
-            this, low, high = self._having_operands(items, "HAVING BETWEEN")
-            return Typed(exp.Between(this=this, low=low, high=high), "boolean")
-        if isinstance(node, exp.In):
-            only_args(node, ("this", "expressions"), "IN in HAVING", HAVING_HINT)
-            values = [literal(item) for item in node.expressions]
-            if not values or any(v is None for v in values):
-                raise refused("IN accepts a list of literals", HAVING_HINT)
-            this, *rest = self._having_operands([self._having_term(node.this), *values], "HAVING IN")  # type: ignore[list-item]
-            return Typed(exp.In(this=this, expressions=rest), "boolean")
-        if isinstance(node, exp.Is):
-            only_args(node, ("this", "expression", "negate"), "IS in HAVING", HAVING_HINT)
-            this = self._having_term(node.this)
-            target = node.expression
-            if isinstance(target, exp.Boolean):
-                if this.type not in ("boolean", "null"):
-                    raise HushError(DATATYPE_MISMATCH, "IS TRUE/FALSE takes a condition", HAVING_HINT)
-                right: exp.Expression = exp.Boolean(this=bool(target.this))
-            elif isinstance(target, exp.Null):
-                right = exp.Null()
-            else:
-                raise refused("HAVING accepts IS [NOT] NULL and IS [NOT] TRUE/FALSE on conditions",
-                              HAVING_HINT)
-            kwargs = {"negate": True} if node.args.get("negate") else {}
-            return Typed(exp.Is(this=this.node, expression=right, **kwargs), "boolean")
-        if isinstance(node, (exp.Add, exp.Sub, exp.Mul)):
-            left, right_ = self._having_term(node.this), self._having_term(node.expression)
-            for side in (left, right_):
-                if side.type not in ("number", "null"):
-                    raise HushError(DATATYPE_MISMATCH, "+, - and * take numbers", HAVING_HINT)
-            return Typed(type(node)(this=left.node, expression=right_.node), "number")
-        if isinstance(node, exp.Neg):
-            inner = self._having_term(node.this)
-            if inner.type not in ("number", "null"):
-                raise HushError(DATATYPE_MISMATCH, "unary minus takes a number", HAVING_HINT)
-            return Typed(exp.Neg(this=inner.node), "number")
-        if isinstance(node, exp.AggFunc):
-            index = self._output_for_aggregate(self._aggregate(node))
-            return Typed(_output_column(index), "number")
+    def _in_proxy(self, clause: str, hint: str) -> ExpressionChecker:
+        """The checker of a clause evaluated in the proxy on noisy rows: aggregates and group
+        keys become placeholders of (possibly hidden) outputs."""
+        return ExpressionChecker(clause=clause, hint=hint, limits=self.policies.limits,
+                                 reader=lambda node: self._output_leaf(node, clause),
+                                 fallback=lambda node: self._key_leaf(node, clause))
+
+    def _output_leaf(self, node: exp.Expression, clause: str) -> Typed | None:
+        if isinstance(node, (exp.AggFunc, exp.Filter)):
+            return self._placeholder(self._output_for_aggregate(self._aggregate(node)), clause)
+        if isinstance(node, exp.Column) and not isinstance(node.this, exp.Star):
+            return self._placeholder(self._output_for_key(node), clause)
+        return None
+
+    def _key_leaf(self, node: exp.Expression, clause: str) -> Typed | None:
         if is_key_expression(node) and not _holds_aggregate(node) and not (
                 isinstance(node, exp.Column) and isinstance(node.this, exp.Star)):
-            index = self._output_for_key(node)
-            return Typed(_output_column(index), self._output_type(index))
-        raise refuse_expression(node, "HAVING", HAVING_HINT)
+            return self._placeholder(self._output_for_key(node), clause)
+        return None
 
-    def _having_condition(self, node: exp.Expression) -> exp.Expression:
-        checked = self._having_term(node)
-        if checked.type not in ("boolean", "null"):
-            raise HushError(DATATYPE_MISMATCH, "AND, OR and NOT take conditions", HAVING_HINT)
-        return checked.node
+    def _placeholder(self, index: int, clause: str) -> Typed:
+        """Output ``index`` typed for a clause; in the select list a number is cast to its own
+        type, so that evaluation holds the Python type standing for it (int, Decimal, float)."""
+        sql = self._output_sql_type(index)
+        family = _TYPE_FAMILY[sql]
+        node: exp.Expression = _output_column(index)
+        if clause == SELECT and family == "number":
+            node = exp.Cast(this=node, to=exp.DataType(this=_SQL_TYPES[sql]))
+        return Typed(node, family, sql=sql if family == "number" else None,
+                     as_numeric=lambda: node, as_bounded=lambda: node)
 
-    def _having_operands(self, items: list[Typed], what: str) -> list[exp.Expression]:
-        """Operands after the type check; text literals meeting a date become dates."""
-        family = unify(items, what)
-        if family != "date":
-            return [i.node for i in items]
-        return [date_node(i.string or "") if i.type == "string" else i.node for i in items]
+    def _expression_output(self, item: _SelectItem) -> Output:
+        """A select-list expression over aggregates and keys, computed on the noisy row."""
+        assert item.expression is not None
+        checked = self._in_proxy(SELECT, SELECT_HINT).check(item.expression)
+        if checked.node.find(exp.Column) is None:
+            raise refused("constants are not accepted in the select list", SELECT_HINT)
+        if checked.type != "number" or checked.sql is None:
+            raise refused(f"the select list accepts arithmetic over numbers, not "
+                          f"{_short(item.expression)}", SELECT_HINT)
+        return Output(item.name, "expression", expression=checked.node, type=checked.sql)
 
     # ORDER BY ------------------------------------------------------------------------------
     def _order_by(self, order: exp.Order | None, selected: int) -> tuple[OrderItem, ...]:
@@ -670,6 +642,47 @@ class _Analysis:
         if isinstance(value, exp.Literal) and not value.is_string and value.this.isdigit():
             return int(value.this)
         raise refused(f"{word} accepts a non-negative integer literal, not {_short(value)}", LIMIT_HINT)
+
+
+def output_type(table: TablePolicy, keys: list[GroupKey] | tuple[GroupKey, ...],
+                measures: list[Measure] | tuple[Measure, ...], output: Output) -> str:
+    """The PostgreSQL type of one output: a key's as PostgreSQL types its expression, COUNT
+    bigint, SUM PostgreSQL's sum type of its column, AVG double precision, an expression its
+    own (``Output.type``)."""
+    if output.kind == "key":
+        key = keys[output.key]  # type: ignore[index]
+        return key_type(table.columns[key.column], key)
+    if output.kind == "count":
+        return "bigint"
+    if output.kind == "sum":
+        return sum_type(table.columns[measures[output.measures[0]].column])  # type: ignore[index]
+    if output.kind == "expression":
+        assert output.type is not None
+        return output.type
+    return "double precision"
+
+
+def _expression_name(node: exp.Expression) -> str:
+    """The column name PostgreSQL gives an unaliased expression (FigureColname): a column's or
+    function's name, through casts (else the cast's type name), or ?column?."""
+    return _figure_name(node) or "?column?"
+
+
+def _figure_name(node: exp.Expression) -> str | None:
+    node = unparen(node)
+    if isinstance(node, exp.Column):
+        return node.name
+    if isinstance(node, exp.Filter):
+        return _figure_name(node.this)
+    if isinstance(node, exp.Cast):
+        inner = _figure_name(node.this)
+        if inner is not None:
+            return inner
+        return {"integer": "int4", "bigint": "int8", "numeric": "numeric",
+                "double precision": "float8"}.get(CAST_TYPES.get(node.to.this, ""), None)
+    if isinstance(node, exp.Func) and not isinstance(node, exp.Binary):
+        return written_name(node)
+    return None
 
 
 def _output_column(index: int) -> exp.Column:

@@ -10,10 +10,8 @@ from __future__ import annotations
 import sqlglot.expressions as exp
 
 from proxy.policy import Policies
+from proxy.sql.vocabulary import column_types
 
-# The PostgreSQL type a column of each policy kind is compared as.
-_KIND_TYPES = {"category": "text", "integer": "bigint", "number": "numeric", "date": "date",
-               "boolean": "boolean"}
 _COMPARISONS = (exp.EQ, exp.NEQ, exp.GT, exp.GTE, exp.LT, exp.LTE, exp.Between, exp.In,
                 exp.Like, exp.ILike)
 
@@ -39,7 +37,7 @@ def parameter_types(tree: exp.Expression, policies: Policies) -> list[str | None
             policy = table.columns.get(column) if column else None
             if policy is not None:
                 found[index] = "text" if isinstance(parent, (exp.Like, exp.ILike)) \
-                    else _KIND_TYPES[policy.kind]
+                    else column_types(policy).sql
     return found
 
 

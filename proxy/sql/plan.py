@@ -25,7 +25,7 @@ import sqlglot.expressions as exp
 from proxy.policy import TablePolicy
 
 MeasureKind = Literal["count_rows", "count_values", "sum", "count_individuals"]
-OutputKind = Literal["key", "count", "sum", "avg"]
+OutputKind = Literal["key", "count", "sum", "avg", "expression"]
 
 
 @dataclass(frozen=True)
@@ -89,7 +89,12 @@ class Output:
 
     ``key`` indexes ``Plan.keys`` for kind "key"; ``measures`` indexes ``Plan.measures`` for
     aggregates: count -> (count,), sum -> (sum,), avg -> (sum, count_values). Hidden outputs
-    (``visible`` False) exist only because HAVING or ORDER BY names an aggregate not selected.
+    (``visible`` False) exist only because HAVING, ORDER BY or a select-list expression names
+    an aggregate or key not selected as such.
+
+    Kind "expression" is post-processing in the select list: ``expression`` is a tree over
+    placeholders of other outputs (``output_ref``, never of another expression), evaluated on
+    the noisy row by ``proxy.sql.postprocess``, and ``type`` its PostgreSQL type.
     """
 
     name: str
@@ -98,6 +103,8 @@ class Output:
     measures: tuple[int, ...] = ()
     column: str | None = None
     visible: bool = True
+    expression: exp.Expression | None = None
+    type: str | None = None
 
 
 @dataclass(frozen=True)
