@@ -359,7 +359,7 @@ class Engine:
             unit = _measure_unit(plan, measure)
             scale = Fraction(sensitivity) / Fraction(split.measure)
             at_most = "at most " if chosen else ""
-            rows.append((f"measure {_measure_label(measure.kind, measure.column)}",
+            rows.append((f"measure {_measure_label(measure)}",
                          f"sensitivity {at_most}{_show(sensitivity * unit)}, noise scale "
                          f"{at_most}{_show(scale * Fraction(unit))}, "
                          f"95% bound {at_most}±{_show(noise.bound95(scale) * unit)}"))
@@ -577,9 +577,13 @@ def _measure_unit(plan: Plan, measure: Measure) -> Decimal:
     return plan.table.columns[measure.column].unit if measure.kind == "sum" else Decimal(1)  # type: ignore[index]
 
 
-def _measure_label(kind: str, column: str | None) -> str:
-    return {"count_rows": "count(*)", "count_values": f"count({column})", "sum": f"sum({column})",
-            "count_individuals": "count(distinct individual)"}[kind]
+def _measure_label(measure: Measure) -> str:
+    """A measure as EXPLAIN names it (a derived column's name says its value or FILTER)."""
+    if measure.kind == "count_individuals" and measure.value is not None:
+        return f"count(distinct individual) FILTER (WHERE {measure.value.sql(dialect='postgres')})"
+    return {"count_rows": "count(*)", "count_values": f"count({measure.column})",
+            "sum": f"sum({measure.column})",
+            "count_individuals": "count(distinct individual)"}[measure.kind]
 
 
 def _show(value: Fraction | Decimal | int) -> str:

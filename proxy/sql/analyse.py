@@ -44,13 +44,14 @@ from proxy.errors import (AMBIGUOUS_COLUMN, DATATYPE_MISMATCH, GROUPING_ERROR,
 from proxy.policy import ColumnPolicy, Policies, TablePolicy
 from proxy.sql.domains import TRUNC_UNITS, EmptyBucket, cell_count, key_size, key_type
 from proxy.sql.filters import (ExpressionChecker, Typed, check_filter, literal, mark_written_names,
-                               only_args, refuse_expression, unparen, written_name, written_sql)
+                               number_value, only_args, refuse_expression, unparen, written_name, written_sql)
 from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narrowings, read_key,
                             restrictions)
 from proxy.sql.limits import check_statement_text, check_tree
 from proxy.sql.limits import hint as limit_hint
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
-from proxy.sql.vocabulary import CAST_TYPES, HAVING, SELECT, column_types, rule, sum_type
+from proxy.sql.vocabulary import (CAST_TYPES, HAVING, SELECT, column_types, literal_type, rule,
+                                  sum_type)
 
 BUCKETS = tuple(TRUNC_UNITS)  # the date_trunc units a group key accepts
 
@@ -88,6 +89,8 @@ _ASCII_LOWER = str.maketrans("ABCDEFGHIJKLMNOPQRSTUVWXYZ", "abcdefghijklmnopqrst
 _TYPE_FAMILY = {"text": "text", "integer": "number", "bigint": "number", "numeric": "number",
                 "double precision": "number", "date": "date", "boolean": "boolean"}
 _SQL_TYPES = {name: kind for kind, name in CAST_TYPES.items()}
+_INTEGER_CASTS = (exp.DataType.Type.INT, exp.DataType.Type.BIGINT, exp.DataType.Type.SMALLINT)
+_LARGEST_BRANCH = 10 ** 15
 
 
 def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -> Plan:
@@ -207,6 +210,7 @@ class _Analysis:
         self.table: TablePolicy
         self.qualifiers: frozenset[str]
         self.alias: str | None = None
+        self.derived: dict[str, ColumnPolicy] = {}  # derived columns of measures (Measure.value)
 
     # ---------------------------------------------------------------------------------------
     def plan(self) -> Plan:
@@ -246,7 +250,7 @@ class _Analysis:
         offset = self._count(select.args.get("offset"), "OFFSET")
         if not self.measures:
             raise refused("the query has no aggregate", SELECT_HINT)
-        return Plan(table=self.table, measures=tuple(self.measures), outputs=tuple(self.outputs),
+        return Plan(table=self._plan_table(), measures=tuple(self.measures), outputs=tuple(self.outputs),
                     keys=keys, where=condition, having=having_condition,
                     order_by=order, limit=limit, offset=offset)
 
@@ -354,7 +358,7 @@ class _Analysis:
     # aggregates ----------------------------------------------------------------------------
     def _aggregate(self, node: exp.AggFunc) -> _Aggregate:
         if isinstance(node, exp.Filter):
-            raise refused("FILTER is not accepted on aggregates", "filter rows with WHERE")
+            return self._filtered(node)
         if not isinstance(node, _ACCEPTED_AGGREGATES):
             raise refused(f"the aggregate {written_name(node)}() is not accepted",
                           "accepted aggregates: COUNT(*), COUNT(col), SUM(col), AVG(col)"
@@ -366,14 +370,15 @@ class _Analysis:
         function = "sum" if isinstance(node, exp.Sum) else "avg"
         if isinstance(argument, exp.Distinct):
             raise refused(f"{function.upper()}(DISTINCT ...) is not accepted", SELECT_HINT)
-        name, column = self._aggregate_column(argument, function)
+        name, column, value = self._aggregate_column(argument, function)
         if not column.summable:
             raise HushError(UNDEFINED_FUNCTION, f"function {function}({column_types(column).sql}) does not exist",
                             f"{function.upper()} takes integer or number columns: "
                             + (", ".join(n for n, c in self.table.columns.items() if c.summable) or "none"))
         if function == "sum":
-            return _Aggregate("sum", (Measure("sum", name),), name, "sum")
-        return _Aggregate("avg", (Measure("sum", name), Measure("count_values", name)), name, "avg")
+            return _Aggregate("sum", (Measure("sum", name, value),), name, "sum")
+        return _Aggregate("avg", (Measure("sum", name, value), Measure("count_values", name, value)),
+                          name, "avg")
 
     def _count_aggregate(self, argument: exp.Expression | None) -> _Aggregate:
         if isinstance(argument, exp.Star):
@@ -391,15 +396,116 @@ class _Analysis:
                           "table with [individual]",
                           f"write COUNT(DISTINCT {individual.column})" if individual
                           else "use COUNT(*) or COUNT(col)")
-        name, _ = self._aggregate_column(argument, "count")
-        return _Aggregate("count", (Measure("count_values", name),), name, "count")
+        name, _, value = self._aggregate_column(argument, "count")
+        return _Aggregate("count", (Measure("count_values", name, value),), name, "count")
 
-    def _aggregate_column(self, argument: exp.Expression | None, function: str) -> tuple[str, ColumnPolicy]:
+    def _aggregate_column(self, argument: exp.Expression | None,
+                          function: str) -> tuple[str, ColumnPolicy, exp.Expression | None]:
+        """The column an aggregate takes, or the derived column of a bounded per-row value,
+        with that value's SQL."""
         if isinstance(argument, exp.Column) and not isinstance(argument.this, exp.Star):
-            return self._column(argument)
+            return (*self._column(argument), None)
         if argument is not None and _holds_aggregate(argument):
             raise HushError(GROUPING_ERROR, "aggregate function calls cannot be nested", SELECT_HINT)
-        raise refused(f"{function.upper()}() accepts a column, not an expression", SELECT_HINT)
+        bounded = self._bounded_value(argument) if argument is not None else None
+        if bounded is not None:
+            return bounded
+        raise refused(f"{function.upper()}() accepts a column, a boolean column cast to integer "
+                      "or a CASE of integer literals, not another expression", SELECT_HINT)
+
+    # bounded per-row values and FILTER -------------------------------------------------------
+    def _bounded_value(self, node: exp.Expression) -> tuple[str, ColumnPolicy, exp.Expression] | None:
+        """A per-row value with a range known from the text: ``b::integer`` of a boolean column
+        (0 or 1; PostgreSQL's cast of a boolean never fails) or ``CASE WHEN <condition> THEN
+        <integer> ... [ELSE <integer>] END`` (conditions checked as in WHERE; its range runs from
+        the smallest branch to the largest). None for anything else."""
+        if isinstance(node, exp.Cast) and node.to.this in _INTEGER_CASTS and not node.to.expressions \
+                and isinstance(unparen(node.this), exp.Column) \
+                and not isinstance(unparen(node.this).this, exp.Star):
+            name, column = self._column(unparen(node.this))
+            if column.kind != "boolean":
+                return None
+            value = exp.Cast(this=exp.Column(this=exp.to_identifier(name, quoted=True)),
+                             to=exp.DataType(this=exp.DataType.Type.INT))
+            return self._derive(f"{name}::integer", ColumnPolicy(kind="integer", range=[0, 1]), value)
+        if not isinstance(node, exp.Case):
+            return None
+        only_args(node, ("ifs", "default"), "CASE with an operand", SELECT_HINT)
+        reader = bucket_reader(self.table, self._column)
+        branches, values = [], []
+        for branch in node.args.get("ifs") or []:
+            only_args(branch, ("this", "true"), "CASE", SELECT_HINT)
+            condition = check_filter(branch.this, self._column, reader, self.policies.limits)
+            number, built = self._branch_value(branch.args.get("true"))
+            values.append(number)
+            branches.append(exp.If(this=condition, true=built))
+        default = node.args.get("default")
+        number, built_default = self._branch_value(default) if default is not None else (None, None)
+        values.append(number)
+        present = [v for v in values if v is not None]
+        if not branches or not present:
+            raise refused("a CASE inside an aggregate needs an integer literal in some branch",
+                          SELECT_HINT)
+        value = exp.Case(ifs=branches, default=built_default)
+        policy = ColumnPolicy(kind="integer", range=[min(present), max(present)])
+        return self._derive(written_sql(node), policy, value)
+
+    def _branch_value(self, node: exp.Expression | None) -> tuple[int | None, exp.Expression]:
+        checked = literal(node) if node is not None else None
+        if checked is not None and checked.type == "null":
+            return None, exp.Null()
+        if checked is None or checked.type != "number" or literal_type(number_value(checked.node)) == "numeric" \
+                or abs(number_value(checked.node)) > _LARGEST_BRANCH:
+            raise refused("a CASE inside an aggregate takes integer literals (at most 1e15 in size) "
+                          "or NULL in its branches", SELECT_HINT)
+        return int(number_value(checked.node)), checked.node
+
+    def _filtered(self, node: exp.Filter) -> _Aggregate:
+        """``<aggregate> FILTER (WHERE <condition>)``: the condition is checked as a WHERE
+        condition and folded into each measure's per-row value (a different measure, of the
+        same sensitivity: ``proxy.sql.rewrite``)."""
+        inner, where = node.this, node.expression
+        if not isinstance(inner, exp.AggFunc) or isinstance(inner, exp.Filter) \
+                or not isinstance(where, exp.Where):
+            raise refused("FILTER (WHERE ...) follows an aggregate", SELECT_HINT)
+        only_args(where, ("this",), "FILTER", SELECT_HINT)
+        condition = check_filter(where.this, self._column, bucket_reader(self.table, self._column),
+                                 self.policies.limits)
+        base = self._aggregate(inner)
+        measures = tuple(self._filter_measure(m, condition) for m in base.measures)
+        return _Aggregate(base.kind, measures, measures[0].column, base.name)
+
+    def _filter_measure(self, measure: Measure, condition: exp.Expression) -> Measure:
+        label = f"FILTER (WHERE {condition.sql(dialect='postgres')})"
+        if measure.kind == "count_individuals":
+            return Measure("count_individuals", value=condition)
+        if measure.kind == "count_rows":
+            value = exp.Case(ifs=[exp.If(this=condition, true=exp.Literal.number(1))])
+            name, policy, _ = self._derive(f"* {label}",
+                                           ColumnPolicy(kind="integer", range=[1, 1]), value)
+            return Measure("count_values", name, value)
+        assert measure.column is not None
+        source = measure.value if measure.value is not None else \
+            exp.Column(this=exp.to_identifier(measure.column, quoted=True))
+        value = exp.Case(ifs=[exp.If(this=condition, true=source.copy())])
+        name, _, _ = self._derive(f"{measure.column} {label}", self._columns()[measure.column], value)
+        return Measure(measure.kind, name, value)
+
+    def _derive(self, name: str, policy: ColumnPolicy,
+                value: exp.Expression) -> tuple[str, ColumnPolicy, exp.Expression]:
+        """Register a derived column (a bounded value, a filtered column) under a name no
+        policy column can have (it holds spaces, parentheses or ::)."""
+        self.derived[name] = policy
+        return name, policy, value
+
+    def _columns(self) -> dict[str, ColumnPolicy]:
+        return {**self.table.columns, **self.derived} if self.derived else self.table.columns
+
+    def _plan_table(self) -> TablePolicy:
+        """The table of the plan: the policy's, with the derived columns its measures name."""
+        if not self.derived:
+            return self.table
+        return self.table.model_copy(update={"columns": self._columns()})
 
     def _measure_ids(self, aggregate: _Aggregate) -> tuple[int, ...]:
         ids = []
@@ -527,7 +633,7 @@ class _Analysis:
         return len(self.outputs) - 1
 
     def _output_sql_type(self, index: int) -> str:
-        return output_type(self.table, self.keys, self.measures, self.outputs[index])
+        return output_type(self._plan_table(), self.keys, self.measures, self.outputs[index])
 
     # HAVING and select-list expressions ----------------------------------------------------
     def _having(self, node: exp.Expression) -> exp.Expression:

@@ -494,7 +494,7 @@ class ExpressionChecker:
         constant = literal(node)
         if constant is not None:
             if constant.type == "number" and self._clause == SELECT:
-                constant.sql = literal_type(_value_of(constant.node))
+                constant.sql = literal_type(number_value(constant.node))
             return constant
         for reader in (self._bucket, self._reader):
             found = reader(node) if reader is not None else None
@@ -680,8 +680,8 @@ class ExpressionChecker:
                           self._hint)
         sizes = [literal(e.this if isinstance(e, exp.DataTypeParam) else e) for e in target.expressions]
         if len(sizes) > 2 or any(z is None or not _is_integer(z.node) for z in sizes) or (
-                sizes and not 1 <= int(_value_of(sizes[0].node)) <= 1000) or (  # type: ignore[union-attr]
-                len(sizes) == 2 and not 0 <= int(_value_of(sizes[1].node)) <= int(_value_of(sizes[0].node))):  # type: ignore[union-attr]
+                sizes and not 1 <= int(number_value(sizes[0].node)) <= 1000) or (  # type: ignore[union-attr]
+                len(sizes) == 2 and not 0 <= int(number_value(sizes[1].node)) <= int(number_value(sizes[0].node))):  # type: ignore[union-attr]
             raise HushError(SYNTAX_ERROR, "NUMERIC precision must lie in 1..1000 and its scale in "
                             "0..precision", "write numeric(5, 2)")
         inner = self.check(node.this)
@@ -742,6 +742,9 @@ class ExpressionChecker:
         digits = max(i.digits or 0 for i in items)
         sql = promoted([i.sql or "integer" for i in items if i.type == "number"]) \
             if self._clause == SELECT else None
+        if sql is not None and any(i.sql != sql for i in items):
+            # Evaluated in the proxy: whichever operand is taken, it is of the common type.
+            built = exp.Cast(this=built, to=exp.DataType(this=_SQL_TYPE_NODES[sql]))
         return Typed(built, "number", digits=digits, scale=max(i.scale for i in items), sql=sql,
                      as_numeric=lambda: exp.Coalesce(
                          this=items[0].node if items[0].literal else items[0].numeric(),
@@ -798,15 +801,14 @@ _CHECKS: dict[str, Callable[[ExpressionChecker, exp.Expression], Typed]] = {
     "round": ExpressionChecker._round,
     "cast": ExpressionChecker._cast,
 }
+_SQL_TYPE_NODES = {name: kind for kind, name in CAST_TYPES.items()}
 _OPERATORS = {WHERE: "+, - and *", HAVING: "+, - and *", SELECT: "+, -, * and /"}
 
 
-def _value_of(node: exp.Expression) -> Decimal:
+def number_value(node: exp.Expression) -> Decimal:
     """The value of a checked number literal (negative ones are unary minus)."""
-    if isinstance(node, exp.Neg):
-        return -_value_of(node.this)
-    return Decimal(node.this)
+    return -number_value(node.this) if isinstance(node, exp.Neg) else Decimal(node.this)
 
 
 def _is_integer(node: exp.Expression) -> bool:
-    return literal_type(_value_of(node)) in ("integer", "bigint")
+    return literal_type(number_value(node)) in ("integer", "bigint")

@@ -30,10 +30,18 @@ OutputKind = Literal["key", "count", "sum", "avg", "expression"]
 
 @dataclass(frozen=True)
 class Measure:
-    """One noisy integer per cell. ``column`` is None for ``count_rows`` and ``count_individuals``."""
+    """One noisy integer per cell. ``column`` is None for ``count_rows`` and ``count_individuals``.
+
+    ``value``, when set, is the checked per-row SQL counted or summed instead of the column: a
+    bounded value (a boolean cast to integer, a CASE of integer literals) or a FILTER's
+    ``CASE WHEN <condition> THEN <value> END``; ``column`` then names a derived column of
+    ``Plan.table`` whose policy gives the value's range and step. For ``count_individuals`` it
+    is the FILTER condition (an individual counts in a cell when one of its rows passes it).
+    """
 
     kind: MeasureKind
     column: str | None = None
+    value: exp.Expression | None = None
 
 
 KeyForm = Literal["column", "date_trunc", "extract", "case", "width_bucket", "floor"]
@@ -118,7 +126,8 @@ class OrderItem:
 
 @dataclass(frozen=True)
 class Plan:
-    """An accepted aggregate query over one policy table.
+    """An accepted aggregate query over one policy table (with the derived columns its measures
+    name added, see ``Measure.value``).
 
     ``where`` is a validated sqlglot condition over the table's exposed columns (unqualified
     ``exp.Column`` nodes named as in the policy) or None. ``having`` is a condition in which each

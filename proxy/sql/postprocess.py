@@ -237,6 +237,8 @@ def _rounding(node: exp.Expression) -> Decimal:
     if isinstance(node, exp.Round):
         places = node.args.get("decimals")
         return Decimal("0.5").scaleb(-int(constant(places))) if places is not None else Decimal("0.5")
+    if isinstance(node.this, exp.Column) or _integer_typed(node.this):
+        return Decimal(0)  # an output in its own type; an integer keeps its value in any cast
     target = node.args["to"]
     kind = CAST_TYPES.get(target.this)
     if kind in ("integer", "bigint"):
@@ -251,6 +253,8 @@ def _rounding(node: exp.Expression) -> Decimal:
 def _integer_typed(node: exp.Expression) -> bool:
     """Whether an operand is of an integer type (its division truncates)."""
     node = node.this if isinstance(node, exp.Paren) else node
+    if isinstance(node, exp.Cast) and isinstance(node.this, exp.Column):  # an output placeholder
+        return CAST_TYPES.get(node.args["to"].this) in ("integer", "bigint")
     if isinstance(node, exp.Cast):
         return CAST_TYPES.get(node.args["to"].this) in ("integer", "bigint")
     if isinstance(node, exp.Literal):

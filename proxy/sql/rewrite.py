@@ -25,6 +25,25 @@ finished aggregate to the domain list. Adding or removing one row changes one ce
 for a count and by at most ``M = max(|lo|, |hi|) / step`` for a sum, so the L1 sensitivity of the
 whole histogram is 1 (count) or M (sum), whatever the number of cells.
 
+Filtered measures and bounded values (``Measure.value``)
+-------------------------------------------------------
+``<aggregate> FILTER (WHERE c)`` counts or sums, per row, ``CASE WHEN c THEN v END`` instead of
+``v`` (COUNT(*) counts ``CASE WHEN c THEN 1 END``); ``c`` is checked and rebuilt as a WHERE
+condition, so it cannot fail on any row. It is a different measure, with the same sensitivity
+as the unfiltered one: what one row adds to it is either what it adds unfiltered or nothing
+(NULL adds nothing to SUM or COUNT), so a row still moves one cell by at most 1 (counts) or M
+(sums, clamped as before), and an individual's partials in each cell are at most its
+unfiltered ones in absolute value, so every per-individual argument below holds unchanged.
+COUNT(DISTINCT individual) FILTER counts an individual in a cell when one of its rows there
+passes ``c``: a subset of the cells it touches, still at most min(R, cells). A filtered sum has
+a bound of its own (its totals are of its own partials), never one computed from another
+measure's totals.
+
+SUM and AVG also take a per-row value whose range is fixed by the text: a boolean column cast to
+integer (0 or 1) or a CASE of integer literals over checked conditions (range: smallest to
+largest branch). The analyser gives it a derived integer column with that range, and it is
+clamped and counted like any integer column: M = max(|lo|, |hi|).
+
 Tables with individuals (``[individual]`` with ``most_rows``)
 -------------------------------------------------------------
 Neighbouring databases differ by all the rows of one individual (in every table of its
@@ -361,15 +380,20 @@ def _row_value(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> 
     column = policy.columns[measure.column]  # type: ignore[index]
     low, high = _unit_range(column)
     if column.kind == "integer":
-        return _clamp(_col(measure.column), low, high)  # type: ignore[arg-type]
-    clamped = _clamp_between(_col(measure.column), _decimal(column.low),  # type: ignore[arg-type]
-                             _decimal(column.high))
+        return _clamp(_measured(measure), low, high)
+    clamped = _clamp_between(_measured(measure), _decimal(column.low), _decimal(column.high))
     if _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
         return clamped
     # round() by name: sqlglot's Round node would add a per-row cast to double precision;
     # typed=True keeps PostgreSQL's own division (no cast).
     return exp.Anonymous(this="round", expressions=[
         exp.Div(this=clamped, expression=_decimal(column.unit), typed=True)])
+
+
+def _measured(measure: Measure) -> exp.Expression:
+    """What a measure counts or sums per row: its column, or its checked per-row value (a
+    bounded value or a FILTER's CASE, ``Measure.value``)."""
+    return measure.value.copy() if measure.value is not None else _col(measure.column)  # type: ignore[arg-type]
 
 
 def _decimal(value: object) -> exp.Expression:
@@ -391,7 +415,7 @@ def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
     if measure.kind == "count_rows":
         return exp.Count(this=exp.Star())
     if measure.kind == "count_values":
-        return exp.Count(this=_col(measure.column))  # type: ignore[arg-type]
+        return exp.Count(this=_measured(measure))
     if measure.kind == "sum":
         total: exp.Expression = exp.Sum(this=_row_value(policy, measure, exact))
         column = policy.columns[measure.column]  # type: ignore[index]
@@ -537,7 +561,11 @@ def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> ex
     measure units: COUNT for counts, the clamped sum in step units for sums, 1 for distinct
     individuals."""
     if measure.kind == "count_individuals":
-        return _num(1)
+        if measure.value is None:
+            return _num(1)
+        # FILTER: 1 when one of the individual's rows in the cell passes the condition.
+        return exp.Max(this=exp.Case(ifs=[exp.If(this=measure.value.copy(), true=_num(1))],
+                                     default=_num(0)))
     if measure.kind == "sum":
         return exp.cast(_aggregate(policy, measure, exact, finish=True), "numeric", copy=False)
     return _aggregate(policy, measure, exact)
@@ -581,7 +609,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     scaled = [f"{_scaled('q.r', bounds)} AS r_kept"]
     for n, measure in enumerate(plan.measures):
         if measure.kind == "count_individuals":
-            scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN 1 ELSE 0 END AS m{n}")
+            scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN q.m{n} ELSE 0 END AS m{n}")
         elif measure.kind == "sum":
             scaled.append(f"SIGN(q.m{n}) * {_scaled(f'ABS(q.m{n})', bounds)}"
                           f" AS m{n}")
