@@ -62,7 +62,7 @@ from proxy.errors import INTERNAL_ERROR, INVALID_PARAMETER_VALUE, QUERY_CANCELED
 from proxy.ledger import Ledger
 from proxy.policy import ColumnPolicy, Policies
 from proxy.sql.analyse import analyse, output_type
-from proxy.sql.domains import describe_key, key_label, key_type, key_values
+from proxy.sql.domains import describe_key, key_label, key_values
 from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan

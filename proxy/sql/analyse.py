@@ -36,7 +36,7 @@ import sqlglot
 import sqlglot.errors
 import sqlglot.expressions as exp
 
-from proxy.errors import (AMBIGUOUS_COLUMN, DATATYPE_MISMATCH, GROUPING_ERROR,
+from proxy.errors import (AMBIGUOUS_COLUMN, GROUPING_ERROR,
                           INSUFFICIENT_PRIVILEGE, INVALID_COLUMN_REFERENCE, INVALID_LIMIT,
                           INVALID_OFFSET, PROGRAM_LIMIT_EXCEEDED, STATEMENT_TOO_COMPLEX,
                           SYNTAX_ERROR, UNDEFINED_COLUMN, UNDEFINED_FUNCTION, UNDEFINED_TABLE,
@@ -50,8 +50,8 @@ from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narro
 from proxy.sql.limits import check_statement_text, check_tree
 from proxy.sql.limits import hint as limit_hint
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
-from proxy.sql.vocabulary import (CAST_TYPES, HAVING, SELECT, column_types, literal_type, rule,
-                                  sum_type)
+from proxy.sql.vocabulary import (CAST_TYPES, HAVING, SELECT, SQL_FAMILY, column_node, column_types,
+                                  literal_type, rule, sum_type)
 
 BUCKETS = tuple(TRUNC_UNITS)  # the date_trunc units a group key accepts
 
@@ -85,9 +85,6 @@ _WRITES = tuple(getattr(exp, name) for name in (
 _STRUCTURAL = (exp.Window, exp.Subquery, exp.Select, exp.Exists)  # refused whatever they hold
 _ACCEPTED_AGGREGATES = (exp.Count, exp.Sum, exp.Avg)
 _ASCII_LOWER = str.maketrans("ABCDEFGHIJKLMNOPQRSTUVWXYZ", "abcdefghijklmnopqrstuvwxyz")
-# The analysis type (as in proxy.sql.filters) of an output's PostgreSQL type.
-_TYPE_FAMILY = {"text": "text", "integer": "number", "bigint": "number", "numeric": "number",
-                "double precision": "number", "date": "date", "boolean": "boolean"}
 _SQL_TYPES = {name: kind for kind, name in CAST_TYPES.items()}
 _INTEGER_CASTS = (exp.DataType.Type.INT, exp.DataType.Type.BIGINT, exp.DataType.Type.SMALLINT)
 _LARGEST_BRANCH = 10 ** 15
@@ -425,7 +422,7 @@ class _Analysis:
             name, column = self._column(unparen(node.this))
             if column.kind != "boolean":
                 return None
-            value = exp.Cast(this=exp.Column(this=exp.to_identifier(name, quoted=True)),
+            value = exp.Cast(this=column_node(name),
                              to=exp.DataType(this=exp.DataType.Type.INT))
             return self._derive(f"{name}::integer", ColumnPolicy(kind="integer", range=[0, 1]), value)
         if not isinstance(node, exp.Case):
@@ -486,7 +483,7 @@ class _Analysis:
             return Measure("count_values", name, value)
         assert measure.column is not None
         source = measure.value if measure.value is not None else \
-            exp.Column(this=exp.to_identifier(measure.column, quoted=True))
+            column_node(measure.column)
         value = exp.Case(ifs=[exp.If(this=condition, true=source.copy())])
         name, _, _ = self._derive(f"{measure.column} {label}", self._columns()[measure.column], value)
         return Measure(measure.kind, name, value)
@@ -663,7 +660,7 @@ class _Analysis:
         """Output ``index`` typed for a clause; in the select list a number is cast to its own
         type, so that evaluation holds the Python type standing for it (int, Decimal, float)."""
         sql = self._output_sql_type(index)
-        family = _TYPE_FAMILY[sql]
+        family = SQL_FAMILY[sql]
         node: exp.Expression = _output_column(index)
         if clause == SELECT and family == "number":
             node = exp.Cast(this=node, to=exp.DataType(this=_SQL_TYPES[sql]))

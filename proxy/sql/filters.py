@@ -99,11 +99,11 @@ from proxy.errors import (DATATYPE_MISMATCH, GROUPING_ERROR, PROGRAM_LIMIT_EXCEE
 from proxy.policy import ColumnPolicy
 from proxy.sql.limits import DEFAULT_LIMITS, Limits, hint
 from proxy.sql.vocabulary import (CAST_TYPES, HAVING, KIND_FAMILY, SELECT, WHERE, chain_operands,
-                                  literal_type, promoted, rule)
+                                  clamp_node, column_node, date_node, literal_type, number_node,
+                                  promoted, rule)
 
 # Analysis types of expressions. "string" is an untyped quoted literal (PostgreSQL's unknown),
 # which takes the type of what it meets; "null" is the NULL literal.
-KIND_TYPE = KIND_FAMILY  # the name other modules import
 _TYPE_WORDS = {"text": "text", "number": "a number", "date": "a date", "boolean": "a boolean",
                "string": "a quoted text literal", "null": "NULL"}
 _TYPE_HINTS = {
@@ -231,11 +231,6 @@ def literal(node: exp.Expression) -> Typed | None:
                             "write dates as 'YYYY-MM-DD' or DATE 'YYYY-MM-DD'")
         return Typed(date_node(text), "date", literal=True)
     return None
-
-
-def date_node(text: str) -> exp.Expression:
-    """CAST('YYYY-MM-DD' AS DATE) as a fresh node."""
-    return exp.Cast(this=exp.Literal.string(text), to=exp.DataType(this=exp.DataType.Type.DATE))
 
 
 def unify(items: Sequence[Typed], what: str) -> str:
@@ -421,17 +416,6 @@ def _cast_numeric(node: exp.Expression) -> exp.Expression:
     return exp.Cast(this=node, to=exp.DataType(this=_NUMERIC))
 
 
-def number_node(value: Decimal | int) -> exp.Expression:
-    """A fresh numeric constant (a policy bound, a key argument; negative as unary minus)."""
-    value = Decimal(value)
-    node: exp.Expression = exp.Literal.number(format(abs(value), "f"))
-    return exp.Neg(this=node) if value < 0 else node
-
-
-def _column_ref(name: str) -> exp.Column:
-    return exp.Column(this=exp.to_identifier(name, quoted=True))
-
-
 def _clamped(name: str, column: ColumnPolicy) -> exp.Expression:
     """CASE WHEN c < lo THEN lo WHEN c > hi THEN hi ELSE round(c, places) END, every branch
     NUMERIC, ``places`` the column's scale (so a stored value's own scale cannot make one row's
@@ -439,15 +423,10 @@ def _clamped(name: str, column: ColumnPolicy) -> exp.Expression:
 
     The tests compare the column in its own type with the bound (coerced once, at planning).
     """
-    low, high = column.low, column.high
-    rounded = exp.Round(this=_cast_numeric(_column_ref(name)),
+    rounded = exp.Round(this=_cast_numeric(column_node(name)),
                         decimals=exp.Literal.number(_column_scale(column)))
-    return exp.Case(
-        ifs=[exp.If(this=exp.LT(this=_column_ref(name), expression=number_node(low)),
-                    true=_cast_numeric(number_node(low))),
-             exp.If(this=exp.GT(this=_column_ref(name), expression=number_node(high)),
-                    true=_cast_numeric(number_node(high)))],
-        default=rounded)
+    return clamp_node(column_node(name), number_node(column.low), number_node(column.high),
+                      bound=_cast_numeric, inside=rounded)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -538,10 +517,10 @@ class ExpressionChecker:
         name, column = self._resolve(node)
         kind = KIND_FAMILY[column.kind]
         if kind != "number":
-            return Typed(_column_ref(name), kind)
+            return Typed(column_node(name), kind)
         digits = max(_digits(column.low), _digits(column.high))
-        return Typed(_column_ref(name), "number", digits=digits, scale=_column_scale(column),
-                     as_numeric=lambda: _cast_numeric(_column_ref(name)),
+        return Typed(column_node(name), "number", digits=digits, scale=_column_scale(column),
+                     as_numeric=lambda: _cast_numeric(column_node(name)),
                      as_bounded=lambda: _clamped(name, column))
 
     # comparisons -----------------------------------------------------------------------------

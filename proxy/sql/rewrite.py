@@ -134,7 +134,7 @@ import sqlglot.expressions as exp
 
 from proxy.policy import ColumnPolicy, TablePolicy
 from proxy.sql.domains import cell_count, key_size, key_values
-from proxy.sql.filters import date_node
+from proxy.sql.vocabulary import clamp_node, column_node, number_node, value_node
 from proxy.sql.keys import key_expression
 from proxy.sql.plan import GroupKey, Measure, Plan
 
@@ -256,7 +256,7 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
 def _no_cells(plan: Plan) -> exp.Select:
     """A query of the answer's shape (ordinals, then measures) returning no row."""
     columns = [f"i{j}" for j in range(len(plan.keys))] + [f"m{n}" for n in range(len(plan.measures))]
-    return exp.Select().select(*[exp.alias_(_num(0), name, copy=False) for name in columns],
+    return exp.Select().select(*[exp.alias_(number_node(0), name, copy=False) for name in columns],
                                copy=False).where(exp.false(), copy=False)
 
 
@@ -314,40 +314,9 @@ def _unit_range(column: ColumnPolicy) -> tuple[int, int]:
 
 # ---- building blocks -------------------------------------------------------------------------
 
-def _ident(name: str) -> exp.Identifier:
-    return exp.to_identifier(name, quoted=True)
-
-
-def _col(name: str, table: str | None = None) -> exp.Column:
-    return exp.Column(this=_ident(name), table=exp.to_identifier(table) if table else None)
-
-
-def _num(value: int) -> exp.Expression:
-    literal = exp.Literal.number(abs(value))
-    return exp.Neg(this=literal) if value < 0 else literal
-
-
-def _literal(value: object) -> exp.Expression:
-    if isinstance(value, bool):
-        return exp.Boolean(this=value)
-    if isinstance(value, int):
-        return _num(value)
-    if isinstance(value, dt.date):
-        return date_node(value.isoformat())  # built directly: exp.cast parses its type name
-    if isinstance(value, Decimal):
-        return _decimal(value)
-    return exp.Literal.string(str(value))
-
-
 def _clamp(value: exp.Expression, low: int, high: int) -> exp.Expression:
-    return _clamp_between(value, _num(low), _num(high))
-
-
-def _clamp_between(value: exp.Expression, low: exp.Expression, high: exp.Expression) -> exp.Expression:
     """``value`` clamped to [low, high] on its own type, NULL kept as NULL (see the module notes)."""
-    return exp.Case(ifs=[exp.If(this=exp.LT(this=value, expression=low), true=low.copy()),
-                         exp.If(this=exp.GT(this=value.copy(), expression=high), true=high.copy())],
-                    default=value.copy())
+    return clamp_node(value, number_node(low), number_node(high))
 
 
 def _key_column(policy: TablePolicy, key: GroupKey) -> ColumnPolicy:
@@ -358,7 +327,7 @@ def _key_expression(policy: TablePolicy, key: GroupKey) -> exp.Expression:
     """The per-row value a key groups by: the column, or its guarded bucket (NULL outside the
     declared domain, matching no cell); a CASE key gives its label's ordinal (``keys``)."""
     if key.form == "column":
-        return _col(key.column)
+        return column_node(key.column)
     return key_expression(key, policy.columns[key.column], ordinals=True)
 
 
@@ -381,31 +350,25 @@ def _row_value(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> 
     low, high = _unit_range(column)
     if column.kind == "integer":
         return _clamp(_measured(measure), low, high)
-    clamped = _clamp_between(_measured(measure), _decimal(column.low), _decimal(column.high))
+    clamped = clamp_node(_measured(measure), number_node(column.low), number_node(column.high))
     if _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
         return clamped
     # round() by name: sqlglot's Round node would add a per-row cast to double precision;
     # typed=True keeps PostgreSQL's own division (no cast).
     return exp.Anonymous(this="round", expressions=[
-        exp.Div(this=clamped, expression=_decimal(column.unit), typed=True)])
+        exp.Div(this=clamped, expression=number_node(column.unit), typed=True)])
 
 
 def _measured(measure: Measure) -> exp.Expression:
     """What a measure counts or sums per row: its column, or its checked per-row value (a
     bounded value or a FILTER's CASE, ``Measure.value``)."""
-    return measure.value.copy() if measure.value is not None else _col(measure.column)  # type: ignore[arg-type]
-
-
-def _decimal(value: object) -> exp.Expression:
-    number = Decimal(str(value))
-    literal = exp.Literal.number(str(abs(number)))
-    return exp.Neg(this=literal) if number < 0 else literal
+    return measure.value.copy() if measure.value is not None else column_node(measure.column)  # type: ignore[arg-type]
 
 
 def _to_units(total: exp.Expression, column: ColumnPolicy) -> exp.Expression:
     """floor(total / step + 0.5): a finished sum in column units as an integer of steps."""
-    ratio = exp.Div(this=total, expression=_decimal(column.unit), typed=True)
-    return exp.Anonymous(this="floor", expressions=[exp.Add(this=ratio, expression=_decimal("0.5"))])
+    ratio = exp.Div(this=total, expression=number_node(column.unit), typed=True)
+    return exp.Anonymous(this="floor", expressions=[exp.Add(this=ratio, expression=number_node("0.5"))])
 
 
 def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
@@ -437,14 +400,14 @@ def _domain_source(policy: TablePolicy, key: GroupKey, index: int) -> exp.Expres
             and _consecutive(values):
         # Consecutive integers or days: v = first + i over generate_series(0, n - 1), rather
         # than a VALUES list of every value (date + integer is a date in PostgreSQL).
-        series = exp.Anonymous(this="generate_series", expressions=[_num(0), _num(len(values) - 1)])
+        series = exp.Anonymous(this="generate_series", expressions=[number_node(0), number_node(len(values) - 1)])
         inner = exp.Select().select(
-            exp.column("i"), exp.alias_(exp.Add(this=_literal(first), expression=exp.column("i")),
+            exp.column("i"), exp.alias_(exp.Add(this=value_node(first), expression=exp.column("i")),
                                          "v", copy=False), copy=False).from_(
             exp.Table(this=series, alias=exp.TableAlias(this=exp.to_identifier("s"),
                                                           columns=[exp.to_identifier("i")])), copy=False)
         return exp.Subquery(this=inner, alias=alias)
-    rows = [exp.Tuple(expressions=[_num(i), _num(i) if key.form == "case" else _literal(v)])
+    rows = [exp.Tuple(expressions=[number_node(i), number_node(i) if key.form == "case" else value_node(v)])
             for i, v in enumerate(values)]
     return exp.Values(expressions=rows, alias=alias)
 
@@ -504,7 +467,7 @@ def _finish(plan: Plan, aggregate: exp.Select, by_ordinal: bool) -> exp.Select:
     policy = plan.table
     outer = exp.Select().select(*[exp.column(f"i{j}", "c") for j in range(len(plan.keys))],
                        *[exp.alias_(exp.Coalesce(this=exp.column(f"m{n}", "a"),
-                                                 expressions=[_num(0)]), f"m{n}", copy=False)
+                                                 expressions=[number_node(0)]), f"m{n}", copy=False)
                          for n in range(len(plan.measures))], copy=False)
     outer = outer.from_(exp.Subquery(this=_cells_frame(plan),
                                      alias=exp.TableAlias(this=exp.to_identifier("c"))), copy=False)
@@ -532,14 +495,14 @@ def _in_domains(plan: Plan, grouped: exp.Select, alias: str) -> exp.Select:
 
 def _row_table_query(plan: Plan, exact: frozenset[str]) -> exp.Select:
     policy = plan.table
-    measures = [exp.alias_(exp.Coalesce(this=_aggregate(policy, m, exact), expressions=[_num(0)]),
+    measures = [exp.alias_(exp.Coalesce(this=_aggregate(policy, m, exact), expressions=[number_node(0)]),
                            f"m{n}", copy=False)
                 for n, m in enumerate(plan.measures)]
     if not plan.keys:
         return _filtered(plan, exp.Select().select(*measures, copy=False))
     keys = [exp.alias_(_key_expression(policy, k), f"k{j}", copy=False) for j, k in enumerate(plan.keys)]
     grouped = _filtered(plan, exp.Select().select(*keys, *measures, copy=False)).group_by(
-        *[_num(j + 1) for j in range(len(keys))], copy=False)
+        *[number_node(j + 1) for j in range(len(keys))], copy=False)
     return _finish(plan, grouped, by_ordinal=False)
 
 
@@ -562,10 +525,10 @@ def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> ex
     individuals."""
     if measure.kind == "count_individuals":
         if measure.value is None:
-            return _num(1)
+            return number_node(1)
         # FILTER: 1 when one of the individual's rows in the cell passes the condition.
-        return exp.Max(this=exp.Case(ifs=[exp.If(this=measure.value.copy(), true=_num(1))],
-                                     default=_num(0)))
+        return exp.Max(this=exp.Case(ifs=[exp.If(this=measure.value.copy(), true=number_node(1))],
+                                     default=number_node(0)))
     if measure.kind == "sum":
         return exp.cast(_aggregate(policy, measure, exact, finish=True), "numeric", copy=False)
     return _aggregate(policy, measure, exact)
@@ -589,14 +552,14 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     bound the clipped-away total, each individual capped."""
     policy = plan.table
     assert policy.individual is not None
-    who = exp.alias_(_col(policy.individual.column), "who", copy=False)
+    who = exp.alias_(column_node(policy.individual.column), "who", copy=False)
     keys = [exp.alias_(_key_expression(policy, k), f"k{j}", copy=False) for j, k in enumerate(plan.keys)]
     partials = [exp.alias_(exp.Count(this=exp.Star()), "r", copy=False)] + [
         exp.alias_(_partial(policy, m, exact), f"m{n}", copy=False)
         for n, m in enumerate(plan.measures)]
     per_individual = _filtered(plan, exp.Select().select(who, *keys, *partials, copy=False)).where(
-        exp.Not(this=exp.Is(this=_col(policy.individual.column), expression=exp.Null())),
-        copy=False).group_by(*[_num(j + 1) for j in range(len(keys) + 1)], copy=False)
+        exp.Not(this=exp.Is(this=column_node(policy.individual.column), expression=exp.Null())),
+        copy=False).group_by(*[number_node(j + 1) for j in range(len(keys) + 1)], copy=False)
     q = _in_domains(plan, per_individual, "p") if plan.keys else per_individual
     sum_bounds = [(j, measure_bounds.index(j)) for j, b in enumerate(bounds) if b.subject != "rows"]
     totals = ["who", "SUM(r) AS n_rows", "COUNT(*) AS touched"] + [

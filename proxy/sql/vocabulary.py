@@ -90,6 +90,58 @@ def sum_type(column: ColumnPolicy) -> str:
     return "bigint" if column_types(column).sql == "integer" else "numeric"
 
 
+# The analysis type of each PostgreSQL type an output or key can have.
+SQL_FAMILY = {"text": "text", "integer": "number", "bigint": "number", "numeric": "number",
+              "double precision": "number", "date": "date", "boolean": "boolean"}
+
+
+# ---------------------------------------------------------------------------------------------
+# Builders of fresh nodes for the backend: columns, constants and clamps, the same everywhere.
+
+def column_node(name: str, table: str | None = None) -> exp.Column:
+    """A policy column (quoted, so named exactly as in the policy), optionally qualified."""
+    return exp.Column(this=exp.to_identifier(name, quoted=True),
+                      table=exp.to_identifier(table) if table else None)
+
+
+def number_node(value: Decimal | int | str) -> exp.Expression:
+    """A fresh numeric constant written without exponent (negative as unary minus)."""
+    number = value if isinstance(value, Decimal) else Decimal(str(value))
+    node: exp.Expression = exp.Literal.number(format(abs(number), "f"))
+    return exp.Neg(this=node) if number < 0 else node
+
+
+def date_node(text: str) -> exp.Expression:
+    """CAST('YYYY-MM-DD' AS DATE) as a fresh node (built directly: exp.cast parses its type)."""
+    return exp.Cast(this=exp.Literal.string(text), to=exp.DataType(this=exp.DataType.Type.DATE))
+
+
+def value_node(value: object) -> exp.Expression:
+    """A fresh constant for a Python value: NULL, a boolean, a number, a date or text."""
+    if value is None:
+        return exp.Null()
+    if isinstance(value, bool):
+        return exp.Boolean(this=value)
+    if isinstance(value, (int, Decimal)):
+        return number_node(value)
+    if isinstance(value, dt.date):
+        return date_node(value.isoformat())
+    return exp.Literal.string(str(value))
+
+
+def clamp_node(value: exp.Expression, low: exp.Expression, high: exp.Expression, *,
+               bound: Callable[[exp.Expression], exp.Expression] = lambda node: node,
+               inside: exp.Expression | None = None) -> exp.Expression:
+    """``CASE WHEN value < low THEN bound(low) WHEN value > high THEN bound(high) ELSE inside
+    END`` (``inside`` defaults to the value): NULL stays NULL, unlike LEAST/GREATEST, and NaN
+    sorts above every number in PostgreSQL, so it clamps to high."""
+    return exp.Case(ifs=[exp.If(this=exp.LT(this=value.copy(), expression=low.copy()),
+                                true=bound(low.copy())),
+                         exp.If(this=exp.GT(this=value.copy(), expression=high.copy()),
+                                true=bound(high.copy()))],
+                    default=(inside if inside is not None else value).copy())
+
+
 # ---------------------------------------------------------------------------------------------
 # Numeric types of expressions evaluated in the proxy (the select list).
 
