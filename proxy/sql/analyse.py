@@ -13,7 +13,14 @@ sqlglot's PostgreSQL dialect and must be exactly one SELECT of the accepted shap
   indistinguishable from an absent one.
 - aggregates: COUNT(*), COUNT(col), SUM(col) and AVG(col) of integer or number columns,
   COUNT(DISTINCT <individual column>) on tables with [individual]. Their measures are
-  deduplicated (AVG(x) = SUM(x) / COUNT(x) shares the sum of x with SUM(x)).
+  deduplicated (AVG(x) = SUM(x) / COUNT(x) shares the sum of x with SUM(x)). SUM, AVG and COUNT
+  also take a bounded per-row value (a boolean column cast to integer, a CASE of integer
+  literals over WHERE-checked conditions), and every aggregate takes FILTER (WHERE <condition>)
+  with the condition checked as WHERE: both become measures over a derived column
+  (``Measure.value``; their sensitivity is argued in ``proxy.sql.rewrite``).
+- select-list expressions: + - * /, round, casts to number types and coalesce over aggregates
+  and keys, checked by ``proxy.sql.filters.ExpressionChecker`` for the select list and computed
+  on the noisy row by ``proxy.sql.postprocess`` (never by the backend).
 - keys: columns with a declared domain (a date column groups by day) and buckets of one column
   (date_trunc, extract/date_part, CASE over literal conditions, width_bucket, floor(x / w) * w),
   read by ``proxy.sql.keys``. GROUP BY names them by expression, select alias or position
@@ -21,8 +28,10 @@ sqlglot's PostgreSQL dialect and must be exactly one SELECT of the accepted shap
   domain narrowed by the WHERE literals on its column; the product of their numbers may not
   exceed ``most_cells`` (refused with 54000 and a hint, never coarsened).
 - WHERE: checked and rebuilt by ``proxy.sql.filters`` so that no row value can raise.
-- HAVING and ORDER BY work on noisy outputs in post-processing; an aggregate or key they name
-  that is not selected becomes a hidden output (an aggregate costs epsilon like any measure).
+- HAVING and ORDER BY work on noisy outputs in post-processing; an aggregate or key they (or a
+  select-list expression) name that is not selected becomes a hidden output (an aggregate
+  costs epsilon like any measure). WHERE, HAVING and the select list share one vocabulary of
+  expression nodes (``proxy.sql.vocabulary``), each node saying which clauses accept it.
 
 Everything else is refused, failing closed: the SELECT is checked against an allow-list of its
 clauses, and every expression node against the forms each clause accepts.
