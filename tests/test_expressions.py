@@ -264,3 +264,14 @@ def test_explain_states_the_sensitivity_of_filtered_and_bounded_measures(make_en
     assert items['measure count(* FILTER (WHERE "smoker"))'].startswith("sensitivity 1,")
     assert items['measure sum(age FILTER (WHERE "ward" = \'north\'))'].startswith("sensitivity 100,")
     assert items["measure sum(CASE WHEN age > 50 THEN 3 ELSE -2 END)"].startswith("sensitivity 3,")
+
+
+def test_having_and_order_by_name_filtered_aggregates() -> None:
+    plan = analyse("SELECT district, COUNT(*) FILTER (WHERE has_garden) AS gardens "
+                   "FROM households GROUP BY district "
+                   "HAVING COUNT(*) FILTER (WHERE has_garden) > 1 "
+                   "ORDER BY COUNT(*) FILTER (WHERE has_garden) DESC", POLICIES, "planner")
+    # One measure: the select list, HAVING and ORDER BY name the same filtered count.
+    assert len(plan.measures) == 1 and plan.order_by[0].output == 1
+    rows = postprocess(plan, [["Northbank", 1], ["Old Mill", 5], ["Harbourside", 3]])
+    assert rows == [("Old Mill", 5), ("Harbourside", 3)]

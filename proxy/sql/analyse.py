@@ -720,7 +720,7 @@ class _Analysis:
                 return matches[0]
         if isinstance(node, _STRUCTURAL):
             raise refuse_expression(node, "ORDER BY", ORDER_HINT)
-        if isinstance(node, exp.AggFunc):
+        if isinstance(node, (exp.AggFunc, exp.Filter)):
             return self._output_for_aggregate(self._aggregate(node))
         if is_key_expression(node) and not _holds_aggregate(node):
             return self._output_for_key(node)
