@@ -579,8 +579,9 @@ def _measure_unit(plan: Plan, measure: Measure) -> Decimal:
 
 def _measure_label(measure: Measure) -> str:
     """A measure as EXPLAIN names it (a derived column's name says its value or FILTER)."""
-    if measure.kind == "count_individuals" and measure.value is not None:
-        return f"count(distinct individual) FILTER (WHERE {measure.value.sql(dialect='postgres')})"
+    if measure.kind in ("count_rows", "count_individuals") and measure.where is not None:
+        what = "*" if measure.kind == "count_rows" else "distinct individual"
+        return f"count({what}) FILTER (WHERE {measure.where.sql(dialect='postgres')})"
     return {"count_rows": "count(*)", "count_values": f"count({measure.column})",
             "sum": f"sum({measure.column})",
             "count_individuals": "count(distinct individual)"}[measure.kind]

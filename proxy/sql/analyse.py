@@ -482,20 +482,13 @@ class _Analysis:
         return _Aggregate(base.kind, measures, measures[0].column, base.name)
 
     def _filter_measure(self, measure: Measure, condition: exp.Expression) -> Measure:
-        label = f"FILTER (WHERE {condition.sql(dialect='postgres')})"
-        if measure.kind == "count_individuals":
-            return Measure("count_individuals", value=condition)
-        if measure.kind == "count_rows":
-            value = exp.Case(ifs=[exp.If(this=condition, true=exp.Literal.number(1))])
-            name, policy, _ = self._derive(f"* {label}",
-                                           ColumnPolicy(kind="integer", range=[1, 1]), value)
-            return Measure("count_values", name, value)
+        if measure.kind in ("count_rows", "count_individuals"):
+            return replace(measure, where=condition)
         assert measure.column is not None
-        source = measure.value if measure.value is not None else \
-            column_node(measure.column)
-        value = exp.Case(ifs=[exp.If(this=condition, true=source.copy())])
-        name, _, _ = self._derive(f"{measure.column} {label}", self._columns()[measure.column], value)
-        return Measure(measure.kind, name, value)
+        name, _, _ = self._derive(f"{measure.column} FILTER (WHERE {condition.sql(dialect='postgres')})",
+                                  self._columns()[measure.column], condition)
+        source = measure.value if measure.value is not None else column_node(measure.column)
+        return replace(measure, column=name, value=source, where=condition)
 
     def _derive(self, name: str, policy: ColumnPolicy,
                 value: exp.Expression) -> tuple[str, ColumnPolicy, exp.Expression]:

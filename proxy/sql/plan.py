@@ -32,16 +32,19 @@ OutputKind = Literal["key", "count", "sum", "avg", "expression"]
 class Measure:
     """One noisy integer per cell. ``column`` is None for ``count_rows`` and ``count_individuals``.
 
-    ``value``, when set, is the checked per-row SQL counted or summed instead of the column: a
-    bounded value (a boolean cast to integer, a CASE of integer literals) or a FILTER's
-    ``CASE WHEN <condition> THEN <value> END``; ``column`` then names a derived column of
-    ``Plan.table`` whose policy gives the value's range and step. For ``count_individuals`` it
-    is the FILTER condition (an individual counts in a cell when one of its rows passes it).
+    ``value``, when set, is the checked per-row SQL counted or summed instead of the column (a
+    bounded value: a boolean cast to integer, a CASE of integer literals); ``where`` is a
+    FILTER's checked condition: only rows where it holds count. A measure with either names
+    in ``column`` a derived column of ``Plan.table`` (its policy gives the value's range and
+    step; a filtered measure's is its column's, under a name of its own, so that it gets
+    contribution bounds of its own). ``count_rows`` and ``count_individuals`` take ``where``
+    without a column (an individual counts in a cell when one of its rows there passes it).
     """
 
     kind: MeasureKind
     column: str | None = None
     value: exp.Expression | None = None
+    where: exp.Expression | None = None
 
 
 KeyForm = Literal["column", "date_trunc", "extract", "case", "width_bucket", "floor"]

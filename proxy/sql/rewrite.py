@@ -27,8 +27,9 @@ whole histogram is 1 (count) or M (sum), whatever the number of cells.
 
 Filtered measures and bounded values (``Measure.value``)
 -------------------------------------------------------
-``<aggregate> FILTER (WHERE c)`` counts or sums, per row, ``CASE WHEN c THEN v END`` instead of
-``v`` (COUNT(*) counts ``CASE WHEN c THEN 1 END``); ``c`` is checked and rebuilt as a WHERE
+``<aggregate> FILTER (WHERE c)`` (``Measure.where``) counts or sums, per row, ``CASE WHEN c THEN
+v END`` instead of ``v``, v already clamped (COUNT(*) counts ``CASE WHEN c THEN 1 END``); ``c``
+is checked and rebuilt as a WHERE
 condition, so it cannot fail on any row. It is a different measure, with the same sensitivity
 as the unfiltered one: what one row adds to it is either what it adds unfiltered or nothing
 (NULL adds nothing to SUM or COUNT), so a row still moves one cell by at most 1 (counts) or M
@@ -345,24 +346,32 @@ def _in_column_units(column: ColumnPolicy, name: str, exact: frozenset[str]) -> 
 
 def _row_value(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> exp.Expression:
     """What one row contributes to a sum: clamped on the column's own type first (so nothing
-    after it can overflow), then, unless summed in column units, rounded to step units."""
+    after it can overflow), then, unless summed in column units, rounded to step units; NULL
+    for a row its FILTER condition does not pass."""
     column = policy.columns[measure.column]  # type: ignore[index]
     low, high = _unit_range(column)
     if column.kind == "integer":
-        return _clamp(_measured(measure), low, high)
+        return _filtered_row(measure, _clamp(_measured(measure), low, high))
     clamped = clamp_node(_measured(measure), number_node(column.low), number_node(column.high))
     if _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
-        return clamped
+        return _filtered_row(measure, clamped)
     # round() by name: sqlglot's Round node would add a per-row cast to double precision;
     # typed=True keeps PostgreSQL's own division (no cast).
-    return exp.Anonymous(this="round", expressions=[
-        exp.Div(this=clamped, expression=number_node(column.unit), typed=True)])
+    return _filtered_row(measure, exp.Anonymous(this="round", expressions=[
+        exp.Div(this=clamped, expression=number_node(column.unit), typed=True)]))
 
 
 def _measured(measure: Measure) -> exp.Expression:
     """What a measure counts or sums per row: its column, or its checked per-row value (a
-    bounded value or a FILTER's CASE, ``Measure.value``)."""
+    bounded value, ``Measure.value``)."""
     return measure.value.copy() if measure.value is not None else column_node(measure.column)  # type: ignore[arg-type]
+
+
+def _filtered_row(measure: Measure, value: exp.Expression) -> exp.Expression:
+    """``value`` where the measure's FILTER condition holds, NULL elsewhere (adds nothing)."""
+    if measure.where is None:
+        return value
+    return exp.Case(ifs=[exp.If(this=measure.where.copy(), true=value)])
 
 
 def _to_units(total: exp.Expression, column: ColumnPolicy) -> exp.Expression:
@@ -376,9 +385,10 @@ def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
     """The row-level aggregate computing ``measure`` over one group of rows; with ``finish``
     False a sum kept in column units is left unconverted (per-individual partials)."""
     if measure.kind == "count_rows":
-        return exp.Count(this=exp.Star())
+        return exp.Count(this=exp.Star() if measure.where is None
+                         else _filtered_row(measure, number_node(1)))
     if measure.kind == "count_values":
-        return exp.Count(this=_measured(measure))
+        return exp.Count(this=_filtered_row(measure, _measured(measure)))
     if measure.kind == "sum":
         total: exp.Expression = exp.Sum(this=_row_value(policy, measure, exact))
         column = policy.columns[measure.column]  # type: ignore[index]
@@ -524,10 +534,10 @@ def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> ex
     measure units: COUNT for counts, the clamped sum in step units for sums, 1 for distinct
     individuals."""
     if measure.kind == "count_individuals":
-        if measure.value is None:
+        if measure.where is None:
             return number_node(1)
         # FILTER: 1 when one of the individual's rows in the cell passes the condition.
-        return exp.Max(this=exp.Case(ifs=[exp.If(this=measure.value.copy(), true=number_node(1))],
+        return exp.Max(this=exp.Case(ifs=[exp.If(this=measure.where.copy(), true=number_node(1))],
                                      default=number_node(0)))
     if measure.kind == "sum":
         return exp.cast(_aggregate(policy, measure, exact, finish=True), "numeric", copy=False)
