@@ -45,3 +45,16 @@ def test_psycopg_houses_share_with_a_garden(demo_proxy: RunningProxy) -> None:
         [(share, larger)] = cursor.fetchall()
     assert share is None or 0 <= share <= 1
     assert isinstance(larger, int)
+
+
+def test_pandas_reads_post_processed_columns(demo_proxy: RunningProxy) -> None:
+    sqlalchemy = pytest.importorskip("sqlalchemy")
+    pandas = pytest.importorskip("pandas")
+    engine = sqlalchemy.create_engine(demo_proxy.url(scheme="postgresql+psycopg"))
+    try:
+        frame = pandas.read_sql(QUERY, engine)
+    finally:
+        engine.dispose()
+    assert list(frame.columns) == ["district", "mean", "n", "cubic_metres", "per_reading", "heavy"]
+    assert str(frame["n"].dtype) == "int64" and str(frame["heavy"].dtype) == "int64"
+    assert len(frame) == 3
