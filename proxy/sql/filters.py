@@ -1,5 +1,10 @@
 """Safe WHERE conditions: checked and rewritten so that no row value can make the backend raise.
 
+``ExpressionChecker`` walks one clause by the rules of ``proxy.sql.vocabulary`` (which node is
+accepted where, and its type rule): WHERE and FILTER conditions, rebuilt for the backend under
+the rules below, and HAVING and select-list expressions, rebuilt over output placeholders and
+evaluated on noisy rows in the proxy (``proxy.sql.postprocess``), where no row is read.
+
 Why: an error raised while PostgreSQL evaluates a row is a side channel. "Division by zero" for
 one filter and not for another tells the analyst that some row holds a zero, outside every
 privacy bound. So a condition is accepted only when every operator and function in it is total

@@ -59,8 +59,9 @@ def postprocess(plan: Plan, rows: list[list]) -> list[tuple]:
         if len(row) != width:
             raise ValueError(f"a row holds {len(row)} values; the plan has {width} outputs")
     with decimal.localcontext(LENIENT):
-        kept = [_computed(plan, row) for row in rows] if any(
-            o.kind == "expression" for o in plan.outputs) else list(rows)
+        expressions = [(i, compile_condition(o.expression, width), o.type)
+                       for i, o in enumerate(plan.outputs) if o.expression is not None]
+        kept = [_computed(expressions, row) for row in rows] if expressions else list(rows)
         if plan.having is not None:
             predicate = compile_condition(plan.having, width)
             kept = [row for row in kept if predicate(row) is True]
@@ -75,14 +76,12 @@ def postprocess(plan: Plan, rows: list[list]) -> list[tuple]:
     return [tuple(row[i] for i in visible) for row in kept]
 
 
-def _computed(plan: Plan, row: list) -> list:
-    """The row with each expression output evaluated from the outputs it names (which are
-    never expressions themselves), in its output type."""
+def _computed(expressions: list[tuple[int, Evaluator, str | None]], row: list) -> list:
+    """The row with each expression output (index, evaluator, type) evaluated from the outputs
+    it names (which are never expressions themselves), in its output type."""
     row = list(row)
-    for index, output in enumerate(plan.outputs):
-        if output.kind == "expression":
-            assert output.expression is not None and output.type is not None
-            row[index] = fits(compile_condition(output.expression, len(row))(row), output.type)
+    for index, evaluate, sql_type in expressions:
+        row[index] = fits(evaluate(row), sql_type or "")
     return row
 
 
