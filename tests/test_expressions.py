@@ -67,6 +67,9 @@ EXPRESSIONS = [
     "-SUM(occupants) * 2 + 1",
     "SUM(occupants) - SUM(area)",
     "(COUNT(*) + 1) * 2.5",
+    "SUM(occupants) * 1e2",
+    "COUNT(*)::int + 3000000000",
+    "COUNT(*)::int * 2",
 ]
 
 

@@ -164,7 +164,7 @@ def promoted(types: Sequence[str]) -> str:
 def literal_type(value: Decimal) -> str:
     """The type PostgreSQL gives a numeric literal as written: integer when it has no point and
     fits 32 bits, bigint when it fits 64, else numeric (documentation, "Numeric Constants")."""
-    if value.as_tuple().exponent == 0 or (value == value.to_integral_value() and "." not in str(value)):
+    if value.as_tuple().exponent == 0:  # digits only: 1e2 and 5.0 are numeric
         number = int(value)
         if _INT4[0] <= number <= _INT4[1]:
             return "integer"
