@@ -66,7 +66,7 @@ from proxy.sql.domains import describe_key, key_label, key_values
 from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
-from proxy.sql.postprocess import carried_accuracy, postprocess
+from proxy.sql.postprocess import carried_accuracy, postprocess, written_expression
 from proxy.spark_backend import SparkBackend, is_spark_dsn
 from proxy.sql.rewrite import BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, loss_cap, rewrite
 
@@ -363,6 +363,11 @@ class Engine:
                          f"sensitivity {at_most}{_show(sensitivity * unit)}, noise scale "
                          f"{at_most}{_show(scale * Fraction(unit))}, "
                          f"95% bound {at_most}±{_show(noise.bound95(scale) * unit)}"))
+        for output in plan.visible_outputs:
+            if output.expression is not None:
+                rows.append((f"output {output.name}",
+                             f"computed in the proxy on the noisy answer: "
+                             f"{written_expression(plan, output.expression)}"))
         rows.append(("backend sql", rewritten.sql))
         return _explain_answer(rows, form, remaining=self.ledger.remaining(analyst),
                                table=plan.table.table)

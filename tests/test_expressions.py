@@ -267,6 +267,11 @@ def test_explain_states_the_sensitivity_of_filtered_and_bounded_measures(make_en
     assert items['measure count(*) FILTER (WHERE "smoker")'].startswith("sensitivity 1,")
     assert items['measure sum(age FILTER (WHERE "ward" = \'north\'))'].startswith("sensitivity 100,")
     assert items["measure sum(CASE WHEN age > 50 THEN 3 ELSE -2 END)"].startswith("sensitivity 3,")
+    explained = engine.explain("tester", "SELECT round(SUM(age) / COUNT(*)::numeric, 1) AS mean "
+                                         "FROM people")
+    items = {row[0]: row[1] for row in explained.rows}
+    assert items["output mean"] == ('computed in the proxy on the noisy answer: '
+                                    'ROUND("sum" / CAST("count" AS DECIMAL), 1)')
 
 
 def test_having_and_order_by_name_filtered_aggregates() -> None:

@@ -260,3 +260,14 @@ def _integer_typed(node: exp.Expression) -> bool:
         return not node.is_string and isinstance(constant(node), int)
     return isinstance(node, (exp.Add, exp.Sub, exp.Mul, exp.Div, exp.Neg)) and all(
         _integer_typed(part) for part in (node.this, node.args.get("expression") or node.this))
+
+
+def written_expression(plan: Plan, node: exp.Expression) -> str:
+    """An expression over outputs as SQL naming them (for EXPLAIN): each placeholder, and the
+    cast of it to its own type, written as the output's name."""
+    def named(current: exp.Expression) -> exp.Expression:
+        inner = current.this if isinstance(current, exp.Cast) else current
+        if isinstance(inner, exp.Column) and inner.name.startswith(output_ref(0)[:-1]):
+            return exp.column(plan.outputs[_ref_index(inner)].name, quoted=True)
+        return current
+    return node.transform(named).sql(dialect="postgres")
