@@ -29,7 +29,7 @@ import datetime as dt
 import decimal
 import math
 import operator
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from decimal import ROUND_HALF_EVEN, ROUND_HALF_UP, Decimal
 from fractions import Fraction
 from typing import Any, Callable, Sequence
@@ -57,31 +57,28 @@ _INT4 = (-(2 ** 31), 2 ** 31 - 1)
 _INT8 = (-(2 ** 63), 2 ** 63 - 1)
 # Categories: strings or enums for categories, numbers for integers and numbers, dates and
 # times for dates (PostgreSQL documentation, "pg_type": typcategory codes S, E, N, D, B).
-_FIXED_TYPES = {
+_INTEGER = KindTypes("number", "integer", int, frozenset("N"))
+_KIND_TYPES = {
     "category": KindTypes("text", "text", str, frozenset("SE")),
+    "integer": _INTEGER,  # bigint when its declared range needs 64 bits (column_types)
     "number": KindTypes("number", "numeric", Decimal, frozenset("N")),
     "date": KindTypes("date", "date", dt.date, frozenset("D")),
     "boolean": KindTypes("boolean", "boolean", bool, frozenset("B")),
 }
-# The analysis type of each kind (integer and number are both numbers).
-KIND_FAMILY = {"category": "text", "integer": "number", "number": "number", "date": "date",
-               "boolean": "boolean"}
+# The analysis type of each kind (integer and number are both numbers), and the PostgreSQL type
+# categories a column of the kind may sit on (serve and check refuse others).
+KIND_FAMILY = {kind: types.family for kind, types in _KIND_TYPES.items()}
+KIND_CATEGORIES = {kind: types.categories for kind, types in _KIND_TYPES.items()}
 
 
 def column_types(column: ColumnPolicy) -> KindTypes:
     """The one answer to "what type is this column": an integer column is integer when its
     declared range fits 32 bits, else bigint (as the mirror declares it)."""
     if column.kind != "integer":
-        return _FIXED_TYPES[column.kind]
+        return _KIND_TYPES[column.kind]
     low, high = column.range or (0, 0)
     fits = _INT4[0] <= int(low) and int(high) <= _INT4[1]
-    return KindTypes("number", "integer" if fits else "bigint", int, frozenset("N"))
-
-
-# Which PostgreSQL type categories each column kind may sit on (serve and check refuse others).
-KIND_CATEGORIES = {kind: (_FIXED_TYPES.get(kind) or KindTypes("number", "integer", int,
-                                                                frozenset("N"))).categories
-                   for kind in KIND_FAMILY}
+    return _INTEGER if fits else replace(_INTEGER, sql="bigint")
 
 
 def sum_type(column: ColumnPolicy) -> str:
