@@ -58,3 +58,17 @@ def test_pandas_reads_post_processed_columns(demo_proxy: RunningProxy) -> None:
     assert list(frame.columns) == ["district", "mean", "n", "cubic_metres", "per_reading", "heavy"]
     assert str(frame["n"].dtype) == "int64" and str(frame["heavy"].dtype) == "int64"
     assert len(frame) == 3
+
+
+def test_psql_describes_and_answers_post_processed_columns(demo_proxy: RunningProxy) -> None:
+    from tests.test_clients import psql, table_rows
+
+    described = psql(demo_proxy, stdin=QUERY + " \\gdesc\n")  # Describe only: nothing charged
+    assert table_rows(described.stdout) == [
+        ["Column", "Type"], ["district", "text"], ["mean", "numeric"], ["n", "integer"],
+        ["cubic_metres", "numeric"], ["per_reading", "numeric"], ["heavy", "bigint"]]
+    done = psql(demo_proxy, "-c", QUERY)
+    assert done.returncode == 0, done.stderr
+    header, *rows = table_rows(done.stdout)
+    assert header == ["district", "mean", "n", "cubic_metres", "per_reading", "heavy"]
+    assert len(rows) == 3 and "NOTICE:  this answer spent epsilon" in done.stderr
