@@ -68,13 +68,13 @@ from proxy.errors import (INTERNAL_ERROR, INVALID_PARAMETER_VALUE, PROGRAM_LIMIT
                           QUERY_CANCELED, HushError)
 from proxy.ledger import Ledger, StoredAnswer
 from proxy.policy import ColumnPolicy, Policies
-from proxy.sql.analyse import analyse
-from proxy.sql.domains import describe_key, key_label, key_type, key_values
+from proxy.sql.analyse import analyse, output_type
+from proxy.sql.domains import describe_key, key_label, key_values
 from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import PERCENTILE_KINDS, SPREAD_KINDS, Measure, Output, Plan
 from proxy.sql.public import KIND_TYPES, PublicRead, read_sql
-from proxy.sql.postprocess import postprocess
+from proxy.sql.postprocess import carried_accuracy, postprocess, written_expression
 from proxy.sql import statement as slots
 from proxy.sql.statement import BoundStatement
 from proxy.spark_backend import SparkBackend, is_spark_dsn
@@ -557,10 +557,15 @@ class Engine:
             unit = _measure_unit(plan, measure)
             scale = Fraction(sensitivity) / Fraction(split.measure)
             at_most = "at most " if chosen else ""
-            rows.append((f"measure {_measure_label(measure.kind, measure.column)}",
+            rows.append((f"measure {_measure_label(measure)}",
                          f"sensitivity {at_most}{_show(sensitivity * unit)}, noise scale "
                          f"{at_most}{_show(scale * Fraction(unit))}, "
                          f"95% bound {at_most}±{_show(noise.bound95(scale) * unit)}"))
+        for output in plan.visible_outputs:
+            if output.expression is not None:
+                rows.append((f"output {output.name}",
+                             f"computed in the proxy on the noisy answer: "
+                             f"{written_expression(plan, output.expression)}"))
         rows.append(("stored answer", _stored_text(stored, fresh)))
         rows.append(("backend sql", self.backend.sent_sql(rewritten.sql)))
         return _explain_answer(rows, form, remaining=self.ledger.remaining(analyst),
@@ -812,10 +817,14 @@ class Engine:
                          for o in plan.outputs])
         clipping = [None if not rewritten.bounds else clip_uppers[rewritten.measure_bounds[n]]
                     for n in range(measure_count)]
-        accuracy = [_accuracy(plan, o, split.measure, rewritten.sensitivities(values), scales,
+        parts = {i: _accuracy(plan, o, split.measure, rewritten.sensitivities(values), scales,
                               bounds, noisy, clipping)
-                    for o in plan.outputs if o.visible and o.kind != "key"]
-        return Answer(columns=_answer_columns(plan), rows=postprocess(plan, rows), epsilon=epsilon,
+                 for i, o in enumerate(plan.outputs) if o.kind not in ("key", "expression")}
+        accuracy = [parts[i] if o.kind != "expression" else carried_accuracy(plan, i, parts)
+                    for i, o in enumerate(plan.outputs) if o.visible and o.kind != "key"]
+        accuracy = [a for a in accuracy if a is not None]
+        return Answer(columns=_answer_columns(plan),
+                      rows=postprocess(plan, rows), epsilon=epsilon,
                       remaining=Decimal(0), accuracy=accuracy,
                       tables=_charged_tables(plan), charge_id=charge,
                       notes=_answer_notes(plan, rewritten, values))
@@ -872,7 +881,7 @@ def _selection_line(plan: Plan, rewritten: Rewritten, measure: Measure, sensitiv
     share = Fraction(split.measure) / percentiles
     at_most = "at most " if chosen else ""
     within = selection.rank_bound95(rewritten.buckets, share, sensitivity)
-    return (f"histogram {_measure_label(measure.kind, measure.column)}",
+    return (f"histogram {_measure_label(measure)}",
             f"{rewritten.buckets} values per cell, never released; sensitivity {at_most}"
             f"{sensitivity} (rows); each of {percentiles} percentile(s) chosen by the exponential "
             f"mechanism with epsilon {_show(share)}: 95% within ±{at_most}{within} ranks")
@@ -1042,11 +1051,16 @@ def _measure_unit(plan: Plan, measure: Measure) -> Decimal:
         else Decimal(1)  # type: ignore[index]
 
 
-def _measure_label(kind: str, column: str | None) -> str:
+def _measure_label(measure: Measure) -> str:
+    """A measure as EXPLAIN names it (a derived column's name says its value or FILTER)."""
+    if measure.kind in ("count_rows", "count_individuals") and measure.where is not None:
+        what = "*" if measure.kind == "count_rows" else "distinct individual"
+        return f"count({what}) FILTER (WHERE {measure.where.sql(dialect='postgres')})"
+    column = measure.column
     return {"count_rows": "count(*)", "count_values": f"count({column})", "sum": f"sum({column})",
             "count_individuals": "count(distinct individual)",
             "centred_sum": f"sum({column} - centre)",
-            "centred_squares": f"sum(({column} - centre)^2)"}[kind]
+            "centred_squares": f"sum(({column} - centre)^2)"}[measure.kind]
 
 
 def _show(value: Fraction | Decimal | int) -> str:
@@ -1058,21 +1072,14 @@ def _show(value: Fraction | Decimal | int) -> str:
 
 
 def _output_type(plan: Plan, output: Output) -> ColumnType:
-    if output.kind == "key":
-        key = plan.keys[output.key]  # type: ignore[index]
-        return key_type(plan.table.columns[key.column], key)
-    if output.kind == "count":
-        return "bigint"
-    if output.kind in ("sum", "percentile_disc"):
-        column = plan.table.columns[plan.measures[output.measures[0]].column]  # type: ignore[index]
-        if output.kind == "percentile_disc" and column.kind == "integer":
-            return "integer"
-        return "bigint" if column.kind == "integer" else "numeric"
-    return "double precision"
+    return output_type(plan.table, plan.keys, plan.measures, output)  # type: ignore[return-value]
 
 
 def _output_value(plan: Plan, output: Output, cell: tuple[Any, ...], measures: list[int]) -> Value:
-    """One output of one cell from its noisy measures (post-processing only)."""
+    """One output of one cell from its noisy measures (post-processing only); expressions are
+    computed from the other outputs by ``postprocess``."""
+    if output.kind == "expression":
+        return None
     if output.kind == "key":
         return cell[output.key]  # type: ignore[index]
     first = measures[output.measures[0]]

@@ -21,19 +21,12 @@ import psycopg
 
 from proxy.errors import CANNOT_CONNECT, CONFIG_FILE_ERROR, HushError
 from proxy.policy import Policies
+from proxy.sql.vocabulary import KIND_CATEGORIES
 
 log = logging.getLogger("hushql.config")
 
-# Which PostgreSQL type categories (pg_type.typcategory) each column kind may sit on: strings or
-# enums for categories, numbers for integers and numbers, dates and times for dates (PostgreSQL
-# documentation, "pg_type": typcategory codes S, E, N, D, B).
-KIND_TYPE_CATEGORIES: dict[str, frozenset[str]] = {
-    "category": frozenset("SE"),
-    "integer": frozenset("N"),
-    "number": frozenset("N"),
-    "date": frozenset("D"),
-    "boolean": frozenset("B"),
-}
+# Which PostgreSQL type categories (pg_type.typcategory) each column kind may sit on.
+KIND_TYPE_CATEGORIES: dict[str, frozenset[str]] = KIND_CATEGORIES
 
 
 def policy_digest(directory: Path) -> str:

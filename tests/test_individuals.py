@@ -40,6 +40,17 @@ QUERIES = [
     ("people", "SELECT VARIANCE(age), STDDEV(weight) FROM people"),
     ("people", "SELECT ward, percentile_disc(0.3) WITHIN GROUP (ORDER BY weight) FROM people "
                "GROUP BY ward"),
+    # FILTER and bounded values: a filtered sum named before the unfiltered one of the same
+    # column gets a bound of its own (never one computed from another measure's totals).
+    ("visits", "SELECT ward, SUM(minutes) FILTER (WHERE fee > 20), SUM(minutes) FROM visits "
+               "GROUP BY ward"),
+    ("visits", "SELECT ward, SUM(minutes) FILTER (WHERE fee > 20), SUM(minutes), "
+               "COUNT(*) FILTER (WHERE minutes > 30), "
+               "COUNT(DISTINCT person_id) FILTER (WHERE fee > 10) FROM visits GROUP BY ward"),
+    ("visits", "SELECT ward, AVG(CASE WHEN minutes > 30 THEN 1 ELSE 0 END), "
+               "SUM(CASE WHEN fee > 40 THEN 3 ELSE -1 END) FROM visits GROUP BY ward"),
+    ("people", "SELECT ward, SUM(smoker::int), AVG(age) FILTER (WHERE smoker), "
+               "COUNT(*) FILTER (WHERE age > 50) FROM people GROUP BY ward"),
 ]
 
 

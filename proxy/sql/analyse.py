@@ -21,6 +21,14 @@ sqlglot's PostgreSQL dialect and must be exactly one SELECT of the accepted shap
   percentile_disc(p) WITHIN GROUP (ORDER BY col), median(col)) of one column, asked alone: the
   plan's ``ranked`` key makes the backend return a histogram per cell. MIN and MAX are refused
   with a hint naming the percentile that answers them privately.
+  SUM, AVG and COUNT
+  also take a bounded per-row value (a boolean column cast to integer, a CASE of integer
+  literals over WHERE-checked conditions), and every aggregate takes FILTER (WHERE <condition>)
+  with the condition checked as WHERE: both become measures over a derived column
+  (``Measure.value``; their sensitivity is argued in ``proxy.sql.rewrite``).
+- select-list expressions: + - * /, round, casts to number types and coalesce over aggregates
+  and keys, checked by ``proxy.sql.filters.ExpressionChecker`` for the select list and computed
+  on the noisy row by ``proxy.sql.postprocess`` (never by the backend).
 - keys: columns with a declared domain (a date column groups by day) and buckets of one column
   (date_trunc, extract/date_part, CASE over literal conditions, width_bucket, floor(x / w) * w),
   read by ``proxy.sql.keys``. GROUP BY names them by expression, select alias or position
@@ -28,8 +36,10 @@ sqlglot's PostgreSQL dialect and must be exactly one SELECT of the accepted shap
   domain narrowed by the WHERE literals on its column; the product of their numbers may not
   exceed ``most_cells`` (refused with 54000 and a hint, never coarsened).
 - WHERE: checked and rebuilt by ``proxy.sql.filters`` so that no row value can raise.
-- HAVING and ORDER BY work on noisy outputs in post-processing; an aggregate or key they name
-  that is not selected becomes a hidden output (an aggregate costs epsilon like any measure).
+- HAVING and ORDER BY work on noisy outputs in post-processing; an aggregate or key they (or a
+  select-list expression) name that is not selected becomes a hidden output (an aggregate
+  costs epsilon like any measure). WHERE, HAVING and the select list share one vocabulary of
+  expression nodes (``proxy.sql.vocabulary``), each node saying which clauses accept it.
 
 Everything else is refused, failing closed: the SELECT is checked against an allow-list of its
 clauses, and every expression node against the forms each clause accepts.
@@ -44,16 +54,15 @@ import sqlglot
 import sqlglot.errors
 import sqlglot.expressions as exp
 
-from proxy.errors import (AMBIGUOUS_COLUMN, DATATYPE_MISMATCH, GROUPING_ERROR,
+from proxy.errors import (AMBIGUOUS_COLUMN, GROUPING_ERROR,
                           INSUFFICIENT_PRIVILEGE, INVALID_COLUMN_REFERENCE, INVALID_LIMIT,
                           INVALID_OFFSET, PROGRAM_LIMIT_EXCEEDED, STATEMENT_TOO_COMPLEX,
                           SYNTAX_ERROR, UNDEFINED_COLUMN, UNDEFINED_FUNCTION, UNDEFINED_TABLE,
                           HushError, refused)
 from proxy.policy import ColumnPolicy, Policies, TablePolicy
 from proxy.sql.domains import TRUNC_UNITS, EmptyBucket, cell_count, key_size, key_type
-from proxy.sql.filters import (KIND_TYPE, Typed, chain_operands, check_filter, date_node, literal,
-                               mark_written_names, only_args, refuse_expression, unify, unparen,
-                               written_name, written_sql)
+from proxy.sql.filters import (ExpressionChecker, Typed, check_filter, literal, mark_written_names,
+                               number_value, only_args, refuse_expression, unparen, written_name, written_sql)
 from proxy.sql.joins import Scope, name_of as _name, read_from, take_semi_joins
 from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narrowings, read_key,
                             restrictions)
@@ -62,6 +71,8 @@ from proxy.sql.limits import check_statement_text, check_tree
 from proxy.sql.limits import hint as limit_hint
 from proxy.sql.plan import (PERCENTILE_KINDS, GroupKey, Measure, OrderItem, Output, Plan,
                             output_ref)
+from proxy.sql.vocabulary import (CAST_TYPES, HAVING, SELECT, SQL_FAMILY, column_node, column_types,
+                                  literal_type, rule, sum_type)
 
 BUCKETS = tuple(TRUNC_UNITS)  # the date_trunc units a group key accepts
 
@@ -72,15 +83,15 @@ SHAPE_HINT = ("hushql answers read-only aggregate queries: SELECT <group keys>, 
 AGGREGATES_HINT = ("accepted aggregates: COUNT(*), COUNT(col), SUM(col), AVG(col), VARIANCE(col), "
                    "VAR_SAMP(col), VAR_POP(col), STDDEV(col), STDDEV_SAMP(col), STDDEV_POP(col), "
                    "percentile_cont(p) | percentile_disc(p) WITHIN GROUP (ORDER BY col), median(col)")
-SELECT_HINT = ("select group keys (as written in GROUP BY) and the aggregates COUNT(*), COUNT(col), SUM(col), AVG(col), "
-               "VARIANCE/VAR_SAMP/VAR_POP/STDDEV/STDDEV_SAMP/STDDEV_POP(col), "
-               "or percentiles of one column alone; "
-               "do arithmetic on the answers in your client")
+SELECT_HINT = ("select group keys (as written in GROUP BY), the aggregates COUNT(*), COUNT(col), "
+               "SUM(col), AVG(col), VARIANCE/VAR_SAMP/VAR_POP/STDDEV/STDDEV_SAMP/STDDEV_POP(col) "
+               "or percentiles of one column alone, and + - * /, round(x[, n]), ::integer, "
+               "::bigint, ::numeric(p, s), ::float and coalesce over them")
 PERCENTILE_HINT = ("write percentile_cont(p) or percentile_disc(p) WITHIN GROUP (ORDER BY <number "
                    "or integer column>), p a literal in [0, 1], or median(<column>); percentiles "
                    "of one column are asked without other aggregates")
 HAVING_HINT = ("HAVING accepts aggregates, group keys, literals, comparisons, BETWEEN, IN, "
-               "IS [NOT] NULL, AND/OR/NOT and + - *")
+               "IS [NOT] NULL, IS [NOT] DISTINCT FROM, AND/OR/NOT, + - * and coalesce")
 ORDER_HINT = "ORDER BY accepts output names, output positions, group keys and aggregates"
 LIMIT_HINT = "LIMIT and OFFSET take a non-negative integer literal"
 
@@ -113,11 +124,9 @@ _EXTREMES: dict[type, str] = {exp.Min: "0.01", exp.Max: "0.99"}
 MOST_PERCENTILE_CANDIDATES = 25_000
 MOST_HISTOGRAM_ROWS = 250_000
 _ASCII_LOWER = str.maketrans("ABCDEFGHIJKLMNOPQRSTUVWXYZ", "abcdefghijklmnopqrstuvwxyz")
-_PG_TYPE = {"category": "text", "integer": "integer", "number": "numeric", "date": "date",
-            "boolean": "boolean"}
-# The analysis type (as in proxy.sql.filters) of a key's PostgreSQL type, for HAVING.
-_KEY_FAMILY = {"text": "text", "integer": "number", "bigint": "number", "numeric": "number",
-               "double precision": "number", "date": "date", "boolean": "boolean"}
+_SQL_TYPES = {name: kind for kind, name in CAST_TYPES.items()}
+_INTEGER_CASTS = (exp.DataType.Type.INT, exp.DataType.Type.BIGINT, exp.DataType.Type.SMALLINT)
+_LARGEST_BRANCH = 10 ** 15
 
 
 def analyse(statement: str | exp.Expression, policies: Policies, analyst: str) -> Plan | PublicRead:
@@ -214,6 +223,7 @@ class _SelectItem:
     aggregate: _Aggregate | None = None
     key: GroupKey | None = None
     column: str | None = None  # the column of a key candidate (key is None when it has no domain)
+    expression: exp.Expression | None = None  # post-processing over aggregates and keys
 
 
 class _Analysis:
@@ -229,6 +239,7 @@ class _Analysis:
         self.keys: list[GroupKey] = []
         self.table: TablePolicy
         self.scope: Scope
+        self.derived: dict[str, ColumnPolicy] = {}  # derived columns of measures (Measure.value)
 
     # ---------------------------------------------------------------------------------------
     def plan(self) -> Plan:
@@ -242,7 +253,8 @@ class _Analysis:
         items = [self._select_item(node) for node in select.expressions]
         group = select.args.get("group")
         having = select.args.get("having")
-        if not any(item.aggregate for item in items) and group is None and having is None:
+        if not any(item.aggregate or (item.expression is not None and _holds_aggregate(item.expression))
+                   for item in items) and group is None and having is None:
             raise refused("SELECT without aggregates is not accepted: hushql never returns rows",
                           SELECT_HINT)
         if group is not None:
@@ -258,15 +270,20 @@ class _Analysis:
         keys = tuple(replace(key, within=within.get(key.column), among=among.get(key))
                      for key in self.keys)
         self._check_cells(keys)
-        for item in items:
-            self.outputs.append(self._select_output(item))
+        # Expressions last: the outputs they name but nobody selected are appended as hidden
+        # ones, after the selected outputs, which keep their positions.
+        self.outputs += [self._select_output(item) if item.expression is None
+                         else Output(item.name, "expression") for item in items]
+        for position, item in enumerate(items):
+            if item.expression is not None:
+                self.outputs[position] = self._expression_output(item)
         having_condition = self._having(having.this) if having is not None else None
         order = self._order_by(select.args.get("order"), len(items))
         limit = self._count(select.args.get("limit"), "LIMIT")
         offset = self._count(select.args.get("offset"), "OFFSET")
         if not self.measures:
             raise refused("the query has no aggregate", SELECT_HINT)
-        return Plan(table=self.table, measures=tuple(self.measures), outputs=tuple(self.outputs),
+        return Plan(table=self._plan_table(), measures=tuple(self.measures), outputs=tuple(self.outputs),
                     keys=keys, where=condition, having=having_condition,
                     order_by=order, limit=limit, offset=offset, joins=self.scope.joins,
                     ranked=self._ranked(keys, within))
@@ -317,10 +334,7 @@ class _Analysis:
             raise refused("SELECT * is not accepted: hushql never returns rows", SELECT_HINT)
         if isinstance(node, _STRUCTURAL):
             raise refuse_expression(node, "the select list", SELECT_HINT)
-        if isinstance(node, exp.Filter):
-            raise refused("FILTER is not accepted on aggregates",
-                          "filter rows with WHERE; " + SELECT_HINT)
-        if isinstance(node, (exp.AggFunc, exp.WithinGroup)):
+        if isinstance(node, (exp.AggFunc, exp.WithinGroup, exp.Filter)):
             aggregate = self._aggregate(node)
             return _SelectItem(alias or aggregate.name, aggregate=aggregate)
         if is_key_expression(node) and not _holds_aggregate(node):
@@ -330,12 +344,16 @@ class _Analysis:
             return _SelectItem(alias or name, key=key, column=column)
         if literal(node) is not None:
             raise refused("constants are not accepted in the select list", SELECT_HINT)
+        if rule(node, SELECT) is not None:
+            return _SelectItem(alias or _expression_name(node), expression=node)
         if _holds_aggregate(node):
             raise refused(f"aggregates inside expressions are not accepted ({_short(node)})",
                           SELECT_HINT)
         raise refuse_expression(node, "the select list", SELECT_HINT)
 
     def _select_output(self, item: _SelectItem) -> Output:
+        if item.expression is not None:
+            return self._expression_output(item)
         if item.aggregate is not None:
             a = item.aggregate
             return Output(item.name, a.kind, measures=self._measure_ids(a), column=a.column,
@@ -351,6 +369,8 @@ class _Analysis:
 
     # aggregates ----------------------------------------------------------------------------
     def _aggregate(self, node: exp.Expression) -> _Aggregate:
+        if isinstance(node, exp.Filter):
+            return self._filtered(node)
         if isinstance(node, (exp.WithinGroup, exp.Median, exp.PercentileCont, exp.PercentileDisc)):
             return self._percentile_aggregate(node)
         if type(node) in _SPREADS:
@@ -373,10 +393,15 @@ class _Analysis:
         function = "sum" if isinstance(node, exp.Sum) else "avg"
         if isinstance(argument, exp.Distinct):
             raise refused(f"{function.upper()}(DISTINCT ...) is not accepted", SELECT_HINT)
-        name, column = self._summable_argument(argument, function)
+        name, column, value = self._aggregate_column(argument, function)
+        if not column.summable:
+            raise HushError(UNDEFINED_FUNCTION, f"function {function}({column_types(column).sql}) does not exist",
+                            f"{function.upper()} takes integer or number columns: "
+                            + (", ".join(n for n, c in self.table.columns.items() if c.summable) or "none"))
         if function == "sum":
-            return _Aggregate("sum", (Measure("sum", name),), name, "sum")
-        return _Aggregate("avg", (Measure("sum", name), Measure("count_values", name)), name, "avg")
+            return _Aggregate("sum", (Measure("sum", name, value),), name, "sum")
+        return _Aggregate("avg", (Measure("sum", name, value), Measure("count_values", name, value)),
+                          name, "avg")
 
     def _count_aggregate(self, argument: exp.Expression | None) -> _Aggregate:
         if isinstance(argument, exp.Star):
@@ -394,14 +419,16 @@ class _Analysis:
                           "table with [individual]",
                           f"write COUNT(DISTINCT {individual.column})" if individual
                           else "use COUNT(*) or COUNT(col)")
-        name, _ = self._aggregate_column(argument, "count")
-        return _Aggregate("count", (Measure("count_values", name),), name, "count")
+        name, _, value = self._aggregate_column(argument, "count")
+        return _Aggregate("count", (Measure("count_values", name, value),), name, "count")
 
     def _summable_argument(self, argument: exp.Expression | None, function: str) -> tuple[str, ColumnPolicy]:
         """The integer or number column an aggregate reads (42883 for other kinds)."""
-        name, column = self._aggregate_column(argument, function)
+        name, column, value = self._aggregate_column(argument, function)
+        if value is not None:  # a derived value: spreads and percentiles read columns only
+            raise refused(f"{function.upper()}() accepts a column, not an expression", SELECT_HINT)
         if not column.summable:
-            raise HushError(UNDEFINED_FUNCTION, f"function {function}({_PG_TYPE[column.kind]}) does not exist",
+            raise HushError(UNDEFINED_FUNCTION, f"function {function}({column_types(column).sql}) does not exist",
                             f"{function.upper()} takes integer or number columns: "
                             + (", ".join(n for n, c in self.table.columns.items() if c.summable) or "none"))
         return name, column
@@ -451,12 +478,109 @@ class _Analysis:
         return _Aggregate(written, (Measure("count_values", name),), name, written,
                           fraction=value)
 
-    def _aggregate_column(self, argument: exp.Expression | None, function: str) -> tuple[str, ColumnPolicy]:
+    def _aggregate_column(self, argument: exp.Expression | None,
+                          function: str) -> tuple[str, ColumnPolicy, exp.Expression | None]:
+        """The column an aggregate takes, or the derived column of a bounded per-row value,
+        with that value's SQL."""
         if isinstance(argument, exp.Column) and not isinstance(argument.this, exp.Star):
-            return self._column(argument)
+            return (*self._column(argument), None)
         if argument is not None and _holds_aggregate(argument):
             raise HushError(GROUPING_ERROR, "aggregate function calls cannot be nested", SELECT_HINT)
-        raise refused(f"{function.upper()}() accepts a column, not an expression", SELECT_HINT)
+        bounded = self._bounded_value(argument) if argument is not None else None
+        if bounded is not None:
+            return bounded
+        raise refused(f"{function.upper()}() accepts a column, a boolean column cast to integer "
+                      "or a CASE of integer literals, not another expression", SELECT_HINT)
+
+    # bounded per-row values and FILTER -------------------------------------------------------
+    def _bounded_value(self, node: exp.Expression) -> tuple[str, ColumnPolicy, exp.Expression] | None:
+        """A per-row value with a range known from the text: ``b::integer`` of a boolean column
+        (0 or 1; PostgreSQL's cast of a boolean never fails) or ``CASE WHEN <condition> THEN
+        <integer> ... [ELSE <integer>] END`` (conditions checked as in WHERE; its range runs from
+        the smallest branch to the largest). None for anything else."""
+        if isinstance(node, exp.Cast) and node.to.this in _INTEGER_CASTS and not node.to.expressions \
+                and isinstance(unparen(node.this), exp.Column) \
+                and not isinstance(unparen(node.this).this, exp.Star):
+            name, column = self._column(unparen(node.this))
+            if column.kind != "boolean":
+                return None
+            value = exp.Cast(this=column_node(name),
+                             to=exp.DataType(this=exp.DataType.Type.INT))
+            return self._derive(f"{name}::integer", ColumnPolicy(kind="integer", range=[0, 1]), value)
+        if not isinstance(node, exp.Case):
+            return None
+        only_args(node, ("ifs", "default"), "CASE with an operand", SELECT_HINT)
+        reader = bucket_reader(self.table, self._column)
+        branches, values = [], []
+        for branch in node.args.get("ifs") or []:
+            only_args(branch, ("this", "true"), "CASE", SELECT_HINT)
+            condition = check_filter(branch.this, self._column, reader, self.policies.limits)
+            number, built = self._branch_value(branch.args.get("true"))
+            values.append(number)
+            branches.append(exp.If(this=condition, true=built))
+        default = node.args.get("default")
+        number, built_default = self._branch_value(default) if default is not None else (None, None)
+        values.append(number)
+        present = [v for v in values if v is not None]
+        if not branches or not present:
+            raise refused("a CASE inside an aggregate needs an integer literal in some branch",
+                          SELECT_HINT)
+        value = exp.Case(ifs=branches, default=built_default)
+        policy = ColumnPolicy(kind="integer", range=[min(present), max(present)])
+        return self._derive(written_sql(node), policy, value)
+
+    def _branch_value(self, node: exp.Expression | None) -> tuple[int | None, exp.Expression]:
+        checked = literal(node) if node is not None else None
+        if checked is not None and checked.type == "null":
+            return None, exp.Null()
+        if checked is None or checked.type != "number" or literal_type(number_value(checked.node)) == "numeric" \
+                or abs(number_value(checked.node)) > _LARGEST_BRANCH:
+            raise refused("a CASE inside an aggregate takes integer literals (at most 1e15 in size) "
+                          "or NULL in its branches", SELECT_HINT)
+        return int(number_value(checked.node)), checked.node
+
+    def _filtered(self, node: exp.Filter) -> _Aggregate:
+        """``<aggregate> FILTER (WHERE <condition>)``: the condition is checked as a WHERE
+        condition and folded into each measure's per-row value (a different measure, of the
+        same sensitivity: ``proxy.sql.rewrite``)."""
+        inner, where = node.this, node.expression
+        if not isinstance(inner, exp.AggFunc) or isinstance(inner, exp.Filter) \
+                or not isinstance(where, exp.Where):
+            raise refused("FILTER (WHERE ...) follows an aggregate", SELECT_HINT)
+        only_args(where, ("this",), "FILTER", SELECT_HINT)
+        condition = check_filter(where.this, self._column, bucket_reader(self.table, self._column),
+                                 self.policies.limits)
+        base = self._aggregate(inner)
+        if base.kind not in ("count", "sum", "avg"):
+            raise refused(f"FILTER is accepted on COUNT, SUM and AVG, not on {base.name}()",
+                          "filter the rows with WHERE instead")
+        measures = tuple(self._filter_measure(m, condition) for m in base.measures)
+        return _Aggregate(base.kind, measures, measures[0].column, base.name)
+
+    def _filter_measure(self, measure: Measure, condition: exp.Expression) -> Measure:
+        if measure.kind in ("count_rows", "count_individuals"):
+            return replace(measure, where=condition)
+        assert measure.column is not None
+        name, _, _ = self._derive(f"{measure.column} FILTER (WHERE {condition.sql(dialect='postgres')})",
+                                  self._columns()[measure.column], condition)
+        source = measure.value if measure.value is not None else column_node(measure.column)
+        return replace(measure, column=name, value=source, where=condition)
+
+    def _derive(self, name: str, policy: ColumnPolicy,
+                value: exp.Expression) -> tuple[str, ColumnPolicy, exp.Expression]:
+        """Register a derived column (a bounded value, a filtered column) under a name no
+        policy column can have (it holds spaces, parentheses or ::)."""
+        self.derived[name] = policy
+        return name, policy, value
+
+    def _columns(self) -> dict[str, ColumnPolicy]:
+        return {**self.table.columns, **self.derived} if self.derived else self.table.columns
+
+    def _plan_table(self) -> TablePolicy:
+        """The table of the plan: the policy's, with the derived columns its measures name."""
+        if not self.derived:
+            return self.table
+        return self.table.model_copy(update={"columns": self._columns()})
 
     def _measure_ids(self, aggregate: _Aggregate) -> tuple[int, ...]:
         ids = []
@@ -508,6 +632,12 @@ class _Analysis:
                       self._groupable_hint())
 
     def _item_key(self, item: _SelectItem) -> tuple[GroupKey | None, str]:
+        if item.expression is not None:
+            if _holds_aggregate(item.expression):
+                raise HushError(GROUPING_ERROR, "aggregate functions are not allowed in GROUP BY",
+                                self._groupable_hint())
+            raise refused(f"GROUP BY accepts columns and buckets of one column, not "
+                          f"{_short(item.expression)}", self._groupable_hint())
         if item.aggregate is not None:
             raise HushError(GROUPING_ERROR, "aggregate functions are not allowed in GROUP BY",
                             self._groupable_hint())
@@ -579,100 +709,54 @@ class _Analysis:
                                    key=index, column=key.column, visible=False))
         return len(self.outputs) - 1
 
-    def _output_type(self, index: int) -> str:
-        output = self.outputs[index]
-        if output.kind != "key":
-            return "number"
-        key = self.keys[output.key]  # type: ignore[index]
-        return _KEY_FAMILY[key_type(self.table.columns[key.column], key)]
+    def _output_sql_type(self, index: int) -> str:
+        return output_type(self._plan_table(), self.keys, self.measures, self.outputs[index])
 
-    # HAVING --------------------------------------------------------------------------------
+    # HAVING and select-list expressions ----------------------------------------------------
     def _having(self, node: exp.Expression) -> exp.Expression:
-        checked = self._having_term(node)
-        if checked.type not in ("boolean", "null"):
-            raise HushError(DATATYPE_MISMATCH, "argument of HAVING must be a condition", HAVING_HINT)
-        return checked.node
+        return self._in_proxy(HAVING, HAVING_HINT).condition(node, "HAVING")
 
-    def _having_term(self, node: exp.Expression) -> Typed:
-        constant = literal(node)
-        if constant is not None:
-            return constant
-        if isinstance(node, exp.Paren):
-            inner = self._having_term(node.this)
-            return Typed(exp.Paren(this=inner.node), inner.type, literal=inner.literal,
-                         string=inner.string)
-        if isinstance(node, (exp.And, exp.Or)):
-            parts = [self._having_condition(p) for p in chain_operands(node)]
-            built = parts[0]
-            for part in parts[1:]:
-                built = type(node)(this=built, expression=part)
-            return Typed(built, "boolean")
-        if isinstance(node, exp.Not):
-            return Typed(exp.Not(this=self._having_condition(node.this)), "boolean")
-        if isinstance(node, (exp.EQ, exp.NEQ, exp.LT, exp.LTE, exp.GT, exp.GTE)):
-            items = [self._having_term(node.this), self._having_term(node.expression)]
-            a, b = self._having_operands(items, "HAVING comparison")
-            return Typed(type(node)(this=a, expression=b), "boolean")
-        if isinstance(node, exp.Between):
-            only_args(node, ("this", "low", "high"), "BETWEEN in HAVING", HAVING_HINT)
-            items = [self._having_term(node.this), self._having_term(node.args["low"]),
-                     self._having_term(node.args["high"])]
-            this, low, high = self._having_operands(items, "HAVING BETWEEN")
-            return Typed(exp.Between(this=this, low=low, high=high), "boolean")
-        if isinstance(node, exp.In):
-            only_args(node, ("this", "expressions"), "IN in HAVING", HAVING_HINT)
-            values = [literal(item) for item in node.expressions]
-            if not values or any(v is None for v in values):
-                raise refused("IN accepts a list of literals", HAVING_HINT)
-            this, *rest = self._having_operands([self._having_term(node.this), *values], "HAVING IN")  # type: ignore[list-item]
-            return Typed(exp.In(this=this, expressions=rest), "boolean")
-        if isinstance(node, exp.Is):
-            only_args(node, ("this", "expression", "negate"), "IS in HAVING", HAVING_HINT)
-            this = self._having_term(node.this)
-            target = node.expression
-            if isinstance(target, exp.Boolean):
-                if this.type not in ("boolean", "null"):
-                    raise HushError(DATATYPE_MISMATCH, "IS TRUE/FALSE takes a condition", HAVING_HINT)
-                right: exp.Expression = exp.Boolean(this=bool(target.this))
-            elif isinstance(target, exp.Null):
-                right = exp.Null()
-            else:
-                raise refused("HAVING accepts IS [NOT] NULL and IS [NOT] TRUE/FALSE on conditions",
-                              HAVING_HINT)
-            kwargs = {"negate": True} if node.args.get("negate") else {}
-            return Typed(exp.Is(this=this.node, expression=right, **kwargs), "boolean")
-        if isinstance(node, (exp.Add, exp.Sub, exp.Mul)):
-            left, right_ = self._having_term(node.this), self._having_term(node.expression)
-            for side in (left, right_):
-                if side.type not in ("number", "null"):
-                    raise HushError(DATATYPE_MISMATCH, "+, - and * take numbers", HAVING_HINT)
-            return Typed(type(node)(this=left.node, expression=right_.node), "number")
-        if isinstance(node, exp.Neg):
-            inner = self._having_term(node.this)
-            if inner.type not in ("number", "null"):
-                raise HushError(DATATYPE_MISMATCH, "unary minus takes a number", HAVING_HINT)
-            return Typed(exp.Neg(this=inner.node), "number")
-        if isinstance(node, exp.AggFunc):
-            index = self._output_for_aggregate(self._aggregate(node))
-            return Typed(_output_column(index), "number")
+    def _in_proxy(self, clause: str, hint: str) -> ExpressionChecker:
+        """The checker of a clause evaluated in the proxy on noisy rows: aggregates and group
+        keys become placeholders of (possibly hidden) outputs."""
+        return ExpressionChecker(clause=clause, hint=hint, limits=self.policies.limits,
+                                 reader=lambda node: self._output_leaf(node, clause),
+                                 fallback=lambda node: self._key_leaf(node, clause))
+
+    def _output_leaf(self, node: exp.Expression, clause: str) -> Typed | None:
+        if isinstance(node, (exp.AggFunc, exp.Filter)):
+            return self._placeholder(self._output_for_aggregate(self._aggregate(node)), clause)
+        if isinstance(node, exp.Column) and not isinstance(node.this, exp.Star):
+            return self._placeholder(self._output_for_key(node), clause)
+        return None
+
+    def _key_leaf(self, node: exp.Expression, clause: str) -> Typed | None:
         if is_key_expression(node) and not _holds_aggregate(node) and not (
                 isinstance(node, exp.Column) and isinstance(node.this, exp.Star)):
-            index = self._output_for_key(node)
-            return Typed(_output_column(index), self._output_type(index))
-        raise refuse_expression(node, "HAVING", HAVING_HINT)
+            return self._placeholder(self._output_for_key(node), clause)
+        return None
 
-    def _having_condition(self, node: exp.Expression) -> exp.Expression:
-        checked = self._having_term(node)
-        if checked.type not in ("boolean", "null"):
-            raise HushError(DATATYPE_MISMATCH, "AND, OR and NOT take conditions", HAVING_HINT)
-        return checked.node
+    def _placeholder(self, index: int, clause: str) -> Typed:
+        """Output ``index`` typed for a clause; in the select list a number is cast to its own
+        type, so that evaluation holds the Python type standing for it (int, Decimal, float)."""
+        sql = self._output_sql_type(index)
+        family = SQL_FAMILY[sql]
+        node: exp.Expression = _output_column(index)
+        if clause == SELECT and family == "number":
+            node = exp.Cast(this=node, to=exp.DataType(this=_SQL_TYPES[sql]))
+        return Typed(node, family, sql=sql if family == "number" else None,
+                     as_numeric=lambda: node, as_bounded=lambda: node)
 
-    def _having_operands(self, items: list[Typed], what: str) -> list[exp.Expression]:
-        """Operands after the type check; text literals meeting a date become dates."""
-        family = unify(items, what)
-        if family != "date":
-            return [i.node for i in items]
-        return [date_node(i.string or "") if i.type == "string" else i.node for i in items]
+    def _expression_output(self, item: _SelectItem) -> Output:
+        """A select-list expression over aggregates and keys, computed on the noisy row."""
+        assert item.expression is not None
+        checked = self._in_proxy(SELECT, SELECT_HINT).check(item.expression)
+        if checked.node.find(exp.Column) is None:
+            raise refused("constants are not accepted in the select list", SELECT_HINT)
+        if checked.type != "number" or checked.sql is None:
+            raise refused(f"the select list accepts arithmetic over numbers, not "
+                          f"{_short(item.expression)}", SELECT_HINT)
+        return Output(item.name, "expression", expression=checked.node, type=checked.sql)
 
     # ORDER BY ------------------------------------------------------------------------------
     def _order_by(self, order: exp.Order | None, selected: int) -> tuple[OrderItem, ...]:
@@ -707,7 +791,7 @@ class _Analysis:
                 return matches[0]
         if isinstance(node, _STRUCTURAL):
             raise refuse_expression(node, "ORDER BY", ORDER_HINT)
-        if isinstance(node, exp.AggFunc):
+        if isinstance(node, (exp.AggFunc, exp.Filter)):
             return self._output_for_aggregate(self._aggregate(node))
         if is_key_expression(node) and not _holds_aggregate(node):
             return self._output_for_key(node)
@@ -741,6 +825,49 @@ class _Analysis:
         if isinstance(value, exp.Literal) and not value.is_string and value.this.isdigit():
             return int(value.this)
         raise refused(f"{word} accepts a non-negative integer literal, not {_short(value)}", LIMIT_HINT)
+
+
+def output_type(table: TablePolicy, keys: list[GroupKey] | tuple[GroupKey, ...],
+                measures: list[Measure] | tuple[Measure, ...], output: Output) -> str:
+    """The PostgreSQL type of one output: a key's as PostgreSQL types its expression, COUNT
+    bigint, SUM PostgreSQL's sum type of its column, AVG double precision, an expression its
+    own (``Output.type``)."""
+    if output.kind == "key":
+        key = keys[output.key]  # type: ignore[index]
+        return key_type(table.columns[key.column], key)
+    if output.kind == "count":
+        return "bigint"
+    if output.kind == "sum":
+        return sum_type(table.columns[measures[output.measures[0]].column])  # type: ignore[index]
+    if output.kind == "percentile_disc":  # the column's own type, as PostgreSQL's
+        return column_types(table.columns[measures[output.measures[0]].column]).sql  # type: ignore[index]
+    if output.kind == "expression":
+        assert output.type is not None
+        return output.type
+    return "double precision"
+
+
+def _expression_name(node: exp.Expression) -> str:
+    """The column name PostgreSQL gives an unaliased expression (FigureColname): a column's or
+    function's name, through casts (else the cast's type name), or ?column?."""
+    return _figure_name(node) or "?column?"
+
+
+def _figure_name(node: exp.Expression) -> str | None:
+    node = unparen(node)
+    if isinstance(node, exp.Column):
+        return node.name
+    if isinstance(node, exp.Filter):
+        return _figure_name(node.this)
+    if isinstance(node, exp.Cast):
+        inner = _figure_name(node.this)
+        if inner is not None:
+            return inner
+        return {"integer": "int4", "bigint": "int8", "numeric": "numeric",
+                "double precision": "float8"}.get(CAST_TYPES.get(node.to.this, ""), None)
+    if isinstance(node, exp.Func) and not isinstance(node, exp.Binary):
+        return written_name(node)
+    return None
 
 
 def _output_column(index: int) -> exp.Column:

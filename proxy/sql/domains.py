@@ -27,6 +27,7 @@ from typing import Any, Callable, Iterable, Sequence
 from proxy.answer import ColumnType
 from proxy.policy import ColumnPolicy, date_range
 from proxy.sql.plan import GroupKey, Narrowing
+from proxy.sql.vocabulary import column_types
 
 # date_trunc units accepted on a date column, and the bucket each one gives on a date: units
 # below a day truncate a date's midnight to itself.
@@ -177,8 +178,7 @@ def cell_count(sizes: Sequence[int]) -> int:
 def key_type(column: ColumnPolicy, key: GroupKey) -> ColumnType:
     """The PostgreSQL type of the key's values, as PostgreSQL types the expression written."""
     if key.form == "column":
-        return {"category": "text", "integer": "integer", "boolean": "boolean",
-                "date": "date"}[column.kind]  # type: ignore[return-value]
+        return column_types(column).sql  # type: ignore[return-value]
     if key.form == "date_trunc":
         return "date"  # PostgreSQL says timestamp; the proxy answers the date it stands for
     if key.form == "extract":

@@ -1,5 +1,10 @@
 """Safe WHERE conditions: checked and rewritten so that no row value can make the backend raise.
 
+``ExpressionChecker`` walks one clause by the rules of ``proxy.sql.vocabulary`` (which node is
+accepted where, and its type rule): WHERE and FILTER conditions, rebuilt for the backend under
+the rules below, and HAVING and select-list expressions, rebuilt over output placeholders and
+evaluated on noisy rows in the proxy (``proxy.sql.postprocess``), where no row is read.
+
 Why: an error raised while PostgreSQL evaluates a row is a side channel. "Division by zero" for
 one filter and not for another tells the analyst that some row holds a zero, outside every
 privacy bound. So a condition is accepted only when every operator and function in it is total
@@ -98,11 +103,12 @@ from proxy.errors import (DATATYPE_MISMATCH, GROUPING_ERROR, PROGRAM_LIMIT_EXCEE
                           UNDEFINED_FUNCTION, HushError, refused)
 from proxy.policy import ColumnPolicy
 from proxy.sql.limits import DEFAULT_LIMITS, Limits, hint
+from proxy.sql.vocabulary import (CAST_TYPES, HAVING, KIND_FAMILY, SELECT, WHERE, chain_operands,
+                                  clamp_node, column_node, date_node, literal_type, number_node,
+                                  promoted, rule)
 
 # Analysis types of expressions. "string" is an untyped quoted literal (PostgreSQL's unknown),
 # which takes the type of what it meets; "null" is the NULL literal.
-KIND_TYPE = {"category": "text", "integer": "number", "number": "number", "date": "date",
-             "boolean": "boolean"}
 _TYPE_WORDS = {"text": "text", "number": "a number", "date": "a date", "boolean": "a boolean",
                "string": "a quoted text literal", "null": "NULL"}
 _TYPE_HINTS = {
@@ -141,8 +147,10 @@ class Typed:
 
     ``literal`` marks constants; ``string`` holds the text of an untyped quoted literal (checked
     against whatever it meets); ``digits`` bounds the digits before the point of a numeric value
-    once clamped (None: not numeric) and ``scale`` the digits after it. ``as_numeric`` and ``as_bounded`` give the node cast to
-    NUMERIC, respectively cast and clamped to declared ranges, for the contexts that need them.
+    once clamped (None: not numeric) and ``scale`` the digits after it. ``as_numeric`` and
+    ``as_bounded`` give the node cast to NUMERIC, respectively cast and clamped to declared
+    ranges, for the contexts that need them; ``sql`` is the PostgreSQL type of a number in the
+    select list (integer, bigint, numeric, double precision).
     """
 
     node: exp.Expression
@@ -153,6 +161,7 @@ class Typed:
     scale: int = 0
     as_numeric: Callable[[], exp.Expression] | None = field(default=None, repr=False)
     as_bounded: Callable[[], exp.Expression] | None = field(default=None, repr=False)
+    sql: str | None = None  # the PostgreSQL type, where the select list needs it
 
     def numeric(self) -> exp.Expression:
         return self.as_numeric() if self.as_numeric else self.node
@@ -171,12 +180,7 @@ def check_filter(condition: exp.Expression, resolve: ColumnResolver,
     checked, guarded bucket, or None for a node that is not one. ``limits.arithmetic_digits``
     bounds arithmetic results. The input tree is never modified.
     """
-    checked = _FilterChecker(resolve, bucket, limits).check(condition)
-    if checked.type not in ("boolean", "null"):
-        raise HushError(DATATYPE_MISMATCH,
-                        f"argument of WHERE must be a condition, not {_TYPE_WORDS[checked.type]}",
-                        WHERE_HINT)
-    return checked.node
+    return ExpressionChecker(resolve, bucket, limits).condition(condition, "WHERE")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -194,23 +198,6 @@ def only_args(node: exp.Expression, allowed: Iterable[str], what: str, hint: str
     for key, value in node.args.items():
         if value not in (None, False, []) and key not in allowed:
             raise refused(f"{what} is not accepted in this form ({key})", hint)
-
-
-def chain_operands(node: exp.Connector) -> list[exp.Expression]:
-    """Operands of a chain of one connective (a AND b AND c), left to right, without recursion.
-
-    Parentheses are kept: sqlglot's own ``flatten`` removes them, and its generator does not
-    put them back, which would turn (a OR b) AND c into a OR b AND c.
-    """
-    kind, parts, stack = type(node), [], [node]
-    while stack:
-        current = stack.pop()
-        if type(current) is kind:
-            stack.append(current.expression)
-            stack.append(current.this)
-        else:
-            parts.append(current)
-    return parts
 
 
 def iso_date(text: str) -> dt.date | None:
@@ -249,11 +236,6 @@ def literal(node: exp.Expression) -> Typed | None:
                             "write dates as 'YYYY-MM-DD' or DATE 'YYYY-MM-DD'")
         return Typed(date_node(text), "date", literal=True)
     return None
-
-
-def date_node(text: str) -> exp.Expression:
-    """CAST('YYYY-MM-DD' AS DATE) as a fresh node."""
-    return exp.Cast(this=exp.Literal.string(text), to=exp.DataType(this=exp.DataType.Type.DATE))
 
 
 def unify(items: Sequence[Typed], what: str) -> str:
@@ -439,17 +421,6 @@ def _cast_numeric(node: exp.Expression) -> exp.Expression:
     return exp.Cast(this=node, to=exp.DataType(this=_NUMERIC))
 
 
-def number_node(value: Decimal | int) -> exp.Expression:
-    """A fresh numeric constant (a policy bound, a key argument; negative as unary minus)."""
-    value = Decimal(value)
-    node: exp.Expression = exp.Literal.number(format(abs(value), "f"))
-    return exp.Neg(this=node) if value < 0 else node
-
-
-def _column_ref(name: str) -> exp.Column:
-    return exp.Column(this=exp.to_identifier(name, quoted=True))
-
-
 def _clamped(name: str, column: ColumnPolicy) -> exp.Expression:
     """CASE WHEN c < lo THEN lo WHEN c > hi THEN hi ELSE round(c, places) END, every branch
     NUMERIC, ``places`` the column's scale (so a stored value's own scale cannot make one row's
@@ -457,46 +428,75 @@ def _clamped(name: str, column: ColumnPolicy) -> exp.Expression:
 
     The tests compare the column in its own type with the bound (coerced once, at planning).
     """
-    low, high = column.low, column.high
-    rounded = exp.Round(this=_cast_numeric(_column_ref(name)),
+    rounded = exp.Round(this=_cast_numeric(column_node(name)),
                         decimals=exp.Literal.number(_column_scale(column)))
-    return exp.Case(
-        ifs=[exp.If(this=exp.LT(this=_column_ref(name), expression=number_node(low)),
-                    true=_cast_numeric(number_node(low))),
-             exp.If(this=exp.GT(this=_column_ref(name), expression=number_node(high)),
-                    true=_cast_numeric(number_node(high)))],
-        default=rounded)
+    return clamp_node(column_node(name), number_node(column.low), number_node(column.high),
+                      bound=_cast_numeric, inside=rounded)
 
 
 # ---------------------------------------------------------------------------------------------
 
-class _FilterChecker:
-    """One recursive pass over a WHERE condition, building the safe copy as it goes."""
+Reader = Callable[[exp.Expression], "Typed | None"]
 
-    def __init__(self, resolve: ColumnResolver, bucket: BucketReader | None = None,
-                 limits: Limits = DEFAULT_LIMITS) -> None:
+
+def _no_columns(node: exp.Column) -> tuple[str, ColumnPolicy]:
+    raise AssertionError("columns are read by the clause's own reader outside WHERE")
+
+
+class ExpressionChecker:
+    """One recursive pass over an expression of one clause, typing it and building the checked
+    copy as it goes, by the rules of ``proxy.sql.vocabulary``.
+
+    WHERE (and FILTER) conditions go to the backend: columns through ``resolve``, buckets
+    through ``bucket``. HAVING and the select list are evaluated in the proxy: ``reader`` turns
+    aggregates and columns into typed output placeholders first, and ``fallback`` reads what the
+    clause's vocabulary does not know (group keys written as expressions); ``hint`` is the
+    clause's own.
+    """
+
+    def __init__(self, resolve: ColumnResolver = _no_columns, bucket: BucketReader | None = None,
+                 limits: Limits = DEFAULT_LIMITS, clause: str = WHERE, hint: str = WHERE_HINT,
+                 reader: Reader | None = None, fallback: Reader | None = None) -> None:
         self._resolve = resolve
         self._bucket = bucket
         self._limits = limits
+        self._clause = clause
+        self._hint = hint
+        self._reader = reader
+        self._fallback = fallback
+
+    def condition(self, node: exp.Expression, what: str) -> exp.Expression:
+        """The checked copy of a condition (``what`` names it in the refusal of a non-condition)."""
+        checked = self.check(node)
+        if checked.type not in ("boolean", "null"):
+            raise HushError(DATATYPE_MISMATCH,
+                            f"argument of {what} must be a condition, not {_TYPE_WORDS[checked.type]}",
+                            self._hint)
+        return checked.node
 
     def check(self, node: exp.Expression) -> Typed:
         constant = literal(node)
         if constant is not None:
+            if constant.type == "number" and self._clause == SELECT:
+                constant.sql = literal_type(number_value(constant.node))
             return constant
-        if self._bucket is not None:
-            bucket = self._bucket(node)
-            if bucket is not None:
-                return bucket
-        method = _DISPATCH.get(type(node))
-        if method is None:
-            raise refuse_expression(node, "WHERE", WHERE_HINT)
-        return method(self, node)
+        for reader in (self._bucket, self._reader):
+            found = reader(node) if reader is not None else None
+            if found is not None:
+                return found
+        found_rule = rule(node, self._clause)
+        if found_rule is None:
+            found = self._fallback(node) if self._fallback is not None else None
+            if found is not None:
+                return found
+            raise refuse_expression(node, self._clause, self._hint)
+        return _CHECKS[found_rule.check](self, node)
 
     # structure -------------------------------------------------------------------------------
     def _paren(self, node: exp.Paren) -> Typed:
         inner = self.check(node.this)
         return Typed(exp.Paren(this=inner.node), inner.type, literal=inner.literal,
-                     string=inner.string, digits=inner.digits, scale=inner.scale,
+                     string=inner.string, digits=inner.digits, scale=inner.scale, sql=inner.sql,
                      as_numeric=lambda: exp.Paren(this=inner.numeric()),
                      as_bounded=lambda: exp.Paren(this=inner.bounded()))
 
@@ -513,24 +513,19 @@ class _FilterChecker:
         return Typed(exp.Not(this=self._condition(node.this, "NOT")), "boolean")
 
     def _condition(self, node: exp.Expression, what: str) -> exp.Expression:
-        checked = self.check(node)
-        if checked.type not in ("boolean", "null"):
-            raise HushError(DATATYPE_MISMATCH,
-                            f"argument of {what} must be a condition, not {_TYPE_WORDS[checked.type]}",
-                            WHERE_HINT)
-        return checked.node
+        return self.condition(node, what)
 
     # leaves ----------------------------------------------------------------------------------
     def _column(self, node: exp.Column) -> Typed:
         if isinstance(node.this, exp.Star):
-            raise refuse_expression(node, "WHERE", WHERE_HINT)
+            raise refuse_expression(node, self._clause, self._hint)
         name, column = self._resolve(node)
-        kind = KIND_TYPE[column.kind]
+        kind = KIND_FAMILY[column.kind]
         if kind != "number":
-            return Typed(_column_ref(name), kind)
+            return Typed(column_node(name), kind)
         digits = max(_digits(column.low), _digits(column.high))
-        return Typed(_column_ref(name), "number", digits=digits, scale=_column_scale(column),
-                     as_numeric=lambda: _cast_numeric(_column_ref(name)),
+        return Typed(column_node(name), "number", digits=digits, scale=_column_scale(column),
+                     as_numeric=lambda: _cast_numeric(column_node(name)),
                      as_bounded=lambda: _clamped(name, column))
 
     # comparisons -----------------------------------------------------------------------------
@@ -542,7 +537,7 @@ class _FilterChecker:
         return Typed(type(node)(this=a, expression=b), "boolean")
 
     def _between(self, node: exp.Between) -> Typed:
-        only_args(node, ("this", "low", "high", "symmetric"), "BETWEEN", WHERE_HINT)
+        only_args(node, ("this", "low", "high", "symmetric"), "BETWEEN", self._hint)
         items = [self.check(node.this), self.check(node.args["low"]), self.check(node.args["high"])]
         family = unify(items, f"BETWEEN {_snippet(node)}")
         this, low, high = self._operands(items, family)
@@ -551,7 +546,7 @@ class _FilterChecker:
 
     def _in(self, node: exp.In) -> Typed:
         if node.args.get("query") is not None:
-            raise refuse_expression(node, "WHERE", WHERE_HINT)
+            raise refuse_expression(node, self._clause, self._hint)
         only_args(node, ("this", "expressions"), "IN", "write x IN (literal, literal, ...)")
         if not node.expressions:
             raise HushError(SYNTAX_ERROR, "IN needs at least one value", "write x IN ('a', 'b')")
@@ -563,11 +558,13 @@ class _FilterChecker:
                 raise refused(f"IN accepts a list of literals, not {_snippet(item)}",
                               "write x IN ('a', 'b') or x IN (1, 2)")
             values.append(constant)
-        unify([this, *values], f"IN {_snippet(node)}")
-        return Typed(exp.In(this=this.node, expressions=[v.node for v in values]), "boolean")
+        family = unify([this, *values], f"IN {_snippet(node)}")
+        nodes = [this.node, *(v.node for v in values)] if self._clause == WHERE else \
+            self._operands([this, *values], family)
+        return Typed(exp.In(this=nodes[0], expressions=nodes[1:]), "boolean")
 
     def _like(self, node: exp.Like | exp.ILike) -> Typed:
-        only_args(node, ("this", "expression", "negate"), "LIKE", WHERE_HINT)
+        only_args(node, ("this", "expression", "negate"), "LIKE", self._hint)
         this = self.check(node.this)
         if this.type not in ("text", "string", "null"):
             raise HushError(DATATYPE_MISMATCH,
@@ -589,7 +586,7 @@ class _FilterChecker:
         return Typed(type(node)(this=this.node, expression=checked.node, **kwargs), "boolean")
 
     def _is(self, node: exp.Is) -> Typed:
-        only_args(node, ("this", "expression", "negate"), "IS", WHERE_HINT)
+        only_args(node, ("this", "expression", "negate"), "IS", self._hint)
         this = self.check(node.this)
         target = node.expression
         if isinstance(target, exp.Null):
@@ -612,12 +609,20 @@ class _FilterChecker:
         for side in (left, right):
             if side.type == "date":
                 raise refused("date arithmetic is not accepted (it fails past the last storable date)",
-                              "compare dates with dates, e.g. reading_date >= '2026-03-01'")
+                              "compare dates with dates, e.g. reading_date >= '2026-03-01'"
+                              if self._clause == WHERE else self._hint)
             if side.type not in ("number", "null"):
                 raise HushError(DATATYPE_MISMATCH,
-                                f"+, - and * take numbers, not {_TYPE_WORDS[side.type]}",
+                                f"{_OPERATORS[self._clause]} take numbers, not {_TYPE_WORDS[side.type]}",
                                 "arithmetic is accepted on integer and number columns and numeric "
-                                "literals; compare dates with dates instead")
+                                "literals; compare dates with dates instead"
+                                if self._clause == WHERE else self._hint)
+        sql = promoted([side.sql or "integer" for side in (left, right)]) \
+            if self._clause == SELECT else None
+        if self._clause != WHERE:  # evaluated in the proxy: no backend to protect
+            built = type(node)(this=left.node, expression=right.node)
+            return Typed(built, "number", sql=sql, as_numeric=lambda: built,
+                         as_bounded=lambda: built)
         a, b = left.digits or 0, right.digits or 0
         # PostgreSQL's NUMERIC keeps every digit: a product has the sum of its factors' scales,
         # a sum the larger one (documentation, "Arbitrary Precision Numbers"; checked on 15).
@@ -633,14 +638,51 @@ class _FilterChecker:
         built = type(node)(this=left.bounded(), expression=right.bounded())
         return Typed(built, "number", digits=digits, scale=scale, as_bounded=lambda: built)
 
+    def _round(self, node: exp.Round) -> Typed:
+        """round(x) and round(x, n), n an integer literal: numeric, or double precision for
+        round(x) of integers and double precision (PostgreSQL's round(double precision))."""
+        only_args(node, ("this", "decimals"), "round()", self._hint)
+        inner = self.check(node.this)
+        if inner.type not in ("number", "null"):
+            raise HushError(UNDEFINED_FUNCTION,
+                            f"function round() takes a number, not {_TYPE_WORDS[inner.type]}", self._hint)
+        places = node.args.get("decimals")
+        if places is None:
+            sql = "numeric" if inner.sql == "numeric" else "double precision"
+            return Typed(exp.Round(this=inner.node), "number", sql=sql)
+        checked = literal(places)
+        if checked is None or checked.type != "number" or not _is_integer(checked.node):
+            raise refused("round(x, n) takes an integer literal n", self._hint)
+        return Typed(exp.Round(this=inner.node, decimals=checked.node), "number", sql="numeric")
+
+    def _cast(self, node: exp.Cast) -> Typed:
+        """A cast of a number to integer, bigint, numeric[(p[, s])] or double precision."""
+        only_args(node, ("this", "to"), "a cast", self._hint)
+        target = node.to
+        if target.this not in CAST_TYPES or (target.expressions and target.this != exp.DataType.Type.DECIMAL):
+            raise refused(f"casts to {_snippet(target)} are not accepted in {self._clause}",
+                          self._hint)
+        sizes = [literal(e.this if isinstance(e, exp.DataTypeParam) else e) for e in target.expressions]
+        if len(sizes) > 2 or any(z is None or not _is_integer(z.node) for z in sizes) or (
+                sizes and not 1 <= int(number_value(sizes[0].node)) <= 1000) or (  # type: ignore[union-attr]
+                len(sizes) == 2 and not 0 <= int(number_value(sizes[1].node)) <= int(number_value(sizes[0].node))):  # type: ignore[union-attr]
+            raise HushError(SYNTAX_ERROR, "NUMERIC precision must lie in 1..1000 and its scale in "
+                            "0..precision", "write numeric(5, 2)")
+        inner = self.check(node.this)
+        if inner.type not in ("number", "null"):
+            raise refused(f"casts are accepted on numbers, not {_TYPE_WORDS[inner.type]}", self._hint)
+        to = exp.DataType(this=target.this, expressions=[exp.DataTypeParam(this=z.node)  # type: ignore[union-attr]
+                                                         for z in sizes])
+        return Typed(exp.Cast(this=inner.node, to=to), "number", sql=CAST_TYPES[target.this])
+
     def _negative(self, node: exp.Neg) -> Typed:
         inner = self.check(node.this)
         if inner.type not in ("number", "null"):
             raise HushError(DATATYPE_MISMATCH, f"unary minus takes a number, not {_TYPE_WORDS[inner.type]}",
-                            WHERE_HINT)
+                            self._hint)
         built = exp.Neg(this=inner.bounded())
         return Typed(built, "number", digits=inner.digits, scale=inner.scale,
-                     as_bounded=lambda: built)
+                     as_bounded=lambda: built, as_numeric=lambda: built, sql=inner.sql)
 
     # functions -------------------------------------------------------------------------------
     def _text_argument(self, node: exp.Expression, function: str) -> Typed:
@@ -671,7 +713,8 @@ class _FilterChecker:
         return Typed(exp.Trim(**kwargs), "text")
 
     def _coalesce(self, node: exp.Coalesce) -> Typed:
-        only_args(node, ("this", "expressions"), "coalesce()", FUNCTION_HINT)
+        only_args(node, ("this", "expressions"), "coalesce()",
+                  FUNCTION_HINT if self._clause == WHERE else self._hint)
         items = [self.check(node.this), *(self.check(e) for e in node.expressions)]
         family = unify(items, f"coalesce {_snippet(node)}")
         nodes = self._operands(items, family)
@@ -681,7 +724,12 @@ class _FilterChecker:
         if family != "number":
             return Typed(built, family)
         digits = max(i.digits or 0 for i in items)
-        return Typed(built, "number", digits=digits, scale=max(i.scale for i in items),
+        sql = promoted([i.sql or "integer" for i in items if i.type == "number"]) \
+            if self._clause == SELECT else None
+        if sql is not None and any(i.sql != sql for i in items):
+            # Evaluated in the proxy: whichever operand is taken, it is of the common type.
+            built = exp.Cast(this=built, to=exp.DataType(this=_SQL_TYPE_NODES[sql]))
+        return Typed(built, "number", digits=digits, scale=max(i.scale for i in items), sql=sql,
                      as_numeric=lambda: exp.Coalesce(
                          this=items[0].node if items[0].literal else items[0].numeric(),
                          expressions=[i.node if i.literal else i.numeric() for i in items[1:]]),
@@ -707,39 +755,44 @@ class _FilterChecker:
 
     # -----------------------------------------------------------------------------------------
     def _operands(self, items: Sequence[Typed], family: str) -> list[exp.Expression]:
-        """Nodes for operands that meet; numbers compare as NUMERIC unless all but one are literals."""
+        """Nodes for operands that meet; numbers compare as NUMERIC unless all but one are
+        literals. Evaluated in the proxy, quoted text meeting a date is made a date."""
+        if self._clause != WHERE:
+            return [date_node(i.string or "") if family == "date" and i.type == "string" else i.node
+                    for i in items]
         if family == "number" and sum(1 for i in items if not i.literal) >= 2:
             return [i.node if i.literal else i.numeric() for i in items]
         return [i.node for i in items]
 
 
-_DISPATCH: dict[type, Callable[[_FilterChecker, exp.Expression], Typed]] = {
-    exp.Paren: _FilterChecker._paren,
-    exp.And: _FilterChecker._connective,
-    exp.Or: _FilterChecker._connective,
-    exp.Not: _FilterChecker._not,
-    exp.Column: _FilterChecker._column,
-    exp.EQ: _FilterChecker._comparison,
-    exp.NEQ: _FilterChecker._comparison,
-    exp.LT: _FilterChecker._comparison,
-    exp.LTE: _FilterChecker._comparison,
-    exp.GT: _FilterChecker._comparison,
-    exp.GTE: _FilterChecker._comparison,
-    exp.NullSafeEQ: _FilterChecker._comparison,
-    exp.NullSafeNEQ: _FilterChecker._comparison,
-    exp.Between: _FilterChecker._between,
-    exp.In: _FilterChecker._in,
-    exp.Like: _FilterChecker._like,
-    exp.ILike: _FilterChecker._like,
-    exp.Is: _FilterChecker._is,
-    exp.Add: _FilterChecker._arithmetic,
-    exp.Sub: _FilterChecker._arithmetic,
-    exp.Mul: _FilterChecker._arithmetic,
-    exp.Neg: _FilterChecker._negative,
-    exp.Lower: _FilterChecker._case_function,
-    exp.Upper: _FilterChecker._case_function,
-    exp.Length: _FilterChecker._length,
-    exp.Trim: _FilterChecker._trim,
-    exp.Coalesce: _FilterChecker._coalesce,
-    exp.Extract: _FilterChecker._extract,
+_CHECKS: dict[str, Callable[[ExpressionChecker, exp.Expression], Typed]] = {
+    "paren": ExpressionChecker._paren,
+    "connective": ExpressionChecker._connective,
+    "not_": ExpressionChecker._not,
+    "column": ExpressionChecker._column,
+    "comparison": ExpressionChecker._comparison,
+    "between": ExpressionChecker._between,
+    "in_": ExpressionChecker._in,
+    "like": ExpressionChecker._like,
+    "is_": ExpressionChecker._is,
+    "arithmetic": ExpressionChecker._arithmetic,
+    "negative": ExpressionChecker._negative,
+    "case_function": ExpressionChecker._case_function,
+    "length": ExpressionChecker._length,
+    "trim": ExpressionChecker._trim,
+    "coalesce": ExpressionChecker._coalesce,
+    "extract": ExpressionChecker._extract,
+    "round": ExpressionChecker._round,
+    "cast": ExpressionChecker._cast,
 }
+_SQL_TYPE_NODES = {name: kind for kind, name in CAST_TYPES.items()}
+_OPERATORS = {WHERE: "+, - and *", HAVING: "+, - and *", SELECT: "+, -, * and /"}
+
+
+def number_value(node: exp.Expression) -> Decimal:
+    """The value of a checked number literal (negative ones are unary minus)."""
+    return -number_value(node.this) if isinstance(node, exp.Neg) else Decimal(node.this)
+
+
+def _is_integer(node: exp.Expression) -> bool:
+    return literal_type(number_value(node)) in ("integer", "bigint")

@@ -24,7 +24,7 @@ ACCEPTED: tuple[tuple[str, str], ...] = (
     ("Public tables", READ_HINT + " (exact rows, nothing charged)"),
     ("Select list", SELECT_HINT),
     ("WHERE", WHERE_HINT),
-    ("Functions", FUNCTION_HINT + " (functions only in WHERE)"),
+    ("Functions", FUNCTION_HINT + " (in WHERE; the select list takes round, coalesce and casts)"),
     ("GROUP BY", GROUP_BY_HINT),
     ("HAVING", HAVING_HINT + " (applied to the noisy answer, free)"),
     ("ORDER BY", ORDER_HINT + " (applied to the noisy answer, free)"),

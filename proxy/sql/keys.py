@@ -44,6 +44,7 @@ from proxy.sql.domains import EXTRACT_FIELDS, TRUNC_UNITS, integer_division, key
 from proxy.sql.filters import (BucketReader, ColumnResolver, Typed, chain_operands, check_filter,
                                date_node, iso_date, literal, number_node, only_args, unparen)
 from proxy.sql.plan import GroupKey, Label, Narrowing
+from proxy.sql.vocabulary import SQL_FAMILY, column_node, value_node
 
 BUCKET_HINT = ("GROUP BY accepts columns with a declared domain, date_trunc('<unit>', d), "
                "extract(<field> FROM d), CASE WHEN <condition on one column> THEN <literal> ... END, "
@@ -399,7 +400,7 @@ def key_expression(key: GroupKey, column: ColumnPolicy, *, ordinals: bool) -> ex
 
     Must hold: ``key.form`` is not "column".
     """
-    value = _quoted(key.column)
+    value = column_node(key.column)
     if key.form == "date_trunc":
         stamp = exp.cast(value, "timestamp", copy=False)  # without time zone: no DST midnights
         bucket: exp.Expression = exp.cast(exp.Anonymous(this="date_trunc", expressions=[
@@ -418,7 +419,7 @@ def key_expression(key: GroupKey, column: ColumnPolicy, *, ordinals: bool) -> ex
             exp.Div(this=numerator, expression=number_node(width), typed=True)]),
             expression=number_node(width))
     elif key.form == "case":
-        results = [number_node(choice) if ordinals else _label_node(key.labels[choice])
+        results = [number_node(choice) if ordinals else value_node(key.labels[choice])
                    for choice in key.choices]
         bucket = exp.Case(ifs=[exp.If(this=branch.copy(), true=result)
                                for branch, result in zip(key.branches, results)],
@@ -428,38 +429,23 @@ def key_expression(key: GroupKey, column: ColumnPolicy, *, ordinals: bool) -> ex
     return exp.Case(ifs=[exp.If(this=_inside_domain(key.column, column), true=bucket)])
 
 
-def _quoted(name: str) -> exp.Column:
-    return exp.Column(this=exp.to_identifier(name, quoted=True))
-
-
-def _label_node(label: Label) -> exp.Expression:
-    if label is None:
-        return exp.Null()
-    if isinstance(label, bool):
-        return exp.Boolean(this=label)
-    if isinstance(label, Decimal):
-        return number_node(label)
-    return exp.Literal.string(label)
-
-
 def _inside_domain(name: str, column: ColumnPolicy) -> exp.Expression:
     """True exactly for values in the column's declared domain (NULL and NaN are outside)."""
     if column.kind == "category":
-        return exp.In(this=_quoted(name), expressions=[exp.Literal.string(v) for v in column.values or []])
+        return exp.In(this=column_node(name), expressions=[exp.Literal.string(v) for v in column.values or []])
     if column.kind == "boolean":
-        return exp.Not(this=exp.Is(this=_quoted(name), expression=exp.Null()))
+        return exp.Not(this=exp.Is(this=column_node(name), expression=exp.Null()))
     if column.kind == "date":
         start, end = date_range(column)
-        return exp.Between(this=_quoted(name), low=date_node(start.isoformat()),
+        return exp.Between(this=column_node(name), low=date_node(start.isoformat()),
                            high=date_node(end.isoformat()))
-    return exp.Between(this=_quoted(name), low=number_node(column.low), high=number_node(column.high))
+    return exp.Between(this=column_node(name), low=number_node(column.low), high=number_node(column.high))
 
 
 # ---- buckets in WHERE --------------------------------------------------------------------------
 
 _WHERE_FORMS = (exp.TimestampTrunc, exp.DateTrunc, exp.WidthBucket, exp.Case)
-_FAMILY = {"text": "text", "integer": "number", "numeric": "number", "double precision": "number",
-           "date": "date", "boolean": "boolean"}
+_FAMILY = SQL_FAMILY
 
 
 def bucket_reader(table: TablePolicy, resolve: ColumnResolver) -> BucketReader:

@@ -12,10 +12,8 @@ from typing import Callable
 import sqlglot.expressions as exp
 
 from proxy.policy import ColumnPolicy, Policies, TablePolicy
+from proxy.sql.vocabulary import column_types
 
-# The PostgreSQL type a column of each policy kind is compared as.
-_KIND_TYPES = {"category": "text", "integer": "bigint", "number": "numeric", "date": "date",
-               "boolean": "boolean"}
 _COMPARISONS = (exp.EQ, exp.NEQ, exp.GT, exp.GTE, exp.LT, exp.LTE, exp.Between, exp.In,
                 exp.Like, exp.ILike)
 
@@ -41,7 +39,7 @@ def parameter_types(tree: exp.Expression, policies: Policies) -> list[str | None
             policy = column_policy(column) if column is not None else None
             if policy is not None:
                 found[index] = "text" if isinstance(parent, (exp.Like, exp.ILike)) \
-                    else _KIND_TYPES[policy.kind]
+                    else column_types(policy).sql
     return found
 
 

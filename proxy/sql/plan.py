@@ -33,17 +33,28 @@ JoinKind = Literal["from", "inner", "semi"]
 MeasureKind = Literal["count_rows", "count_values", "sum", "count_individuals", "centred_sum",
                       "centred_squares"]
 OutputKind = Literal["key", "count", "sum", "avg", "var_samp", "var_pop", "stddev_samp",
-                     "stddev_pop", "percentile_cont", "percentile_disc"]
+                     "stddev_pop", "percentile_cont", "percentile_disc", "expression"]
 SPREAD_KINDS = ("var_samp", "var_pop", "stddev_samp", "stddev_pop")
 PERCENTILE_KINDS = ("percentile_cont", "percentile_disc")
 
 
 @dataclass(frozen=True)
 class Measure:
-    """One noisy integer per cell. ``column`` is None for ``count_rows`` and ``count_individuals``."""
+    """One noisy integer per cell. ``column`` is None for ``count_rows`` and ``count_individuals``.
+
+    ``value``, when set, is the checked per-row SQL counted or summed instead of the column (a
+    bounded value: a boolean cast to integer, a CASE of integer literals); ``where`` is a
+    FILTER's checked condition: only rows where it holds count. A measure with either names
+    in ``column`` a derived column of ``Plan.table`` (its policy gives the value's range and
+    step; a filtered measure's is its column's, under a name of its own, so that it gets
+    contribution bounds of its own). ``count_rows`` and ``count_individuals`` take ``where``
+    without a column (an individual counts in a cell when one of its rows there passes it).
+    """
 
     kind: MeasureKind
     column: str | None = None
+    value: exp.Expression | None = None
+    where: exp.Expression | None = None
 
 
 KeyForm = Literal["column", "date_trunc", "extract", "case", "width_bucket", "floor"]
@@ -101,8 +112,12 @@ class Output:
     aggregates: count -> (count,), sum -> (sum,), avg -> (sum, count_values), the variances and
     standard deviations -> (count_values, centred_sum, centred_squares), a percentile ->
     (count_values,) over the plan's ranked cells (``Plan.ranked``); ``fraction`` is a
-    percentile's p. Hidden outputs
-    (``visible`` False) exist only because HAVING or ORDER BY names an aggregate not selected.
+    percentile's p. Hidden outputs (``visible`` False) exist only because HAVING, ORDER BY or a
+    select-list expression names an aggregate or key not selected as such.
+
+    Kind "expression" is post-processing in the select list: ``expression`` is a tree over
+    placeholders of other outputs (``output_ref``, never of another expression), evaluated on
+    the noisy row by ``proxy.sql.postprocess``, and ``type`` its PostgreSQL type.
     """
 
     name: str
@@ -112,6 +127,8 @@ class Output:
     column: str | None = None
     visible: bool = True
     fraction: Decimal | None = None
+    expression: exp.Expression | None = None
+    type: str | None = None
 
 
 @dataclass(frozen=True)
@@ -142,7 +159,8 @@ class OrderItem:
 
 @dataclass(frozen=True)
 class Plan:
-    """An accepted aggregate query over one policy table.
+    """An accepted aggregate query over one policy table (with the derived columns its measures
+    name added, see ``Measure.value``).
 
     ``where`` is a validated sqlglot condition over the table's exposed columns (unqualified
     ``exp.Column`` nodes named as in the policy) or None. ``having`` is a condition in which each

@@ -25,6 +25,26 @@ finished aggregate to the domain list. Adding or removing one row changes one ce
 for a count and by at most ``M = max(|lo|, |hi|) / step`` for a sum, so the L1 sensitivity of the
 whole histogram is 1 (count) or M (sum), whatever the number of cells.
 
+Filtered measures and bounded values (``Measure.value``)
+-------------------------------------------------------
+``<aggregate> FILTER (WHERE c)`` (``Measure.where``) counts or sums, per row, ``CASE WHEN c THEN
+v END`` instead of ``v``, v already clamped (COUNT(*) counts ``CASE WHEN c THEN 1 END``); ``c``
+is checked and rebuilt as a WHERE
+condition, so it cannot fail on any row. It is a different measure, with the same sensitivity
+as the unfiltered one: what one row adds to it is either what it adds unfiltered or nothing
+(NULL adds nothing to SUM or COUNT), so a row still moves one cell by at most 1 (counts) or M
+(sums, clamped as before), and an individual's partials in each cell are at most its
+unfiltered ones in absolute value, so every per-individual argument below holds unchanged.
+COUNT(DISTINCT individual) FILTER counts an individual in a cell when one of its rows there
+passes ``c``: a subset of the cells it touches, still at most min(R, cells). A filtered sum has
+a bound of its own (its totals are of its own partials), never one computed from another
+measure's totals.
+
+SUM and AVG also take a per-row value whose range is fixed by the text: a boolean column cast to
+integer (0 or 1) or a CASE of integer literals over checked conditions (range: smallest to
+largest branch). The analyser gives it a derived integer column with that range, and it is
+clamped and counted like any integer column: M = max(|lo|, |hi|).
+
 Tables with individuals (``[individual]`` with ``most_rows``)
 -------------------------------------------------------------
 Neighbouring databases differ by all the rows of one individual (in every table of its
@@ -209,7 +229,7 @@ import sqlglot.expressions as exp
 
 from proxy.policy import ColumnPolicy, TablePolicy
 from proxy.sql.domains import cell_count, key_size, key_values
-from proxy.sql.filters import date_node
+from proxy.sql.vocabulary import clamp_node, column_node, number_node, value_node
 from proxy.sql.keys import key_expression
 from proxy.sql.plan import GroupKey, Measure, Plan
 
@@ -273,7 +293,6 @@ def loss_cap(bounds: tuple[Bound, ...], j: int, values: tuple[int, ...], cells: 
     return max(c - a * (values[k] if k is not None else 0)
                for c, a, k in loss_terms(bounds, j, cells)) + cells
 
-    score_sensitivity = 1  # one individual moves each score -|above_k - A| by at most 1
 
 
 @dataclass(frozen=True)
@@ -359,7 +378,7 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
 def _no_cells(plan: Plan) -> exp.Select:
     """A query of the answer's shape (ordinals, then measures) returning no row."""
     columns = [f"i{j}" for j in range(len(plan.keys))] + [f"m{n}" for n in range(len(plan.measures))]
-    return exp.Select().select(*[exp.alias_(_num(0), name, copy=False) for name in columns],
+    return exp.Select().select(*[exp.alias_(number_node(0), name, copy=False) for name in columns],
                                copy=False).where(exp.false(), copy=False)
 
 
@@ -436,12 +455,12 @@ def _centred_value(policy: TablePolicy, name: str) -> exp.Expression:
     column = policy.columns[name]
     low, high = _unit_range(column)
     if column.kind == "integer":  # bigint: |x - c|^2 of a clamped 32-bit integer fits 63 bits
-        units = exp.cast(_clamp(_col(name), low, high), "bigint", copy=False)
+        units = exp.cast(_clamp(column_node(name), low, high), "bigint", copy=False)
     else:
         units = exp.cast(exp.Anonymous(this="round", expressions=[exp.Div(
-            this=_clamp_between(_col(name), _decimal(column.low), _decimal(column.high)),
-            expression=_decimal(column.unit), typed=True)]), "numeric", copy=False)
-    return exp.Paren(this=exp.Sub(this=units, expression=_num(centre(column))))
+            this=clamp_node(column_node(name), number_node(column.low), number_node(column.high)),
+            expression=number_node(column.unit), typed=True)]), "numeric", copy=False)
+    return exp.Paren(this=exp.Sub(this=units, expression=number_node(centre(column))))
 
 
 def _unit_range(column: ColumnPolicy) -> tuple[int, int]:
@@ -455,40 +474,9 @@ def _unit_range(column: ColumnPolicy) -> tuple[int, int]:
 
 # ---- building blocks -------------------------------------------------------------------------
 
-def _ident(name: str) -> exp.Identifier:
-    return exp.to_identifier(name, quoted=True)
-
-
-def _col(name: str, table: str | None = None) -> exp.Column:
-    return exp.Column(this=_ident(name), table=exp.to_identifier(table) if table else None)
-
-
-def _num(value: int) -> exp.Expression:
-    literal = exp.Literal.number(abs(value))
-    return exp.Neg(this=literal) if value < 0 else literal
-
-
-def _literal(value: object) -> exp.Expression:
-    if isinstance(value, bool):
-        return exp.Boolean(this=value)
-    if isinstance(value, int):
-        return _num(value)
-    if isinstance(value, dt.date):
-        return date_node(value.isoformat())  # built directly: exp.cast parses its type name
-    if isinstance(value, Decimal):
-        return _decimal(value)
-    return exp.Literal.string(str(value))
-
-
 def _clamp(value: exp.Expression, low: int, high: int) -> exp.Expression:
-    return _clamp_between(value, _num(low), _num(high))
-
-
-def _clamp_between(value: exp.Expression, low: exp.Expression, high: exp.Expression) -> exp.Expression:
     """``value`` clamped to [low, high] on its own type, NULL kept as NULL (see the module notes)."""
-    return exp.Case(ifs=[exp.If(this=exp.LT(this=value, expression=low), true=low.copy()),
-                         exp.If(this=exp.GT(this=value.copy(), expression=high), true=high.copy())],
-                    default=value.copy())
+    return clamp_node(value, number_node(low), number_node(high))
 
 
 def _key_column(policy: TablePolicy, key: GroupKey) -> ColumnPolicy:
@@ -499,7 +487,7 @@ def _key_expression(policy: TablePolicy, key: GroupKey) -> exp.Expression:
     """The per-row value a key groups by: the column, or its guarded bucket (NULL outside the
     declared domain, matching no cell); a CASE key gives its label's ordinal (``keys``)."""
     if key.form == "column":
-        return _col(key.column)
+        return column_node(key.column)
     return key_expression(key, policy.columns[key.column], ordinals=True)
 
 
@@ -517,31 +505,38 @@ def _in_column_units(column: ColumnPolicy, name: str, exact: frozenset[str]) -> 
 
 def _row_value(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> exp.Expression:
     """What one row contributes to a sum: clamped on the column's own type first (so nothing
-    after it can overflow), then, unless summed in column units, rounded to step units."""
+    after it can overflow), then, unless summed in column units, rounded to step units; NULL
+    for a row its FILTER condition does not pass."""
     column = policy.columns[measure.column]  # type: ignore[index]
     low, high = _unit_range(column)
     if column.kind == "integer":
-        return _clamp(_col(measure.column), low, high)  # type: ignore[arg-type]
-    clamped = _clamp_between(_col(measure.column), _decimal(column.low),  # type: ignore[arg-type]
-                             _decimal(column.high))
+        return _filtered_row(measure, _clamp(_measured(measure), low, high))
+    clamped = clamp_node(_measured(measure), number_node(column.low), number_node(column.high))
     if _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
-        return clamped
+        return _filtered_row(measure, clamped)
     # round() by name: sqlglot's Round node would add a per-row cast to double precision;
     # typed=True keeps PostgreSQL's own division (no cast).
-    return exp.Anonymous(this="round", expressions=[
-        exp.Div(this=clamped, expression=_decimal(column.unit), typed=True)])
+    return _filtered_row(measure, exp.Anonymous(this="round", expressions=[
+        exp.Div(this=clamped, expression=number_node(column.unit), typed=True)]))
 
 
-def _decimal(value: object) -> exp.Expression:
-    number = Decimal(str(value))
-    literal = exp.Literal.number(str(abs(number)))
-    return exp.Neg(this=literal) if number < 0 else literal
+def _measured(measure: Measure) -> exp.Expression:
+    """What a measure counts or sums per row: its column, or its checked per-row value (a
+    bounded value, ``Measure.value``)."""
+    return measure.value.copy() if measure.value is not None else column_node(measure.column)  # type: ignore[arg-type]
+
+
+def _filtered_row(measure: Measure, value: exp.Expression) -> exp.Expression:
+    """``value`` where the measure's FILTER condition holds, NULL elsewhere (adds nothing)."""
+    if measure.where is None:
+        return value
+    return exp.Case(ifs=[exp.If(this=measure.where.copy(), true=value)])
 
 
 def _to_units(total: exp.Expression, column: ColumnPolicy) -> exp.Expression:
     """floor(total / step + 0.5): a finished sum in column units as an integer of steps."""
-    ratio = exp.Div(this=total, expression=_decimal(column.unit), typed=True)
-    return exp.Anonymous(this="floor", expressions=[exp.Add(this=ratio, expression=_decimal("0.5"))])
+    ratio = exp.Div(this=total, expression=number_node(column.unit), typed=True)
+    return exp.Anonymous(this="floor", expressions=[exp.Add(this=ratio, expression=number_node("0.5"))])
 
 
 def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
@@ -549,9 +544,10 @@ def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
     """The row-level aggregate computing ``measure`` over one group of rows; with ``finish``
     False a sum kept in column units is left unconverted (per-individual partials)."""
     if measure.kind == "count_rows":
-        return exp.Count(this=exp.Star())
+        return exp.Count(this=exp.Star() if measure.where is None
+                         else _filtered_row(measure, number_node(1)))
     if measure.kind == "count_values":
-        return exp.Count(this=_col(measure.column))  # type: ignore[arg-type]
+        return exp.Count(this=_filtered_row(measure, _measured(measure)))
     if measure.kind == "centred_sum":
         return exp.Sum(this=_centred_value(policy, measure.column))  # type: ignore[arg-type]
     if measure.kind == "centred_squares":
@@ -559,7 +555,8 @@ def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
         return exp.Sum(this=exp.Mul(this=value, expression=value.copy()))
     if measure.kind == "count_individuals":  # tables with individuals only (module notes, 8)
         assert policy.individual is not None
-        return exp.Count(this=exp.Distinct(expressions=[_col(policy.individual.column)]))
+        return exp.Count(this=exp.Distinct(expressions=[
+            _filtered_row(measure, column_node(policy.individual.column))]))
     if measure.kind == "sum":
         total: exp.Expression = exp.Sum(this=_row_value(policy, measure, exact))
         column = policy.columns[measure.column]  # type: ignore[index]
@@ -581,14 +578,14 @@ def _domain_source(policy: TablePolicy, key: GroupKey, index: int) -> exp.Expres
             and _consecutive(values):
         # Consecutive integers or days: v = first + i over generate_series(0, n - 1), rather
         # than a VALUES list of every value (date + integer is a date in PostgreSQL).
-        series = exp.Anonymous(this="generate_series", expressions=[_num(0), _num(len(values) - 1)])
+        series = exp.Anonymous(this="generate_series", expressions=[number_node(0), number_node(len(values) - 1)])
         inner = exp.Select().select(
-            exp.column("i"), exp.alias_(exp.Add(this=_literal(first), expression=exp.column("i")),
+            exp.column("i"), exp.alias_(exp.Add(this=value_node(first), expression=exp.column("i")),
                                          "v", copy=False), copy=False).from_(
             exp.Table(this=series, alias=exp.TableAlias(this=exp.to_identifier("s"),
                                                           columns=[exp.to_identifier("i")])), copy=False)
         return exp.Subquery(this=inner, alias=alias)
-    rows = [exp.Tuple(expressions=[_num(i), _num(i) if key.form == "case" else _literal(v)])
+    rows = [exp.Tuple(expressions=[number_node(i), number_node(i) if key.form == "case" else value_node(v)])
             for i, v in enumerate(values)]
     return exp.Values(expressions=rows, alias=alias)
 
@@ -629,7 +626,7 @@ def _rows(plan: Plan) -> exp.Expression:
     for index, join in enumerate(plan.joins):
         for name, own in join.columns:
             if name in used or not provided:  # a derived table needs one column at least
-                provided.setdefault(name, exp.alias_(_col(own, f"t{index}"), _ident(name),
+                provided.setdefault(name, exp.alias_(column_node(own, f"t{index}"), exp.to_identifier(name, quoted=True),
                                                      copy=False))
     select = exp.Select().select(*provided.values(), copy=False)
     for index, join in enumerate(plan.joins):
@@ -661,9 +658,9 @@ def _joined_source(table: TablePolicy, alias: str) -> exp.Expression:
     source = _source(table)
     if not table.public or table.key is None:
         return exp.alias_(source, alias, table=True, copy=False)
-    key = _col(table.key)
+    key = column_node(table.key)
     once = exp.Select().select(key, copy=False).from_(_source(table), copy=False).group_by(
-        key.copy(), copy=False).having(exp.EQ(this=exp.Count(this=exp.Star()), expression=_num(1)),
+        key.copy(), copy=False).having(exp.EQ(this=exp.Count(this=exp.Star()), expression=number_node(1)),
                                        copy=False)
     rows = exp.Select().select(exp.Star(), copy=False).from_(source, copy=False).where(
         exp.In(this=key.copy(), query=exp.Subquery(this=once)), copy=False)
@@ -674,7 +671,7 @@ def _join_condition(plan: Plan, index: int) -> exp.Expression:
     """``t<index>.column = t<to>.column`` of one join; categories compare as text."""
     join = plan.joins[index]
     assert join.column is not None and join.to is not None
-    sides = [_col(join.column, f"t{index}"), _col(join.to[1], f"t{join.to[0]}")]
+    sides = [column_node(join.column, f"t{index}"), column_node(join.to[1], f"t{join.to[0]}")]
     if join.table.columns[join.column].kind == "category":
         sides = [exp.cast(side, "text", copy=False) for side in sides]
     return exp.EQ(this=sides[0], expression=sides[1])
@@ -690,7 +687,7 @@ def _semi_join(plan: Plan, index: int) -> exp.Expression:
             lambda node: exp.Column(this=node.this.copy(), table=exp.to_identifier(alias))
             if isinstance(node, exp.Column) and node.args.get("table") is None else node)
         condition = exp.and_(condition, exp.Paren(this=inner), copy=False)
-    rows = exp.Select().select(_num(1), copy=False).from_(
+    rows = exp.Select().select(number_node(1), copy=False).from_(
         exp.alias_(_source(join.table), alias, table=True, copy=False), copy=False).where(
         condition, copy=False)
     return exp.Exists(this=rows)
@@ -726,7 +723,7 @@ def _finish(plan: Plan, aggregate: exp.Select, by_ordinal: bool) -> exp.Select:
     policy = plan.table
     outer = exp.Select().select(*[exp.column(f"i{j}", "c") for j in range(len(plan.keys))],
                        *[exp.alias_(exp.Coalesce(this=exp.column(f"m{n}", "a"),
-                                                 expressions=[_num(0)]), f"m{n}", copy=False)
+                                                 expressions=[number_node(0)]), f"m{n}", copy=False)
                          for n in range(len(plan.measures))], copy=False)
     outer = outer.from_(exp.Subquery(this=_cells_frame(plan),
                                      alias=exp.TableAlias(this=exp.to_identifier("c"))), copy=False)
@@ -756,7 +753,7 @@ def _row_table_query(plan: Plan, exact: frozenset[str],
                      only: exp.Expression | None = None) -> exp.Select:
     """One aggregate over the (filtered) rows, per cell; ``only`` further limits the rows."""
     policy = plan.table
-    measures = [exp.alias_(exp.Coalesce(this=_aggregate(policy, m, exact), expressions=[_num(0)]),
+    measures = [exp.alias_(exp.Coalesce(this=_aggregate(policy, m, exact), expressions=[number_node(0)]),
                            f"m{n}", copy=False)
                 for n, m in enumerate(plan.measures)]
     keys = [exp.alias_(_key_expression(policy, k), f"k{j}", copy=False) for j, k in enumerate(plan.keys)]
@@ -765,7 +762,7 @@ def _row_table_query(plan: Plan, exact: frozenset[str],
         select = select.where(only, copy=False)
     if not plan.keys:
         return select
-    grouped = select.group_by(*[_num(j + 1) for j in range(len(keys))], copy=False)
+    grouped = select.group_by(*[number_node(j + 1) for j in range(len(keys))], copy=False)
     return _finish(plan, grouped, by_ordinal=False)
 
 
@@ -773,9 +770,9 @@ def _one_row_each_query(plan: Plan, bounds: tuple[Bound, ...], exact: frozenset[
     """When the backend keeps each individual to one row (module notes, 8): the row query over
     the rows with an individual, then each declared bound's value and a clipped-away 0."""
     assert plan.table.individual is not None and not any(b.chosen for b in bounds)
-    owned = exp.Not(this=exp.Is(this=_col(plan.table.individual.column), expression=exp.Null()))
-    tail = [exp.alias_(_num(b.ceiling), f"b{j}", copy=False) for j, b in enumerate(bounds)] + [
-        exp.alias_(_num(0), f"clipped{j}", copy=False) for j in range(len(bounds))]
+    owned = exp.Not(this=exp.Is(this=column_node(plan.table.individual.column), expression=exp.Null()))
+    tail = [exp.alias_(number_node(b.ceiling), f"b{j}", copy=False) for j, b in enumerate(bounds)] + [
+        exp.alias_(number_node(0), f"clipped{j}", copy=False) for j in range(len(bounds))]
     return _row_table_query(plan, exact, owned).select(*tail, copy=False)
 
 
@@ -797,7 +794,11 @@ def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> ex
     measure units: COUNT for counts, the clamped sum in step units for sums, 1 for distinct
     individuals."""
     if measure.kind == "count_individuals":
-        return _num(1)
+        if measure.where is None:
+            return number_node(1)
+        # FILTER: 1 when one of the individual's rows in the cell passes the condition.
+        return exp.Max(this=exp.Case(ifs=[exp.If(this=measure.where.copy(), true=number_node(1))],
+                                     default=number_node(0)))
     if measure.kind == "sum":
         return exp.cast(_aggregate(policy, measure, exact, finish=True), "numeric", copy=False)
     return _aggregate(policy, measure, exact)
@@ -821,14 +822,14 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     bound the clipped-away total, each individual capped."""
     policy = plan.table
     assert policy.individual is not None
-    who = exp.alias_(_col(policy.individual.column), "who", copy=False)
+    who = exp.alias_(column_node(policy.individual.column), "who", copy=False)
     keys = [exp.alias_(_key_expression(policy, k), f"k{j}", copy=False) for j, k in enumerate(plan.keys)]
     partials = [exp.alias_(exp.Count(this=exp.Star()), "r", copy=False)] + [
         exp.alias_(_partial(policy, m, exact), f"m{n}", copy=False)
         for n, m in enumerate(plan.measures)]
     per_individual = _filtered(plan, exp.Select().select(who, *keys, *partials, copy=False)).where(
-        exp.Not(this=exp.Is(this=_col(policy.individual.column), expression=exp.Null())),
-        copy=False).group_by(*[_num(j + 1) for j in range(len(keys) + 1)], copy=False)
+        exp.Not(this=exp.Is(this=column_node(policy.individual.column), expression=exp.Null())),
+        copy=False).group_by(*[number_node(j + 1) for j in range(len(keys) + 1)], copy=False)
     q = _in_domains(plan, per_individual, "p") if plan.keys else per_individual
     sum_bounds = [(j, measure_bounds.index(j)) for j, b in enumerate(bounds) if b.subject != "rows"]
     totals = ["who", "SUM(r) AS n_rows", "COUNT(*) AS touched"] + [
@@ -841,7 +842,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     scaled = [f"{_scaled('q.r', bounds)} AS r_kept"]
     for n, measure in enumerate(plan.measures):
         if measure.kind == "count_individuals":
-            scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN 1 ELSE 0 END AS m{n}")
+            scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN q.m{n} ELSE 0 END AS m{n}")
         elif measure.kind in ("sum", "centred_sum"):
             scaled.append(f"SIGN(q.m{n}) * {_scaled(f'ABS(q.m{n})', bounds)}"
                           f" AS m{n}")

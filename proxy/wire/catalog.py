@@ -54,6 +54,7 @@ from proxy.errors import (FEATURE_NOT_SUPPORTED, INSUFFICIENT_PRIVILEGE, INTERNA
                           HushError)
 from proxy.dsn import with_database
 from proxy.policy import ColumnPolicy, Policies
+from proxy.sql.vocabulary import column_types
 from proxy.wire import own_database, statements, types
 from proxy.wire.askable import (column_comment, my_tables_rows, names_my_tables, table_comment,
                                 with_my_tables)
@@ -100,13 +101,8 @@ class MirrorTable:
 
 
 def column_type(column: ColumnPolicy) -> str:
-    """The mirror's SQL type for a policy column, from its kind alone."""
-    if column.kind == "integer":
-        low, high = column.range or (0, 0)
-        int4 = -(2 ** 31) <= int(low) and int(high) < 2 ** 31
-        return "integer" if int4 else "bigint"
-    return {"category": "text", "number": "numeric", "date": "date",
-            "boolean": "boolean"}[column.kind]
+    """The mirror's SQL type for a policy column (``proxy.sql.vocabulary.column_types``)."""
+    return column_types(column).sql
 
 
 def mirror_layout(policies: Policies, tables: Iterable[str]) -> tuple[MirrorTable, ...]:
