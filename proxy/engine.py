@@ -644,7 +644,7 @@ def _clip_upper(rewritten: Rewritten, j: int, values: tuple[int, ...], lost: int
     bound is declared (nothing spent on it: only data breaking most_rows is clipped)."""
     if not rewritten.bounds[j].chosen:
         return None
-    scale = Fraction(loss_cap(rewritten.bounds, j, values, rewritten.cells)) / Fraction(epsilon)
+    scale = Fraction(loss_cap(rewritten.bounds, j, values)) / Fraction(epsilon)
     noisy = lost + int(noise.sample_discrete_laplace(scale, 1)[0])
     return max(0, noisy + noise.bound(scale, 0.90))
 

@@ -53,6 +53,10 @@ CLAMPED_AGE = "CASE WHEN age > 100 THEN 100 WHEN age < 0 THEN 0 ELSE age END"
 WEIGHT_UNITS = ("CASE WHEN round(weight * 2) > 240 THEN 240 WHEN round(weight * 2) < -10 "
                 "THEN -10 ELSE round(weight * 2) END")
 
+# The person's visits in wards of ordinal (in declared order) compared with what follows.
+_VISITS_OF_PERSON = ("(SELECT count(*) FROM clinic.visits y WHERE y.person_id = v.person_id "
+                     "AND array_position(ARRAY['north','south','east'], y.ward)")
+
 CASES = [
     ("SELECT COUNT(*) FROM people", "SELECT count(*) FROM clinic.people"),
     ("SELECT COUNT(age), SUM(age) FROM people",
@@ -91,12 +95,14 @@ CASES = [
     ("SELECT SUM(minutes), COUNT(DISTINCT person_id) FROM visits",
      f"SELECT sum(least(s, trunc(s * 3.0 / c), 180)), count(*) FROM (SELECT person_id, count(*) AS c, "
      f"sum({CLAMPED_MINUTES}) AS s FROM clinic.visits GROUP BY person_id) t"),
-    # Per ward: each person's count there times 3 / (its rows in the three wards), truncated;
-    # a person in at most 3 cells is always counted once per ward it visited.
+    # Per ward: the person's rows are scaled by 3 / (its rows in the three wards) and rounded
+    # cumulatively in ward order: the ward keeps f(its rows up to this ward) - f(its rows before
+    # it), f(x) = min(x, floor(3x / total)); a person in at most 3 cells is always counted once
+    # per ward it visited.
     ("SELECT ward, COUNT(*), COUNT(DISTINCT person_id) FROM visits GROUP BY ward",
-     f"SELECT (SELECT sum(CASE WHEN x.c * 3 >= x.c * x.total THEN x.c ELSE trunc(x.c * 3.0 / x.total) END) "
-     f"FROM (SELECT v.person_id, count(*) AS c, (SELECT count(*) FROM clinic.visits y "
-     f"WHERE y.person_id = v.person_id AND y.ward IN ('north', 'south', 'east')) AS total "
+     f"SELECT (SELECT sum(least(x.upto, x.upto * 3 / x.total) - least(x.before, x.before * 3 / x.total)) "
+     f"FROM (SELECT v.person_id, {_VISITS_OF_PERSON} <= w.i) AS upto, "
+     f"{_VISITS_OF_PERSON} < w.i) AS before, {_VISITS_OF_PERSON} <= 3) AS total "
      f"FROM clinic.visits v WHERE v.ward = w.v GROUP BY v.person_id) x), "
      f"(SELECT count(DISTINCT person_id) FROM clinic.visits x WHERE x.ward = w.v) "
      f"FROM {WARDS} ORDER BY w.i"),

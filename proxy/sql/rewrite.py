@@ -93,11 +93,11 @@ second scan. Report noisy max with noise drawn before the query (exact integer s
 
 7. How far clipping may have lowered an answer. Per bound j, ``clipped_j`` sums over
    individuals their clipped-away amount (rows, or the L1 of the sum's partials, lost to the
-   factor and the rounding), each capped at ``cap_j = max(terms) + cells``
+   factor and the rounding), each capped at ``cap_j = max(terms) + 1``
    (``loss_terms``): ``ceiling_j - B_j`` (w set by bound j: at most the ceiling less the bound),
    ``ceiling_j - per_row * R`` for a sum bound when the rows bound R set w (each row adds at most
-   per_row), and ``ceiling_j`` for any other binding bound; ``cells`` covers rounding toward
-   zero (under one unit per partial). Removing u moves ``clipped_j`` by at most ``cap_j``, its
+   per_row), and ``ceiling_j`` for any other binding bound; ``ROUNDING_LOSS = 1`` covers the
+   rounding, which loses under one unit per individual in all (4b), whatever the cells. Removing u moves ``clipped_j`` by at most ``cap_j``, its
    sensitivity. The caps rely on the data owner's ceiling (most_rows): an individual breaking it
    is still bounded in the answer, but its clipped-away amount may then be understated.
 """
@@ -152,13 +152,17 @@ class Bound:
 # One individual moves each candidate's score -|above_k - A| by at most this.
 SCORE_SENSITIVITY = 1
 
+# What rounding may take from one individual on top of its factor, in measure units: the
+# rounding is cumulative over its cells (module notes, 4), so it loses under one unit in all.
+ROUNDING_LOSS = 1
+
 # A term of a loss cap: constant - coefficient * (value of bound ``index``), or the constant.
 LossTerm = tuple[int, int, "int | None"]
 
 
-def loss_terms(bounds: tuple[Bound, ...], j: int, cells: int) -> list[LossTerm]:
+def loss_terms(bounds: tuple[Bound, ...], j: int) -> list[LossTerm]:
     """The cap on one individual's clipped-away amount for bound j is the largest of these
-    terms plus ``cells`` (module notes, 4)."""
+    terms plus 1 (module notes, 7)."""
     own = bounds[j]
     terms: list[LossTerm] = [(own.ceiling, 1, j)]
     for k, other in enumerate(bounds):
@@ -171,12 +175,10 @@ def loss_terms(bounds: tuple[Bound, ...], j: int, cells: int) -> list[LossTerm]:
     return terms
 
 
-def loss_cap(bounds: tuple[Bound, ...], j: int, values: tuple[int, ...], cells: int) -> int:
+def loss_cap(bounds: tuple[Bound, ...], j: int, values: tuple[int, ...]) -> int:
     """The sensitivity of bound j's clipped-away total, given the bounds' values."""
     return max(c - a * (values[k] if k is not None else 0)
-               for c, a, k in loss_terms(bounds, j, cells)) + cells
-
-    score_sensitivity = 1  # one individual moves each score -|above_k - A| by at most 1
+               for c, a, k in loss_terms(bounds, j)) + ROUNDING_LOSS
 
 
 @dataclass(frozen=True)
@@ -544,13 +546,22 @@ def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> ex
 
 
 def _scaled(value: str, bounds: tuple[Bound, ...]) -> str:
-    """SQL for trunc(value * w), value >= 0: w = min(1, B_j / total_j) over the plan's bounds,
+    """SQL for floor(value * w), value >= 0: w = min(1, B_j / total_j) over the plan's bounds,
     as integer divisions (floor of a minimum is the minimum of the floors), exact."""
     terms = [value]
     for j, bound in enumerate(bounds):
         total = "n_rows" if bound.subject == "rows" else f"tot{j}"
         terms.append(f"div({value} * b.b{j}, NULLIF(t.{total}, 0))")
     return f"LEAST({', '.join(terms)})"
+
+
+def _kept(value: str, running: str | None, bounds: tuple[Bound, ...]) -> str:
+    """SQL for one partial's kept share, value >= 0 (module notes, 4): ``f(running) -
+    f(running - value)`` with f = floor(x * w) and ``running`` the individual's running total
+    up to and including this cell; just ``f(value)`` when each individual has one cell."""
+    if running is None:
+        return _scaled(value, bounds)
+    return f"{_scaled(running, bounds)} - {_scaled(f'({running} - {value})', bounds)}"
 
 
 def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
@@ -578,18 +589,32 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
         f"({_choice_sql(j, bound)}) AS b{j}" if bound.chosen else f"{bound.ceiling} AS b{j}"
         for j, bound in enumerate(bounds)))
     rows_bound = next((j for j, bound in enumerate(bounds) if bound.subject == "rows"), None)
-    scaled = [f"{_scaled('q.r', bounds)} AS r_kept"]
+    ordinals = [f"q.i{j}" for j in range(len(plan.keys))]
+    # Per scaled partial: its size (>= 0) and, with keys, its individual's running total in
+    # cell order (module notes, 4); the running totals come from a window over q.
+    sizes = {"r": "q.r"} | {f"m{n}": f"ABS(q.m{n})" if measure.kind == "sum" else f"q.m{n}"
+                            for n, measure in enumerate(plan.measures)
+                            if measure.kind != "count_individuals"}
+    window = (f"OVER (PARTITION BY q.who ORDER BY {', '.join(ordinals)} "
+              "ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW)")
+    running = {name: f"q.run_{name}" if plan.keys else None for name in sizes}
+    scaled = [f"{_kept('q.r', running['r'], bounds)} AS r_kept"]
     for n, measure in enumerate(plan.measures):
         if measure.kind == "count_individuals":
             scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN 1 ELSE 0 END AS m{n}")
         elif measure.kind == "sum":
-            scaled.append(f"SIGN(q.m{n}) * {_scaled(f'ABS(q.m{n})', bounds)}"
+            scaled.append(f"SIGN(q.m{n}) * ({_kept(sizes[f'm{n}'], running[f'm{n}'], bounds)})"
                           f" AS m{n}")
         else:
-            scaled.append(f"{_scaled(f'q.m{n}', bounds)} AS m{n}")
-    ordinals = [f"q.i{j}" for j in range(len(plan.keys))]
+            scaled.append(f"{_kept(sizes[f'm{n}'], running[f'm{n}'], bounds)} AS m{n}")
+    source = "q"
+    if plan.keys:
+        columns = ["q.who", "q.r"] + ordinals + [f"q.m{n}" for n in range(len(plan.measures))]
+        source = (f"(SELECT {', '.join(columns)}, "
+                  + ", ".join(f"SUM({size}) {window} AS run_{name}" for name, size in sizes.items())
+                  + " FROM q) AS q")
     w = _select(f"SELECT {', '.join(['q.who', 'q.r'] + ordinals + [f'q.m{n}' + f' AS raw{n}' for n in range(len(plan.measures))] + scaled)} "
-                "FROM q JOIN t ON t.who = q.who CROSS JOIN b")
+                f"FROM {source} JOIN t ON t.who = q.who CROSS JOIN b")
     losses = []
     for j, bound in enumerate(bounds):
         if bound.subject == "rows":
@@ -599,8 +624,8 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
             losses.append(f"SUM(ABS(raw{n}) - ABS(m{n})) AS lost{j}")
     lost = _select(f"SELECT {', '.join(losses)} FROM w GROUP BY who")
     caps = ", ".join(
-        f"COALESCE(SUM(LEAST(lost{j}, GREATEST({_loss_terms_sql(loss_terms(bounds, j, cells))})"
-        f" + {cells})), 0) AS clipped{j}"
+        f"COALESCE(SUM(LEAST(lost{j}, GREATEST({_loss_terms_sql(loss_terms(bounds, j))})"
+        f" + {ROUNDING_LOSS})), 0) AS clipped{j}"
         for j, bound in enumerate(bounds))
     clipped = _select(f"SELECT {caps} FROM lost")
     measures = [f"COALESCE(SUM(w.m{n}), 0) AS m{n}" for n in range(len(plan.measures))]
