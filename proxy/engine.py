@@ -359,10 +359,11 @@ class Engine:
             unit = _measure_unit(plan, measure)
             scale = Fraction(sensitivity) / Fraction(split.measure)
             at_most = "at most " if chosen else ""
-            rows.append((f"measure {_measure_label(measure.kind, measure.column)}",
+            rows.append((f"measure {_measure_label(plan, measure)}",
                          f"sensitivity {at_most}{_show(sensitivity * unit)}, noise scale "
                          f"{at_most}{_show(scale * Fraction(unit))}, "
                          f"95% bound {at_most}±{_show(noise.bound95(scale) * unit)}"))
+        rows += _average_items(plan, split)
         rows.append(("backend sql", rewritten.sql))
         return _explain_answer(rows, form, remaining=self.ledger.remaining(analyst),
                                table=plan.table.table)
@@ -570,13 +571,53 @@ def _cell_values(plan: Plan) -> list[tuple[Any, ...]]:
 
 
 def _measure_unit(plan: Plan, measure: Measure) -> Decimal:
-    """What one unit of a measure is worth: the column's step for sums, 1 for counts."""
-    return plan.table.columns[measure.column].unit if measure.kind == "sum" else Decimal(1)  # type: ignore[index]
+    """What one unit of a measure is worth: the column's step for sums, half of it for centred
+    sums (``2 x - lo - hi`` in steps), 1 for counts."""
+    if measure.kind == "sum":
+        return plan.table.columns[measure.column].unit  # type: ignore[index]
+    if measure.kind == "centred_sum":
+        return plan.table.columns[measure.column].unit / 2  # type: ignore[index]
+    return Decimal(1)
 
 
-def _measure_label(kind: str, column: str | None) -> str:
+def _middle(column: ColumnPolicy) -> Decimal:
+    """The middle of a summable column's declared range, where AVG's centred sum is centred."""
+    low, high = (Decimal(v) for v in column.range)  # type: ignore[union-attr]
+    return (low + high) / 2
+
+
+def _measure_label(plan: Plan, measure: Measure) -> str:
+    column = measure.column
+    if measure.kind == "centred_sum":
+        return f"sum({column} - {_middle(plan.table.columns[column])})"  # type: ignore[index]
     return {"count_rows": "count(*)", "count_values": f"count({column})", "sum": f"sum({column})",
-            "count_individuals": "count(distinct individual)"}[kind]
+            "count_individuals": "count(distinct individual)"}[measure.kind]
+
+
+def _average_items(plan: Plan, split: EpsilonSplit) -> list[tuple[Value, ...]]:
+    """EXPLAIN's account of each average: centred or not, and its epsilon split."""
+    items: list[tuple[Value, ...]] = []
+    for output in plan.outputs:
+        if output.kind != "avg":
+            continue
+        sum_measure = plan.measures[output.measures[0]]
+        column = plan.table.columns[sum_measure.column]  # type: ignore[index]
+        if sum_measure.kind == "centred_sum":
+            middle = _middle(column)
+            how = (f"centred: {middle} + noisy sum({output.column} - {middle}) / noisy "
+                   f"count({output.column}), {middle} the middle of the declared range "
+                   f"[{column.low}, {column.high}] (half the plain sum's noise for a range from 0)")
+        elif plan.table.individual is not None and plan.table.individual.bounds == "chosen":
+            how = (f"noisy sum({output.column}) / noisy count({output.column}), not centred: the "
+                   "bounds are chosen from the individuals' totals, which centring would widen")
+        else:
+            how = (f"noisy sum({output.column}) / noisy count({output.column}), not centred: "
+                   f"it shares the plain sum SUM({output.column}) needs, one measure fewer")
+        items.append((f"average {output.name}",
+                      f"{how}; epsilon {split.measure:.6g} for the sum and {split.measure:.6g} "
+                      "for the count (equal: the split minimising the largest error, since "
+                      "|average - centre| is bounded only by the range)"))
+    return items
 
 
 def _show(value: Fraction | Decimal | int) -> str:
@@ -613,8 +654,11 @@ def _output_value(plan: Plan, output: Output, cell: tuple[Any, ...], measures: l
     if count <= 0:
         return None
     low, high = (float(v) for v in column.range)  # type: ignore[union-attr]
+    measure = plan.measures[output.measures[0]]
+    centre = float(_middle(column)) if measure.kind == "centred_sum" else 0.0
+    average = centre + float(Decimal(first) * _measure_unit(plan, measure)) / count
     # Rounded for display only; the noise is far larger than the sixth decimal.
-    return round(min(high, max(low, float(Decimal(first) * column.unit) / count)), 6)
+    return round(min(high, max(low, average)), 6)
 
 
 def _bound_settings(rewritten: Rewritten, split: EpsilonSplit) -> dict[str, str] | None:
@@ -652,7 +696,7 @@ def _clip_upper(rewritten: Rewritten, j: int, values: tuple[int, ...], lost: int
 def _answer_notes(plan: Plan, rewritten: Rewritten, values: tuple[int, ...]) -> list[str]:
     """Facts about how the answer was computed, true of any data (no data-dependent count)."""
     notes = []
-    ranged = sorted({m.column for m in plan.measures if m.kind == "sum"})  # type: ignore[type-var]
+    ranged = sorted({m.column for m in plan.measures if m.kind in ("sum", "centred_sum")})  # type: ignore[type-var]
     for name in ranged:
         column = plan.table.columns[name]  # type: ignore[index]
         notes.append(f"values of {name} outside its declared range [{column.low}, {column.high}] "
@@ -688,22 +732,24 @@ def _accuracy(plan: Plan, output: Output, share: Decimal, sensitivities: tuple[i
                         scale=scales[first] * Fraction(unit), bound95=Decimal(bounds[first]) * unit,
                         note="discrete Laplace", low_by=low_by, high_by=high_by)
     column = plan.table.columns[measure.column]  # type: ignore[index]
-    return _average_accuracy(output, column, share * 2, scales, noisy, clipping)
+    centre = _middle(column) if measure.kind == "centred_sum" else Decimal(0)
+    return _average_accuracy(output, column, share * 2, unit, centre, scales, noisy, clipping)
 
 
-def _average_accuracy(output: Output, column: ColumnPolicy, epsilon: Decimal,
-                      scales: list[Fraction], noisy: list[list[int]],
+def _average_accuracy(output: Output, column: ColumnPolicy, epsilon: Decimal, unit: Decimal,
+                      centre: Decimal, scales: list[Fraction], noisy: list[list[int]],
                       clipping: list[int | None]) -> Accuracy:
     """AVG's 95% bound, the widest over cells of its linearised error: the average
-    ``a = S u / C`` of a noisy sum and count moves by about ``(u Z_s - a Z_c) / C``, whose
-    standard deviation is ``sqrt(u^2 Var_s + a^2 Var_c) / C``; the bound is
-    ``_AVG_SD_MULTIPLE`` of it, capped by the range's width. Where the count is too small for
-    the linearisation (within three standard deviations of 0) the bound is the range's width.
+    ``a = c + S u / C`` of a noisy sum S (centred on c, or c = 0) and count C, u the sum's
+    unit, moves by about ``(u Z_s - (a - c) Z_c) / C``, whose standard deviation is
+    ``sqrt(u^2 Var_s + (a - c)^2 Var_c) / C``; the bound is ``_AVG_SD_MULTIPLE`` of it, capped
+    by the range's width. Where the count is too small for the linearisation (within three
+    standard deviations of 0) the bound is the range's width.
     Clipping (sum and count both scaled down by one factor per individual) may move the average
     either way, by at most the clipped-away share of the count times the distance to the far end
     of the range: ``low_by`` and ``high_by``."""
     s, c = output.measures
-    unit = float(column.unit)
+    step, middle = float(unit), float(centre)
     low, high = (float(v) for v in column.range)  # type: ignore[union-attr]
     var_s, var_c = noise.variance(scales[s]), noise.variance(scales[c])
     widest = widest_clip = 0.0
@@ -711,8 +757,9 @@ def _average_accuracy(output: Output, column: ColumnPolicy, epsilon: Decimal,
         if count <= 3 * math.sqrt(var_c):
             widest = widest_clip = high - low
             break
-        estimate = min(high, max(low, total * unit / count))
-        spread = _AVG_SD_MULTIPLE * math.sqrt(unit * unit * var_s + estimate * estimate * var_c) / count
+        estimate = min(high, max(low, middle + total * step / count))
+        offset = estimate - middle
+        spread = _AVG_SD_MULTIPLE * math.sqrt(step * step * var_s + offset * offset * var_c) / count
         widest = max(widest, min(high - low, spread))
         if clipping[c] is not None:
             # The plain average mixes the kept one with the clipped-away rows' average (inside

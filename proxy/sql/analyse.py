@@ -51,6 +51,7 @@ from proxy.sql.keys import (BUCKET_HINT, bucket_reader, is_key_expression, narro
 from proxy.sql.limits import check_statement_text, check_tree
 from proxy.sql.limits import hint as limit_hint
 from proxy.sql.plan import GroupKey, Measure, OrderItem, Output, Plan, output_ref
+from proxy.sql.rewrite import centres_averages
 
 BUCKETS = tuple(TRUNC_UNITS)  # the date_trunc units a group key accepts
 
@@ -239,6 +240,7 @@ class _Analysis:
         offset = self._count(select.args.get("offset"), "OFFSET")
         if not self.measures:
             raise refused("the query has no aggregate", SELECT_HINT)
+        self._centre_averages()
         return Plan(table=self.table, measures=tuple(self.measures), outputs=tuple(self.outputs),
                     keys=keys, where=condition, having=having_condition,
                     order_by=order, limit=limit, offset=offset)
@@ -388,6 +390,18 @@ class _Analysis:
         if argument is not None and _holds_aggregate(argument):
             raise HushError(GROUPING_ERROR, "aggregate function calls cannot be nested", SELECT_HINT)
         raise refused(f"{function.upper()}() accepts a column, not an expression", SELECT_HINT)
+
+    def _centre_averages(self) -> None:
+        """AVG's sum becomes a centred sum where the rewrite centres averages, unless a SUM of
+        the same column needs the plain sum: then AVG reuses it, so the query has one measure
+        fewer to share its epsilon (``proxy.sql.rewrite``, "Averages")."""
+        if not centres_averages(self.table):
+            return
+        summed = {self.measures[o.measures[0]] for o in self.outputs if o.kind == "sum"}
+        for output in self.outputs:
+            index = output.measures[0] if output.kind == "avg" else None
+            if index is not None and self.measures[index] not in summed:
+                self.measures[index] = Measure("centred_sum", self.measures[index].column)
 
     def _measure_ids(self, aggregate: _Aggregate) -> tuple[int, ...]:
         ids = []

@@ -8,8 +8,9 @@ noisy rows. A plan is immutable and holds no data, so it can be cached by statem
 Vocabulary:
 - a *measure* is one integer-valued quantity the backend computes per cell and the engine
   noises: a row count, a count of non-null values, a clamped sum in units of the column's step,
-  or a count of distinct individuals. Measures are deduplicated: ``AVG(x)`` and ``SUM(x)`` in one
-  query share the sum of ``x``, so epsilon is split among distinct measures only.
+  a centred sum (``sum(2 x - lo - hi)`` in half steps, for AVG where the range sets the noise),
+  or a count of distinct individuals. Measures are deduplicated: ``AVG(x)`` and ``SUM(x)`` in
+  one query share the plain sum of ``x``, so epsilon is split among distinct measures only.
 - an *output* is one column of the answer, built from measures by post-processing.
 - a *cell* is one combination of group-key values from the declared domains.
 """
@@ -24,7 +25,7 @@ import sqlglot.expressions as exp
 
 from proxy.policy import TablePolicy
 
-MeasureKind = Literal["count_rows", "count_values", "sum", "count_individuals"]
+MeasureKind = Literal["count_rows", "count_values", "sum", "centred_sum", "count_individuals"]
 OutputKind = Literal["key", "count", "sum", "avg"]
 
 
@@ -88,8 +89,9 @@ class Output:
     """One answer column.
 
     ``key`` indexes ``Plan.keys`` for kind "key"; ``measures`` indexes ``Plan.measures`` for
-    aggregates: count -> (count,), sum -> (sum,), avg -> (sum, count_values). Hidden outputs
-    (``visible`` False) exist only because HAVING or ORDER BY names an aggregate not selected.
+    aggregates: count -> (count,), sum -> (sum,), avg -> (sum or centred_sum, count_values).
+    Hidden outputs (``visible`` False) exist only because HAVING or ORDER BY names an aggregate
+    not selected.
     """
 
     name: str

@@ -25,6 +25,45 @@ finished aggregate to the domain list. Adding or removing one row changes one ce
 for a count and by at most ``M = max(|lo|, |hi|) / step`` for a sum, so the L1 sensitivity of the
 whole histogram is 1 (count) or M (sum), whatever the number of cells.
 
+Averages: a centred sum, and the epsilon split
+-----------------------------------------------
+AVG(x) is post-processing of two noisy measures of a cell, a sum and ``n``, the count of x's
+values. Where the sum's noise comes from the declared range (row tables and declared bounds;
+``centres_averages``) the sum is centred on the range's middle ``c = (lo + hi) / 2``: the
+measure is ``sum(2 x - lo - hi)`` in half steps (an integer, exact: with x clamped to
+[lo, hi] in steps, ``2 x - lo - hi`` lies in [lo - hi, hi - lo]), and the engine reports
+``c + (noisy centred sum / 2) / noisy n``, which is the plain average when there is no noise.
+
+Sensitivity. Row tables: one row moves the centred sum by at most ``hi - lo`` half steps, i.e.
+``(hi - lo) / 2`` in the column's units, against ``max(|lo|, |hi|)`` for the plain sum (half
+of it for a range starting at 0). For numeric columns summed exactly per cell, the cell's sum
+S in steps is ``floor(total / step + 0.5)``: adding one row of clamped value y in [lo, hi]
+moves S by an integer in [lo, hi] (monotone, commutes with integer shifts), so ``2 S - (lo +
+hi) n`` moves by at most ``hi - lo``. Individuals: a partial ``p = 2 S - (lo + hi) n`` of one
+(individual, cell) has ``|p| <= (hi - lo) n <= (hi - lo) r`` (r its rows there); the factor w
+includes the rows bound R, so its kept L1 total (4b) is at most ``w (hi - lo) n_rows <= R (hi
+- lo)``: the centred sum's sensitivity is ``R * (hi - lo)`` half steps, with no bound of its
+own (``Rewritten.measure_widths``).
+
+Where bounds are chosen per query the sum is not centred: a chosen bound follows the
+individuals' own totals, and centring makes those larger wherever the values sit in the low
+part of the range. Measured on the demo (3,000 households x 365 daily readings, litres in
+[0, 2000]): households' totals of litres have median 103,384 and 90th percentile 192,351 L;
+of litres - 1000, 261,616 and 316,085 L, and |average - c| is 686 L against an average of 314
+L, so centring would make AVG's error about 1.8 times larger there. When the query also asks
+SUM(x), AVG reuses the plain sum SUM needs: one measure fewer leaves each measure more epsilon
+(SUM(x) keeps its epsilon / 2 rather than / 3), and the average's error is comparable.
+
+The split. With noise of scale Delta / epsilon (variance about 2 Delta^2 / epsilon^2), the
+average's error is about ``(Z_s - (a - c) Z_n) / n``, of variance proportional to ``Delta_s^2 /
+e_s^2 + (a - c)^2 Delta_n^2 / e_n^2``; for ``e_s + e_n`` fixed, Lagrange gives the optimum
+``e_s : e_n = Delta_s^(2/3) : (|a - c| Delta_n)^(2/3)``. The average a is what the query asks,
+so the split uses what holds for any data: ``|a - c| <= h``, with h = (hi - lo) / 2 centred, and
+max(|lo|, |hi|) (with c = 0) plain; the error's largest variance over a is then minimised by
+``e_s : e_n = Delta_s^(2/3) : (h Delta_n)^(2/3)``. In each case ``Delta_s = h Delta_n`` (row
+tables: h and 1; individuals: R h and R, or at the ceilings most_rows * max(|lo|, |hi|) and
+most_rows), so the minimax split is even: the engine's equal share per measure is it.
+
 Tables with individuals (``[individual]`` with ``most_rows``)
 -------------------------------------------------------------
 Neighbouring databases differ by all the rows of one individual (in every table of its
@@ -196,13 +235,18 @@ class Rewritten:
     measure_bounds: tuple[int, ...]  # per measure, index into bounds (-1 on row tables)
     row_sensitivities: tuple[int, ...]  # per measure, on row tables
     measure_kinds: tuple[str, ...] = ()
+    # Per measure, how many measure units one unit of its bound allows: the range's width (in
+    # steps) for a centred sum under the rows bound, else 1.
+    measure_widths: tuple[int, ...] = ()
 
     def sensitivities(self, values: tuple[int, ...] = ()) -> tuple[int, ...]:
         """The L1 sensitivity of each measure given the bounds' values (module notes, 3)."""
         if not self.bounds:
             return self.row_sensitivities
-        return tuple(max(1, min(values[b], self.cells) if kind == "count_individuals" else values[b])
-                     for b, kind in zip(self.measure_bounds, self.measure_kinds))
+        return tuple(max(1, min(values[b], self.cells) if kind == "count_individuals"
+                         else values[b] * width)
+                     for b, kind, width in zip(self.measure_bounds, self.measure_kinds,
+                                               self.measure_widths))
 
     @property
     def declared_sensitivities(self) -> tuple[int, ...]:
@@ -232,8 +276,26 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
                          measure_kinds=kinds)
     bounds, measure_bounds = _bounds(plan, cells)
     tree = _individual_table_query(plan, bounds, measure_bounds, cells, exact_columns)
+    widths = tuple(centred_width(policy.columns[m.column]) if m.kind == "centred_sum" else 1  # type: ignore[index]
+                   for m in plan.measures)
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
-                     measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds)
+                     measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
+                     measure_widths=widths)
+
+
+def centres_averages(policy: TablePolicy) -> bool:
+    """Whether AVG(x) is computed from a centred sum (module notes, "Averages"): yes when the
+    sums' sensitivities come from the declared ranges (row tables, declared bounds), no when
+    bounds are chosen per query from the data's own totals."""
+    individual = policy.individual
+    return individual is None or individual.bounds != "chosen" or individual.most_rows <= 1
+
+
+def centred_width(column: ColumnPolicy) -> int:
+    """The most one value moves a centred sum, in its units (half steps): ``hi - lo`` in steps,
+    at least 1."""
+    low, high = _unit_range(column)
+    return max(1, high - low)
 
 
 def _no_cells(plan: Plan) -> exp.Select:
@@ -282,6 +344,8 @@ def _unit_sensitivity(policy: TablePolicy, measure: Measure) -> int:
         raise ValueError("COUNT(DISTINCT individual) needs an [individual] section")
     if measure.kind in ("count_rows", "count_values"):
         return 1
+    if measure.kind == "centred_sum":
+        return centred_width(policy.columns[measure.column])  # type: ignore[index]
     low, high = _unit_range(policy.columns[measure.column])  # type: ignore[index]
     return max(1, max(abs(low), abs(high)))
 
@@ -400,6 +464,13 @@ def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
         if finish and _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
             total = _to_units(total, column)
         return total
+    if measure.kind == "centred_sum":
+        # 2 S - (lo + hi) n in half steps: S the finished clamped sum in steps, n the values.
+        low, high = _unit_range(policy.columns[measure.column])  # type: ignore[index]
+        doubled = exp.Mul(this=_num(2), expression=exp.paren(
+            _aggregate(policy, Measure("sum", measure.column), exact), copy=False))
+        middle = exp.Mul(this=_num(low + high), expression=exp.Count(this=_col(measure.column)))  # type: ignore[arg-type]
+        return exp.Sub(this=doubled, expression=middle)
     raise AssertionError(measure.kind)
 
 
@@ -540,7 +611,7 @@ def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> ex
     individuals."""
     if measure.kind == "count_individuals":
         return _num(1)
-    if measure.kind == "sum":
+    if measure.kind in ("sum", "centred_sum"):
         return exp.cast(_aggregate(policy, measure, exact, finish=True), "numeric", copy=False)
     return _aggregate(policy, measure, exact)
 
@@ -592,7 +663,8 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     ordinals = [f"q.i{j}" for j in range(len(plan.keys))]
     # Per scaled partial: its size (>= 0) and, with keys, its individual's running total in
     # cell order (module notes, 4); the running totals come from a window over q.
-    sizes = {"r": "q.r"} | {f"m{n}": f"ABS(q.m{n})" if measure.kind == "sum" else f"q.m{n}"
+    signed = ("sum", "centred_sum")
+    sizes = {"r": "q.r"} | {f"m{n}": f"ABS(q.m{n})" if measure.kind in signed else f"q.m{n}"
                             for n, measure in enumerate(plan.measures)
                             if measure.kind != "count_individuals"}
     window = (f"OVER (PARTITION BY q.who ORDER BY {', '.join(ordinals)} "
@@ -602,7 +674,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     for n, measure in enumerate(plan.measures):
         if measure.kind == "count_individuals":
             scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN 1 ELSE 0 END AS m{n}")
-        elif measure.kind == "sum":
+        elif measure.kind in signed:
             scaled.append(f"SIGN(q.m{n}) * ({_kept(sizes[f'm{n}'], running[f'm{n}'], bounds)})"
                           f" AS m{n}")
         else:
