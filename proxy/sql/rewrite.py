@@ -275,7 +275,7 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
                          row_sensitivities=tuple(_unit_sensitivity(policy, m) for m in plan.measures),
                          measure_kinds=kinds)
     bounds, measure_bounds = _bounds(plan, cells)
-    tree = _individual_table_query(plan, bounds, measure_bounds, cells, exact_columns)
+    tree = _individual_table_query(plan, bounds, measure_bounds, exact_columns)
     widths = tuple(centred_width(policy.columns[m.column]) if m.kind == "centred_sum" else 1  # type: ignore[index]
                    for m in plan.measures)
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
@@ -636,7 +636,7 @@ def _kept(value: str, running: str | None, bounds: tuple[Bound, ...]) -> str:
 
 
 def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
-                            cells: int, exact: frozenset[str]) -> exp.Select:
+                            exact: frozenset[str]) -> exp.Select:
     """The per-individual rewrite (module notes): partials per (individual, cell) in the
     domains, totals per individual, the bounds (declared, or chosen by noisy max over the
     candidates), one factor per individual scaling all its partials, sums per cell, and per
