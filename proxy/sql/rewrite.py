@@ -629,10 +629,15 @@ def _scaled(value: str, bounds: tuple[Bound, ...]) -> str:
 def _kept(value: str, running: str | None, bounds: tuple[Bound, ...]) -> str:
     """SQL for one partial's kept share, value >= 0 (module notes, 4): ``f(running) -
     f(running - value)`` with f = floor(x * w) and ``running`` the individual's running total
-    up to and including this cell; just ``f(value)`` when each individual has one cell."""
+    up to and including this cell; just ``f(value)`` when each individual has one cell. Where
+    w = 1 (every total within its bound) that difference is ``value`` itself, so the divisions
+    run only for the individuals a bound scales down."""
     if running is None:
         return _scaled(value, bounds)
-    return f"{_scaled(running, bounds)} - {_scaled(f'({running} - {value})', bounds)}"
+    within = " AND ".join(f"t.{'n_rows' if bound.subject == 'rows' else f'tot{j}'} <= b.b{j}"
+                          for j, bound in enumerate(bounds))
+    return (f"CASE WHEN {within} THEN {value} ELSE {_scaled(running, bounds)} - "
+            f"{_scaled(f'({running} - {value})', bounds)} END")
 
 
 def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
