@@ -68,7 +68,8 @@ from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import Measure, Output, Plan
 from proxy.sql.postprocess import postprocess
 from proxy.spark_backend import SparkBackend, is_spark_dsn
-from proxy.sql.rewrite import BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, loss_cap, rewrite
+from proxy.sql.rewrite import (BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, centres_averages,
+                                loss_cap, rewrite)
 
 __all__ = ["Engine", "Prepared", "QueryControl", "parse_epsilon"]
 
@@ -604,10 +605,12 @@ def _average_items(plan: Plan, split: EpsilonSplit) -> list[tuple[Value, ...]]:
         column = plan.table.columns[sum_measure.column]  # type: ignore[index]
         if sum_measure.kind == "centred_sum":
             middle = _middle(column)
+            low, high = (Decimal(v) for v in column.range)  # type: ignore[union-attr]
             how = (f"centred: {middle} + noisy sum({output.column} - {middle}) / noisy "
                    f"count({output.column}), {middle} the middle of the declared range "
-                   f"[{column.low}, {column.high}] (half the plain sum's noise for a range from 0)")
-        elif plan.table.individual is not None and plan.table.individual.bounds == "chosen":
+                   f"[{column.low}, {column.high}]: one value moves that sum by at most "
+                   f"{_show((high - low) / 2)}, the plain sum by {_show(max(abs(low), abs(high)))}")
+        elif not centres_averages(plan.table):
             how = (f"noisy sum({output.column}) / noisy count({output.column}), not centred: the "
                    "bounds are chosen from the individuals' totals, which centring would widen")
         else:
