@@ -576,7 +576,7 @@ def _measure_unit(plan: Plan, measure: Measure) -> Decimal:
     sums (``2 x - lo - hi`` in steps), 1 for counts."""
     if measure.kind == "sum":
         return plan.table.columns[measure.column].unit  # type: ignore[index]
-    if measure.kind == "centred_sum":
+    if measure.kind == "midpoint_sum":
         return plan.table.columns[measure.column].unit / 2  # type: ignore[index]
     return Decimal(1)
 
@@ -589,7 +589,7 @@ def _middle(column: ColumnPolicy) -> Decimal:
 
 def _measure_label(plan: Plan, measure: Measure) -> str:
     column = measure.column
-    if measure.kind == "centred_sum":
+    if measure.kind == "midpoint_sum":
         return f"sum({column} - {_middle(plan.table.columns[column])})"  # type: ignore[index]
     return {"count_rows": "count(*)", "count_values": f"count({column})", "sum": f"sum({column})",
             "count_individuals": "count(distinct individual)"}[measure.kind]
@@ -603,7 +603,7 @@ def _average_items(plan: Plan, split: EpsilonSplit) -> list[tuple[Value, ...]]:
             continue
         sum_measure = plan.measures[output.measures[0]]
         column = plan.table.columns[sum_measure.column]  # type: ignore[index]
-        if sum_measure.kind == "centred_sum":
+        if sum_measure.kind == "midpoint_sum":
             middle = _middle(column)
             low, high = (Decimal(v) for v in column.range)  # type: ignore[union-attr]
             how = (f"centred: {middle} + noisy sum({output.column} - {middle}) / noisy "
@@ -658,7 +658,7 @@ def _output_value(plan: Plan, output: Output, cell: tuple[Any, ...], measures: l
         return None
     low, high = (float(v) for v in column.range)  # type: ignore[union-attr]
     measure = plan.measures[output.measures[0]]
-    centre = float(_middle(column)) if measure.kind == "centred_sum" else 0.0
+    centre = float(_middle(column)) if measure.kind == "midpoint_sum" else 0.0
     average = centre + float(Decimal(first) * _measure_unit(plan, measure)) / count
     # Rounded for display only; the noise is far larger than the sixth decimal.
     return round(min(high, max(low, average)), 6)
@@ -699,7 +699,7 @@ def _clip_upper(rewritten: Rewritten, j: int, values: tuple[int, ...], lost: int
 def _answer_notes(plan: Plan, rewritten: Rewritten, values: tuple[int, ...]) -> list[str]:
     """Facts about how the answer was computed, true of any data (no data-dependent count)."""
     notes = []
-    ranged = sorted({m.column for m in plan.measures if m.kind in ("sum", "centred_sum")})  # type: ignore[type-var]
+    ranged = sorted({m.column for m in plan.measures if m.kind in ("sum", "midpoint_sum")})  # type: ignore[type-var]
     for name in ranged:
         column = plan.table.columns[name]  # type: ignore[index]
         notes.append(f"values of {name} outside its declared range [{column.low}, {column.high}] "
@@ -735,7 +735,7 @@ def _accuracy(plan: Plan, output: Output, share: Decimal, sensitivities: tuple[i
                         scale=scales[first] * Fraction(unit), bound95=Decimal(bounds[first]) * unit,
                         note="discrete Laplace", low_by=low_by, high_by=high_by)
     column = plan.table.columns[measure.column]  # type: ignore[index]
-    centre = _middle(column) if measure.kind == "centred_sum" else Decimal(0)
+    centre = _middle(column) if measure.kind == "midpoint_sum" else Decimal(0)
     return _average_accuracy(output, column, share * 2, unit, centre, scales, noisy, clipping)
 
 

@@ -103,7 +103,7 @@ def test_measures_are_deduplicated_across_aggregates():
     # AVG(area) shares SUM(area)'s plain sum; AVG(occupants) alone is centred (households:
     # declared bounds, so its sum's noise comes from the range).
     assert plan.measures == (Measure("sum", "area"), Measure("count_values", "area"),
-                             Measure("count_rows"), Measure("centred_sum", "occupants"),
+                             Measure("count_rows"), Measure("midpoint_sum", "occupants"),
                              Measure("count_values", "occupants"))
     kinds = [(o.name, o.kind, o.measures, o.column) for o in plan.outputs]
     assert kinds == [("sum", "sum", (0,), "area"), ("avg", "avg", (0, 1), "area"),
@@ -613,12 +613,12 @@ def test_random_shapes_give_consistent_plans(shape):
             kinds = tuple(plan.measures[m].kind for m in output.measures)
             assert kinds in {"count": {("count_rows",), ("count_values",)}, "sum": {("sum",)},
                              "avg": {("sum", "count_values"),
-                                     ("centred_sum", "count_values")}}[output.kind]
+                                     ("midpoint_sum", "count_values")}}[output.kind]
             if output.kind == "avg":
                 assert {plan.measures[m].column for m in output.measures} == {output.column}
                 # Centred only when no SUM of the same column needs the plain sum.
                 summed = {o.column for o in plan.outputs if o.kind == "sum"}
-                assert (kinds[0] == "centred_sum") == (output.column not in summed
+                assert (kinds[0] == "midpoint_sum") == (output.column not in summed
                                                        and centres_averages(plan.table))
     used = {m for o in plan.outputs for m in o.measures}
     assert used == set(range(len(plan.measures)))  # every measure feeds some output

@@ -78,7 +78,7 @@ def test_one_individual_moves_each_measure_at_most_its_sensitivity(
 @pytest.mark.parametrize("table, sql", CENTRED, ids=[q[1][:50] for q in CENTRED])
 def test_one_individual_moves_a_centred_average_at_most_its_sensitivity(
         declared, table: str, sql: str, exact: frozenset[str]) -> None:
-    assert "centred_sum" in [m.kind for m in analyse(sql, declared[1], "tester").measures]
+    assert "midpoint_sum" in [m.kind for m in analyse(sql, declared[1], "tester").measures]
     _check_neighbours(declared, table, sql, exact)
 
 

@@ -179,7 +179,7 @@ DECLARED = [
 
 @pytest.mark.parametrize("sql, statistic", DECLARED, ids=[q[0] for q in DECLARED])
 def test_the_real_path_keeps_within_epsilon_with_declared_bounds(engines, sql, statistic) -> None:
-    assert "centred_sum" in [m.kind for m in engines["declared full"].prepare("auditor", sql).plan.measures]
+    assert "midpoint_sum" in [m.kind for m in engines["declared full"].prepare("auditor", sql).plan.measures]
     full = _samples(engines["declared full"], sql, statistic)
     without = _samples(engines["declared without"], sql, statistic)
     assert privacy_loss_lower_bound(full, without) <= float(EPSILON)

@@ -147,11 +147,11 @@ def test_empty_cells_are_zero_and_outside_values_are_not_counted(clinic) -> None
     assert measures_of(clinic, "SELECT age, COUNT(*) FROM people WHERE age > 1000 GROUP BY age") == []
 
 
-def test_average_parts_are_a_centred_sum_and_the_count_of_values(clinic) -> None:
+def test_average_parts_are_a_midpoint_sum_and_the_count_of_values(clinic) -> None:
     conn, policies = clinic
     plan = analyse("SELECT AVG(weight) FROM people", policies, "tester")
     kinds = [m.kind for m in plan.measures]
-    assert kinds == ["centred_sum", "count_values"]
+    assert kinds == ["midpoint_sum", "count_values"]
     (row,) = measures_of(clinic, "SELECT AVG(weight) FROM people")
     # weight in [-5, 120], step 0.5: [-10, 240] in steps, so 2 x - 230 in half steps.
     total, count = conn.execute(f"SELECT 2 * sum({WEIGHT_UNITS}) - 230 * count(weight), "
@@ -164,7 +164,7 @@ def test_average_parts_are_a_centred_sum_and_the_count_of_values(clinic) -> None
 def test_an_average_beside_the_sum_of_its_column_reuses_the_plain_sum(clinic) -> None:
     _, policies = clinic
     plan = analyse("SELECT SUM(weight), AVG(weight), AVG(age) FROM people", policies, "tester")
-    assert [m.kind for m in plan.measures] == ["sum", "count_values", "centred_sum", "count_values"]
+    assert [m.kind for m in plan.measures] == ["sum", "count_values", "midpoint_sum", "count_values"]
     # Also when the SUM is only named in HAVING.
     plan = analyse("SELECT AVG(weight) FROM people HAVING SUM(weight) > 0", policies, "tester")
     assert [m.kind for m in plan.measures] == ["sum", "count_values"]

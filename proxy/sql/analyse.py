@@ -401,7 +401,7 @@ class _Analysis:
         for output in self.outputs:
             index = output.measures[0] if output.kind == "avg" else None
             if index is not None and self.measures[index] not in summed:
-                self.measures[index] = Measure("centred_sum", self.measures[index].column)
+                self.measures[index] = Measure("midpoint_sum", self.measures[index].column)
 
     def _measure_ids(self, aggregate: _Aggregate) -> tuple[int, ...]:
         ids = []

@@ -25,7 +25,7 @@ import sqlglot.expressions as exp
 
 from proxy.policy import TablePolicy
 
-MeasureKind = Literal["count_rows", "count_values", "sum", "centred_sum", "count_individuals"]
+MeasureKind = Literal["count_rows", "count_values", "sum", "midpoint_sum", "count_individuals"]
 OutputKind = Literal["key", "count", "sum", "avg"]
 
 
@@ -89,7 +89,7 @@ class Output:
     """One answer column.
 
     ``key`` indexes ``Plan.keys`` for kind "key"; ``measures`` indexes ``Plan.measures`` for
-    aggregates: count -> (count,), sum -> (sum,), avg -> (sum or centred_sum, count_values).
+    aggregates: count -> (count,), sum -> (sum,), avg -> (sum or midpoint_sum, count_values).
     Hidden outputs (``visible`` False) exist only because HAVING or ORDER BY names an aggregate
     not selected.
     """

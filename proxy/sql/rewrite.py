@@ -276,7 +276,7 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset()) -> Rewritte
                          measure_kinds=kinds)
     bounds, measure_bounds = _bounds(plan, cells)
     tree = _individual_table_query(plan, bounds, measure_bounds, exact_columns)
-    widths = tuple(centred_width(policy.columns[m.column]) if m.kind == "centred_sum" else 1  # type: ignore[index]
+    widths = tuple(centred_width(policy.columns[m.column]) if m.kind == "midpoint_sum" else 1  # type: ignore[index]
                    for m in plan.measures)
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
                      measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
@@ -344,7 +344,7 @@ def _unit_sensitivity(policy: TablePolicy, measure: Measure) -> int:
         raise ValueError("COUNT(DISTINCT individual) needs an [individual] section")
     if measure.kind in ("count_rows", "count_values"):
         return 1
-    if measure.kind == "centred_sum":
+    if measure.kind == "midpoint_sum":
         return centred_width(policy.columns[measure.column])  # type: ignore[index]
     low, high = _unit_range(policy.columns[measure.column])  # type: ignore[index]
     return max(1, max(abs(low), abs(high)))
@@ -464,7 +464,7 @@ def _aggregate(policy: TablePolicy, measure: Measure, exact: frozenset[str],
         if finish and _in_column_units(column, measure.column, exact):  # type: ignore[arg-type]
             total = _to_units(total, column)
         return total
-    if measure.kind == "centred_sum":
+    if measure.kind == "midpoint_sum":
         # 2 S - (lo + hi) n in half steps: S the finished clamped sum in steps, n the values.
         low, high = _unit_range(policy.columns[measure.column])  # type: ignore[index]
         doubled = exp.Mul(this=_num(2), expression=exp.paren(
@@ -611,7 +611,7 @@ def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> ex
     individuals."""
     if measure.kind == "count_individuals":
         return _num(1)
-    if measure.kind in ("sum", "centred_sum"):
+    if measure.kind in ("sum", "midpoint_sum"):
         return exp.cast(_aggregate(policy, measure, exact, finish=True), "numeric", copy=False)
     return _aggregate(policy, measure, exact)
 
@@ -668,7 +668,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     ordinals = [f"q.i{j}" for j in range(len(plan.keys))]
     # Per scaled partial: its size (>= 0) and, with keys, its individual's running total in
     # cell order (module notes, 4); the running totals come from a window over q.
-    signed = ("sum", "centred_sum")
+    signed = ("sum", "midpoint_sum")
     sizes = {"r": "q.r"} | {f"m{n}": f"ABS(q.m{n})" if measure.kind in signed else f"q.m{n}"
                             for n, measure in enumerate(plan.measures)
                             if measure.kind != "count_individuals"}
