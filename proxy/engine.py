@@ -78,7 +78,8 @@ from proxy.sql.postprocess import carried_accuracy, postprocess, written_express
 from proxy.sql import statement as slots
 from proxy.sql.statement import BoundStatement
 from proxy.spark_backend import SparkBackend, is_spark_dsn
-from proxy.sql.rewrite import BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, loss_cap, rewrite
+from proxy.sql.rewrite import (BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, centres_averages,
+                                loss_cap, rewrite)
 
 __all__ = ["Engine", "Prepared", "QueryControl", "Statement", "paid_text", "parse_epsilon"]
 
@@ -557,7 +558,7 @@ class Engine:
             unit = _measure_unit(plan, measure)
             scale = Fraction(sensitivity) / Fraction(split.measure)
             at_most = "at most " if chosen else ""
-            rows.append((f"measure {_measure_label(measure)}",
+            rows.append((f"measure {_measure_label(plan, measure)}",
                          f"sensitivity {at_most}{_show(sensitivity * unit)}, noise scale "
                          f"{at_most}{_show(scale * Fraction(unit))}, "
                          f"95% bound {at_most}±{_show(noise.bound95(scale) * unit)}"))
@@ -566,6 +567,7 @@ class Engine:
                 rows.append((f"output {output.name}",
                              f"computed in the proxy on the noisy answer: "
                              f"{written_expression(plan, output.expression)}"))
+        rows += _average_items(plan, split)
         rows.append(("stored answer", _stored_text(stored, fresh)))
         rows.append(("backend sql", self.backend.sent_sql(rewritten.sql)))
         return _explain_answer(rows, form, remaining=self.ledger.remaining(analyst),
@@ -881,7 +883,7 @@ def _selection_line(plan: Plan, rewritten: Rewritten, measure: Measure, sensitiv
     share = Fraction(split.measure) / percentiles
     at_most = "at most " if chosen else ""
     within = selection.rank_bound95(rewritten.buckets, share, sensitivity)
-    return (f"histogram {_measure_label(measure)}",
+    return (f"histogram {_measure_label(plan, measure)}",
             f"{rewritten.buckets} values per cell, never released; sensitivity {at_most}"
             f"{sensitivity} (rows); each of {percentiles} percentile(s) chosen by the exponential "
             f"mechanism with epsilon {_show(share)}: 95% within ±{at_most}{within} ranks")
@@ -1044,23 +1046,64 @@ def _cell_values(plan: Plan) -> list[tuple[Any, ...]]:
 
 
 def _measure_unit(plan: Plan, measure: Measure) -> Decimal:
-    """What one unit of a measure is worth: the column's step for sums, 1 for counts."""
+    """What one unit of a measure is worth: the column's step for sums and spread's centred
+    sums, half of it for AVG's midpoint sums (``2 x - lo - hi`` in steps), its square for
+    centred sums of squares, 1 for counts."""
     if measure.kind == "centred_squares":
         return plan.table.columns[measure.column].unit ** 2  # type: ignore[index]
-    return plan.table.columns[measure.column].unit if measure.kind in ("sum", "centred_sum") \
-        else Decimal(1)  # type: ignore[index]
+    if measure.kind in ("sum", "centred_sum"):
+        return plan.table.columns[measure.column].unit  # type: ignore[index]
+    if measure.kind == "midpoint_sum":
+        return plan.table.columns[measure.column].unit / 2  # type: ignore[index]
+    return Decimal(1)
 
 
-def _measure_label(measure: Measure) -> str:
+def _middle(column: ColumnPolicy) -> Decimal:
+    """The middle of a summable column's declared range, where AVG's midpoint sum is centred."""
+    low, high = (Decimal(v) for v in column.range)  # type: ignore[union-attr]
+    return (low + high) / 2
+
+
+def _measure_label(plan: Plan, measure: Measure) -> str:
     """A measure as EXPLAIN names it (a derived column's name says its value or FILTER)."""
     if measure.kind in ("count_rows", "count_individuals") and measure.where is not None:
         what = "*" if measure.kind == "count_rows" else "distinct individual"
         return f"count({what}) FILTER (WHERE {measure.where.sql(dialect='postgres')})"
     column = measure.column
+    if measure.kind == "midpoint_sum":
+        return f"sum({column} - {_middle(plan.table.columns[column])})"  # type: ignore[index]
     return {"count_rows": "count(*)", "count_values": f"count({column})", "sum": f"sum({column})",
             "count_individuals": "count(distinct individual)",
             "centred_sum": f"sum({column} - centre)",
             "centred_squares": f"sum(({column} - centre)^2)"}[measure.kind]
+
+
+def _average_items(plan: Plan, split: EpsilonSplit) -> list[tuple[Value, ...]]:
+    """EXPLAIN's account of each average: centred or not, and its epsilon split."""
+    items: list[tuple[Value, ...]] = []
+    for output in plan.outputs:
+        if output.kind != "avg":
+            continue
+        sum_measure = plan.measures[output.measures[0]]
+        column = plan.table.columns[sum_measure.column]  # type: ignore[index]
+        if sum_measure.kind == "midpoint_sum":
+            middle = _middle(column)
+            low, high = (Decimal(v) for v in column.range)  # type: ignore[union-attr]
+            how = (f"centred: {middle} + noisy sum({output.column} - {middle}) / noisy "
+                   f"count({output.column}), {middle} the middle of the declared range "
+                   f"[{column.low}, {column.high}]: one value moves that sum by at most "
+                   f"{_show((high - low) / 2)}, the plain sum by {_show(max(abs(low), abs(high)))}")
+        elif not centres_averages(plan.table):
+            how = (f"noisy sum({output.column}) / noisy count({output.column}), not centred: the "
+                   "bounds are chosen from the individuals' totals, which centring would widen")
+        else:
+            how = (f"noisy sum({output.column}) / noisy count({output.column}), not centred: "
+                   f"it shares the plain sum SUM({output.column}) needs, one measure fewer")
+        items.append((f"average {output.name}",
+                      f"{how}; epsilon {split.measure:.6g} for the sum and {split.measure:.6g} "
+                      "for the count (equal: the split minimising the largest error, since "
+                      "|average - centre| is bounded only by the range)"))
+    return items
 
 
 def _show(value: Fraction | Decimal | int) -> str:
@@ -1094,8 +1137,11 @@ def _output_value(plan: Plan, output: Output, cell: tuple[Any, ...], measures: l
     if count <= 0:
         return None
     low, high = (float(v) for v in column.range)  # type: ignore[union-attr]
+    measure = plan.measures[output.measures[0]]
+    centre = float(_middle(column)) if measure.kind == "midpoint_sum" else 0.0
+    average = centre + float(Decimal(first) * _measure_unit(plan, measure)) / count
     # Rounded for display only; the noise is far larger than the sixth decimal.
-    return round(min(high, max(low, float(Decimal(first) * column.unit) / count)), 6)
+    return round(min(high, max(low, average)), 6)
 
 
 def _spread_value(column: ColumnPolicy, output: Output, measures: list[int]) -> Value:
@@ -1165,7 +1211,7 @@ def _clip_upper(rewritten: Rewritten, j: int, values: tuple[int, ...], lost: int
     bound is declared (nothing spent on it: only data breaking most_rows is clipped)."""
     if not rewritten.bounds[j].chosen:
         return None
-    scale = Fraction(loss_cap(rewritten.bounds, j, values, rewritten.cells)) / Fraction(epsilon)
+    scale = Fraction(loss_cap(rewritten.bounds, j, values)) / Fraction(epsilon)
     noisy = lost + int(noise.sample_discrete_laplace(scale, 1)[0])
     return max(0, noisy + noise.bound(scale, 0.90))
 
@@ -1174,7 +1220,7 @@ def _answer_notes(plan: Plan, rewritten: Rewritten, values: tuple[int, ...]) -> 
     """Facts about how the answer was computed, true of any data (no data-dependent count)."""
     notes = []
     ranged = sorted({m.column for m in plan.measures  # type: ignore[type-var]
-                     if m.kind in ("sum", "centred_sum")})
+                     if m.kind in ("sum", "midpoint_sum", "centred_sum")})
     for name in ranged:
         column = plan.table.columns[name]  # type: ignore[index]
         notes.append(f"values of {name} outside its declared range [{column.low}, {column.high}] "
@@ -1222,22 +1268,24 @@ def _accuracy(plan: Plan, output: Output, share: Decimal, sensitivities: tuple[i
                         scale=scales[first] * Fraction(unit), bound95=Decimal(bounds[first]) * unit,
                         note="discrete Laplace", low_by=low_by, high_by=high_by)
     column = plan.table.columns[measure.column]  # type: ignore[index]
-    return _average_accuracy(output, column, share * 2, scales, noisy, clipping)
+    centre = _middle(column) if measure.kind == "midpoint_sum" else Decimal(0)
+    return _average_accuracy(output, column, share * 2, unit, centre, scales, noisy, clipping)
 
 
-def _average_accuracy(output: Output, column: ColumnPolicy, epsilon: Decimal,
-                      scales: list[Fraction], noisy: list[list[int]],
+def _average_accuracy(output: Output, column: ColumnPolicy, epsilon: Decimal, unit: Decimal,
+                      centre: Decimal, scales: list[Fraction], noisy: list[list[int]],
                       clipping: list[int | None]) -> Accuracy:
     """AVG's 95% bound, the widest over cells of its linearised error: the average
-    ``a = S u / C`` of a noisy sum and count moves by about ``(u Z_s - a Z_c) / C``, whose
-    standard deviation is ``sqrt(u^2 Var_s + a^2 Var_c) / C``; the bound is
-    ``_AVG_SD_MULTIPLE`` of it, capped by the range's width. Where the count is too small for
-    the linearisation (within three standard deviations of 0) the bound is the range's width.
+    ``a = c + S u / C`` of a noisy sum S (centred on c, or c = 0) and count C, u the sum's
+    unit, moves by about ``(u Z_s - (a - c) Z_c) / C``, whose standard deviation is
+    ``sqrt(u^2 Var_s + (a - c)^2 Var_c) / C``; the bound is ``_AVG_SD_MULTIPLE`` of it, capped
+    by the range's width. Where the count is too small for the linearisation (within three
+    standard deviations of 0) the bound is the range's width.
     Clipping (sum and count both scaled down by one factor per individual) may move the average
     either way, by at most the clipped-away share of the count times the distance to the far end
     of the range: ``low_by`` and ``high_by``."""
     s, c = output.measures
-    unit = float(column.unit)
+    step, middle = float(unit), float(centre)
     low, high = (float(v) for v in column.range)  # type: ignore[union-attr]
     var_s, var_c = noise.variance(scales[s]), noise.variance(scales[c])
     widest = widest_clip = 0.0
@@ -1245,8 +1293,9 @@ def _average_accuracy(output: Output, column: ColumnPolicy, epsilon: Decimal,
         if count <= 3 * math.sqrt(var_c):
             widest = widest_clip = high - low
             break
-        estimate = min(high, max(low, total * unit / count))
-        spread = _AVG_SD_MULTIPLE * math.sqrt(unit * unit * var_s + estimate * estimate * var_c) / count
+        estimate = min(high, max(low, middle + total * step / count))
+        offset = estimate - middle
+        spread = _AVG_SD_MULTIPLE * math.sqrt(step * step * var_s + offset * offset * var_c) / count
         widest = max(widest, min(high - low, spread))
         if clipping[c] is not None:
             # The plain average mixes the kept one with the clipped-away rows' average (inside

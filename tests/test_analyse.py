@@ -20,6 +20,7 @@ from proxy.sql.analyse import analyse
 from proxy.sql.domains import key_size
 from proxy.sql.limits import Limits
 from proxy.sql.plan import GroupKey, Measure, OrderItem, output_ref
+from proxy.sql.rewrite import centres_averages
 
 VERIFIER = "SCRAM-SHA-256$4096:c2FsdA==$c3RvcmVk:c2VydmVy"
 
@@ -99,8 +100,10 @@ def test_simple_count_plan():
 def test_measures_are_deduplicated_across_aggregates():
     plan = plan_of("SELECT SUM(area), AVG(area), COUNT(area), COUNT(*), COUNT(1), AVG(occupants) "
                    "FROM households")
+    # AVG(area) shares SUM(area)'s plain sum; AVG(occupants) alone is centred (households:
+    # declared bounds, so its sum's noise comes from the range).
     assert plan.measures == (Measure("sum", "area"), Measure("count_values", "area"),
-                             Measure("count_rows"), Measure("sum", "occupants"),
+                             Measure("count_rows"), Measure("midpoint_sum", "occupants"),
                              Measure("count_values", "occupants"))
     kinds = [(o.name, o.kind, o.measures, o.column) for o in plan.outputs]
     assert kinds == [("sum", "sum", (0,), "area"), ("avg", "avg", (0, 1), "area"),
@@ -637,9 +640,14 @@ def test_random_shapes_give_consistent_plans(shape):
             assert all(0 <= m < len(plan.measures) for m in output.measures)
             kinds = tuple(plan.measures[m].kind for m in output.measures)
             assert kinds in {"count": {("count_rows",), ("count_values",)}, "sum": {("sum",)},
-                             "avg": {("sum", "count_values")}}[output.kind]
+                             "avg": {("sum", "count_values"),
+                                     ("midpoint_sum", "count_values")}}[output.kind]
             if output.kind == "avg":
                 assert {plan.measures[m].column for m in output.measures} == {output.column}
+                # Centred only when no SUM of the same column needs the plain sum.
+                summed = {o.column for o in plan.outputs if o.kind == "sum"}
+                assert (kinds[0] == "midpoint_sum") == (output.column not in summed
+                                                       and centres_averages(plan.table))
     used = {m for o in plan.outputs for m in o.measures}
     assert used == set(range(len(plan.measures)))  # every measure feeds some output
     assert all(0 <= item.output < len(plan.outputs) for item in plan.order_by)

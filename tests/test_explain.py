@@ -89,3 +89,23 @@ def test_other_explain_options_are_refused_by_name(options: str, refused: str) -
 def test_accepted_explain_forms(options: str, form: str) -> None:
     [explain] = statements.split(f"EXPLAIN {options} SELECT count(*) FROM t")
     assert isinstance(explain, statements.ExplainStatement) and explain.format == form
+
+
+def test_explain_shows_an_average_centred_and_its_epsilon_split(conn: psycopg.Connection) -> None:
+    rows = dict(text_rows(conn, "SELECT district, AVG(occupants) FROM households GROUP BY district"))
+    epsilon = float(rows["epsilon"])
+    # occupants in [1, 8], households declared (one row each): centred on 4.5, one household
+    # moves the centred sum by at most 3.5 (half the range's width), not 8.
+    assert rows["measure sum(occupants - 4.5)"].startswith("sensitivity 3.5, ")
+    average = rows["average avg"]
+    assert average.startswith("centred: 4.5 + noisy sum(occupants - 4.5) / noisy count(occupants)")
+    assert "one value moves that sum by at most 3.5, the plain sum by 8" in average
+    half = f"{epsilon / 2:.6g}"
+    assert f"epsilon {half} for the sum and {half} for the count" in average
+    # Beside SUM of the same column, AVG reuses the plain sum, and EXPLAIN says so.
+    rows = dict(text_rows(conn, "SELECT SUM(occupants), AVG(occupants) FROM households"))
+    assert "not centred: it shares the plain sum SUM(occupants) needs" in rows["average avg"]
+    # Bounds chosen per query (readings): not centred, and EXPLAIN says why.
+    rows = dict(text_rows(conn, "SELECT AVG(litres) FROM readings"))
+    assert "measure sum(litres)" in rows
+    assert "not centred: the bounds are chosen" in rows["average avg"]

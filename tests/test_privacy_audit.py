@@ -2,9 +2,9 @@
 2018, "Detecting Violations of Differential Privacy" (CCS 2018).
 
 Neighbouring databases: ``full`` holds everyone; ``without`` lacks the individual with the most
-rows and the largest total (person 99: 40 visits of 60 minutes, ten times the owner's declared
-``most_rows`` of 4, so only the bounds keep it in check), in both tables of its population
-(``visits`` and the one-row-per-person ``residents``, which joined queries read). Each query runs through the engine's
+rows and the largest total (person 99: 40 visits of 60 minutes in three wards, ten times the
+owner's declared ``most_rows`` of 4, so only the bounds keep it in check), in both tables of its
+population (``visits`` and the one-row-per-person ``residents``, which joined queries read). Each query runs through the engine's
 own steps (bounds' noise, backend query, noise, release; the ledger aside) many times on each.
 
 Test: events ``{statistic >= t}`` (and their complements, either database first) are picked on
@@ -49,6 +49,7 @@ source = "audit.{source}"
 column = "person_id"
 population = "people"
 most_rows = 4
+bounds = "{bounds}"
 
 [columns.person_id]
 kind = "integer"
@@ -84,9 +85,9 @@ values = ["north", "south", "east"]
 """
 
 
-def _policies(root: Path, source: str):
+def _policies(root: Path, source: str, bounds: str):
     (root / "tables").mkdir(parents=True)
-    (root / "tables" / "visits.toml").write_text(VISITS.format(source=source))
+    (root / "tables" / "visits.toml").write_text(VISITS.format(source=source, bounds=bounds))
     (root / "tables" / "residents.toml").write_text(RESIDENTS.format(source=source))
     (root / "access.toml").write_text(textwrap.dedent(f"""
         [defaults]
@@ -101,7 +102,8 @@ def _policies(root: Path, source: str):
 
 @pytest.fixture(scope="module")
 def engines(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
-    """Engines over the two neighbouring tables (ordinary people: 1-4 visits of 0-59 minutes)."""
+    """Engines over the two neighbouring tables (ordinary people: 1-4 visits of 0-59 minutes),
+    with bounds chosen per query, and (``declared ...``) declared, where AVG is centred."""
     with psycopg.connect(module_dsn, autocommit=True) as conn:
         conn.execute("DROP SCHEMA IF EXISTS audit CASCADE; CREATE SCHEMA audit")
         conn.execute("""
@@ -110,7 +112,8 @@ def engines(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
                    (p * 7 + v * 13) % 60 AS minutes
             FROM generate_series(1, 60) AS p, generate_series(1, 1 + p % 4) AS v
             UNION ALL
-            SELECT 99, 'north', 60 FROM generate_series(1, 40)""")
+            SELECT 99, (ARRAY['north','south','east'])[1 + v % 3], 60
+            FROM generate_series(1, 40) AS v""")
         conn.execute("CREATE TABLE audit.without AS SELECT * FROM audit.full WHERE person_id <> 99")
         # Neighbours leave every table of their population: person 99 lives in the north.
         conn.execute("CREATE TABLE audit.residents_full AS SELECT p AS person_id, "
@@ -120,9 +123,11 @@ def engines(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
                      "WHERE person_id <> 99")
     made = {}
     for name in ("full", "without"):
-        policies = _policies(tmp_path_factory.mktemp(name), name)
-        made[name] = Engine(policies, Backend(module_dsn, pool_size=1),
-                            Ledger(module_dsn, schema=f"audit_{name}"))
+        for bounds in ("chosen", "declared"):
+            label = name if bounds == "chosen" else f"{bounds} {name}"
+            policies = _policies(tmp_path_factory.mktemp(name), name, bounds)
+            made[label] = Engine(policies, Backend(module_dsn, pool_size=1),
+                                 Ledger(module_dsn, schema=f"audit_{name}_{bounds}"))
     yield made
     for engine in made.values():
         engine.close()
@@ -174,7 +179,7 @@ def _first(rows: list[tuple]) -> float:
 
 
 def _north(rows: list[tuple]) -> float:
-    return float(next(r[1] for r in rows if r[0] == "north"))
+    return float(next(r[1] for r in rows if r[0] == "north") or 0)  # an AVG may be NULL
 
 
 QUERIES = [
@@ -197,16 +202,34 @@ def test_the_real_path_keeps_within_epsilon(engines, sql, statistic) -> None:
     assert privacy_loss_lower_bound(full, without) <= float(EPSILON)
 
 
-@pytest.mark.parametrize("sql, statistic", [QUERIES[0], QUERIES[3], QUERIES[4]],
-                         ids=["count", "group by", "join"])
-def test_the_audit_catches_a_rewrite_without_clipping(engines, monkeypatch, sql, statistic) -> None:
+# Declared bounds (most_rows 4): AVG is a centred sum over a count; the person's 40 rows in
+# three wards are rounded cumulatively over its cells.
+DECLARED = [
+    ("SELECT AVG(minutes) FROM visits", _first),
+    ("SELECT ward, AVG(minutes) FROM visits GROUP BY ward", _north),
+]
+
+
+@pytest.mark.parametrize("sql, statistic", DECLARED, ids=[q[0] for q in DECLARED])
+def test_the_real_path_keeps_within_epsilon_with_declared_bounds(engines, sql, statistic) -> None:
+    assert "midpoint_sum" in [m.kind for m in engines["declared full"].prepare("auditor", sql).plan.measures]
+    full = _samples(engines["declared full"], sql, statistic)
+    without = _samples(engines["declared without"], sql, statistic)
+    assert privacy_loss_lower_bound(full, without) <= float(EPSILON)
+
+
+@pytest.mark.parametrize("sql, statistic, engine", [
+    (*QUERIES[0], ""), (*QUERIES[3], ""), (*QUERIES[4], ""), (*DECLARED[0], "declared ")],
+    ids=["count", "group by", "join", "centred average"])
+def test_the_audit_catches_a_rewrite_without_clipping(engines, monkeypatch, sql, statistic,
+                                                      engine: str) -> None:
     # Clipping switched off: every individual's factor is 1, whatever its rows and totals; the
     # sensitivities claimed stay the same, so the heavy individual's 40 rows leak.
     monkeypatch.setattr(rewrite_module, "_scaled", lambda value, *args: value)
-    for engine in engines.values():
-        engine._cache.clear()
-    full = _samples(engines["full"], sql, statistic)
-    without = _samples(engines["without"], sql, statistic)
-    for engine in engines.values():
-        engine._cache.clear()
+    for each in engines.values():
+        each._cache.clear()
+    full = _samples(engines[f"{engine}full"], sql, statistic)
+    without = _samples(engines[f"{engine}without"], sql, statistic)
+    for each in engines.values():
+        each._cache.clear()
     assert privacy_loss_lower_bound(full, without) > float(EPSILON)

@@ -53,6 +53,10 @@ CLAMPED_AGE = "CASE WHEN age > 100 THEN 100 WHEN age < 0 THEN 0 ELSE age END"
 WEIGHT_UNITS = ("CASE WHEN round(weight * 2) > 240 THEN 240 WHEN round(weight * 2) < -10 "
                 "THEN -10 ELSE round(weight * 2) END")
 
+# The person's visits in wards of ordinal (in declared order) compared with what follows.
+_VISITS_OF_PERSON = ("(SELECT count(*) FROM clinic.visits y WHERE y.person_id = v.person_id "
+                     "AND array_position(ARRAY['north','south','east'], y.ward)")
+
 CASES = [
     ("SELECT COUNT(*) FROM people", "SELECT count(*) FROM clinic.people"),
     ("SELECT COUNT(age), SUM(age) FROM people",
@@ -91,12 +95,14 @@ CASES = [
     ("SELECT SUM(minutes), COUNT(DISTINCT person_id) FROM visits",
      f"SELECT sum(least(s, trunc(s * 3.0 / c), 180)), count(*) FROM (SELECT person_id, count(*) AS c, "
      f"sum({CLAMPED_MINUTES}) AS s FROM clinic.visits GROUP BY person_id) t"),
-    # Per ward: each person's count there times 3 / (its rows in the three wards), truncated;
-    # a person in at most 3 cells is always counted once per ward it visited.
+    # Per ward: the person's rows are scaled by 3 / (its rows in the three wards) and rounded
+    # cumulatively in ward order: the ward keeps f(its rows up to this ward) - f(its rows before
+    # it), f(x) = min(x, floor(3x / total)); a person in at most 3 cells is always counted once
+    # per ward it visited.
     ("SELECT ward, COUNT(*), COUNT(DISTINCT person_id) FROM visits GROUP BY ward",
-     f"SELECT (SELECT sum(CASE WHEN x.c * 3 >= x.c * x.total THEN x.c ELSE trunc(x.c * 3.0 / x.total) END) "
-     f"FROM (SELECT v.person_id, count(*) AS c, (SELECT count(*) FROM clinic.visits y "
-     f"WHERE y.person_id = v.person_id AND y.ward IN ('north', 'south', 'east')) AS total "
+     f"SELECT (SELECT sum(least(x.upto, x.upto * 3 / x.total) - least(x.before, x.before * 3 / x.total)) "
+     f"FROM (SELECT v.person_id, {_VISITS_OF_PERSON} <= w.i) AS upto, "
+     f"{_VISITS_OF_PERSON} < w.i) AS before, {_VISITS_OF_PERSON} <= 3) AS total "
      f"FROM clinic.visits v WHERE v.ward = w.v GROUP BY v.person_id) x), "
      f"(SELECT count(DISTINCT person_id) FROM clinic.visits x WHERE x.ward = w.v) "
      f"FROM {WARDS} ORDER BY w.i"),
@@ -141,13 +147,36 @@ def test_empty_cells_are_zero_and_outside_values_are_not_counted(clinic) -> None
     assert measures_of(clinic, "SELECT age, COUNT(*) FROM people WHERE age > 1000 GROUP BY age") == []
 
 
-def test_average_parts_are_the_sum_and_count_of_values(clinic) -> None:
+def test_average_parts_are_a_midpoint_sum_and_the_count_of_values(clinic) -> None:
     conn, policies = clinic
     plan = analyse("SELECT AVG(weight) FROM people", policies, "tester")
     kinds = [m.kind for m in plan.measures]
-    assert sorted(kinds) == ["count_values", "sum"]
+    assert kinds == ["midpoint_sum", "count_values"]
     (row,) = measures_of(clinic, "SELECT AVG(weight) FROM people")
-    values = dict(zip(kinds, row))
-    total, count = conn.execute(f"SELECT sum({WEIGHT_UNITS}), count(weight) FROM clinic.people").fetchone()
-    assert values == {"sum": int(total), "count_values": count}
-    assert Decimal(values["sum"]) / 2 / values["count_values"] < 120  # in range after clamping
+    # weight in [-5, 120], step 0.5: [-10, 240] in steps, so 2 x - 230 in half steps.
+    total, count = conn.execute(f"SELECT 2 * sum({WEIGHT_UNITS}) - 230 * count(weight), "
+                                "count(weight) FROM clinic.people").fetchone()
+    assert row == (int(total), count)
+    # Centred on 57.5: the average is 57.5 + (centred sum / 4) / count, inside the range.
+    assert -5 < Decimal("57.5") + Decimal(row[0]) / 4 / row[1] < 120
+
+
+def test_an_average_beside_the_sum_of_its_column_reuses_the_plain_sum(clinic) -> None:
+    _, policies = clinic
+    plan = analyse("SELECT SUM(weight), AVG(weight), AVG(age) FROM people", policies, "tester")
+    assert [m.kind for m in plan.measures] == ["sum", "count_values", "midpoint_sum", "count_values"]
+    # Also when the SUM is only named in HAVING.
+    plan = analyse("SELECT AVG(weight) FROM people HAVING SUM(weight) > 0", policies, "tester")
+    assert [m.kind for m in plan.measures] == ["sum", "count_values"]
+
+
+def test_centred_average_on_a_table_with_declared_bounds(clinic) -> None:
+    # visits: most_rows 3 declared, minutes in [0, 60] centred on 30: per person, its centred
+    # sum 2 s - 60 n and its count n scale by w = min(1, 3 / rows) (the rows bound alone).
+    got = measures_of(clinic, "SELECT AVG(minutes) FROM visits")
+    want = reference(clinic, (
+        f"SELECT sum(sign(p) * least(abs(p), abs(p) * 3 / c)), sum(least(n, n * 3 / c)) "
+        f"FROM (SELECT person_id, count(*) AS c, count(minutes) AS n, "
+        f"2 * sum({CLAMPED_MINUTES}) - 60 * count(minutes) AS p FROM clinic.visits "
+        f"GROUP BY person_id) t"))
+    assert got == want

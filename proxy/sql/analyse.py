@@ -73,6 +73,7 @@ from proxy.sql.plan import (PERCENTILE_KINDS, GroupKey, Measure, OrderItem, Outp
                             output_ref)
 from proxy.sql.vocabulary import (CAST_TYPES, HAVING, SELECT, SQL_FAMILY, column_node, column_types,
                                   literal_type, rule, sum_type)
+from proxy.sql.rewrite import centres_averages
 
 BUCKETS = tuple(TRUNC_UNITS)  # the date_trunc units a group key accepts
 
@@ -283,6 +284,7 @@ class _Analysis:
         offset = self._count(select.args.get("offset"), "OFFSET")
         if not self.measures:
             raise refused("the query has no aggregate", SELECT_HINT)
+        self._centre_averages()
         return Plan(table=self._plan_table(), measures=tuple(self.measures), outputs=tuple(self.outputs),
                     keys=keys, where=condition, having=having_condition,
                     order_by=order, limit=limit, offset=offset, joins=self.scope.joins,
@@ -581,6 +583,19 @@ class _Analysis:
         if not self.derived:
             return self.table
         return self.table.model_copy(update={"columns": self._columns()})
+
+    def _centre_averages(self) -> None:
+        """AVG's sum becomes a centred sum where the rewrite centres averages, unless a SUM of
+        the same column needs the plain sum: then AVG reuses it, so the query has one measure
+        fewer to share its epsilon (``proxy.sql.rewrite``, "Averages")."""
+        if not centres_averages(self.table):
+            return
+        summed = {self.measures[o.measures[0]] for o in self.outputs if o.kind == "sum"}
+        for output in self.outputs:
+            index = output.measures[0] if output.kind == "avg" else None
+            if index is not None and self.measures[index] not in summed:
+                # the same rows, value and FILTER, summed about the midpoint
+                self.measures[index] = replace(self.measures[index], kind="midpoint_sum")
 
     def _measure_ids(self, aggregate: _Aggregate) -> tuple[int, ...]:
         ids = []

@@ -8,10 +8,12 @@ noisy rows. A plan is immutable and holds no data, so it can be cached by statem
 Vocabulary:
 - a *measure* is one integer-valued quantity the backend computes per cell and the engine
   noises: a row count, a count of non-null values, a clamped sum in units of the column's step,
-  or a count of distinct individuals; for VARIANCE and STDDEV, the sum and the sum of squares
-  of the clamped values in step units less the range's centre (``centred_sum``,
-  ``centred_squares``: see ``proxy.sql.rewrite``). Measures are deduplicated: ``AVG(x)`` and ``SUM(x)`` in one
-  query share the sum of ``x``, so epsilon is split among distinct measures only.
+  a sum centred on the range's midpoint (``midpoint_sum``: ``sum(2 x - lo - hi)`` in half
+  steps, for AVG where the range sets the noise), or a count of distinct individuals; for
+  VARIANCE and STDDEV, the sum and the sum of squares of the clamped values in step units less
+  the range's centre (``centred_sum``, ``centred_squares``: see ``proxy.sql.rewrite``). Measures
+  are deduplicated: ``AVG(x)`` and ``SUM(x)`` in one query share the plain sum of ``x``, so
+  epsilon is split among distinct measures only.
 - an *output* is one column of the answer, built from measures by post-processing.
 - a *cell* is one combination of group-key values from the declared domains.
 - a *join* (``Plan.joins``, read by ``proxy.sql.joins``): when a query reads several tables,
@@ -30,8 +32,8 @@ import sqlglot.expressions as exp
 from proxy.policy import TablePolicy
 
 JoinKind = Literal["from", "inner", "semi"]
-MeasureKind = Literal["count_rows", "count_values", "sum", "count_individuals", "centred_sum",
-                      "centred_squares"]
+MeasureKind = Literal["count_rows", "count_values", "sum", "midpoint_sum", "count_individuals",
+                      "centred_sum", "centred_squares"]
 OutputKind = Literal["key", "count", "sum", "avg", "var_samp", "var_pop", "stddev_samp",
                      "stddev_pop", "percentile_cont", "percentile_disc", "expression"]
 SPREAD_KINDS = ("var_samp", "var_pop", "stddev_samp", "stddev_pop")
@@ -109,7 +111,7 @@ class Output:
     """One answer column.
 
     ``key`` indexes ``Plan.keys`` for kind "key"; ``measures`` indexes ``Plan.measures`` for
-    aggregates: count -> (count,), sum -> (sum,), avg -> (sum, count_values), the variances and
+    aggregates: count -> (count,), sum -> (sum,), avg -> (sum or midpoint_sum, count_values), the variances and
     standard deviations -> (count_values, centred_sum, centred_squares), a percentile ->
     (count_values,) over the plan's ranked cells (``Plan.ranked``); ``fraction`` is a
     percentile's p. Hidden outputs (``visible`` False) exist only because HAVING, ORDER BY or a
