@@ -73,7 +73,8 @@ from proxy.sql.domains import describe_key, key_label, key_values
 from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
 from proxy.sql.plan import PERCENTILE_KINDS, SPREAD_KINDS, Measure, Output, Plan
-from proxy.sql.public import KIND_TYPES, PublicRead, read_sql
+from proxy.sql.public import PublicRead, read_sql
+from proxy.sql.vocabulary import column_types
 from proxy.sql.postprocess import carried_accuracy, postprocess, written_expression
 from proxy.sql import statement as slots
 from proxy.sql.statement import BoundStatement
@@ -158,7 +159,7 @@ class PreparedRead:
 
     @property
     def columns(self) -> list[OutputColumn]:
-        return [OutputColumn(name, KIND_TYPES[self.read.table.columns[column].kind])  # type: ignore[arg-type]
+        return [OutputColumn(name, column_types(self.read.table.columns[column]).sql)  # type: ignore[arg-type]
                 for name, column in self.read.columns]
 
 
@@ -744,6 +745,10 @@ class Engine:
     def _record(self, charges: list[int]) -> None:
         try:
             recorded = self.ledger.finish_many(charges, "answered")
+        except HushError as error:  # the ledger is unreachable: the charges stand as reserved
+            log.error("could not record the outcome of %d charges (%s): they stay 'reserved'",
+                      len(charges), error.sqlstate)
+            return
         except Exception:
             log.exception("could not record the outcome of %d charges", len(charges))
             return

@@ -22,14 +22,13 @@ from proxy.policy import Policies, TablePolicy
 from proxy.sql.filters import check_filter, only_args, unparen
 from proxy.sql.joins import Scope, name_of, read_from
 from proxy.sql.keys import bucket_reader
+from proxy.sql.vocabulary import column_types
 
 READ_HINT = ("a public table answers SELECT * | <columns> FROM <table> [WHERE ...] "
              "[ORDER BY <columns>] [LIMIT n] [OFFSET n]; join it to a protected table for "
              "aggregates over people")
 # The PostgreSQL type each column kind is answered as (and cast to, so the answer's types are
 # the policy's whatever the backend stores).
-KIND_TYPES = {"category": "text", "integer": "bigint", "number": "numeric", "date": "date",
-              "boolean": "boolean"}
 _CLAUSES = frozenset({"expressions", "from", "from_", "where", "order", "limit", "offset"})
 
 
@@ -139,7 +138,7 @@ def read_sql(read: PublicRead) -> str:
         if isinstance(node, exp.Identifier):
             node.set("quoted", True)
     select = exp.Select().select(*[
-        exp.alias_(exp.cast(column(name), KIND_TYPES[read.table.columns[name].kind]),
+        exp.alias_(exp.cast(column(name), column_types(read.table.columns[name]).sql),
                    exp.to_identifier(f"c{n}"), copy=False)
         for n, (_, name) in enumerate(read.columns)], copy=False).from_(source, copy=False)
     if read.where is not None:
