@@ -15,7 +15,8 @@ plain query; the difference between the last two is the private threshold's own 
 column is the plain query grouped by household too, counted in the database: the partials any
 per-individual answer has to compute, so a floor for the rewrite's ratio. ``--set``
 applies session settings to both sides alike (a DSN ``options``), so a comparison without
-parallel workers is as fair as one with them. The target: at most 2.5x the plain query at 10M
+parallel workers is as fair as one with them; the engine's backend connections then apply the
+proxy's own ``proxy.backend.BACKEND_SETTINGS`` on top (printed). The target: at most 2.5x the plain query at 10M
 rows. Nothing here asserts a speed; run it on a quiet machine, or read ratios, not times.
 """
 
@@ -36,6 +37,7 @@ from rich.table import Table
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from benchmarks.common import generous_policies, median_ms  # noqa: E402
+from proxy.backend import BACKEND_SETTINGS  # noqa: E402
 from proxy.engine import Engine  # noqa: E402
 from proxy.policy import load_policies  # noqa: E402
 
@@ -180,7 +182,8 @@ def main() -> int:
     args = parser.parse_args()
     console = Console()
     dsn = with_settings(args.backend, args.set)
-    console.print(f"settings on both sides: {shown_settings(dsn)}")
+    console.print(f"settings on both sides: {shown_settings(dsn)}; the engine's backend "
+                  f"connections then set {', '.join(f'{k}={v}' for k, v in BACKEND_SETTINGS.items())}")
     for rows in args.rows:
         if not args.keep:
             with console.status(f"loading {rows:,} readings"):

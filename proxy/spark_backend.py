@@ -28,6 +28,9 @@ Rules of this module:
   a tag of its own, interrupted by a timer or by the session's cancel request.
 - Spark error text never leaves this module (it could quote a row), as in ``proxy.backend``.
   Spark has no read-only transactions: give the Connect server's user read access only.
+- PostgreSQL's planner settings (``proxy.backend.BACKEND_SETTINGS``: JIT off, a larger
+  work_mem) are not carried over: they change speed only, never a value, and Spark plans its
+  own code generation and spills under its executors' memory settings.
 """
 
 from __future__ import annotations

@@ -8,7 +8,7 @@ import time
 import psycopg
 import pytest
 
-from proxy.backend import Backend, QueryControl
+from proxy.backend import BACKEND_SETTINGS, Backend, QueryControl
 from proxy.errors import HushError
 
 
@@ -31,6 +31,23 @@ def test_a_running_query_can_be_cancelled(backend: Backend) -> None:
     assert error.value.sqlstate == "57014"
     assert time.monotonic() - started < 5
     assert backend.run("SELECT 1") == [(1,)]  # the connection went back to the pool usable
+
+
+def test_every_connection_runs_with_the_proxys_planner_settings(backend: Backend) -> None:
+    # Two queries at once take both pooled connections; each must have the settings.
+    found: list[list[tuple]] = []
+    threads = [threading.Thread(target=lambda: found.append(backend.run(
+        "SELECT current_setting('jit'), current_setting('work_mem'), pg_sleep(0.3)")))
+        for _ in range(2)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    assert len(found) == 2
+    for rows in found:  # PostgreSQL shows work_mem as set ('32MB'), jit as 'off'
+        assert rows[0][:2] == (BACKEND_SETTINGS["jit"], BACKEND_SETTINGS["work_mem"])
+    with psycopg.connect(backend.dsn, autocommit=True) as other:  # the database's own stay
+        assert other.execute("SHOW work_mem").fetchone()[0] != BACKEND_SETTINGS["work_mem"]
 
 
 def test_cancelling_before_the_query_starts_prevents_it(backend: Backend) -> None:
