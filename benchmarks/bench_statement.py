@@ -24,7 +24,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import shutil
 import statistics
 import sys
 import tempfile
@@ -38,8 +37,7 @@ from psycopg import sql
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from benchmarks.bench_wire import drop_catalog_mirrors  # noqa: E402
-from benchmarks.common import BENCH_PASSWORD, generous_policies, serve  # noqa: E402
+from benchmarks.common import BENCH_PASSWORD, generous_policies, serve, tear_down  # noqa: E402
 
 from proxy.demo import load_scenario  # noqa: E402
 from proxy.dsn import with_database  # noqa: E402
@@ -140,14 +138,7 @@ def main() -> int:
         proxy, port = serve(policies, dsn, folder / "serve.log", pool_size=4)
         wire(port, dsn, args.executions)
     finally:
-        if proxy is not None:
-            proxy.terminate()
-            proxy.wait(30)
-        drop_catalog_mirrors(folder / "policies", dsn)
-        with psycopg.connect(args.backend, autocommit=True) as conn:
-            conn.execute(sql.SQL("DROP DATABASE IF EXISTS {} WITH (FORCE)").format(
-                sql.Identifier(name)))
-        shutil.rmtree(folder, ignore_errors=True)
+        tear_down(proxy, folder, args.backend, dsn, name)
     return 0
 
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 import re
 import shutil
 import statistics
+import subprocess
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -79,3 +80,22 @@ def serve(policies: Path, dsn: str, log: Path, *, workers: int = 1, pool_size: i
                 proxy.kill()
                 raise SystemExit(f"the proxy did not start; its log: {log}") from None
             time.sleep(0.2)
+
+
+def tear_down(proxy: "subprocess.Popen[bytes] | None", folder: Path, backend: str, dsn: str,
+              database: str) -> None:
+    """Stops a served proxy, drops its catalog mirrors and the benchmark's own database (on the
+    server ``backend`` names), and removes its folder."""
+    import psycopg
+    from psycopg import sql
+
+    from benchmarks.bench_wire import drop_catalog_mirrors
+
+    if proxy is not None:
+        proxy.terminate()
+        proxy.wait(30)
+    drop_catalog_mirrors(folder / "policies", dsn)
+    with psycopg.connect(backend, autocommit=True) as conn:
+        conn.execute(sql.SQL("DROP DATABASE IF EXISTS {} WITH (FORCE)").format(
+            sql.Identifier(database)))
+    shutil.rmtree(folder, ignore_errors=True)
