@@ -332,16 +332,29 @@ class _Writer:
             return exp.Anonymous(this=function, expressions=[argument.copy()])
         return node
 
+    def _integral(self, node: exp.Expression) -> bool:
+        """Whether the rewrite's expression is an integer: an aggregate (counts, and sums in
+        step units), an integer division, a floor or round, an integral column, an integer
+        literal, or + - * of those (AVG's midpoint sum ``2 * S - (lo + hi) * n``)."""
+        if isinstance(node, exp.Paren):
+            return self._integral(node.this)
+        if isinstance(node, (exp.Add, exp.Sub, exp.Mul)):
+            return self._integral(node.this) and self._integral(node.expression)
+        if isinstance(node, exp.Neg):
+            return self._integral(node.this)
+        if isinstance(node, exp.Literal):
+            return not node.is_string and node.this.lstrip("-").isdigit()
+        return isinstance(node, (exp.AggFunc, exp.IntDiv, exp.Floor)) or \
+            (isinstance(node, exp.Anonymous) and node.name.lower() in ("round", "bround", "floor")) \
+            or _column_name(node) in self.integral_columns
+
     def integral_decimals(self, node: exp.Expression) -> exp.Expression:
         """``CAST(x AS NUMERIC)`` of an integral value (a count, a sum of integers, an integer
         division, a floor) -> ``CAST(x AS DECIMAL(38, 0))``, exact up to 38 digits (past them
         ANSI mode fails the query). Any other unsized NUMERIC cast left would round: refused."""
         if _is_cast_to_bare_decimal(node):
             operand = node.this
-            if isinstance(operand, (exp.AggFunc, exp.IntDiv, exp.Floor)) or \
-                    (isinstance(operand, exp.Anonymous) and operand.name.lower() in
-                     ("round", "bround", "floor")) or \
-                    _column_name(operand) in self.integral_columns:
+            if self._integral(operand):
                 return exp.cast(operand.copy(), exp.DataType.build("DECIMAL(38, 0)"))
             if self.exact_type(operand):  # an exact column: its own type keeps every digit
                 return operand.copy()
