@@ -225,7 +225,7 @@ def test_the_audit_catches_a_rewrite_without_clipping(engines, monkeypatch, sql,
                                                       engine: str) -> None:
     # Clipping switched off: every individual's factor is 1, whatever its rows and totals; the
     # sensitivities claimed stay the same, so the heavy individual's 40 rows leak.
-    monkeypatch.setattr(rewrite_module, "_scaled", lambda value, *args: value)
+    monkeypatch.setattr(rewrite_module, "_scaled", lambda value, *args, **options: value)
     for each in engines.values():
         each._cache.clear()
     full = _samples(engines[f"{engine}full"], sql, statistic)

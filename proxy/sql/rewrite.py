@@ -214,11 +214,16 @@ cell a histogram of the values in step buckets, never a value. Its L1 sensitivit
 cells and buckets is that of a count: 1 on row tables, R with individuals. There, rounding each
 (individual, cell, bucket) count toward zero would erase an individual's histogram (its counts
 are mostly 0 or 1, and ``trunc(1 * w) = 0`` for any factor below 1), so a histogram is scaled by
-cumulative rounding instead: with ``N_i`` the individual's running count over its (cell,
-bucket) partials in ordinal order, partial i keeps ``floor(w N_i) - floor(w N_{i-1})``, computed
-as the same exact integer minimum of divisions as other partials (``floor(w x)`` is monotone in
-x, so each kept count is >= 0). The kept counts telescope to ``floor(w n) <= R`` over all cells
-and buckets, and they are an even, rank-keeping thinning of the individual's own values; every
+cumulative rounding about the middle instead: with ``N_i`` the individual's running count over
+its (cell, bucket) partials in ordinal order, partial i keeps ``floor(w N_i + 1/2) -
+floor(w N_{i-1} + 1/2)``, computed as exact integer divisions (``_scaled`` with ``half``:
+``floor(min(x, x B / T) + 1/2)`` is the minimum of ``x`` and ``div(2 x B + T, 2 T)``), and
+``floor(w x + 1/2)`` is monotone in x, so each kept count is >= 0 and at most its raw count. The
+kept counts telescope to ``floor(w n + 1/2) <= R`` over all cells and buckets (``w n <= R`` and
+R is an integer), so the sensitivity is R as for any count. The half matters for which values
+are kept: an individual thinned to k values keeps those at ranks about ``(j - 1/2) n / k`` of
+its own, evenly spread (k = 1: its middle value), where plain floors would keep its top ones
+(k = 1: its largest value) and push every percentile up. Every
 other individual's kept counts come from its own rows only. The engine never releases the histogram: it selects each percentile by the
 exponential mechanism, whose utility moves by at most the histogram's change in that cell; the
 argument is in ``proxy.selection``. Values outside the declared range, like keys outside their
@@ -410,7 +415,8 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
     if unique:
         tree = _one_row_each_query(plan, bounds, exact_columns)
     else:
-        tree = _individual_table_query(plan, bounds, measure_bounds, exact_columns)
+        tree = _individual_table_query(plan, bounds, measure_bounds, exact_columns,
+                                       middle=buckets > 1)
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
                      measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
                      measure_multiples=tuple(_row_multiple(policy, m) for m in plan.measures),
@@ -874,34 +880,41 @@ def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> ex
     return _aggregate(policy, measure, exact)
 
 
-def _scaled(value: str, bounds: tuple[Bound, ...]) -> str:
+def _scaled(value: str, bounds: tuple[Bound, ...], *, half: bool = False) -> str:
     """SQL for floor(value * w), value >= 0: w = min(1, B_j / total_j) over the plan's bounds,
-    as integer divisions (floor of a minimum is the minimum of the floors), exact."""
+    as integer divisions (floor of a minimum is the minimum of the floors), exact. With ``half``,
+    floor(value * w + 1/2): ``div(2 value B_j + total_j, 2 total_j)`` (the value's own term
+    is an integer, which the half leaves as it is)."""
     terms = [value]
     for j, bound in enumerate(bounds):
         total = "n_rows" if bound.subject == "rows" else f"tot{j}"
-        terms.append(f"div({value} * b.b{j}, NULLIF(t.{total}, 0))")
+        # (the numerator in parentheses: Spark's DIV binds tighter than +)
+        terms.append(f"div((2 * {value} * b.b{j} + t.{total}), NULLIF(2 * t.{total}, 0))" if half
+                     else f"div({value} * b.b{j}, NULLIF(t.{total}, 0))")
     return f"LEAST({', '.join(terms)})"
 
 
-def _kept(value: str, running: str | None, bounds: tuple[Bound, ...]) -> str:
+def _kept(value: str, running: str | None, bounds: tuple[Bound, ...], *,
+          half: bool = False) -> str:
     """SQL for one partial's kept share, value >= 0 (module notes, 4): ``f(running) -
-    f(running - value)`` with f = floor(x * w) and ``running`` the individual's running total
-    up to and including this cell; just ``f(value)`` when each individual has one cell. Where
-    w = 1 (every total within its bound) that difference is ``value`` itself, so the divisions
-    run only for the individuals a bound scales down."""
+    f(running - value)`` with f = floor(x * w) (``half``: floor(x * w + 1/2), for histograms,
+    module notes "Percentiles") and ``running`` the individual's running total up to and
+    including this cell; just ``f(value)`` when each individual has one cell. Where w = 1
+    (every total within its bound) that difference is ``value`` itself, so the divisions run
+    only for the individuals a bound scales down."""
     if running is None:
-        return _scaled(value, bounds)
+        return _scaled(value, bounds, half=half)
     within = " AND ".join(f"t.{'n_rows' if bound.subject == 'rows' else f'tot{j}'} <= b.b{j}"
                           for j, bound in enumerate(bounds))
-    return (f"CASE WHEN {within} THEN {value} ELSE {_scaled(running, bounds)} - "
-            f"{_scaled(f'({running} - {value})', bounds)} END")
+    return (f"CASE WHEN {within} THEN {value} ELSE {_scaled(running, bounds, half=half)} - "
+            f"{_scaled(f'({running} - {value})', bounds, half=half)} END")
 
 
 def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
-                            exact: frozenset[str]) -> exp.Select:
+                            exact: frozenset[str], middle: bool = False) -> exp.Select:
     """The per-individual rewrite (module notes): partials per (individual, cell) in the
-    domains, totals per individual, the bounds (declared, or chosen by noisy max over the
+    domains (``middle``: a percentile plan's histogram, thinned about the middle), totals per
+    individual, the bounds (declared, or chosen by noisy max over the
     candidates), one factor per individual scaling all its partials, sums per cell, and per
     bound the clipped-away total, each individual capped."""
     policy = plan.table
@@ -933,7 +946,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     window = (f"OVER (PARTITION BY q.who ORDER BY {', '.join(ordinals)} "
               "ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW)")
     running = {name: f"q.run_{name}" if plan.keys else None for name in sizes}
-    scaled = [f"{_kept('q.r', running['r'], bounds)} AS r_kept"]
+    scaled = [f"{_kept('q.r', running['r'], bounds, half=middle)} AS r_kept"]
     for n, measure in enumerate(plan.measures):
         if measure.kind == "count_individuals":
             scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN q.m{n} ELSE 0 END AS m{n}")
@@ -941,7 +954,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
             scaled.append(f"SIGN(q.m{n}) * ({_kept(sizes[f'm{n}'], running[f'm{n}'], bounds)})"
                           f" AS m{n}")
         else:
-            scaled.append(f"{_kept(sizes[f'm{n}'], running[f'm{n}'], bounds)} AS m{n}")
+            scaled.append(f"{_kept(sizes[f'm{n}'], running[f'm{n}'], bounds, half=middle)} AS m{n}")
     source = "q"
     if plan.keys:
         columns = ["q.who", "q.r"] + ordinals + [f"q.m{n}" for n in range(len(plan.measures))]
