@@ -26,21 +26,17 @@ import argparse
 import os
 import statistics
 import sys
-import tempfile
 import time
-import uuid
 from pathlib import Path
 
 import psycopg
-from psycopg import sql
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from benchmarks.common import BENCH_PASSWORD, generous_policies, serve, tear_down  # noqa: E402
+from benchmarks.common import BENCH_PASSWORD, generous_policies, serve, set_up, tear_down  # noqa: E402
 
 from proxy.demo import load_scenario  # noqa: E402
-from proxy.dsn import with_database  # noqa: E402
 from proxy.engine import Engine  # noqa: E402
 from proxy.policy import load_policies  # noqa: E402
 from proxy.wire import statements, types  # noqa: E402
@@ -121,11 +117,7 @@ def main() -> int:
     if not args.backend:
         parser.error("give --backend or set HUSHQL_TEST_DSN")
     print(f"load average: {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores")
-    folder = Path(tempfile.mkdtemp(prefix="hushql-statement-"))
-    name = f"hushql_statement_{uuid.uuid4().hex[:8]}"
-    with psycopg.connect(args.backend, autocommit=True) as conn:
-        conn.execute(sql.SQL("CREATE DATABASE {}").format(sql.Identifier(name)))
-    dsn = with_database(args.backend, name)
+    folder, name, dsn = set_up(args.backend, "statement")
     proxy = None
     try:
         load_scenario(dsn, households=3000, progress=False)

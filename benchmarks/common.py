@@ -82,6 +82,24 @@ def serve(policies: Path, dsn: str, log: Path, *, workers: int = 1, pool_size: i
             time.sleep(0.2)
 
 
+def set_up(backend: str, purpose: str) -> tuple[Path, str, str]:
+    """A fresh folder and an empty database ``hushql_<purpose>_<random>`` on the server
+    ``backend`` names: (folder, database name, its DSN). ``tear_down`` removes both."""
+    import tempfile
+    import uuid
+
+    import psycopg
+    from psycopg import sql
+
+    from proxy.dsn import with_database
+
+    folder = Path(tempfile.mkdtemp(prefix=f"hushql-{purpose}-"))
+    name = f"hushql_{purpose}_{uuid.uuid4().hex[:8]}"
+    with psycopg.connect(backend, autocommit=True) as conn:
+        conn.execute(sql.SQL("CREATE DATABASE {}").format(sql.Identifier(name)))
+    return folder, name, with_database(backend, name)
+
+
 def tear_down(proxy: "subprocess.Popen[bytes] | None", folder: Path, backend: str, dsn: str,
               database: str) -> None:
     """Stops a served proxy, drops its catalog mirrors and the benchmark's own database (on the

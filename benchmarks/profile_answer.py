@@ -20,22 +20,18 @@ import os
 import shutil
 import subprocess
 import sys
-import tempfile
 import threading
 import time
-import uuid
 from pathlib import Path
 
 import psycopg
-from psycopg import sql
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from benchmarks.common import BENCH_PASSWORD, generous_policies, serve, tear_down  # noqa: E402
+from benchmarks.common import BENCH_PASSWORD, generous_policies, serve, set_up, tear_down  # noqa: E402
 
 from proxy.demo import load_scenario  # noqa: E402
-from proxy.dsn import with_database  # noqa: E402
 
 
 def cpu_seconds(pid: int) -> float:
@@ -108,11 +104,7 @@ def main() -> int:
     if not args.backend:
         parser.error("give --backend or set HUSHQL_TEST_DSN")
     py_spy = shutil.which("py-spy") or str(Path(sys.executable).parent / "py-spy")
-    folder = Path(tempfile.mkdtemp(prefix="hushql-profile-"))
-    name = f"hushql_profile_{uuid.uuid4().hex[:8]}"
-    with psycopg.connect(args.backend, autocommit=True) as conn:
-        conn.execute(sql.SQL("CREATE DATABASE {}").format(sql.Identifier(name)))
-    dsn = with_database(args.backend, name)
+    folder, name, dsn = set_up(args.backend, "profile")
     proxy = None
     try:
         load_scenario(dsn, households=3000, progress=False)

@@ -20,7 +20,7 @@ from pathlib import Path
 import psycopg
 
 from proxy.errors import CANNOT_CONNECT, CONFIG_FILE_ERROR, HushError
-from proxy.policy import Policies
+from proxy.policy import Policies, TablePolicy
 from proxy.sql.vocabulary import KIND_CATEGORIES
 
 log = logging.getLogger("hushql.config")
@@ -110,18 +110,27 @@ def backend_problems(policies: Policies, backend_dsn: str) -> list[str]:
                                 f"{table.source}")
             found = {row[0]: (row[1], row[2])
                      for row in conn.execute(_COLUMNS, [table.source]).fetchall()}
-            if table.individual is not None and table.individual.column not in found:
-                problems.append(f"{label}: individual.column: {table.source} has no column "
-                                f"{table.individual.column}")
-            for column_name, column in table.columns.items():
-                if column_name not in found:
-                    problems.append(f"{label}: columns.{column_name}: {table.source} has no "
-                                    "such column")
-                    continue
-                category, type_name = found[column_name]
-                if category not in KIND_TYPE_CATEGORIES[column.kind]:
-                    problems.append(f"{label}: columns.{column_name}: kind {column.kind} does "
-                                    f"not fit the backend's type {type_name}")
+            problems += column_problems(label, table, found, "the backend's")
+    return problems
+
+
+def column_problems(label: str, table: TablePolicy, found: dict[str, tuple[str, str]],
+                    whose: str) -> list[str]:
+    """The policy's columns (and individual column) missing from a backend relation, or of a
+    kind its type does not fit; ``found`` maps each column there to (PostgreSQL type category
+    letter, type name), ``whose`` names the backend in the messages ("Spark's")."""
+    problems = []
+    if table.individual is not None and table.individual.column not in found:
+        problems.append(f"{label}: individual.column: {table.source} has no column "
+                        f"{table.individual.column}")
+    for column_name, column in table.columns.items():
+        if column_name not in found:
+            problems.append(f"{label}: columns.{column_name}: {table.source} has no such column")
+            continue
+        category, type_name = found[column_name]
+        if category not in KIND_TYPE_CATEGORIES[column.kind]:
+            problems.append(f"{label}: columns.{column_name}: kind {column.kind} does not fit "
+                            f"{whose} type {type_name}")
     return problems
 
 

@@ -676,7 +676,7 @@ def source_problems(policies: Policies, dsn: str) -> list[str]:
     """Every table, column and type of ``policies`` the Spark server cannot answer, one line
     each (as ``proxy.safe_config.backend_problems`` does for PostgreSQL). Raises when the
     server cannot be reached."""
-    from proxy.safe_config import KIND_TYPE_CATEGORIES
+    from proxy.safe_config import column_problems
 
     problems: list[str] = []
     backend = SparkBackend(dsn)
@@ -689,19 +689,9 @@ def source_problems(policies: Policies, dsn: str) -> list[str]:
                 problems.append(f"{label}: source: {table.source} is not a table the Spark "
                                 "server's user can read")
                 continue
-            if table.individual is not None and table.individual.column not in found:
-                problems.append(f"{label}: individual.column: {table.source} has no column "
-                                f"{table.individual.column}")
-            for column_name, column in table.columns.items():
-                if column_name not in found:
-                    problems.append(f"{label}: columns.{column_name}: {table.source} has no "
-                                    "such column")
-                    continue
-                type_name = found[column_name]
-                category = _TYPE_CATEGORIES.get(type_name.partition("(")[0], "X")
-                if category not in KIND_TYPE_CATEGORIES[column.kind]:
-                    problems.append(f"{label}: columns.{column_name}: kind {column.kind} does "
-                                    f"not fit Spark's type {type_name}")
+            categories = {column: (_TYPE_CATEGORIES.get(kind.partition("(")[0], "X"), kind)
+                          for column, kind in found.items()}
+            problems += column_problems(label, table, categories, "Spark's")
     finally:
         backend.close()
     return problems
