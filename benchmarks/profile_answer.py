@@ -2,12 +2,13 @@
 
     .venv/bin/pip install py-spy          # the optional extra 'profile'
     .venv/bin/python benchmarks/profile_answer.py --backend ADMIN_DSN [--seconds 10]
-        [--clients 4] [--raw FILE]
+        [--clients 4] [--stored] [--raw FILE]
 
 Loads the demo into a database of its own on ``--backend``'s server (dropped at the end), runs
 ``hushql serve --workers 1`` on it with budgets no run exhausts, and has ``--clients`` threads
-send ``SELECT COUNT(*) FROM households WHERE occupants = k`` (k varying) for ``--seconds``
-while py-spy samples the proxy thread holding the GIL (Python CPU work, not waits). Prints the proxy's
+send ``SELECT COUNT(*) FROM households WHERE occupants = k`` (k varying) for ``--seconds``,
+each answer fresh (``hushql.fresh = on``: planned, charged and noised, as in bench_load.py;
+``--stored`` profiles stored answers given again instead), while py-spy samples the proxy thread holding the GIL (Python CPU work, not waits). Prints the proxy's
 CPU time per answer (from /proc) and the functions holding the most samples, inclusive and
 self. Nothing is asserted; the figures depend on the machine and on what else runs on it.
 """
@@ -40,15 +41,17 @@ def cpu_seconds(pid: int) -> float:
     return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
 
-def load(port: int, clients: int, seconds: float) -> int:
-    """Answers received by ``clients`` threads asking for ``seconds``."""
+def load(port: int, clients: int, seconds: float, fresh: bool) -> int:
+    """Answers received by ``clients`` threads asking for ``seconds`` (``fresh``: each
+    answer charged and noised anew)."""
     stop = time.monotonic() + seconds
     counts = [0] * clients
 
     def client(index: int) -> None:
         with psycopg.connect(host="127.0.0.1", port=port, user="planner",
                              password=BENCH_PASSWORD, dbname="hushql_demo",
-                             autocommit=True) as conn:
+                             autocommit=True,
+                             options="-c hushql.fresh=on" if fresh else None) as conn:
             k = index
             while time.monotonic() < stop:
                 conn.execute(f"SELECT COUNT(*) FROM households WHERE occupants = {k % 8 + 1}")
@@ -99,6 +102,8 @@ def main() -> int:
     parser.add_argument("--seconds", type=float, default=10.0)
     parser.add_argument("--clients", type=int, default=4)
     parser.add_argument("--top", type=int, default=30)
+    parser.add_argument("--stored", action="store_true",
+                        help="profile stored answers given again (hushql.fresh off)")
     parser.add_argument("--raw", type=Path, help="keep py-spy's collapsed stacks here")
     args = parser.parse_args()
     if not args.backend:
@@ -109,14 +114,14 @@ def main() -> int:
     try:
         load_scenario(dsn, households=3000, progress=False)
         proxy, port = serve(generous_policies(folder), dsn, folder / "serve.log", pool_size=8)
-        load(port, args.clients, 2.0)  # warm the plan cache and the pools
+        load(port, args.clients, 2.0, not args.stored)  # warm the plan cache and the pools
         raw = args.raw or folder / "profile.txt"
         sampler = subprocess.Popen(
             [py_spy, "record", "--pid", str(proxy.pid), "--duration", str(int(args.seconds)),
              "--rate", "250", "--format", "raw", "--nonblocking", "--gil", "--output", str(raw)],
             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         before = cpu_seconds(proxy.pid)
-        answers = load(port, args.clients, args.seconds)
+        answers = load(port, args.clients, args.seconds, not args.stored)
         used = cpu_seconds(proxy.pid) - before
         sampler.wait(60)
         print(f"{answers} answers in {args.seconds:.0f} s with {args.clients} clients: "

@@ -21,10 +21,10 @@ The order of steps is the privacy argument, so it lives here and only here:
 5. release: post-processing on noisy values only (clamping counts at zero, AVG's division,
    HAVING, ORDER BY, LIMIT), then the answer.
 6. finish: the charge's outcome (answered, failed, cancelled) is noted in the ledger. It is a
-   note, not a charge, so for answered queries a background worker records it after the answer
-   has gone; failures and cancellations are recorded before the error is raised.
-   Before release, the answer is stored in the ledger under its question (a failure to store
-   loses only the reuse: the charge is already durable).
+   note, not a charge, so its commit does not wait for the disk. Before release, the answer is
+   stored in the ledger under its question, and the same statement notes it 'answered' (a
+   failure to store loses only the reuse: the charge is already durable); failures and
+   cancellations are noted before the error is raised.
 
 Time. The backend query runs under the proxy's own timeout (access.toml ``[limits]
 query_timeout_ms``), never one the analyst chose: a deadline of the analyst's choosing turns
@@ -45,7 +45,6 @@ import hashlib
 import json
 import logging
 import math
-import queue
 import re
 import threading
 import time
@@ -168,11 +167,6 @@ class PreparedRead:
 # an unbounded exponent (1e-999999999) would make them numbers of a billion digits.
 MOST_EPSILON_PLACES = 12
 
-# How long the notes thread waits after a first 'answered' note for others to join its batch:
-# one ledger round trip per batch instead of one per answer (the charge is durable already).
-NOTE_GATHERING_SECONDS = 0.02
-
-
 # An epsilon as text: ASCII digits only (Python's Decimal would also read other scripts' digits,
 # such as '١'), plain or exponent notation, and not absurdly long.
 _EPSILON_TEXT = re.compile(r"\+?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d{1,4})?", re.ASCII)
@@ -241,11 +235,6 @@ class Engine:
         self._cache_weight = 0
         self._cache_lock = threading.Lock()
         self._facts: dict[str, SourceFacts] = {}
-        # Records answered outcomes after the answer is released, in batches, on one thread
-        # started at the first note (so after a fork).
-        self._answered: queue.SimpleQueue[int | threading.Event | None] = queue.SimpleQueue()
-        self._notes: threading.Thread | None = None
-        self._notes_lock = threading.Lock()
         # One identical question (stored-answer key) at a time: key -> (lock, users).
         self._asking: dict[str, tuple[threading.Lock, int]] = {}
         self._asking_lock = threading.Lock()
@@ -295,8 +284,7 @@ class Engine:
             self._facts.clear()
 
     def close(self) -> None:
-        """Record pending outcomes, then close the pools."""
-        self.flush_notes(stop=True)
+        """Close the pools."""
         self.backend.close()
         self.ledger.close()
 
@@ -660,16 +648,14 @@ class Engine:
             release = self._release_ranked if plan.ranked is not None else self._release
             answer = release(prepared, eps, split, true_rows, charge)
             outcome = "answered"
-            self._store(analyst, question, prepared, answer)
+            if self._store(analyst, question, prepared, answer):
+                outcome = "noted"  # the store recorded the outcome too
         except HushError as error:
             failure = error
             if error.sqlstate == QUERY_CANCELED:
                 outcome = "cancelled"
         finally:
-            if outcome == "answered":
-                # A note, not a charge (the charge is durable already): off the answer's path.
-                self._note_answered(charge)
-            else:
+            if outcome != "noted":
                 self._finish(charge, outcome)
         if steady is not None:  # answer or error, released at the steady time
             _hold_until(arrived + steady / 1000, control)
@@ -694,68 +680,6 @@ class Engine:
                       notes=[f"{read.table.table} is a public table: its rows as stored, no noise, "
                              "nothing charged"])
 
-    def _note_answered(self, charge: int) -> None:
-        """Queues an 'answered' note for the notes thread, which records what has gathered in
-        one round trip: under load the notes cost the ledger one transaction per batch."""
-        self._answered.put(charge)
-        if self._notes is None:
-            with self._notes_lock:
-                if self._notes is None:
-                    self._notes = threading.Thread(target=self._record_answered, daemon=True,
-                                                   name="hushql-outcomes")
-                    self._notes.start()
-
-    def flush_notes(self, *, stop: bool = False) -> None:
-        """Waits until the notes queued so far are recorded (``stop``: and ends the thread)."""
-        with self._notes_lock:
-            thread = self._notes
-            if stop:
-                self._notes = None
-        if thread is None:
-            return
-        if stop:
-            self._answered.put(None)
-            thread.join()
-            return
-        done = threading.Event()
-        self._answered.put(done)
-        while not done.wait(0.05) and thread.is_alive():
-            pass
-
-    def _record_answered(self) -> None:
-        """The notes thread: records queued charges in batches; an Event in the queue is set
-        once everything before it is recorded, None ends the thread."""
-        while True:
-            items = [self._answered.get()]
-            time.sleep(NOTE_GATHERING_SECONDS)  # gather the notes of concurrent answers
-            while True:
-                try:
-                    items.append(self._answered.get_nowait())
-                except queue.Empty:
-                    break
-            charges = [c for c in items if isinstance(c, int)]
-            if charges:
-                self._record(charges)
-            for item in items:
-                if isinstance(item, threading.Event):
-                    item.set()
-            if None in items:
-                return
-
-    def _record(self, charges: list[int]) -> None:
-        try:
-            recorded = self.ledger.finish_many(charges, "answered")
-        except HushError as error:  # the ledger is unreachable: the charges stand as reserved
-            log.error("could not record the outcome of %d charges (%s): they stay 'reserved'",
-                      len(charges), error.sqlstate)
-            return
-        except Exception:
-            log.exception("could not record the outcome of %d charges", len(charges))
-            return
-        if recorded != len(charges):
-            log.warning("%d of %d answered charges were unknown or already finished",
-                        len(charges) - recorded, len(charges))
-
     def _run_in_time(self, prepared: Prepared, control: QueryControl | None,
                      settings: dict[str, str] | None, arrived: float,
                      steady: int | None) -> list[tuple[Any, ...]]:
@@ -779,15 +703,17 @@ class Engine:
                                  "condition, or ask the data owner to lengthen "
                                  "[timing] answer_after_ms") from None
 
-    def _store(self, analyst: str, question: str, prepared: Prepared, answer: Answer) -> None:
-        """Keep a released answer for the next asking; a failure loses only the reuse (the
-        charge is durable already), so it is logged, not raised."""
+    def _store(self, analyst: str, question: str, prepared: Prepared, answer: Answer) -> bool:
+        """Keep an answer about to be released for the next asking, noting its charge
+        'answered' in the same statement; True when the note was recorded. A failure loses only
+        the reuse (the charge is durable already), so it is logged, not raised."""
         assert answer.charge_id is not None
         try:
-            self.ledger.store_answer(analyst, question, prepared.statement, answer.epsilon,
-                                     answer.charge_id, stored_answers.encode_answer(answer))
+            return self.ledger.store_answer(analyst, question, prepared.statement, answer.epsilon,
+                                            answer.charge_id, stored_answers.encode_answer(answer))
         except Exception:
             log.exception("could not store the answer of charge %s", answer.charge_id)
+            return False
 
     def _finish(self, charge: int, outcome: str) -> None:
         """Record the outcome of a charge; a failure to record it loses only the note."""

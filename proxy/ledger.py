@@ -40,10 +40,13 @@ Why it is shaped like this:
   adds up against one cap (the smallest cap its tables declare); a table without an
   ``[individual]`` section is a population of its own. Each table's own ``spent`` is kept too,
   for the books.
-- Stored answers (schema version 6, ``proxy.stored_answers``): storing one is a lone INSERT
-  that takes no budget row lock; its foreign key takes only a KEY SHARE lock on the charge row
-  that paid for it, which ``finish`` (a non-key update) does not conflict with, so storing
-  joins no lock order and cannot deadlock with reservations.
+- Stored answers (schema version 6, ``proxy.stored_answers``): storing one takes no budget
+  row lock. Since version 7 it is one statement (``store_answered``) that inserts the stored
+  answer and records the charge 'answered', in one commit that, like ``finish``'s, does not
+  wait for the disk (both are notes: a crash may lose them, never the durable charge). It
+  locks only the charge row that paid (its foreign key's KEY SHARE, then the outcome's
+  update), which no reservation touches and nothing else holds while the answer is being
+  released, so storing joins no lock order and cannot deadlock with reservations.
 - Epsilon is ``Decimal`` in Python and ``NUMERIC`` in PostgreSQL, never a float: 0.1 charged 30
   times is exactly 3.0. Sums, differences and comparisons happen in PostgreSQL (arbitrary
   precision); Python never does arithmetic on a budget.
@@ -550,6 +553,27 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         "CREATE INDEX stored_answers_by_question ON {schema}.stored_answers "
         "(analyst, question, id)",
     )),
+    # An answered charge's two notes in one statement and one commit that does not wait for
+    # the disk (see Ledger.store_answer): its stored answer and its outcome.
+    ("stored answer and 'answered' outcome in one asynchronous commit", (
+        """
+        CREATE FUNCTION {schema}.store_answered(
+            analyst_name text, question_key text, statement_text text, amount numeric,
+            paid_by bigint, answer_json jsonb)
+        RETURNS boolean
+        LANGUAGE plpgsql AS $body$
+        BEGIN
+            PERFORM set_config('synchronous_commit', 'off', true);
+            INSERT INTO {schema}.stored_answers
+                   (analyst, question, statement, epsilon, charge_id, answer)
+            VALUES (analyst_name, question_key, statement_text, amount, paid_by, answer_json);
+            UPDATE {schema}.charges SET outcome = 'answered', finished_at = clock_timestamp()
+             WHERE id = paid_by AND outcome = 'reserved';
+            RETURN FOUND;
+        END
+        $body$
+        """,
+    )),
 ]
 
 
@@ -935,14 +959,23 @@ class Ledger:
         return rows  # type: ignore[return-value]
 
     def store_answer(self, analyst: str, question: str, statement: str, epsilon: Decimal,
-                     charge_id: int, answer: str) -> None:
-        """Keep the released ``answer`` (JSON text) paid for by ``charge_id`` under the key
-        ``question``; ``statement`` is kept as an excerpt. A charge stores at most one answer
-        (a second raises psycopg's UniqueViolation)."""
+                     charge_id: int, answer: str) -> bool:
+        """Keep the answer (JSON text) about to be released for ``charge_id`` under the key
+        ``question`` and record the charge 'answered', in one statement; ``statement`` is kept
+        as an excerpt. True when the outcome was recorded (False: the charge was unknown or
+        already finished). A charge stores at most one answer (a second raises psycopg's
+        UniqueViolation, and records nothing).
+
+        Like ``finish``, its commit does not wait for the disk: both are notes, not charges. A
+        crash may lose them; the charge itself was durable before the query ran, so what is
+        lost is a reuse (the analyst pays again for the same question) and the outcome (the
+        charge reads 'reserved'), never a charge.
+        """
         with self._connection() as conn:
-            conn.execute(self._sql.store_answer, [analyst, question,
-                                                  statement[:STATEMENT_EXCERPT], epsilon,
-                                                  charge_id, answer])
+            row = conn.execute(self._sql.store_answered, [
+                analyst, question, statement[:STATEMENT_EXCERPT], epsilon, charge_id,
+                answer]).fetchone()
+        return bool(row and row[0])
 
     def stored_answer(self, analyst: str, question: str) -> StoredAnswer | None:
         """The newest answer stored for ``analyst`` under ``question``, or None."""
@@ -1127,9 +1160,7 @@ class _Statements:
             f"LATERAL {s}.finish_charge(ids.id, %s) AS f (recorded)")
         self.remaining = (
             f"SELECT greatest(budget - spent, 0) FROM {s}.analyst_budgets WHERE analyst = %s")
-        self.store_answer = (
-            f"INSERT INTO {s}.stored_answers (analyst, question, statement, epsilon, charge_id, "
-            "answer) VALUES (%s, %s, %s, %s, %s, %s::jsonb)")
+        self.store_answered = f"SELECT {s}.store_answered(%s, %s, %s, %s, %s, %s::jsonb)"
         # The charge's own time: when the answer was paid for.
         self.stored_answer = (
             f"SELECT a.answer, c.reserved_at, a.charge_id, greatest(b.budget - b.spent, 0) "

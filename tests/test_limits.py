@@ -216,5 +216,3 @@ def test_the_plan_cache_is_bounded_in_memory_not_only_in_entries() -> None:
         roomy.prepare("planner", sql)
     assert len(small._cache) == 3 and small._cache_weight <= 3 * one
     assert len(roomy._cache) == 8  # the companion: without the byte bound all stay
-    for made in (small, roomy):
-        made.flush_notes(stop=True)

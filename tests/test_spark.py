@@ -222,7 +222,6 @@ def engine(clinic, module_dsn: str):
     backend, _, policies = clinic
     engine = Engine(policies, backend, Ledger(module_dsn, pool_size=2, schema="spark_ledger"))
     yield engine
-    engine.flush_notes(stop=True)
     engine.ledger.close()
 
 

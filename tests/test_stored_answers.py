@@ -196,6 +196,49 @@ def test_refused_and_failed_questions_store_nothing(engines, clinic_dsn) -> None
     assert row == (0,)
 
 
+def _outcomes(dsn: str, schema: str) -> list[tuple[str, int]]:
+    """Per charge, in order: its outcome and how many answers it stored."""
+    with psycopg.connect(dsn) as conn:
+        return conn.execute(
+            f"SELECT c.outcome, count(a.id)::int FROM {schema}.charges c LEFT JOIN "
+            f"{schema}.stored_answers a ON a.charge_id = c.id GROUP BY c.id ORDER BY c.id"
+        ).fetchall()
+
+
+def test_storing_notes_the_charge_answered_in_the_same_statement(engines, clinic_dsn) -> None:
+    """The stored answer and the 'answered' outcome are written by one statement before the
+    answer is returned; a store that fails records neither."""
+    make, schema = engines
+    engine = make()
+    engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
+    assert _outcomes(clinic_dsn, schema) == [("answered", 1)]
+    ledger = engine.ledger
+    charge, _ = ledger.reserve("tester", ["people"], Decimal("0.5"), QUESTION, "f")
+    with psycopg.connect(clinic_dsn, autocommit=True) as conn:  # an answer stored beforehand
+        conn.execute(f"INSERT INTO {schema}.stored_answers (analyst, question, statement, "
+                     "epsilon, charge_id, answer) VALUES ('tester', 'q', 's', 0.5, %s, '{}')",
+                     [charge])
+    with pytest.raises(psycopg.errors.UniqueViolation):
+        ledger.store_answer("tester", "q", QUESTION, Decimal("0.5"), charge, "{}")
+    assert _outcomes(clinic_dsn, schema)[1] == ("reserved", 1)  # the note went with the store
+
+
+def test_an_answer_whose_store_fails_is_still_noted_answered(engines, clinic_dsn,
+                                                              monkeypatch) -> None:
+    """Storing fails: the answer is still given (only its reuse is lost) and the engine
+    notes the outcome on its own."""
+    make, schema = engines
+    engine = make()
+
+    def refuse(*args: object) -> bool:
+        raise psycopg.OperationalError("the ledger went away")
+
+    monkeypatch.setattr(engine.ledger, "store_answer", refuse)
+    answer = engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
+    assert answer.rows
+    assert _outcomes(clinic_dsn, schema) == [("answered", 0)]
+
+
 # ---- pure parts --------------------------------------------------------------------------------
 
 def test_an_answer_survives_json_exactly() -> None:

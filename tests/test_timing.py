@@ -85,7 +85,6 @@ def _timed(call) -> tuple[float, object]:
 
 
 def _outcomes(engine: Engine, dsn: str) -> list[str]:
-    engine.flush_notes()  # answered notes are written in the background
     with psycopg.connect(dsn) as conn:
         return [row[0] for row in conn.execute(
             f"SELECT outcome FROM {engine.ledger.schema}.charges ORDER BY id").fetchall()]
