@@ -91,3 +91,30 @@ def test_backend_sessions_are_read_only(backend: Backend, fresh_dsn: str) -> Non
 
 def test_column_types_are_read_from_the_catalog(backend: Backend) -> None:
     assert backend.column_types("public.secret_rows") == {"name": "text"}
+
+
+PREPARED = ("SELECT count(*) FROM pg_prepared_statements "
+            "WHERE statement = 'SELECT sum(amount) FROM amounts'")
+
+
+def test_a_repeated_query_is_prepared_and_survives_a_change_of_type(fresh_dsn: str) -> None:
+    """A text run often is prepared on its connection; after its table changes type the
+    prepared plan fails once (closed: no backend text) and the next run is planned afresh."""
+    with psycopg.connect(fresh_dsn, autocommit=True) as conn:
+        conn.execute("CREATE TABLE amounts (amount integer)")
+        conn.execute("INSERT INTO amounts VALUES (2), (3)")
+    backend = Backend(fresh_dsn, pool_size=1)
+    query = "SELECT sum(amount) FROM amounts"
+    try:
+        for _ in range(6):
+            assert backend.run(query) == [(5,)]
+        assert backend.run(PREPARED) == [(1,)]
+        with psycopg.connect(fresh_dsn, autocommit=True) as conn:
+            conn.execute("ALTER TABLE amounts ALTER COLUMN amount TYPE numeric")
+        with pytest.raises(HushError) as error:
+            backend.run(query)  # sum(integer) was bigint; sum(numeric) is numeric
+        assert error.value.sqlstate == "XX000"
+        assert backend.run(PREPARED) == [(0,)]
+        assert backend.run(query) == [(5,)]
+    finally:
+        backend.close()
