@@ -133,6 +133,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     logging.basicConfig(level=logging.INFO, stream=sys.stderr,
                         format="%(asctime)s %(name)s %(levelname)s %(message)s")
+    # The format names no caller, thread or process: skip collecting them for each record (one
+    # per answer), as the Python logging HOWTO's "Optimization" section describes.
+    logging._srcfile = None
+    logging.logThreads = logging.logProcesses = logging.logMultiprocessing = False
     # sqlglot's warnings quote statement text; logs never carry SQL or values.
     logging.getLogger("sqlglot").setLevel(logging.ERROR)
     console = Console()

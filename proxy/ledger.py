@@ -10,23 +10,24 @@ Why it is shaped like this:
   the commit instead of several client round trips (measured with benchmarks/bench_ledger.py:
   0.5 ms p50 per reservation, against 0.9 ms for the same steps sent one by one).
 - Group commit. Reservations that arrive while another is being committed wait, and the next
-  of them to go takes every waiting reservation (up to ``batch_limit``) into one transaction:
-  it first locks every budget row the batch touches, in the fixed order ``LOCK_ORDER`` (all
-  analysts' rows sorted, then all their populations' rows sorted, then all tables' rows sorted:
-  the same global order a lone reservation follows, so batches and lone reservations from any number of processes cannot deadlock);
-  then runs ``reserve_charge`` for each reservation in arrival order; then commits once. Each
-  caller waits for that commit before its query runs. The checks stay exact: inside the
-  transaction each ``reserve_charge`` sees the spending of the ones before it, and no other
-  transaction can touch the locked rows, so the batch charges exactly what the same
-  reservations would charge one after another: a batch never overspends. A refusal is data,
-  not an error: the refused reservation charges nothing and the others go on (one failing
-  statement would abort the batch, so a batch that fails as a whole fails every caller, closed:
-  nothing is charged and nothing runs). Up to a quarter of the pool's connections (at least
-  two) carry batches at once, so a batch waiting on a row held elsewhere does not hold up
-  reservations for other rows. The gain: a hot row (one analyst, one table cap) is
-  locked, written and flushed to disk once per batch instead of once per answer, and the
-  statements travel in one pipelined round trip. ``LOCK_ORDER`` is the one list of budget row
-  kinds; a new kind of budget adds its lock statement there.
+  of them to go takes every waiting reservation (up to ``batch_limit``) into one transaction,
+  one call of the schema's ``reserve_charges`` (since version 7; before, the same steps as
+  pipelined statements): it first locks every budget row the batch touches, in the fixed order
+  of ``reserve_charge`` (all analysts' rows sorted, then all their populations' rows sorted,
+  then all tables' rows sorted: the same global order a lone reservation follows, so batches
+  and lone reservations from any number of processes cannot deadlock); then runs
+  ``reserve_charge`` for each reservation in arrival order; then commits once. Each caller
+  waits for that commit before its query runs. The checks stay exact: inside the transaction
+  each ``reserve_charge`` sees the spending of the ones before it, and no other transaction
+  can touch the locked rows, so the batch charges exactly what the same reservations would
+  charge one after another: a batch never overspends. A refusal is data, not an error: the
+  refused reservation charges nothing and the others go on (one failing reservation aborts the
+  statement, so a batch that fails as a whole fails every caller, closed: nothing is charged
+  and nothing runs). Up to a quarter of the pool's connections (at least two) carry batches at
+  once, so a batch waiting on a row held elsewhere does not hold up reservations for other
+  rows. The gain: a hot row (one analyst, one table cap) is locked, written and flushed to disk
+  once per batch instead of once per answer, and the batch is one statement and one round
+  trip. A new kind of budget adds its lock, in its place in the order, to both functions.
 - Once a query has started its charge stands, whatever happens (an error at run time can depend
   on the data): ``finish`` only records the outcome and never gives epsilon back.
 - Several proxy processes may share one ledger. Row locks (``SELECT ... FOR UPDATE``) make
@@ -78,6 +79,7 @@ from typing import TYPE_CHECKING, Any, NamedTuple
 
 import psycopg
 from psycopg import sql
+from psycopg.types.json import Jsonb
 from psycopg_pool import ConnectionPool, PoolTimeout
 
 from proxy.errors import (
@@ -553,9 +555,45 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         "CREATE INDEX stored_answers_by_question ON {schema}.stored_answers "
         "(analyst, question, id)",
     )),
-    # An answered charge's two notes in one statement and one commit that does not wait for
-    # the disk (see Ledger.store_answer): its stored answer and its outcome.
-    ("stored answer and 'answered' outcome in one asynchronous commit", (
+    # A group commit's batch in one statement (see the module docstring); an answered
+    # charge's two notes in one statement and one commit that does not wait for the disk (see
+    # Ledger.store_answer): its stored answer and its outcome.
+    ("a batch of reservations in one statement; stored answer and 'answered' outcome in one "
+     "asynchronous commit", (
+        """
+        CREATE FUNCTION {schema}.reserve_charges(requests jsonb)
+        RETURNS TABLE (charge_id bigint, refusal text, refused_name text, refused_limit numeric,
+                       refused_left numeric, left_after numeric)
+        LANGUAGE plpgsql AS $body$
+        DECLARE
+            analyst_names text[] := ARRAY(SELECT DISTINCT r ->> 'analyst'
+                                            FROM jsonb_array_elements(requests) AS r);
+            table_names text[] := ARRAY(SELECT DISTINCT t
+                                          FROM jsonb_array_elements(requests) AS r,
+                                               jsonb_array_elements_text(r -> 'tables') AS t);
+            request jsonb;
+        BEGIN
+            -- The one lock order (as reserve_charge's): analysts, populations, tables, each
+            -- sorted; ORDER BY runs before the row locks, so rows are locked in this order.
+            PERFORM 1 FROM {schema}.analyst_budgets WHERE analyst = ANY (analyst_names)
+              ORDER BY analyst COLLATE "C" FOR UPDATE;
+            PERFORM 1 FROM {schema}.population_budgets
+              WHERE population IN (SELECT t.population FROM {schema}.table_budgets t
+                                    WHERE t.table_name = ANY (table_names))
+              ORDER BY population COLLATE "C" FOR UPDATE;
+            PERFORM 1 FROM {schema}.table_budgets WHERE table_name = ANY (table_names)
+              ORDER BY table_name COLLATE "C" FOR UPDATE;
+            FOR request IN SELECT r FROM jsonb_array_elements(requests) WITH ORDINALITY AS e (r, n)
+                            ORDER BY n LOOP
+                RETURN QUERY SELECT * FROM {schema}.reserve_charge_hashed(
+                    request ->> 'analyst',
+                    ARRAY(SELECT jsonb_array_elements_text(request -> 'tables')),
+                    (request ->> 'epsilon')::numeric, request ->> 'statement',
+                    request ->> 'statement_sha256', request ->> 'fingerprint');
+            END LOOP;
+        END
+        $body$
+        """,
         """
         CREATE FUNCTION {schema}.store_answered(
             analyst_name text, question_key text, statement_text text, amount numeric,
@@ -587,21 +625,6 @@ SCHEMA_VERSION = len(_MIGRATIONS)
 # proxy.backend, short enough that a database outage is reported within seconds.
 BORROW_TIMEOUT_SECONDS = 10.0
 _UNAVAILABLE_HINT = "try again shortly; if it persists, tell an administrator"
-
-
-LOCK_ORDER: tuple[str, ...] = (
-    # Every budget row kind a reservation may touch, in the one order all locks are taken;
-    # rows within a kind sorted by key (codepoint order), as reserve_charge locks them.
-    # Parameters: %(analysts)s and %(tables)s, the batch's sorted keys; {schema} is quoted.
-    'SELECT 1 FROM {schema}.analyst_budgets WHERE analyst = ANY (%(analysts)s::text[]) '
-    'ORDER BY analyst COLLATE "C" FOR UPDATE',
-    'SELECT 1 FROM {schema}.population_budgets WHERE population IN (SELECT population FROM '
-    '{schema}.table_budgets WHERE table_name = ANY (%(tables)s::text[])) '
-    'ORDER BY population COLLATE "C" FOR UPDATE',
-    'SELECT 1 FROM {schema}.table_budgets WHERE table_name = ANY (%(tables)s::text[]) '
-    'ORDER BY table_name COLLATE "C" FOR UPDATE',
-)
-"""Lock statements of a group commit, in lock order (see the module docstring)."""
 
 
 class _Request(NamedTuple):
@@ -732,14 +755,12 @@ class Ledger:
     """
 
     def __init__(self, dsn: str, *, schema: str = "hushql", pool_size: int = 4,
-                 lock_timeout: float = 10.0, batch_limit: int = 64,
-                 lock_order: tuple[str, ...] = LOCK_ORDER) -> None:
+                 lock_timeout: float = 10.0, batch_limit: int = 64) -> None:
         """Open a pool on ``dsn`` and bring the schema to ``SCHEMA_VERSION``.
 
         ``lock_timeout`` (seconds) bounds how long a reservation waits for a budget row held by
         someone else before it fails (closed) instead of hanging. ``batch_limit`` caps the
-        reservations committed together (1: each commits alone); ``lock_order`` is the budget
-        rows' lock statements, in order (see ``LOCK_ORDER``).
+        reservations committed together (1: each commits alone).
         Raises LedgerError for a bad schema name or a schema newer than this program.
         """
         if not _SCHEMA_NAME.fullmatch(schema):
@@ -749,8 +770,6 @@ class Ledger:
         self.schema = schema
         self._lock_timeout_ms = max(1, int(lock_timeout * 1000))
         self._sql = _Statements(schema)
-        self._lock_statements = tuple(
-            sql.SQL(statement).format(schema=sql.Identifier(schema)) for statement in lock_order)
         self._group = _GroupCommit(self._reserve_together, batch_limit,
                                    in_flight=max(2, pool_size // 4))
         self._pool = ConnectionPool(
@@ -945,18 +964,13 @@ class Ledger:
                 row = conn.execute(self._sql.reserve, list(requests[0])).fetchone()
             assert row is not None
             return [row]
-        keys = {"analysts": sorted({r.analyst for r in requests}),
-                "tables": sorted({t for r in requests for t in r.tables})}
+        batch = Jsonb([{"analyst": r.analyst, "tables": r.tables, "epsilon": str(r.epsilon),
+                        "statement": r.statement, "statement_sha256": r.statement_sha256,
+                        "fingerprint": r.fingerprint} for r in requests])
         with self._connection() as conn:
-            # Pipelined: BEGIN, the locks, every reservation and COMMIT go out together, and
-            # leaving the block waits for all their results, the COMMIT's included.
-            with conn.pipeline(), conn.transaction():
-                for lock in self._lock_statements:
-                    conn.execute(lock, keys)
-                cursors = [conn.execute(self._sql.reserve, list(r)) for r in requests]
-            rows = [cursor.fetchone() for cursor in cursors]
-        assert all(row is not None for row in rows)
-        return rows  # type: ignore[return-value]
+            # One statement in autocommit mode, so one transaction (as for a lone reservation).
+            rows = conn.execute(self._sql.reserve_batch, [batch]).fetchall()
+        return rows
 
     def store_answer(self, analyst: str, question: str, statement: str, epsilon: Decimal,
                      charge_id: int, answer: str) -> bool:
@@ -1153,6 +1167,10 @@ class _Statements:
         self.reserve = (
             "SELECT charge_id, refusal, refused_name, refused_limit, refused_left, left_after "
             f"FROM {s}.reserve_charge_hashed(%s, %s::text[], %s, %s, %s, %s)")
+        # Rows in the requests' order: the function returns them as it reserves them.
+        self.reserve_batch = (
+            "SELECT charge_id, refusal, refused_name, refused_limit, refused_left, left_after "
+            f"FROM {s}.reserve_charges(%s)")
         self.finish = f"SELECT {s}.finish_charge(%s, %s)"
         # One statement (one transaction, whose commit finish_charge makes asynchronous).
         self.finish_many = (

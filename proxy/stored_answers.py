@@ -85,9 +85,22 @@ def question_key(analyst: str, statement: str, epsilon: Decimal, policy: str,
 
 _CLASSES: dict[str, type] = {"Answer": Answer, "Accuracy": Accuracy, "OutputColumn": OutputColumn}
 _NOT_STORED = ("remaining", "reused_from")  # facts of the moment it is given, not of the answer
+# The stored fields of each class, and the types kept as they are, looked up by exact type
+# first (an answer's values are almost all of these): the isinstance chain below is the rule.
+_STORED_FIELDS: dict[type, tuple[str, ...]] = {
+    cls: tuple(f.name for f in dataclasses.fields(cls) if f.name not in _NOT_STORED)
+    for cls in _CLASSES.values()}
+_AS_THEY_ARE = frozenset({type(None), bool, int, str})
 
 
 def _encode(value: Any) -> Any:
+    kind = type(value)
+    if kind in _AS_THEY_ARE:
+        return value
+    fields = _STORED_FIELDS.get(kind)
+    if fields is not None:
+        return {"object": kind.__name__,
+                "fields": {name: _encode(getattr(value, name)) for name in fields}}
     if isinstance(value, bool) or value is None or isinstance(value, (int, str)):
         return value
     if isinstance(value, float):

@@ -119,21 +119,26 @@ class Connection:
         await asyncio.Event().wait()  # enough buffered: stop reading, wait to be cancelled
 
     async def _watched(self, work: Awaitable[T]) -> T:
-        """Awaits work while watching the socket; a vanished client cancels the running query."""
-        task = asyncio.ensure_future(work)
+        """Awaits work while watching the socket; a vanished client cancels the running query.
+
+        The work runs in this connection's task (a shutdown cancels it there), the watcher in
+        a task of its own whose end, the socket closing, cancels the query from a callback:
+        one task per statement rather than two and a wait on both. The watcher is awaited
+        after it is cancelled, so it never reads alongside the next ``_read``."""
         watcher = asyncio.ensure_future(self._watch_socket())
+        watcher.add_done_callback(self._vanished)
         try:
-            done, _ = await asyncio.wait({task, watcher}, return_when=asyncio.FIRST_COMPLETED)
-            if task not in done and self.gone and self.session is not None:
-                self.session.cancel("vanished")
-            return await task
-        except asyncio.CancelledError:  # shutting down: the query is cancelled with the task
-            task.cancel()
-            raise
+            return await work
         finally:
+            watcher.remove_done_callback(self._vanished)
             watcher.cancel()
             with contextlib.suppress(asyncio.CancelledError):
                 await watcher
+
+    def _vanished(self, watcher: asyncio.Future[None]) -> None:
+        """The watcher ended by itself: the client has gone, so its running query is cancelled."""
+        if not watcher.cancelled() and self.gone and self.session is not None:
+            self.session.cancel("vanished")
 
     async def _fatal(self, error: HushError) -> None:
         """Sends a FATAL error if the socket still takes it."""
