@@ -229,34 +229,58 @@ exponential mechanism, whose utility moves by at most the histogram's change in 
 argument is in ``proxy.selection``. Values outside the declared range, like keys outside their
 domains, fall in no bucket and are not ranked.
 
-8. One row per individual, held by the database. When the backend enforces that the individual
-   column is unique in the source relation (``unique_columns``: a PRIMARY KEY or UNIQUE
-   constraint, valid, immediate, non-partial, on that one column alone, of an ordinary table
-   without inheritance children, as ``proxy.backend`` reads it from the catalog; never the data
-   owner's word; Spark reports none) and no bound of the plan is chosen (all declared: always
-   so for most_rows = 1), the per-individual steps are skipped: the query is the row tables' one
-   over the rows whose individual is not NULL (as in 1), with each declared bound's value and a
-   clipped-away total of 0 appended, so that the engine reads, noises and states the same
-   things as on the per-individual path.
+8. Few rows per individual, held by the database. The backend may enforce a unique key that
+   contains the individual column (``unique_keys``: a PRIMARY KEY, UNIQUE constraint or unique
+   index, valid, immediate, non-partial, on plain columns with their types' default btree
+   equality and own collations, of an ordinary table without inheritance children, as
+   ``proxy.backend`` reads it from the catalog; never the data owner's word; Spark reports
+   none). Take such a key U = {individual, c_1, ..., c_k} where every c_i is the column of a
+   GROUP BY key of the plan and has a type taking only its declared values inside its declared
+   domain (``countable_keys``: date for dates, smallint, integer or bigint for integers, text
+   or character varying for categories, boolean). Every counted row lies in the cells, so its
+   c_i lies in c_i's declared domain narrowed by the WHERE literals on c_i (``within``): a key
+   over c_i maps every other value to no cell (a key as written joins the declared values; a
+   bucket is NULL outside the domain, ``proxy.sql.keys``), and a row failing a WHERE conjunct
+   is not counted. Call D_i that narrowed domain. Two rows of one individual agree on the
+   individual column, so they differ in some c_i by the key's equality, and two values equal
+   to one declared value are equal to each other (the guards and joins compare with that
+   equality or with the finer equality of their text): an individual has at most ``K =
+   prod |D_i|`` counted rows (K = 1 for a key of the individual column alone). FILTER and the
+   WHERE only remove rows.
 
-   Same measures. Each individual owns at most one row, so in step 2 ``n_rows <= 1 <= R``
-   (most_rows >= 1) and for a sum ``tot = |one row's clamped value| <= M <= T`` (T =
-   most_rows * max(1, |lo|, |hi|)); so ``w = 1`` and every partial is kept whole: the cells
+   When K <= most_rows and no bound of the plan is chosen (all declared: always so for
+   most_rows = 1), and the plan reads one table without a percentile histogram, the
+   per-individual steps are skipped: the query is the row tables' one over the rows whose
+   individual is not NULL (as in 1), with each declared bound's value and a clipped-away total
+   of 0 appended, so that the engine reads, noises and states the same things as on the
+   per-individual path.
+
+   Same measures. In step 2 every individual has ``n_rows <= K <= most_rows = R``, and for a
+   sum ``tot = sum over cells |partial| <= n_rows * M <= T`` (each partial of n rows lies in
+   [n lo, n hi] in step units: the rounding to steps is monotone and commutes with integer
+   shifts; T = most_rows * max(1, |lo|, |hi|)); the centred measures have no bound of their
+   own. So ``w = 1`` and every partial is kept whole (the cumulative rounding of 4 keeps
+   ``f(N_i) - f(N_{i-1}) = p_i`` when f is the identity, with or without the half): the cells
    equal the row query's counts and sums over the same rows, nothing is clipped (the declared
    clipped figure is never noised or shown), and COUNT(DISTINCT individual) counts each
-   individual in the one cell holding its row (its per-individual test ``touched <= R`` holds).
-   One difference: a numeric column's clamped values are turned into step units once per cell
-   here, not once per (individual, cell): closer to the exact sum, and of the same sensitivity
-   (the row tables' argument above: monotone rounding, one row moves the total by at most M).
-   A chosen bound takes the per-individual path: it could fall below one row's value and clip.
+   individual in every cell holding one of its rows (its per-individual test ``touched <= R``
+   holds, touched <= n_rows). One difference: a numeric column's clamped values are turned
+   into step units once per cell here, not once per (individual, cell): closer to the exact
+   sum, and equal wherever the values are multiples of the step (numeric(7, 1) litres in steps
+   of 0.1).
+   A chosen bound takes the per-individual path: it could fall below an individual's total and
+   clip (and chosen bounds usually lie below K, so the key would seldom help there).
 
-   Same noise. Neighbours differ by one individual's rows, here at most one row, so the answer
-   moves by at most 1 (counts, distinct individuals) or M (sums) in L1: the row tables'
-   sensitivities. The noise stays scaled to the declared sensitivities R, T and min(R, cells),
-   which are at least these (equal when most_rows = 1), so the stated sensitivity is unchanged
-   and still an upper bound; but for the numeric rounding above, the answer's distribution is
-   the per-individual path's.
-   The fact is read when a table is first planned and again after a policy reload; a constraint
+   Same noise. Neighbours differ by one individual's rows, at most K of them counted, so the
+   answer moves by at most K <= R (counts), at most ``min(K, cells) <= min(R, cells)``
+   (distinct individuals) and, for a sum, in each cell c by at most ``n_c M`` (the cell's
+   rounding to steps is monotone and commutes with integer shifts, and n_c M is an integer),
+   in all at most ``n_rows M <= K M <= T``. The noise stays scaled to the declared
+   sensitivities R, T, min(R, cells) and R times a centred measure's multiple (each of u's
+   rows moves a centred measure by at most the multiple), which are at least these: the stated
+   sensitivity is unchanged and still an upper bound; but for the numeric rounding above, the
+   answer's distribution is the per-individual path's.
+   The key is read when a table is first planned and again after a policy reload; a constraint
    dropped on a running proxy needs a reload (as any change of a source's columns does).
 """
 
@@ -362,9 +386,11 @@ class Rewritten:
     # measures, which are bounded through the rows bound: module notes, "Spread" and "Averages")
     measure_multiples: tuple[int, ...] = ()
     buckets: int = 1  # candidates per cell of a percentile plan's histogram (``cells`` counts them)
-    # The backend's unique constraint holds each individual to one row: the query does not
-    # scale, the declared bounds hold of themselves (module notes, 8).
-    unique_individual: bool = False
+    # An enforced unique key (its columns) holds each individual to at most ``held_rows``
+    # counted rows, within the declared bounds: the query does not scale, the declared bounds
+    # hold of themselves (module notes, 8). Empty and 0 otherwise.
+    held_by: tuple[str, ...] = ()
+    held_rows: int = 0
 
     def sensitivities(self, values: tuple[int, ...] = ()) -> tuple[int, ...]:
         """The L1 sensitivity of each measure given the bounds' values (module notes, 3)."""
@@ -382,14 +408,15 @@ class Rewritten:
 
 
 def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
-            unique_columns: frozenset[str] = frozenset()) -> Rewritten:
+            unique_keys: frozenset[frozenset[str]] = frozenset()) -> Rewritten:
     """Build the backend query and sensitivities of an analysed plan. Pure.
 
     ``exact_columns`` names number columns whose backend type is exact (numeric): their clamped
     values are summed exactly and turned into step units once per cell (row tables) or once per
-    (individual, cell) partial, instead of per row. ``unique_columns`` names columns the backend
-    itself keeps unique in the source (enforced constraints only): when it holds the individual
-    column and no bound is chosen, the per-individual steps are skipped (module notes, 8).
+    (individual, cell) partial, instead of per row. ``unique_keys`` are the column sets the
+    backend itself keeps unique in the source (enforced constraints only, ``countable_keys``):
+    when one holds each individual within the declared bounds, the per-individual steps are
+    skipped (module notes, 8).
     """
     policy = plan.table
     buckets = 1
@@ -410,9 +437,9 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
                          row_sensitivities=tuple(_unit_sensitivity(policy, m) for m in plan.measures),
                          measure_kinds=kinds, buckets=buckets)
     bounds, measure_bounds = _bounds(plan, cells)
-    unique = (policy.individual.column in unique_columns and not any(b.chosen for b in bounds)
-              and not plan.joins and buckets == 1)  # one table, no percentile histogram
-    if unique:
+    held = _holding_key(plan, unique_keys) if not any(b.chosen for b in bounds) \
+        and not plan.joins and buckets == 1 else None  # one table, no percentile histogram
+    if held is not None:
         tree = _one_row_each_query(plan, bounds, exact_columns)
     else:
         tree = _individual_table_query(plan, bounds, measure_bounds, exact_columns,
@@ -420,7 +447,56 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
                      measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
                      measure_multiples=tuple(_row_multiple(policy, m) for m in plan.measures),
-                     buckets=buckets, unique_individual=unique)
+                     buckets=buckets, held_by=held[0] if held else (),
+                     held_rows=held[1] if held else 0)
+
+
+# Backend types (``format_type``) that take, inside a column's declared domain, only the
+# declared values, per column kind (module notes, 8).
+_DISCRETE_TYPES = {"date": ("date",), "integer": ("smallint", "integer", "bigint"),
+                   "category": ("text", "character varying"), "boolean": ("boolean",)}
+
+
+def countable_keys(policy: TablePolicy, keys: frozenset[frozenset[str]],
+                   types: dict[str, str]) -> frozenset[frozenset[str]]:
+    """The enforced unique keys of a table's source that may bound its individuals' rows
+    (module notes, 8): those holding the individual column whose other columns are policy
+    columns of a type taking only the declared values inside the declared domain."""
+    if policy.individual is None:
+        return frozenset()
+    individual = policy.individual.column
+
+    def discrete(name: str) -> bool:
+        column = policy.columns.get(name)
+        found = types.get(name, "")
+        return column is not None and any(
+            found == kind or found.startswith(f"{kind}(")
+            for kind in _DISCRETE_TYPES.get(column.kind, ()))
+
+    return frozenset(key for key in keys
+                     if individual in key and all(discrete(c) for c in key - {individual}))
+
+
+def _holding_key(plan: Plan, unique_keys: frozenset[frozenset[str]]
+                 ) -> tuple[tuple[str, ...], int] | None:
+    """An enforced unique key holding each individual to K <= most_rows counted rows, with K
+    (module notes, 8): every other column of the key is grouped by, and K is the product of
+    their declared domains narrowed by the WHERE; the smallest K, None when no key holds."""
+    assert plan.table.individual is not None
+    individual = plan.table.individual.column
+    keyed = {key.column: key.within for key in plan.keys}
+    found: list[tuple[int, tuple[str, ...]]] = []
+    for key in unique_keys:
+        others = sorted(key - {individual})
+        if individual not in key or not all(c in keyed for c in others):
+            continue
+        size = cell_count([key_size(plan.table.columns[c], GroupKey(c, within=keyed[c]))
+                           for c in others])
+        found.append((size, (individual, *others)))
+    if not found:
+        return None
+    size, columns = min(found)
+    return (columns, size) if size <= plan.table.individual.most_rows else None
 
 
 def centres_averages(policy: TablePolicy) -> bool:
@@ -843,8 +919,9 @@ def _row_table_query(plan: Plan, exact: frozenset[str],
 
 
 def _one_row_each_query(plan: Plan, bounds: tuple[Bound, ...], exact: frozenset[str]) -> exp.Select:
-    """When the backend keeps each individual to one row (module notes, 8): the row query over
-    the rows with an individual, then each declared bound's value and a clipped-away 0."""
+    """When the backend holds each individual within the declared bounds (module notes, 8):
+    the row query over the rows with an individual, then each declared bound's value and a
+    clipped-away 0."""
     assert plan.table.individual is not None and not any(b.chosen for b in bounds)
     owned = exp.Not(this=exp.Is(this=column_node(plan.table.individual.column), expression=exp.Null()))
     tail = [exp.alias_(number_node(b.ceiling), f"b{j}", copy=False) for j, b in enumerate(bounds)] + [
