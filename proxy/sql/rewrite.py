@@ -95,6 +95,12 @@ Contributions"), never cell by cell. The backend query:
    measure its partial in measure units (a row count, a count of values, the clamped sum in
    step units, or 1 for COUNT(DISTINCT individual)). Rows whose individual is NULL belong to no
    identifiable individual and are not counted (no bound could be enforced on their owner).
+   Where an enforced unique key (note 8) has all its columns but the individual's among the
+   keys as written (``GROUP BY reading_date`` under the key (household_id, reading_date)), two
+   rows of one (individual, cell) agree on every column of the key, by the key's own equality
+   (GROUP BY's), so they are one row: each partial is computed on its row without grouping
+   (``_over_one_row``: COUNT(*) is 1, COUNT(e) is 1 or 0, SUM(e) and MAX(e) are e), the value
+   the aggregate has over that one-row group. The partials, and all that follows, are the same.
 2. ``t``: per individual, its totals over all cells: ``n_rows``, the cells it touches, and per
    summed column the L1 total of its partials ``tot_j = sum |partial|``.
 3. ``b``: the bounds, one per subject (``rows`` when the plan counts anything, and one per
@@ -105,7 +111,16 @@ Contributions"), never cell by cell. The backend query:
    total_j), ...)``, computed with integer division (the floor of a minimum is the minimum of
    the floors), so it is exact. AVG's sum and count shrink by the same factor.
 5. sums per cell, joined to the list of declared cells (empty cells read 0); per bound the
-   clipped-away total (see 7).
+   clipped-away total (see 7). An individual whose totals are all within its bounds has
+   ``w = 1`` and keeps every partial as it is (the rounding of 4 gives ``f(N_i) - f(N_{i-1}) =
+   p_i`` when f is the identity, with or without the half) and loses nothing; only the others
+   (``s``: a total above its bound, or NULL, when all its partials of a sum are NULL) are
+   scaled, and only their partials sorted for the running totals. So each cell's sum of kept
+   partials is computed as the sum of all its partials as they are plus, over the scaled
+   individuals' partials, ``kept - raw`` (a partial and its kept share are NULL together, and
+   SUM skips both), and the clipped-away totals are summed over the scaled individuals alone
+   (the others' terms are 0): the same numbers, with the sort and the divisions confined to
+   the individuals a bound scales.
 
 Sensitivity, given the bounds. Take neighbours D and D' = D minus individual u. Every other
 individual's partials, totals and factor are computed from its own rows only, so they are equal
@@ -443,7 +458,8 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
         tree = _one_row_each_query(plan, bounds, exact_columns)
     else:
         tree = _individual_table_query(plan, bounds, measure_bounds, exact_columns,
-                                       middle=buckets > 1)
+                                       middle=buckets > 1,
+                                       one_row_cells=_cells_hold_one_row(plan, unique_keys))
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
                      measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
                      measure_multiples=tuple(_row_multiple(policy, m) for m in plan.measures),
@@ -971,6 +987,13 @@ def _scaled(value: str, bounds: tuple[Bound, ...], *, half: bool = False) -> str
     return f"LEAST({', '.join(terms)})"
 
 
+def _within(bounds: tuple[Bound, ...]) -> str:
+    """SQL true exactly when an individual's totals (``t``) are all within the bounds (``b``):
+    its factor is 1; NULL when a total is NULL (all its partials of a sum are)."""
+    return " AND ".join(f"t.{'n_rows' if bound.subject == 'rows' else f'tot{j}'} <= b.b{j}"
+                        for j, bound in enumerate(bounds))
+
+
 def _kept(value: str, running: str | None, bounds: tuple[Bound, ...], *,
           half: bool = False) -> str:
     """SQL for one partial's kept share, value >= 0 (module notes, 4): ``f(running) -
@@ -981,14 +1004,42 @@ def _kept(value: str, running: str | None, bounds: tuple[Bound, ...], *,
     only for the individuals a bound scales down."""
     if running is None:
         return _scaled(value, bounds, half=half)
-    within = " AND ".join(f"t.{'n_rows' if bound.subject == 'rows' else f'tot{j}'} <= b.b{j}"
-                          for j, bound in enumerate(bounds))
-    return (f"CASE WHEN {within} THEN {value} ELSE {_scaled(running, bounds, half=half)} - "
+    return (f"CASE WHEN {_within(bounds)} THEN {value} ELSE {_scaled(running, bounds, half=half)} - "
             f"{_scaled(f'({running} - {value})', bounds, half=half)} END")
 
 
+def _over_one_row(aggregate: exp.Expression) -> exp.Expression:
+    """The value of an aggregate expression over a group of exactly one row, computed on the
+    row: COUNT(*) is 1, COUNT(e) is 1 where e is not NULL and else 0 (bigint, as COUNT), SUM(e)
+    and MAX(e) are e (NULL stays NULL; a sum as numeric, which holds any SUM's value)."""
+    def one(node: exp.Expression) -> exp.Expression:
+        if isinstance(node, exp.Count):
+            assert not isinstance(node.this, exp.Distinct)  # partials count no distinct values
+            present = number_node(1) if isinstance(node.this, exp.Star) else exp.Case(
+                ifs=[exp.If(this=exp.Not(this=exp.Is(this=node.this, expression=exp.Null())),
+                            true=number_node(1))], default=number_node(0))
+            return exp.cast(present, "bigint", copy=False)
+        if isinstance(node, exp.Sum):
+            return exp.cast(exp.paren(node.this, copy=False), "numeric", copy=False)
+        if isinstance(node, exp.Max):
+            return node.this
+        return node
+
+    return aggregate.transform(one, copy=True)
+
+
+def _cells_hold_one_row(plan: Plan, unique_keys: frozenset[frozenset[str]]) -> bool:
+    """Whether an enforced unique key holds each (individual, cell) of the plan to one row at
+    most (module notes, 1): all its columns but the individual's are keys as written."""
+    assert plan.table.individual is not None
+    written = {key.column for key in plan.keys if key.form == "column"}
+    individual = plan.table.individual.column
+    return any(individual in key and key - {individual} <= written for key in unique_keys)
+
+
 def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
-                            exact: frozenset[str], middle: bool = False) -> exp.Select:
+                            exact: frozenset[str], middle: bool = False,
+                            one_row_cells: bool = False) -> exp.Select:
     """The per-individual rewrite (module notes): partials per (individual, cell) in the
     domains (``middle``: a percentile plan's histogram, thinned about the middle), totals per
     individual, the bounds (declared, or chosen by noisy max over the
@@ -1001,9 +1052,14 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     partials = [exp.alias_(exp.Count(this=exp.Star()), "r", copy=False)] + [
         exp.alias_(_partial(policy, m, exact), f"m{n}", copy=False)
         for n, m in enumerate(plan.measures)]
+    if one_row_cells:  # each (individual, cell) holds one row at most (module notes, 1)
+        partials = [_over_one_row(partial) for partial in partials]
     per_individual = _filtered(plan, exp.Select().select(who, *keys, *partials, copy=False)).where(
         exp.Not(this=exp.Is(this=column_node(policy.individual.column), expression=exp.Null())),
-        copy=False).group_by(*[number_node(j + 1) for j in range(len(keys) + 1)], copy=False)
+        copy=False)
+    if not one_row_cells:
+        per_individual = per_individual.group_by(
+            *[number_node(j + 1) for j in range(len(keys) + 1)], copy=False)
     q = _in_domains(plan, per_individual, "p") if plan.keys else per_individual
     sum_bounds = [(j, measure_bounds.index(j)) for j, b in enumerate(bounds) if b.subject != "rows"]
     totals = ["who", "SUM(r) AS n_rows", "COUNT(*) AS touched"] + [
@@ -1032,14 +1088,17 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
                           f" AS m{n}")
         else:
             scaled.append(f"{_kept(sizes[f'm{n}'], running[f'm{n}'], bounds, half=middle)} AS m{n}")
+    # Only the individuals a bound may scale (``s``: factor below 1, or a NULL total) are
+    # scaled, and only their partials sorted for running totals (module notes, 5).
+    s = _select(f"SELECT t.* FROM t CROSS JOIN b WHERE NOT COALESCE({_within(bounds)}, FALSE)")
     source = "q"
     if plan.keys:
         columns = ["q.who", "q.r"] + ordinals + [f"q.m{n}" for n in range(len(plan.measures))]
         source = (f"(SELECT {', '.join(columns)}, "
                   + ", ".join(f"SUM({size}) {window} AS run_{name}" for name, size in sizes.items())
-                  + " FROM q) AS q")
+                  + " FROM q JOIN s ON s.who = q.who) AS q")
     w = _select(f"SELECT {', '.join(['q.who', 'q.r'] + ordinals + [f'q.m{n}' + f' AS raw{n}' for n in range(len(plan.measures))] + scaled)} "
-                f"FROM {source} JOIN t ON t.who = q.who CROSS JOIN b")
+                f"FROM {source} JOIN s AS t ON t.who = q.who CROSS JOIN b")
     losses = []
     for j, bound in enumerate(bounds):
         if bound.subject == "rows":
@@ -1053,18 +1112,23 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
         f" + {ROUNDING_LOSS})), 0) AS clipped{j}"
         for j, bound in enumerate(bounds))
     clipped = _select(f"SELECT {caps} FROM lost")
-    measures = [f"COALESCE(SUM(w.m{n}), 0) AS m{n}" for n in range(len(plan.measures))]
+    # Per cell, every partial as it is, plus what scaling changed (kept - raw) of the scaled
+    # ones: the sum of the kept partials (module notes, 5).
+    ordinal_names = [f"i{j}" for j in range(len(plan.keys))]
+    changes = (f"SELECT {', '.join([f'q.{i}' for i in ordinal_names] + [f'q.m{n}' for n in range(len(plan.measures))])} FROM q "
+               f"UNION ALL SELECT {', '.join([f'w.{i}' for i in ordinal_names] + [f'w.m{n} - w.raw{n}' for n in range(len(plan.measures))])} FROM w")
+    measures = [f"COALESCE(SUM(u.m{n}), 0) AS m{n}" for n in range(len(plan.measures))]
     tail = [f"b.b{j}" for j in range(len(bounds))] + [f"clip.clipped{j}" for j in range(len(bounds))]
     if plan.keys:
-        summed = _select(f"SELECT {', '.join([f'w.i{j} AS i{j}' for j in range(len(plan.keys))] + measures)} "
-                         f"FROM w GROUP BY {', '.join(f'w.i{j}' for j in range(len(plan.keys)))}")
+        summed = _select(f"SELECT {', '.join([f'u.{i} AS {i}' for i in ordinal_names] + measures)} "
+                         f"FROM ({changes}) AS u GROUP BY {', '.join(f'u.{i}' for i in ordinal_names)}")
         outer = _finish(plan, summed, by_ordinal=True)
         outer = outer.join(exp.to_table("b"), join_type="cross", copy=False).join(
             exp.to_table("clipped", alias="clip"), join_type="cross", copy=False)
         outer = outer.select(*[_expression(x) for x in tail], copy=False)
     else:
         outer = _select(f"SELECT {', '.join([f'a.m{n}' for n in range(len(plan.measures))] + tail)} "
-                        f"FROM (SELECT {', '.join(measures)} FROM w) AS a CROSS JOIN b "
+                        f"FROM (SELECT {', '.join(measures)} FROM ({changes}) AS u) AS a CROSS JOIN b "
                         f"CROSS JOIN clipped AS clip")
     histograms = [(f"h{j}", _select(
         f"SELECT width_bucket({'n_rows' if bound.subject == 'rows' else f'tot{j}'}::numeric, "
@@ -1072,7 +1136,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
         f"COUNT(*) AS n FROM t GROUP BY 1")) for j, bound in enumerate(bounds) if bound.chosen]
     # MATERIALIZED: each histogram is read once per candidate by the choice; inlined, it would
     # be recomputed each time. The other parts are read more than once, so they are anyway.
-    for name, part in [("q", q), ("t", t), *histograms, ("b", b), ("w", w), ("lost", lost),
+    for name, part in [("q", q), ("t", t), *histograms, ("b", b), ("s", s), ("w", w), ("lost", lost),
                        ("clipped", clipped)]:
         outer = outer.with_(name, as_=part, materialized=True if name.startswith("h") else None,
                             copy=False)
