@@ -498,6 +498,8 @@ ONE_ROW_QUERIES = [
     "SELECT reading_date, COUNT(*), SUM(litres), AVG(litres) FROM {t} GROUP BY reading_date",
     "SELECT reading_date, district, COUNT(*) FILTER (WHERE litres > 50), COUNT(DISTINCT "
     "household_id), VARIANCE(litres) FROM {t} WHERE reading_date < '2026-01-20' GROUP BY 1, 2",
+    "SELECT reading_date, COUNT(DISTINCT household_id) FILTER (WHERE litres > 100), "
+    "SUM(litres) FILTER (WHERE district = 'Old Mill') FROM {t} GROUP BY reading_date",
 ]
 
 
