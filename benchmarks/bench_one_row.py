@@ -69,16 +69,17 @@ def main() -> None:
         load_scenario(dsn, progress=False)
         policies = load_policies(ROOT / "policies")
         backend = Backend(dsn, pool_size=1)
-        unique = backend.unique_columns(policies.tables["households"].source)
+        unique = backend.unique_keys(policies.tables["households"].source)
         backend.close()
-        print(f"unique columns of utility.households (from pg_index): {sorted(unique)}")
+        print(f"unique keys of utility.households (from pg_index): "
+              f"{sorted(sorted(key) for key in unique)}")
         shapes: dict[str, list[str]] = {"plain": [], "per-individual": [], "one row": []}
         for k in range(1, 9):
             plan = analyse(QUERY.format(k=k), policies, "planner")
             shapes["plain"].append(PLAIN.format(k=k))
             shapes["per-individual"].append(rewrite(plan).sql)
             one_row = rewrite(plan, frozenset(), unique)
-            assert one_row.unique_individual
+            assert one_row.held_rows == 1
             shapes["one row"].append(one_row.sql)
         figures: dict[str, list[list[float]]] = {s: [[], [], []] for s in shapes}
         with psycopg.connect(dsn, autocommit=True) as conn:
@@ -121,13 +122,13 @@ def _engine_answers(dsn: str, repeat: int) -> None:
                 def plain() -> None:
                     conn.execute(PLAIN.format(k=1 + next(turn) % 8)).fetchall()
 
-                fast = engine.prepare("planner", queries[0]).rewritten.unique_individual
+                fast = engine.prepare("planner", queries[0]).rewritten.held_rows == 1
                 rows = [("plain, direct", median_ms(plain, repeat * 8)),
                         (f"engine, key (one row: {fast})", median_ms(answer, repeat * 8))]
                 conn.execute("ALTER TABLE utility.households DROP CONSTRAINT households_pkey "
                              "CASCADE")
                 engine.reload(policies)
-                slow = engine.prepare("planner", queries[0]).rewritten.unique_individual
+                slow = engine.prepare("planner", queries[0]).rewritten.held_rows == 1
                 rows.append((f"engine, no key (one row: {slow})", median_ms(answer, repeat * 8)))
                 rows.append(("plain, direct", median_ms(plain, repeat * 8)))
         finally:

@@ -130,9 +130,9 @@ class QueryBackend(Protocol):
         """Column name -> PostgreSQL type name of a backend relation."""
         ...
 
-    def unique_columns(self, relation: str) -> frozenset[str]:
-        """Columns the backend itself keeps unique in ``relation`` (enforced constraints only;
-        none where it enforces none)."""
+    def unique_keys(self, relation: str) -> frozenset[frozenset[str]]:
+        """The column sets the backend itself keeps unique in ``relation`` (enforced
+        constraints only; none where it enforces none)."""
         ...
 
     def close(self) -> None: ...
@@ -259,15 +259,16 @@ class Backend:
                 (relation,), prepare=False)
             return dict(cursor.fetchall())
 
-    def unique_columns(self, relation: str) -> frozenset[str]:
-        """Columns the database itself keeps unique in a backend relation: each the one key of a
-        valid, immediate, non-partial btree unique index (a PRIMARY KEY or UNIQUE constraint, or
-        CREATE UNIQUE INDEX) with the type's default equality and the column's own collation, so
-        that no two rows share a value by GROUP BY's equality. Only ordinary tables without
-        inheritance children (whose rows a query would also read) qualify; views none."""
+    def unique_keys(self, relation: str) -> frozenset[frozenset[str]]:
+        """The column sets the database itself keeps unique in a backend relation: the key
+        columns of each valid, immediate, non-partial btree unique index (a PRIMARY KEY or
+        UNIQUE constraint, or CREATE UNIQUE INDEX) on plain columns only, each with its type's
+        default equality and its own collation, so that no two rows agree on all of them by
+        GROUP BY's equality. Only ordinary tables without inheritance children (whose rows a
+        query would also read) qualify; views none."""
         with self._pool.connection() as connection, connection.cursor() as cursor:
-            cursor.execute(_UNIQUE_COLUMNS, (relation,), prepare=False)
-            return frozenset(name for (name,) in cursor.fetchall())
+            cursor.execute(_UNIQUE_KEYS, (relation,), prepare=False)
+            return frozenset(frozenset(names) for (names,) in cursor.fetchall())
 
     def close(self) -> None:
         self._pool.close()
@@ -288,19 +289,25 @@ def _rows(cursor: psycopg.Cursor[Any], sql: str) -> list[tuple[Any, ...]]:
 
 
 # pg_index's fields (PostgreSQL documentation, "pg_index"): indkey, indclass and indcollation
-# are 0-based vectors; indimmediate is false for a DEFERRABLE constraint; indisvalid is false
-# for an index still being built or failed. relhassubclass may stay true after the last child
-# is dropped (then no column qualifies: the safe side), never false while one exists.
-_UNIQUE_COLUMNS = """
-SELECT a.attname
+# are 0-based vectors over the index's columns, the first indnkeyatts of them its key (the rest
+# INCLUDE columns, which uniqueness does not cover); indkey is 0 for an expression; indimmediate
+# is false for a DEFERRABLE constraint; indisvalid is false for an index still being built or
+# failed. relhassubclass may stay true after the last child is dropped (then no key qualifies:
+# the safe side), never false while one exists. An index counts only when every key column
+# passes (the count of passing columns is indnkeyatts).
+_UNIQUE_KEYS = """
+SELECT array_agg(a.attname::text)
 FROM pg_catalog.pg_index i
 JOIN pg_catalog.pg_class t ON t.oid = i.indrelid
 JOIN pg_catalog.pg_class x ON x.oid = i.indexrelid
 JOIN pg_catalog.pg_am am ON am.oid = x.relam
-JOIN pg_catalog.pg_opclass o ON o.oid = i.indclass[0]
-JOIN pg_catalog.pg_attribute a ON a.attrelid = i.indrelid AND a.attnum = i.indkey[0]
+CROSS JOIN LATERAL generate_series(0, i.indnkeyatts - 1) AS k(n)
+JOIN pg_catalog.pg_opclass o ON o.oid = i.indclass[k.n]
+JOIN pg_catalog.pg_attribute a ON a.attrelid = i.indrelid AND a.attnum = i.indkey[k.n]
 WHERE i.indrelid = to_regclass(%s) AND t.relkind = 'r' AND NOT t.relhassubclass
-  AND i.indisunique AND i.indimmediate AND i.indisvalid AND i.indnkeyatts = 1
+  AND i.indisunique AND i.indimmediate AND i.indisvalid
   AND i.indpred IS NULL AND i.indexprs IS NULL AND am.amname = 'btree' AND o.opcdefault
-  AND i.indcollation[0] = a.attcollation AND NOT a.attisdropped
+  AND i.indcollation[k.n] = a.attcollation AND NOT a.attisdropped
+GROUP BY i.indexrelid, i.indnkeyatts
+HAVING count(*) = i.indnkeyatts
 """

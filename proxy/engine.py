@@ -79,7 +79,7 @@ from proxy.sql import statement as slots
 from proxy.sql.statement import BoundStatement
 from proxy.spark_backend import SparkBackend, is_spark_dsn
 from proxy.sql.rewrite import (BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, centres_averages,
-                                loss_cap, rewrite)
+                                countable_keys, loss_cap, rewrite)
 
 __all__ = ["Engine", "Prepared", "QueryControl", "Statement", "paid_text", "parse_epsilon"]
 
@@ -342,7 +342,7 @@ class Engine:
             read = PreparedRead(plan, read_sql(plan))
             self.backend.check(read.sql)
             return read
-        rewritten = rewrite(plan, self._plan_exact_columns(plan), self._plan_unique_columns(plan))
+        rewritten = rewrite(plan, self._plan_exact_columns(plan), self._plan_unique_keys(plan))
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         return Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                         fingerprint=_fingerprint(rewritten.sql),
@@ -431,10 +431,11 @@ class Engine:
         return frozenset(name for join in plan.joins for name, own in join.columns
                          if own in self._source_facts(join.table.table).exact_columns)
 
-    def _plan_unique_columns(self, plan: Plan) -> frozenset[str]:
-        """Columns the backend keeps unique in the plan's one table (none for joins: the
-        one-row query is for single tables, ``proxy.sql.rewrite`` notes 8)."""
-        return frozenset() if plan.joins else self._source_facts(plan.table.table).unique_columns
+    def _plan_unique_keys(self, plan: Plan) -> frozenset[frozenset[str]]:
+        """The unique keys the backend enforces in the plan's one table that may hold its
+        individuals' rows (none for joins: the row query is for single tables,
+        ``proxy.sql.rewrite`` notes 8)."""
+        return frozenset() if plan.joins else self._source_facts(plan.table.table).unique_keys
 
     def _source_facts(self, table: str) -> SourceFacts:
         """What the backend's catalog says about ``table``'s source; looked up once per table,
@@ -443,13 +444,14 @@ class Engine:
         with self._cache_lock:
             known = self._facts.get(table)
         if known is None:
-            source = self.policies.tables[table].source
-            types = _looked_up(table, "column types", self.backend.column_types, source, {})
+            policy = self.policies.tables[table]
+            types = _looked_up(table, "column types", self.backend.column_types, policy.source, {})
+            keys = _looked_up(table, "unique keys", self.backend.unique_keys, policy.source,
+                              frozenset())
             known = SourceFacts(
                 exact_columns=frozenset(name for name, kind in types.items()
                                         if kind.startswith("numeric")),
-                unique_columns=_looked_up(table, "unique columns", self.backend.unique_columns,
-                                          source, frozenset()))
+                unique_keys=countable_keys(policy, keys, types))
             with self._cache_lock:
                 self._facts[table] = known
         return known
@@ -532,9 +534,8 @@ class Engine:
                              f"{_show(bound.ceiling * unit)}), epsilon {split.bound:.6g}; "
                              f"clipped-away total reported with epsilon {split.clip:.6g}"))
             else:
-                held = (f"; held by the database, which keeps {plan.table.individual.column} "
-                        "unique (one row per individual), so nothing is scaled"
-                        if rewritten.unique_individual else "")
+                held = (f"; held by the database, which keeps {_held_text(rewritten)}, "
+                        "so nothing is scaled" if rewritten.held_by else "")
                 rows.append((f"bound on {what} per individual",
                              f"declared: {_show(bound.ceiling * unit)} (the policy's most_rows)"
                              f"{held}"))
@@ -893,10 +894,11 @@ def paid_text(paid_at: datetime) -> str:
 @dataclass(frozen=True)
 class SourceFacts:
     """Facts of a table's backend source from the catalog (never its rows) that the rewrite
-    uses: numeric columns (summed exactly), columns an enforced constraint keeps unique."""
+    uses: numeric columns (summed exactly), and the unique keys an enforced constraint keeps
+    that may hold the individuals' rows (``proxy.sql.rewrite.countable_keys``)."""
 
     exact_columns: frozenset[str]
-    unique_columns: frozenset[str]
+    unique_keys: frozenset[frozenset[str]]
 
 
 _Fact = TypeVar("_Fact")
@@ -1166,9 +1168,10 @@ def _answer_notes(plan: Plan, rewritten: Rewritten, values: tuple[int, ...]) -> 
                      "lower edge")
     if plan.table.individual is not None:
         notes.append(f"rows without a {plan.table.individual.column} are not counted")
-        if rewritten.unique_individual:  # the bounds hold of themselves (proxy.sql.rewrite, 8)
-            notes.append(f"each individual has at most one row (the database keeps "
-                         f"{plan.table.individual.column} unique), so nothing is scaled down")
+        if rewritten.held_by:  # the bounds hold of themselves (proxy.sql.rewrite, 8)
+            notes.append(f"each individual has at most {_rows_text(rewritten.held_rows)} "
+                         f"here (the database keeps {_held_text(rewritten)}), so nothing is "
+                         "scaled down")
             return notes
         for bound, value in zip(rewritten.bounds, values):
             unit = Decimal(1) if bound.subject == "rows" else plan.table.columns[bound.subject].unit
@@ -1177,6 +1180,20 @@ def _answer_notes(plan: Plan, rewritten: Rewritten, values: tuple[int, ...]) -> 
             notes.append(f"each individual's {what} over the whole answer is scaled down to at "
                          f"most {_show(value * unit)} ({how})")
     return notes
+
+
+def _rows_text(count: int) -> str:
+    return "one row" if count == 1 else f"{count} rows"
+
+
+def _held_text(rewritten: Rewritten) -> str:
+    """How the database holds each individual's rows (``Rewritten.held_by``), in words."""
+    columns = rewritten.held_by
+    if len(columns) == 1:
+        return f"{columns[0]} unique (one row per individual)"
+    others = columns[1] if len(columns) == 2 else f"({', '.join(columns[1:])})"
+    return (f"({', '.join(columns)}) unique and the query counts at most "
+            f"{rewritten.held_rows} values of {others}")
 
 
 def _accuracy(plan: Plan, output: Output, share: Decimal, sensitivities: tuple[int, ...],

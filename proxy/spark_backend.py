@@ -619,9 +619,9 @@ class SparkBackend:
         schema = self._session.table(relation).schema
         return {field.name: postgres_type_name(field.dataType.simpleString()) for field in schema}
 
-    def unique_columns(self, relation: str) -> frozenset[str]:
-        """None: Spark enforces no constraint, so no table gets the one-row-per-individual
-        query (``proxy.sql.rewrite``, module notes 8)."""
+    def unique_keys(self, relation: str) -> frozenset[frozenset[str]]:
+        """None: Spark enforces no constraint, so no table's individuals are held by one
+        (``proxy.sql.rewrite``, module notes 8)."""
         return frozenset()
 
     def check(self, sql: str) -> None:

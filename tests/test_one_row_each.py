@@ -1,11 +1,13 @@
-"""One row per individual, held by the database (proxy.sql.rewrite, module notes 8).
+"""Few rows per individual, held by the database (proxy.sql.rewrite, module notes 8).
 
-When the backend enforces that the individual column is unique and no bound is chosen, the
-rewrite skips the per-individual steps. Checked here on real PostgreSQL: which constraints count
-(only enforced, single-column, non-partial, immediate ones on an ordinary table), that the fast
-query's noise-free cells equal the per-individual query's and PostgreSQL's own answer, that
-removing one household moves each measure by no more than the sensitivity stated, and that the
-engine's EXPLAIN and notes say what is applied.
+When the backend enforces a unique key holding each individual to K <= most_rows counted rows
+(the individual column alone: K = 1; with a grouped date: K days) and no bound is chosen, the
+rewrite skips the per-individual steps. Checked here on real PostgreSQL: which constraints
+count (only enforced, non-partial, immediate ones on plain columns of an ordinary table, whose
+other columns are grouped by over few enough declared values of a type taking no others), that
+the fast query's noise-free cells equal the per-individual query's and PostgreSQL's own answer,
+that removing one household moves each measure by no more than the sensitivity stated, and that
+the engine's EXPLAIN and notes say what is applied.
 """
 
 from __future__ import annotations
@@ -28,10 +30,10 @@ from tests.bounds_helpers import run_with_bounds
 from tests.policy_fixtures import DUMMY_VERIFIER
 
 # Every table has the same columns; the policy of each differs only in name, source, most_rows
-# and bounds.
-TABLE = """
+# and bounds. (The daily tables below share its first part.)
+HOUSEHOLD = """
 table = "{name}"
-source = "homes.{source}"
+source = "{schema}.{source}"
 
 [individual]
 column = "household_id"
@@ -46,7 +48,8 @@ range = [1, 100000]
 [columns.district]
 kind = "category"
 values = ["Northbank", "Old Mill", "Harbourside"]
-
+"""
+TABLE = HOUSEHOLD + """
 [columns.occupants]
 kind = "integer"
 range = [1, 8]
@@ -58,21 +61,29 @@ step = 0.5
 """
 
 # Source relations over the same rows, each with a different (or no) uniqueness on household_id.
-# True: the database enforces that household_id is unique there.
+# The unique keys the database enforces there, as ``Backend.unique_keys`` should read them.
+ALONE = frozenset({frozenset({"household_id"})})
 SOURCES = {
-    "keyed": (True, "ALTER TABLE homes.keyed ADD PRIMARY KEY (household_id)"),
-    "unique_nulls": (True, "ALTER TABLE homes.unique_nulls ADD UNIQUE (household_id)"),
-    "plain": (False, ""),
-    "partial": (False, "CREATE UNIQUE INDEX ON homes.partial (household_id) "
-                       "WHERE household_id > 10"),
-    "pair": (False, "ALTER TABLE homes.pair ADD UNIQUE (household_id, district)"),
-    "deferred": (False, "ALTER TABLE homes.deferred ADD UNIQUE (household_id) "
-                        "DEFERRABLE INITIALLY IMMEDIATE"),
+    "keyed": (ALONE, "ALTER TABLE homes.keyed ADD PRIMARY KEY (household_id)"),
+    "unique_nulls": (ALONE, "ALTER TABLE homes.unique_nulls ADD UNIQUE (household_id)"),
+    "plain": (frozenset(), ""),
+    "partial": (frozenset(), "CREATE UNIQUE INDEX ON homes.partial (household_id) "
+                             "WHERE household_id > 10"),
+    # A key of two columns (module notes 8: it holds a household to one row per district).
+    "pair": (frozenset({frozenset({"household_id", "district"})}),
+             "ALTER TABLE homes.pair ADD UNIQUE (household_id, district)"),
+    # Not a key of columns: an expression, a non-default equality, an INCLUDE column.
+    "lowered": (frozenset(), "CREATE UNIQUE INDEX ON homes.lowered (household_id, lower(district))"),
+    "patterned": (frozenset(), "CREATE UNIQUE INDEX ON homes.patterned "
+                               "(household_id, district text_pattern_ops)"),
+    "included": (ALONE, "CREATE UNIQUE INDEX ON homes.included (household_id) INCLUDE (district)"),
+    "deferred": (frozenset(), "ALTER TABLE homes.deferred ADD UNIQUE (household_id) "
+                              "DEFERRABLE INITIALLY IMMEDIATE"),
     # A primary key on the parent, but the child's rows (which it does not cover) are read too.
-    "parent": (False, "ALTER TABLE homes.parent ADD PRIMARY KEY (household_id); "
-                      "CREATE TABLE homes.child () INHERITS (homes.parent); "
-                      "INSERT INTO homes.child SELECT * FROM homes.parent WHERE household_id < 50"),
-    "view": (False, None),
+    "parent": (frozenset(), "ALTER TABLE homes.parent ADD PRIMARY KEY (household_id); "
+                            "CREATE TABLE homes.child () INHERITS (homes.parent); "
+                            "INSERT INTO homes.child SELECT * FROM homes.parent WHERE household_id < 50"),
+    "view": (frozenset(), None),
 }
 HOUSEHOLDS = 900
 
@@ -102,12 +113,15 @@ def _load(dsn: str) -> None:
         conn.execute("CREATE VIEW homes.view AS SELECT * FROM homes.keyed")
 
 
-def _policies(root: Path, tables: dict[str, tuple[str, int, str]]) -> Policies:
-    """A policy folder: table name -> (source, most_rows, bounds), all granted to ``tester``."""
+def _policies(root: Path, tables: dict[str, tuple[object, ...]], text: str = TABLE,
+              schema: str = "homes") -> Policies:
+    """A policy folder: table name -> (source in ``schema``, most_rows, bounds, and any further
+    fields of ``text``) written into ``text``, all granted to ``tester``."""
     (root / "tables").mkdir(parents=True)
-    for name, (source, most_rows, bounds) in tables.items():
+    fields = ("source", "most_rows", "bounds", "last")
+    for name, values in tables.items():
         (root / "tables" / f"{name}.toml").write_text(
-            TABLE.format(name=name, source=source, most_rows=most_rows, bounds=bounds))
+            text.format(name=name, schema=schema, **dict(zip(fields, values))))
     (root / "access.toml").write_text(textwrap.dedent(f"""
         [defaults]
         epsilon_per_query = 1.0
@@ -165,23 +179,24 @@ def _measures(plan, rows) -> list[tuple[int, ...]]:
     return [tuple(int(v) for v in row[keys:keys + len(plan.measures)]) for row in rows]
 
 
-def test_only_an_enforced_single_column_constraint_counts(homes) -> None:
+def test_only_an_enforced_key_of_plain_columns_counts(homes) -> None:
     conn, policies, engine = homes
-    for name, (unique, _) in SOURCES.items():
-        found = engine.backend.unique_columns(f"homes.{name}")
-        assert found == (frozenset({"household_id"}) if unique else frozenset()), name
+    for name, (keys, _) in SOURCES.items():
+        found = engine.backend.unique_keys(f"homes.{name}")
+        assert found == keys, name
+        unique = keys == ALONE
         prepared = engine.prepare("tester", f"SELECT COUNT(*) FROM {name} WHERE occupants = 3")
-        assert prepared.rewritten.unique_individual is unique, name
+        assert bool(prepared.rewritten.held_by) is unique, name
         # The slow path's per-individual totals are in the SQL exactly when it is taken.
         assert ("n_rows" in prepared.rewritten.sql) is not unique, name
     # Declared bounds above one row keep the fast path; a chosen bound could fall below one
     # row's value, so it keeps the per-individual query.
     assert engine.prepare("tester", "SELECT SUM(occupants) FROM keyed_declared") \
-        .rewritten.unique_individual
+        .rewritten.held_rows == 1
     assert not engine.prepare("tester", "SELECT SUM(occupants) FROM keyed_chosen") \
-        .rewritten.unique_individual
+        .rewritten.held_by
     # Spark enforces no constraint: no table takes the fast path there.
-    assert SparkBackend.__new__(SparkBackend).unique_columns("homes.keyed") == frozenset()
+    assert SparkBackend.__new__(SparkBackend).unique_keys("homes.keyed") == frozenset()
 
 
 @pytest.mark.parametrize("exact", [frozenset(), frozenset({"floor_area"})], ids=["per-row", "exact"])
@@ -191,9 +206,9 @@ def test_fast_cells_equal_postgresql_and_the_per_individual_query(homes, n: int,
     conn, policies, _ = homes
     for table in ("keyed", "unique_nulls"):
         plan = analyse(QUERIES[n].format(t=table), policies, "tester")
-        fast = rewrite(plan, exact, frozenset({"household_id"}))
+        fast = rewrite(plan, exact, ALONE)
         slow = rewrite(plan, exact)
-        assert fast.unique_individual and not slow.unique_individual
+        assert fast.held_rows == 1 and not slow.held_by
         assert (fast.bounds, fast.declared_sensitivities) == (slow.bounds, slow.declared_sensitivities)
         fast_rows, slow_rows = run_with_bounds(conn, fast), run_with_bounds(conn, slow)
         # Same keys and bound values as the per-individual query, nothing clipped. (The slow
@@ -217,26 +232,36 @@ def test_one_household_moves_each_measure_at_most_its_stated_sensitivity(homes) 
     sql = ("SELECT district, COUNT(*), SUM(occupants), SUM(floor_area), "
            "COUNT(DISTINCT household_id) FROM keyed GROUP BY district")
     plan = analyse(sql, policies, "tester")
-    rewritten = rewrite(plan, frozenset({"floor_area"}), frozenset({"household_id"}))
-    assert rewritten.unique_individual
+    rewritten = rewrite(plan, frozenset({"floor_area"}), ALONE)
+    assert rewritten.held_rows == 1
     # most_rows 1: R = 1 row, T = 8 occupants and 300 / 0.5 = 600 steps; the row tables' 1 and M.
     sensitivities = rewritten.sensitivities(tuple(b.ceiling for b in rewritten.bounds))
     assert sensitivities == (1, 8, 600, 1)
-    full = _measures(plan, run_with_bounds(conn, rewritten))
-    largest = [0] * len(plan.measures)
     # Ordinary households, and ones outside the ranges (12 occupants, 900.25 square metres,
     # no area, 0 occupants) or outside the districts (g % 4 = 3).
-    for household in (1, 2, 6, 31, 41, 23, 37, 3, 62, 82, 123, 246):
+    largest = _largest_moves(conn, plan, rewritten, "homes.keyed",
+                             (1, 2, 6, 31, 41, 23, 37, 3, 62, 82, 123, 246))
+    # The check can fail: the largest moves reach each sensitivity (600 steps from the 900.25
+    # area clamped at 300; 8 from the household of 12).
+    assert largest == list(sensitivities)
+
+
+def _largest_moves(conn: psycopg.Connection, plan, rewritten, source: str,
+                   households: tuple[int, ...]) -> list[int]:
+    """Per measure, the largest L1 move of the noise-free answer when one of ``households``
+    is removed from ``source``; each move checked against the stated sensitivity."""
+    sensitivities = rewritten.sensitivities(tuple(b.ceiling for b in rewritten.bounds))
+    full = _measures(plan, run_with_bounds(conn, rewritten))
+    largest = [0] * len(plan.measures)
+    for household in households:
         with conn.transaction(force_rollback=True):
-            conn.execute("DELETE FROM homes.keyed WHERE household_id = %s", (household,))
+            conn.execute(f"DELETE FROM {source} WHERE household_id = %s", (household,))
             without = _measures(plan, run_with_bounds(conn, rewritten))
         for m in range(len(plan.measures)):
             move = sum(abs(a[m] - b[m]) for a, b in zip(full, without))
             assert move <= sensitivities[m], (household, plan.measures[m])
             largest[m] = max(largest[m], move)
-    # The check can fail: the largest moves reach each sensitivity (600 steps from the 900.25
-    # area clamped at 300; 8 from the household of 12).
-    assert largest == list(sensitivities)
+    return largest
 
 
 def test_explain_and_notes_say_the_database_holds_the_bound(homes) -> None:
@@ -269,7 +294,7 @@ def test_the_constraint_is_read_once_and_again_on_reload(homes, module_dsn: str,
     sql = "SELECT COUNT(*) FROM changing"
 
     def fast() -> bool:
-        return engine.prepare("tester", sql).rewritten.unique_individual
+        return bool(engine.prepare("tester", sql).rewritten.held_by)
 
     try:
         assert not fast()
@@ -294,12 +319,207 @@ def test_the_demo_households_take_the_fast_query_and_readings_do_not(fresh_dsn: 
     backend = Backend(fresh_dsn, pool_size=1)
     try:
         # households: PRIMARY KEY (household_id); readings: (household_id, reading_date).
-        unique = {name: backend.unique_columns(policies.tables[name].source)
+        unique = {name: backend.unique_keys(policies.tables[name].source)
                   for name in ("households", "readings")}
     finally:
         backend.close()
-    assert unique == {"households": frozenset({"household_id"}), "readings": frozenset()}
+    assert unique == {"households": ALONE,
+                      "readings": frozenset({frozenset({"household_id", "reading_date"})})}
     for name, sql in (("households", "SELECT COUNT(*) FROM households WHERE occupants = 3"),
                       ("readings", "SELECT COUNT(*) FROM readings")):
         rewritten = rewrite(analyse(sql, policies, "planner"), frozenset(), unique[name])
-        assert rewritten.unique_individual is (name == "households")
+        assert bool(rewritten.held_by) is (name == "households")
+
+
+# ---- a unique key of several columns: at most K counted rows per individual (notes 8) -------
+
+DAILY = HOUSEHOLD + """
+[columns.reading_date]
+kind = "date"
+range = ["2026-01-01", "{last}"]
+
+[columns.litres]
+kind = "number"
+range = [0, 500]
+step = 0.1
+"""
+
+# Sources of the same daily readings: the key (household_id, reading_date) enforced or not.
+DAILY_SOURCES = {
+    "keyed": "ALTER TABLE days.keyed ADD PRIMARY KEY (household_id, reading_date)",
+    # Rows of no household, and several rows of household 5 without a date (NULLs are distinct
+    # to UNIQUE): none of them is counted by a key on the date.
+    "unique_nulls": "ALTER TABLE days.unique_nulls ADD UNIQUE (household_id, reading_date); "
+                    "INSERT INTO days.unique_nulls SELECT NULL, 'Old Mill', DATE '2026-01-04', 7 "
+                    "FROM generate_series(1, 5); INSERT INTO days.unique_nulls "
+                    "SELECT 5, 'Old Mill', NULL, 9 FROM generate_series(1, 40)",
+    "plain": "",
+    # Enforced, but a timestamp takes many values inside a day: not a key that bounds rows.
+    "stamped": "ALTER TABLE days.stamped ALTER reading_date TYPE timestamp; "
+               "ALTER TABLE days.stamped ADD PRIMARY KEY (household_id, reading_date)",
+}
+
+# name -> (source, most_rows, bounds, last declared day)
+DAILY_TABLES = {
+    **{f"jan_{source}": (source, 31, "declared", "2026-01-31") for source in DAILY_SOURCES},
+    "jan_chosen": ("keyed", 31, "chosen", "2026-01-31"),
+    "jan_30": ("keyed", 30, "declared", "2026-01-31"),
+    "two_months": ("keyed", 31, "declared", "2026-02-28"),
+}
+
+
+@pytest.fixture(scope="module")
+def days(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
+    """Households 1..60 reading daily from 2025-12-29 to 2026-02-03 (days outside January
+    too), litres in steps of 0.1 partly above the range or NULL, districts (one outside the
+    domain) changing with the day; household 60 reads only in January."""
+    with psycopg.connect(module_dsn, autocommit=True) as conn:
+        conn.execute("DROP SCHEMA IF EXISTS days CASCADE; CREATE SCHEMA days")
+        for name, constraint in DAILY_SOURCES.items():
+            conn.execute(f"""
+                CREATE TABLE days.{name} AS
+                SELECT h AS household_id,
+                       (ARRAY['Northbank', 'Old Mill', 'Harbourside', 'Riverside'])[1 + (h + d) % 4]
+                           AS district,
+                       DATE '2025-12-29' + d AS reading_date,
+                       CASE WHEN (h * d) % 29 = 0 THEN NULL
+                            ELSE ((h * 37 + d * 11) % 620 + (d % 10) / 10.0) END::numeric(7, 1)
+                           AS litres
+                FROM generate_series(1, 60) AS h, generate_series(0, 36) AS d
+                WHERE h < 60 OR d BETWEEN 3 AND 33""")
+            if constraint:
+                conn.execute(constraint)
+    policies = _policies(tmp_path_factory.mktemp("daily"), DAILY_TABLES, DAILY, "days")
+    engine = Engine(policies, Backend(module_dsn, pool_size=2),
+                    Ledger(module_dsn, schema="ledger_daily"))
+    with psycopg.connect(module_dsn) as conn:
+        yield conn, policies, engine
+    engine.close()
+
+
+DATE_KEY = frozenset({frozenset({"household_id", "reading_date"})})
+DAILY_QUERIES = [
+    "SELECT reading_date, COUNT(*), SUM(litres), AVG(litres), COUNT(DISTINCT household_id) "
+    "FROM {t} GROUP BY reading_date",
+    "SELECT date_trunc('week', reading_date) AS w, district, SUM(litres) FILTER (WHERE litres > 100), "
+    "VARIANCE(litres) FROM {t} GROUP BY 1, 2",
+    "SELECT extract(dow FROM reading_date) AS d, COUNT(*), COUNT(litres) FROM {t} "
+    "WHERE district = 'Old Mill' GROUP BY 1",
+]
+
+
+def test_which_daily_queries_the_key_holds(days) -> None:
+    _, _, engine = days
+
+    def held(sql: str) -> tuple[tuple[str, ...], int]:
+        rewritten = engine.prepare("tester", sql).rewritten
+        assert ("n_rows" in rewritten.sql) is not rewritten.held_by, sql  # one path or the other
+        return rewritten.held_by, rewritten.held_rows
+
+    by_day = ("household_id", "reading_date"), 31
+    group = "SELECT reading_date, SUM(litres) FROM {} {}GROUP BY reading_date"
+    assert held(group.format("jan_keyed", "")) == by_day
+    assert held(group.format("jan_unique_nulls", "")) == by_day
+    # No key, a timestamp (many values a day), a chosen bound: the per-individual query.
+    for table in ("jan_plain", "jan_stamped", "jan_chosen"):
+        assert held(group.format(table, "")) == ((), 0), table
+    # The date is not a key: rows outside its domain are counted, so nothing bounds them.
+    assert held("SELECT COUNT(*), SUM(litres) FROM jan_keyed") == ((), 0)
+    assert held("SELECT district, COUNT(*) FROM jan_keyed GROUP BY district") == ((), 0)
+    # K = 31 days against most_rows 30: held only once the WHERE leaves 30 days.
+    assert held(group.format("jan_30", "")) == ((), 0)
+    assert held(group.format("jan_30", "WHERE reading_date > '2026-01-01' ")) == \
+        (("household_id", "reading_date"), 30)
+    # A domain of 59 days against most_rows 31: held once the WHERE narrows it to January,
+    # and any bucket of the date holds the same way.
+    assert held(group.format("two_months", "")) == ((), 0)
+    assert held(group.format("two_months", "WHERE reading_date <= '2026-02-01' ")) == ((), 0)
+    assert held(group.format("two_months", "WHERE reading_date <= '2026-01-31' ")) == by_day
+    assert held("SELECT date_trunc('month', reading_date), COUNT(*) FROM two_months "
+                "WHERE reading_date BETWEEN '2026-01-01' AND '2026-01-31' GROUP BY 1") == by_day
+
+
+@pytest.mark.parametrize("exact", [frozenset(), frozenset({"litres"})], ids=["per-row", "exact"])
+@pytest.mark.parametrize("n", range(len(DAILY_QUERIES)), ids=[q[:40] for q in DAILY_QUERIES])
+def test_held_daily_cells_equal_the_per_individual_query(days, n: int, exact: frozenset[str]) -> None:
+    """Exactly equal, noise off: litres are numeric(7, 1) in steps of 0.1, so even rounding to
+    steps once per cell instead of once per (household, cell) gives the same integers."""
+    conn, policies, _ = days
+    for table in ("jan_keyed", "jan_unique_nulls"):
+        plan = analyse(DAILY_QUERIES[n].format(t=table), policies, "tester")
+        fast, slow = rewrite(plan, exact, DATE_KEY), rewrite(plan, exact)
+        assert fast.held_rows == 31 and not slow.held_by
+        assert (fast.bounds, fast.declared_sensitivities) == (slow.bounds, slow.declared_sensitivities)
+        fast_rows, slow_rows = run_with_bounds(conn, fast), run_with_bounds(conn, slow)
+        cells = len(plan.keys) + len(plan.measures) + len(fast.bounds)
+        assert len(fast_rows) == fast.cells > 1
+        assert [row[:cells] for row in fast_rows] == [row[:cells] for row in slow_rows], table
+        assert any(row[len(plan.keys)] for row in fast_rows)  # not all empty
+        # Nothing clipped. (The per-individual query's clipped figure of a declared bound is
+        # never noised nor shown; it counts the rounding allowance for each household whose
+        # litres are all NULL, 29 and 58 here, so it is not compared.)
+        assert all(v == 0 for row in fast_rows for v in row[cells:]), table
+
+
+def test_one_daily_household_moves_each_measure_at_most_its_stated_sensitivity(days) -> None:
+    conn, policies, _ = days
+    sql = ("SELECT reading_date, COUNT(*), SUM(litres), COUNT(DISTINCT household_id) "
+           "FROM jan_keyed GROUP BY reading_date")
+    plan = analyse(sql, policies, "tester")
+    rewritten = rewrite(plan, frozenset({"litres"}), DATE_KEY)
+    assert rewritten.held_rows == 31
+    # R = 31 rows, T = 31 x 5000 steps of 0.1 litres, min(R, 31 cells).
+    sensitivities = rewritten.sensitivities(tuple(b.ceiling for b in rewritten.bounds))
+    assert sensitivities == (31, 155000, 31)
+    largest = _largest_moves(conn, plan, rewritten, "days.keyed", (1, 2, 29, 31, 58, 60))
+    # The check can fail: a household reading every day of January moves the counts by 31.
+    assert (largest[0], largest[2]) == (31, 31)
+
+
+def test_explain_and_notes_say_the_key_holds_the_bound(days) -> None:
+    _, _, engine = days
+    sql = "SELECT reading_date, COUNT(*) FROM jan_keyed GROUP BY reading_date"
+    explained = dict(engine.explain("tester", sql, epsilon=Decimal(1)).rows)
+    assert explained["bound on rows per individual"] == (
+        "declared: 31 (the policy's most_rows); held by the database, which keeps "
+        "(household_id, reading_date) unique and the query counts at most 31 values of "
+        "reading_date, so nothing is scaled")
+    answer = engine.answer("tester", sql, epsilon=Decimal(1))
+    assert [a.sensitivity for a in answer.accuracy] == [31]
+    assert ("each individual has at most 31 rows here (the database keeps (household_id, "
+            "reading_date) unique and the query counts at most 31 values of reading_date), so "
+            "nothing is scaled down") in answer.notes
+    assert not [n for n in answer.notes if "scaled down to at most" in n]
+
+
+# Keys as written that, with the individual, cover the unique key: one row per (household,
+# cell), read without grouping (module notes, 1); FILTER, distinct households, a spread.
+ONE_ROW_QUERIES = [
+    "SELECT reading_date, COUNT(*), SUM(litres), AVG(litres) FROM {t} GROUP BY reading_date",
+    "SELECT reading_date, district, COUNT(*) FILTER (WHERE litres > 50), COUNT(DISTINCT "
+    "household_id), VARIANCE(litres) FROM {t} WHERE reading_date < '2026-01-20' GROUP BY 1, 2",
+    "SELECT reading_date, COUNT(DISTINCT household_id) FILTER (WHERE litres > 100), "
+    "SUM(litres) FILTER (WHERE district = 'Old Mill') FROM {t} GROUP BY reading_date",
+]
+
+
+@pytest.mark.parametrize("exact", [frozenset(), frozenset({"litres"})], ids=["per-row", "exact"])
+@pytest.mark.parametrize("n", range(len(ONE_ROW_QUERIES)), ids=[q[:40] for q in ONE_ROW_QUERIES])
+def test_partials_of_one_row_cells_equal_the_grouped_ones(days, n: int, exact: frozenset[str]) -> None:
+    """Chosen bounds (so the per-individual query): the partials read row by row where the key
+    holds each (household, cell) to one row give every figure the grouped partials give, bound
+    values and clipped-away totals included, at the ceilings and at about 2/5 of them (which
+    clip most households)."""
+    conn, policies, _ = days
+    plan = analyse(ONE_ROW_QUERIES[n].format(t="jan_chosen"), policies, "tester")
+    fast, slow = rewrite(plan, exact, DATE_KEY), rewrite(plan, exact)
+    assert not fast.held_by and "GROUP BY 1, 2" in slow.sql
+    assert fast.sql.count("GROUP BY 1, 2") == slow.sql.count("GROUP BY 1, 2") - 1
+    clipped = 0
+    for values in (tuple(b.ceiling for b in fast.bounds),
+                   tuple(min(b.candidates, key=lambda c: abs(5 * c - 2 * b.ceiling))
+                         for b in fast.bounds)):
+        fast_rows = run_with_bounds(conn, fast, values)
+        assert fast_rows == run_with_bounds(conn, slow, values), values
+        clipped += sum(fast_rows[0][-len(fast.bounds):])
+    assert clipped > 0  # the smaller bounds did clip
