@@ -1012,18 +1012,6 @@ class Ledger:
         if not row or not row[0]:
             raise ValueError(f"charge {charge_id} is unknown or already finished")
 
-    def finish_many(self, charge_ids: list[int], outcome: str) -> int:
-        """``finish`` for several charges in one statement and one round trip (the outcomes
-        of answers released together); returns how many were recorded (unknown or finished
-        ones are skipped). Raises ValueError for an unknown outcome."""
-        if outcome not in OUTCOMES:
-            raise ValueError(f"outcome must be one of {', '.join(OUTCOMES)}, not {outcome!r}")
-        if not charge_ids:
-            return 0
-        with self._connection() as conn:
-            row = conn.execute(self._sql.finish_many, [charge_ids, outcome]).fetchone()
-        return int(row[0]) if row else 0
-
     def remaining(self, analyst: str) -> Decimal:
         """Epsilon the analyst may still spend (never negative); HushError 42501 if unknown."""
         return self._analyst_value(self._sql.remaining, analyst)
@@ -1172,10 +1160,6 @@ class _Statements:
             "SELECT charge_id, refusal, refused_name, refused_limit, refused_left, left_after "
             f"FROM {s}.reserve_charges(%s)")
         self.finish = f"SELECT {s}.finish_charge(%s, %s)"
-        # One statement (one transaction, whose commit finish_charge makes asynchronous).
-        self.finish_many = (
-            "SELECT count(*) FILTER (WHERE recorded) FROM unnest(%s::bigint[]) AS ids (id), "
-            f"LATERAL {s}.finish_charge(ids.id, %s) AS f (recorded)")
         self.remaining = (
             f"SELECT greatest(budget - spent, 0) FROM {s}.analyst_budgets WHERE analyst = %s")
         self.store_answered = f"SELECT {s}.store_answered(%s, %s, %s, %s, %s, %s::jsonb)"

@@ -14,6 +14,8 @@ from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from decimal import Decimal
 
+import pytest
+
 from proxy.errors import BUDGET_EXHAUSTED, HushError
 from proxy.ledger import Ledger, _Request, statement_hash
 from tests.test_ledger import charge_count, make_policies, open_ledger, query  # noqa: F401
@@ -112,13 +114,17 @@ def test_two_ledgers_batching_over_shared_rows_never_deadlock_nor_overspend(
         assert table_spent[table] == sum((c[2] for c in charged if table in c[1]), D(0))
 
 
-def test_outcomes_recorded_together_skip_unknown_and_finished_charges(
+def test_outcomes_skip_unknown_and_finished_charges(
         fresh_dsn: str, open_ledger: Callable[..., Ledger]) -> None:
     ledger = open_ledger()
     ledger.sync_budgets(make_policies({"planner": "1.0"}, {}))
     ids = [ledger.reserve("planner", [], D("0.1"), f"q{i}", "f").charge_id for i in range(3)]
     ledger.finish(ids[0], "failed")
-    assert ledger.finish_many(ids + [999_999], "answered") == 2
+    for charge in ids[1:]:
+        ledger.finish(charge, "answered")
+    for charge in (ids[0], 999_999):  # already finished, unknown: nothing recorded
+        with pytest.raises(ValueError, match="unknown or already finished"):
+            ledger.finish(charge, "answered")
     assert query(fresh_dsn, "SELECT outcome FROM hushql.charges ORDER BY id") == [
         ("failed",), ("answered",), ("answered",)]
     assert ledger.spent("planner") == D("0.3")  # a note never gives epsilon back
