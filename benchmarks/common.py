@@ -74,12 +74,16 @@ def serve(policies: Path, dsn: str, log: Path, *, workers: int = 1, pool_size: i
         try:
             psycopg.connect(host="127.0.0.1", port=port, user="planner", password=BENCH_PASSWORD,
                             dbname="hushql_demo", connect_timeout=2).close()
-            return proxy, port
+            # With several workers, wait for all: clients connecting while one is still
+            # starting would all land on the others and stay there.
+            if workers == 1 or log.read_text(errors="replace").count("serving (pid") >= workers:
+                return proxy, port
         except psycopg.OperationalError:
-            if proxy.poll() is not None or time.monotonic() > deadline:
-                proxy.kill()
-                raise SystemExit(f"the proxy did not start; its log: {log}") from None
-            time.sleep(0.2)
+            pass
+        if proxy.poll() is not None or time.monotonic() > deadline:
+            proxy.kill()
+            raise SystemExit(f"the proxy did not start; its log: {log}") from None
+        time.sleep(0.2)
 
 
 def set_up(backend: str, purpose: str) -> tuple[Path, str, str]:

@@ -8,6 +8,12 @@ One process answers under one interpreter lock; several processes use several co
   lost; a shared socket's backlog survives any worker.) The supervisor forks before it has any
   thread or database connection; each worker opens its own engine (backend and ledger pools).
   The catalog mirrors are built once, by the supervisor, before forking.
+- **Connections are spread evenly.** Each worker takes one connection per wake-up (asyncio's
+  own server drains the whole waiting backlog at once: with it, one of two workers took 13 of
+  a burst of 16 clients), and publishes how many it holds in ``ConnectionCounts``, a table in
+  memory shared by all processes. A worker holding more than another live worker waits ``ACCEPT_HEAD_START`` before
+  taking the next connection, leaving it to the less loaded one; after that wait it takes it
+  anyway, so a stuck or slow worker never leaves a connection waiting for long.
 - **Cancel requests reach the process holding the query.** A CancelRequest comes on a fresh
   connection, which any worker may accept. The process id a worker hands out in BackendKeyData
   carries the worker's slot in bits ``SLOT_SHIFT`` and up; a worker given a cancel for another
@@ -40,6 +46,7 @@ import asyncio
 import contextlib
 import itertools
 import logging
+import mmap
 import os
 import secrets
 import signal
@@ -65,6 +72,9 @@ RESPAWN_PAUSE_SECONDS = 1.0
 """A slot whose worker died is refilled at most this often, so a crash loop cannot spin."""
 STOP_SECONDS = 15.0
 """How long the supervisor waits for workers after SIGTERM before it kills them."""
+
+ACCEPT_HEAD_START = 0.02
+"""Seconds a worker holding more connections than another leaves a new one to the others."""
 
 _CANCEL = struct.Struct("!ii")  # process id, secret key: as in the CancelRequest message
 
@@ -94,31 +104,120 @@ class WorkerSetup:
     renew: Callable[[], "WorkerSetup | None"] | None = None
 
 
+class ConnectionCounts:
+    """Open connections per worker slot, in anonymous shared memory made before forking, so
+    every worker reads the others' counts. A slot without a serving worker holds ``ABSENT``.
+    Each slot is written by its own worker only (the supervisor marks an empty slot absent);
+    a read may be a moment old, which only makes the spread less even, never loses a
+    connection."""
+
+    ABSENT = -1
+
+    def __init__(self, slots: int) -> None:
+        self._memory = mmap.mmap(-1, 4 * slots)
+        self._counts = memoryview(self._memory).cast("i")
+        for slot in range(slots):
+            self._counts[slot] = self.ABSENT
+
+    def set(self, slot: int, count: int) -> None:
+        self._counts[slot] = count
+
+    def fewest_elsewhere(self, slot: int) -> int | None:
+        """The smallest count among the other serving workers (None: there is none)."""
+        others = [n for index, n in enumerate(self._counts)
+                  if index != slot and n != self.ABSENT]
+        return min(others) if others else None
+
+
 class WorkerServer(WireServer):
     """A WireServer accepting on an inherited socket, whose process ids name its slot and
     which forwards cancel requests for other slots to their owners."""
 
     def __init__(self, engine: Answering, *, slot: int, listener: socket.socket,
-                 routes: list[socket.socket], **options: Any) -> None:
+                 routes: list[socket.socket], counts: ConnectionCounts | None = None,
+                 **options: Any) -> None:
         super().__init__(engine, **options)
         self.slot = slot
         self._listener = listener
         self._routes = routes
+        self._counts = counts
+        self._accepting = False
+        self._held_back = False  # the next wake-up takes its connection whatever the counts
+        self._held = 0  # connections accepted and not yet ended
+        self._tasks: set[asyncio.Task[None]] = set()
         low = (1 << SLOT_SHIFT) - 1
         # WireServer draws BackendKeyData process ids from this iterator.
         self._pids = ((slot << SLOT_SHIFT) | (n & low) or 1
                       for n in itertools.count(secrets.randbelow(low) + 1))
 
     async def start(self, host: str = "", port: int = 0) -> tuple[str, int]:
-        """Accepts on the inherited socket (``host`` and ``port`` are the supervisor's)."""
-        self._server = await asyncio.start_server(self._accept, sock=self._listener)
+        """Accepts on the inherited socket (``host`` and ``port`` are the supervisor's), one
+        connection per wake-up (see ``_accept_one``)."""
+        asyncio.get_running_loop().add_reader(self._listener.fileno(), self._accept_one)
+        self._accepting = True
+        self._publish()
         bound = self._listener.getsockname()
         return bound[0], bound[1]
 
+    def _accept_one(self) -> None:
+        """Takes at most one waiting connection, unless this worker holds more than another
+        and has not yet given the others their head start (module rules). Every worker is
+        woken for each arrival and the first to call accept gets it."""
+        if self._counts is not None and not self._held_back:
+            fewest = self._counts.fewest_elsewhere(self.slot)
+            if fewest is not None and self._held > fewest:
+                self._held_back = True
+                loop = asyncio.get_running_loop()
+                loop.remove_reader(self._listener.fileno())
+                loop.call_later(ACCEPT_HEAD_START, self._resume)
+                return
+        self._held_back = False
+        try:
+            sock, _ = self._listener.accept()
+        except (BlockingIOError, InterruptedError):
+            return  # another worker took it
+        except OSError as exc:  # out of file descriptors and the like: leave it queued
+            log.warning("worker %d could not accept: %s", self.slot, exc.strerror)
+            return
+        sock.setblocking(False)
+        task = asyncio.get_running_loop().create_task(self._serve_socket(sock))
+        self._tasks.add(task)  # the loop keeps only weak references to tasks
+        task.add_done_callback(self._tasks.discard)
+
+    def _resume(self) -> None:
+        """After a head start: listen again (the next wake-up accepts whatever the counts)."""
+        if self._accepting:
+            asyncio.get_running_loop().add_reader(self._listener.fileno(), self._accept_one)
+
+    async def _serve_socket(self, sock: socket.socket) -> None:
+        self._held += 1
+        self._publish()
+        try:
+            try:
+                reader, writer = await asyncio.open_connection(sock=sock)
+            except OSError:
+                sock.close()
+                return
+            await self._accept(reader, writer)
+        finally:
+            self._held -= 1
+            self._publish()
+
+    def _publish(self) -> None:
+        """This worker's count in the shared table, while it accepts (a worker draining after
+        its replacement took the slot stays out of it)."""
+        if self._counts is not None and self._accepting:
+            self._counts.set(self.slot, self._held)
+
     def stop_accepting(self) -> None:
         """Leaves the shared socket to the other workers; open connections carry on."""
-        if self._server is not None:
-            self._server.close()
+        if self._accepting:
+            self._accepting = False
+            asyncio.get_running_loop().remove_reader(self._listener.fileno())
+
+    async def close(self) -> None:
+        self.stop_accepting()
+        await super().close()
 
     def cancel(self, process_id: int, secret_key: int) -> None:
         """Cancels locally when the id is this worker's, else forwards to the owning slot."""
@@ -163,6 +262,7 @@ def run_workers(setup: WorkerSetup, host: str, port: int) -> None:
         inbox.setblocking(False)
         route.setblocking(False)
         slots.append(_Slot(inbox, route))
+    counts = ConnectionCounts(len(slots))
     log.info("listening on %s:%d with %d workers", *listener.getsockname()[:2], setup.workers)
     stopping: list[int] = []
     previous = {sig: signal.signal(sig, lambda signum, _frame: stopping.append(signum))
@@ -173,7 +273,7 @@ def run_workers(setup: WorkerSetup, host: str, port: int) -> None:
     draining: dict[int, float] = {}  # pid of a replaced worker -> when it was asked to drain
     try:
         for index in range(len(slots)):
-            _spawn(index, slots, listener, setup)
+            _spawn(index, slots, listener, setup, counts)
         last_memory_check = time.monotonic()
         while not stopping:
             time.sleep(0.2)
@@ -184,20 +284,22 @@ def run_workers(setup: WorkerSetup, host: str, port: int) -> None:
                         log.warning("worker %d (pid %d) exited with %s; replacing it", index,
                                     pid, code)
                         slot.pid = 0
+                        counts.set(index, ConnectionCounts.ABSENT)
             for index, slot in enumerate(slots):
                 if slot.pid == 0 and not stopping \
                         and time.monotonic() - slot.started >= RESPAWN_PAUSE_SECONDS:
-                    _spawn(index, slots, listener, setup)
+                    _spawn(index, slots, listener, setup, counts)
             if reloads:
                 reloads.clear()
                 renewed = setup.renew() if setup.renew is not None else None
                 if renewed is not None:
                     setup = renewed
-                    _replace(range(len(slots)), slots, listener, setup, draining, "new policies")
+                    _replace(range(len(slots)), slots, listener, setup, draining, "new policies",
+                             counts)
             if setup.memory_limit_bytes and \
                     time.monotonic() - last_memory_check >= MEMORY_CHECK_SECONDS:
                 last_memory_check = time.monotonic()
-                _replace_oversized(slots, listener, setup, draining)
+                _replace_oversized(slots, listener, setup, draining, counts)
     finally:
         for sig, handler in previous.items():
             signal.signal(sig, handler)
@@ -210,7 +312,8 @@ def run_workers(setup: WorkerSetup, host: str, port: int) -> None:
         log.info("stopped")
 
 
-def _spawn(index: int, slots: list[_Slot], listener: socket.socket, setup: WorkerSetup) -> None:
+def _spawn(index: int, slots: list[_Slot], listener: socket.socket, setup: WorkerSetup,
+           counts: ConnectionCounts) -> None:
     """Forks the worker for slot ``index``; in the child, serves and never returns."""
     slots[index].started = time.monotonic()
     pid = os.fork()
@@ -225,7 +328,7 @@ def _spawn(index: int, slots: list[_Slot], listener: socket.socket, setup: Worke
             if other != index:
                 slot.inbox.close()
         code = _worker_main(index, listener, slots[index].inbox,
-                            [slot.route for slot in slots], setup)
+                            [slot.route for slot in slots], setup, counts)
     except BaseException as exc:  # the child must never return into the supervisor's loop
         log.error("worker %d failed: %s", index, type(exc).__name__)
     finally:
@@ -234,11 +337,11 @@ def _spawn(index: int, slots: list[_Slot], listener: socket.socket, setup: Worke
 
 
 def _worker_main(slot: int, listener: socket.socket, inbox: socket.socket,
-                 routes: list[socket.socket], setup: WorkerSetup) -> int:
+                 routes: list[socket.socket], setup: WorkerSetup, counts: ConnectionCounts) -> int:
     """One worker: its own engine, a WorkerServer on the shared socket, until SIGTERM."""
     engine = setup.make_engine()
     try:
-        asyncio.run(_serve_worker(engine, slot, listener, inbox, routes, setup))
+        asyncio.run(_serve_worker(engine, slot, listener, inbox, routes, setup, counts))
     finally:
         engine.close()
         catalog = setup.server_options.get("catalog")
@@ -248,9 +351,10 @@ def _worker_main(slot: int, listener: socket.socket, inbox: socket.socket,
 
 
 async def _serve_worker(engine: Answering, slot: int, listener: socket.socket, inbox: socket.socket,
-                        routes: list[socket.socket], setup: WorkerSetup) -> None:
+                        routes: list[socket.socket], setup: WorkerSetup,
+                        counts: ConnectionCounts) -> None:
     loop = asyncio.get_running_loop()
-    server = WorkerServer(engine, slot=slot, listener=listener, routes=routes,
+    server = WorkerServer(engine, slot=slot, listener=listener, routes=routes, counts=counts,
                           **setup.server_options)
     await server.start()
     loop.add_reader(inbox.fileno(), server.receive_forwarded, inbox)
@@ -301,17 +405,18 @@ def resident_bytes(pid: int) -> int | None:
 
 
 def _replace_oversized(slots: list[_Slot], listener: socket.socket, setup: WorkerSetup,
-                       draining: dict[int, float]) -> None:
+                       draining: dict[int, float], counts: ConnectionCounts) -> None:
     """Replaces each worker above the memory limit."""
     assert setup.memory_limit_bytes is not None
     limit = setup.memory_limit_bytes
     oversized = [index for index, slot in enumerate(slots)
                  if slot.pid and (resident_bytes(slot.pid) or 0) > limit]
-    _replace(oversized, slots, listener, setup, draining, "memory above the limit")
+    _replace(oversized, slots, listener, setup, draining, "memory above the limit", counts)
 
 
 def _replace(indexes: Iterable[int], slots: list[_Slot], listener: socket.socket,
-             setup: WorkerSetup, draining: dict[int, float], why: str) -> None:
+             setup: WorkerSetup, draining: dict[int, float], why: str,
+             counts: ConnectionCounts) -> None:
     """Asks the workers in ``indexes`` to drain, and starts each one's successor at once."""
     for index in indexes:
         slot = slots[index]
@@ -320,7 +425,7 @@ def _replace(indexes: Iterable[int], slots: list[_Slot], listener: socket.socket
             with contextlib.suppress(ProcessLookupError):
                 os.kill(slot.pid, signal.SIGUSR1)
             draining[slot.pid] = time.monotonic()
-        _spawn(index, slots, listener, setup)
+        _spawn(index, slots, listener, setup, counts)
 
 
 def _stop_all(pids: list[int]) -> None:
