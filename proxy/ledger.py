@@ -16,7 +16,14 @@ Why it is shaped like this:
   of ``reserve_charge`` (all analysts' rows sorted, then all their populations' rows sorted,
   then all tables' rows sorted: the same global order a lone reservation follows, so batches
   and lone reservations from any number of processes cannot deadlock); then runs
-  ``reserve_charge`` for each reservation in arrival order; then commits once. Each caller
+  ``reserve_charge`` for each reservation in arrival order; then commits once. Since version
+  8 it first asks whether every reservation would pass ``reserve_charge``'s checks with all
+  the ones before it charged (running totals per analyst and per capped population, against
+  the locked rows); if so, charging them one after another would accept each, so it inserts
+  the charges in arrival order and writes each budget row once with the batch's total, which
+  ends in the same rows and the same books; otherwise it takes the one-after-another loop.
+  (Measured: the reservation's server work fell by about half for a batch of one; a test
+  checks random batches against the same reservations made one at a time.) Each caller
   waits for that commit before its query runs. The checks stay exact: inside the transaction
   each ``reserve_charge`` sees the spending of the ones before it, and no other transaction
   can touch the locked rows, so the batch charges exactly what the same reservations would
@@ -53,7 +60,7 @@ Why it is shaped like this:
   precision); Python never does arithmetic on a budget.
 - The schema is the program's own: created and migrated at start-up from the ordered list
   ``_MIGRATIONS``, in one transaction under an advisory lock, so proxies starting together do not
-  race. A database whose schema is newer than this program knows is refused (``LedgerError``).
+  race; ``sync_budgets`` takes the same lock, so their first imports of a policy do not either. A database whose schema is newer than this program knows is refused (``LedgerError``).
 - A trigger refuses any update that raises ``spent`` above its budget or cap (SQLSTATE 23514):
   a last line of defence against a bug here or a hand-written update, not the normal path.
 - A charge keeps a bounded excerpt of its statement (the first ``STATEMENT_EXCERPT``
@@ -612,6 +619,134 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
         $body$
         """,
     )),
+    # A batch whose every reservation fits, even with all the ones before it charged, is
+    # charged set-wise (see the module docstring, "Group commit"): each budget row is written
+    # once per batch, not once per reservation. Any other batch takes version 7's loop.
+    ("a batch of reservations that all fit is charged with one write per budget row", (
+        """
+        CREATE OR REPLACE FUNCTION {schema}.reserve_charges(requests jsonb)
+        RETURNS TABLE (charge_id bigint, refusal text, refused_name text, refused_limit numeric,
+                       refused_left numeric, left_after numeric)
+        LANGUAGE plpgsql AS $body$
+        DECLARE
+            analyst_names text[] := ARRAY(SELECT DISTINCT r ->> 'analyst'
+                                            FROM jsonb_array_elements(requests) AS r);
+            table_names text[] := ARRAY(SELECT DISTINCT t
+                                          FROM jsonb_array_elements(requests) AS r,
+                                               jsonb_array_elements_text(r -> 'tables') AS t);
+            request jsonb;
+            all_fit boolean;
+            lefts numeric[];
+            n integer := 0;
+        BEGIN
+            -- The one lock order (as reserve_charge's): analysts, populations, tables, each
+            -- sorted; ORDER BY runs before the row locks, so rows are locked in this order.
+            PERFORM 1 FROM {schema}.analyst_budgets WHERE analyst = ANY (analyst_names)
+              ORDER BY analyst COLLATE "C" FOR UPDATE;
+            PERFORM 1 FROM {schema}.population_budgets
+              WHERE population IN (SELECT t.population FROM {schema}.table_budgets t
+                                    WHERE t.table_name = ANY (table_names))
+              ORDER BY population COLLATE "C" FOR UPDATE;
+            PERFORM 1 FROM {schema}.table_budgets WHERE table_name = ANY (table_names)
+              ORDER BY table_name COLLATE "C" FOR UPDATE;
+            -- Does every reservation pass reserve_charge's checks with all before it charged?
+            -- Known analyst, every table known, running total within the analyst's headroom
+            -- and within each capped population's (a population counted once per request).
+            WITH r AS (
+                SELECT e.n, e.r ->> 'analyst' AS analyst, (e.r ->> 'epsilon')::numeric AS amount,
+                       ARRAY(SELECT DISTINCT jsonb_array_elements_text(e.r -> 'tables'))
+                           AS tables
+                  FROM jsonb_array_elements(requests) WITH ORDINALITY AS e (r, n)),
+            by_analyst AS (
+                SELECT r.n, b.analyst IS NOT NULL AS known,
+                       b.budget - b.spent
+                           - sum(r.amount) OVER (PARTITION BY r.analyst ORDER BY r.n)
+                           AS left_after,
+                       (SELECT count(*) FROM {schema}.table_budgets t
+                         WHERE t.table_name = ANY (r.tables)) = cardinality(r.tables)
+                           AS tables_known
+                  FROM r LEFT JOIN {schema}.analyst_budgets b ON b.analyst = r.analyst),
+            touched AS (
+                SELECT DISTINCT r.n, r.amount, t.population
+                  FROM r JOIN {schema}.table_budgets t ON t.table_name = ANY (r.tables)),
+            by_population AS (
+                SELECT bool_and(p.cap IS NULL
+                                OR p.cap - p.spent - x.running >= 0) AS fits
+                  FROM (SELECT touched.population,
+                               sum(touched.amount) OVER (PARTITION BY touched.population
+                                                         ORDER BY touched.n) AS running
+                          FROM touched) x
+                  JOIN {schema}.population_budgets p ON p.population = x.population)
+            SELECT bool_and(a.known AND a.tables_known AND a.left_after >= 0)
+                       AND coalesce((SELECT fits FROM by_population), true),
+                   array_agg(a.left_after ORDER BY a.n)
+              INTO all_fit, lefts
+              FROM by_analyst a;
+            IF NOT coalesce(all_fit, false) THEN
+                -- Some reservation may be refused: one after another, as version 7 did.
+                FOR request IN SELECT r FROM jsonb_array_elements(requests)
+                                 WITH ORDINALITY AS e (r, k) ORDER BY k LOOP
+                    RETURN QUERY SELECT * FROM {schema}.reserve_charge_hashed(
+                        request ->> 'analyst',
+                        ARRAY(SELECT jsonb_array_elements_text(request -> 'tables')),
+                        (request ->> 'epsilon')::numeric, request ->> 'statement',
+                        request ->> 'statement_sha256', request ->> 'fingerprint');
+                END LOOP;
+                RETURN;
+            END IF;
+            -- All fit: the charges in arrival order (ids and the hash chain follow it), then
+            -- each budget row once, by the batch's total on it.
+            FOR request IN SELECT r FROM jsonb_array_elements(requests)
+                             WITH ORDINALITY AS e (r, k) ORDER BY k LOOP
+                n := n + 1;
+                INSERT INTO {schema}.charges
+                       (analyst, tables, epsilon, statement, fingerprint, statement_sha256)
+                VALUES (request ->> 'analyst',
+                        ARRAY(SELECT jsonb_array_elements_text(request -> 'tables')),
+                        (request ->> 'epsilon')::numeric, request ->> 'statement',
+                        request ->> 'fingerprint', request ->> 'statement_sha256')
+                RETURNING id INTO charge_id;
+                refusal := NULL;
+                refused_name := NULL;
+                refused_limit := NULL;
+                refused_left := NULL;
+                left_after := greatest(lefts[n], 0);
+                RETURN NEXT;
+            END LOOP;
+            WITH r AS (
+                SELECT e.n, e.r ->> 'analyst' AS analyst, (e.r ->> 'epsilon')::numeric AS amount,
+                       ARRAY(SELECT DISTINCT jsonb_array_elements_text(e.r -> 'tables'))
+                           AS tables
+                  FROM jsonb_array_elements(requests) WITH ORDINALITY AS e (r, n))
+            UPDATE {schema}.analyst_budgets b SET spent = b.spent + s.total, updated_at = now()
+              FROM (SELECT r.analyst, sum(r.amount) AS total FROM r GROUP BY r.analyst) s
+             WHERE b.analyst = s.analyst;
+            WITH r AS (
+                SELECT e.n, (e.r ->> 'epsilon')::numeric AS amount,
+                       ARRAY(SELECT DISTINCT jsonb_array_elements_text(e.r -> 'tables'))
+                           AS tables
+                  FROM jsonb_array_elements(requests) WITH ORDINALITY AS e (r, n)),
+            touched AS (
+                SELECT DISTINCT r.n, r.amount, t.population
+                  FROM r JOIN {schema}.table_budgets t ON t.table_name = ANY (r.tables))
+            UPDATE {schema}.population_budgets p SET spent = p.spent + s.total,
+                   updated_at = now()
+              FROM (SELECT population, sum(amount) AS total FROM touched
+                     GROUP BY population) s
+             WHERE p.population = s.population;
+            WITH r AS (
+                SELECT e.n, (e.r ->> 'epsilon')::numeric AS amount,
+                       ARRAY(SELECT DISTINCT jsonb_array_elements_text(e.r -> 'tables'))
+                           AS tables
+                  FROM jsonb_array_elements(requests) WITH ORDINALITY AS e (r, n))
+            UPDATE {schema}.table_budgets t SET spent = t.spent + s.total, updated_at = now()
+              FROM (SELECT w.name, sum(r.amount) AS total
+                      FROM r CROSS JOIN unnest(r.tables) AS w (name) GROUP BY w.name) s
+             WHERE t.table_name = s.name;
+        END
+        $body$
+        """,
+    )),
 ]
 
 
@@ -857,6 +992,11 @@ class Ledger:
                 _check_decimal(value, "a budget")
         who = actor or os_user()
         with self._transaction() as conn, conn.cursor() as cur:
+            # Proxies starting together (serve --workers N) each sync the same policy: the
+            # schema's advisory lock makes them take turns, so the second finds the rows the
+            # first inserted instead of failing on their keys. Reservations never take it, so
+            # it adds nothing to their lock order.
+            cur.execute("SELECT pg_advisory_xact_lock(%s)", [_advisory_key(self.schema)])
             # Every existing row is locked first, in reserve's order (analysts, populations,
             # then tables, codepoint order), so that the chain head, locked by the first event,
             # comes last.

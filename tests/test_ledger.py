@@ -113,6 +113,37 @@ def test_proxies_starting_together_do_not_race(fresh_dsn: str) -> None:
     assert query(fresh_dsn, "SELECT count(*) FROM hushql.schema_version")[0][0] == SCHEMA_VERSION
 
 
+def test_workers_starting_together_import_one_policy_without_racing(fresh_dsn: str) -> None:
+    """``serve --workers N`` starts N engines at once, each syncing the same policy into a
+    ledger that has none of its rows yet: every sync succeeds (without the schema's advisory
+    lock, the later inserts failed on the budget tables' keys and killed the worker), and the
+    budgets are imported once."""
+    starters = 6
+    policies = make_policies({"planner": "1.0", "researcher": "2.0"},
+                             {"households": "3.0", "readings": None})
+    Ledger(fresh_dsn, pool_size=1).close()  # the schema exists; its budget rows do not
+    for round_ in range(3):
+        ledgers = [Ledger(fresh_dsn, schema=f"round{round_}", pool_size=1)
+                   for _ in range(starters)]
+        barrier = threading.Barrier(starters)
+
+        def sync(ledger: Ledger) -> list[str]:
+            barrier.wait()
+            return ledger.sync_budgets(policies)
+
+        try:
+            with ThreadPoolExecutor(starters) as pool:
+                list(pool.map(sync, ledgers))  # re-raises any failure
+        finally:
+            for ledger in ledgers:
+                ledger.close()
+        assert query(fresh_dsn, f"SELECT analyst, budget FROM round{round_}.analyst_budgets "
+                                "ORDER BY analyst") == [("planner", D("1.0")),
+                                                         ("researcher", D("2.0"))]
+        assert query(fresh_dsn, f"SELECT count(*) FROM round{round_}.budget_events "
+                                "WHERE kind = 'import'") == [(4,)]
+
+
 def test_schema_name_is_configurable_and_checked(fresh_dsn: str,
                                                  open_ledger: Callable[..., Ledger]) -> None:
     ledger = open_ledger(schema="books_b")
