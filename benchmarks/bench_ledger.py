@@ -36,10 +36,12 @@ EPSILON = Decimal("0.001")
 
 
 def _budgets(analysts: list[str], tables: list[str]) -> SimpleNamespace:
-    """The two attributes Ledger.sync_budgets reads, with budgets no benchmark exhausts."""
+    """The attributes Ledger.sync_budgets reads, with budgets no benchmark exhausts; each
+    table is a population of its own."""
     return SimpleNamespace(
         analysts={name: SimpleNamespace(budget=Decimal(10**6)) for name in analysts},
-        tables={name: SimpleNamespace(budget=SimpleNamespace(cap=Decimal(10**6)))
+        tables={name: SimpleNamespace(budget=SimpleNamespace(cap=Decimal(10**6)),
+                                      population=name)
                 for name in tables})
 
 

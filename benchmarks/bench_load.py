@@ -162,6 +162,15 @@ def _books(dsn: str) -> dict[str, tuple[Decimal, int, int]]:
     return {a: (spent, n, failed) for a, spent, n, failed in rows}
 
 
+def _per_commit(dsn: str) -> float:
+    """Mean reservations per ledger commit: a batch's charges share their transaction's
+    ``now()``, so distinct ``reserved_at`` values count the commits (group commit at work)."""
+    with psycopg.connect(dsn) as conn:
+        row = conn.execute("SELECT count(*)::float / greatest(count(DISTINCT reserved_at), 1) "
+                           "FROM hushql.charges").fetchone()
+    return float(row[0]) if row else 0.0
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--backend", default=os.environ.get("HUSHQL_TEST_DSN"),
@@ -209,6 +218,7 @@ def main() -> int:
         direct_elapsed = time.monotonic() - direct_started
         time.sleep(1.0)  # outcomes of the last answers are noted off the answer path
         books = _books(dsn)
+        args.per_commit = _per_commit(dsn)
         stages = _stages(policies, dsn) if args.stages else []
     finally:
         if proxy is not None:
@@ -305,6 +315,7 @@ def _report(console: Console, args: argparse.Namespace, through: list[ClientCoun
         ledger.add_row(analyst, str(seen), str(rows), str(failed), str(spent),
                        str(EPSILON * seen), "agree" if agrees else "MISMATCH")
     console.print(ledger)
+    console.print(f"reservations per ledger commit (mean): {args.per_commit:.1f}")
     direct_answers = sum(c.outcomes["ok"] for c in direct)
     if direct_answers:
         ratio = (sum(c.outcomes["ok"] for c in through) / elapsed) / (direct_answers
