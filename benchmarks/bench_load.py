@@ -41,6 +41,7 @@ import tempfile
 import time
 import uuid
 from dataclasses import dataclass, field
+from datetime import datetime, timezone
 from decimal import Decimal
 from pathlib import Path
 
@@ -238,8 +239,10 @@ def _stages(policies: Path, dsn: str, repeat: int = 200) -> list[str]:
     """Where one answer's time goes, one at a time in this process (its own ledger schema, so
     the books above are untouched): median ms of each step of ``Engine.answer``."""
     from benchmarks.common import median_ms
+    from proxy.answer_notes import Note
     from proxy.backend import Backend
     from proxy.engine import Engine, _bound_settings, epsilon_split
+    from proxy.stored_answers import encode_answer
     from proxy.ledger import Ledger
     from proxy.policy import load_policies
 
@@ -255,6 +258,14 @@ def _stages(policies: Path, dsn: str, repeat: int = 200) -> list[str]:
         answers = iter([engine._release(prepared, EPSILON, split, rows, engine.ledger.reserve(
             "planner", ["households"], EPSILON, text, prepared.fingerprint).charge_id)
             for _ in range(repeat + 2)])
+        paid = datetime.now(timezone.utc)
+        notes = iter([Note("planner", "stages", text, EPSILON, answer.charge_id,
+                           encode_answer(answer), paid)
+                      for answer in [engine._release(prepared, EPSILON, split, rows,
+                                                     engine.ledger.reserve(
+                                                         "planner", ["households"], EPSILON, text,
+                                                         prepared.fingerprint).charge_id)
+                                     for _ in range(repeat + 2)]])
         with psycopg.connect(dsn, autocommit=True) as conn:
             direct = median_ms(lambda: conn.execute(DIRECT.format(k=3)).fetchall(), repeat)
         figures = [
@@ -267,8 +278,11 @@ def _stages(policies: Path, dsn: str, repeat: int = 200) -> list[str]:
                 lambda: engine.backend.run(prepared.rewritten.sql, None, settings), repeat)),
             ("noise and release", median_ms(
                 lambda: engine._release(prepared, EPSILON, split, rows, 0), repeat)),
-            ("store the answer, noted answered (no fsync)", median_ms(
-                lambda: engine._store("planner", "stages", prepared, next(answers)), repeat)),
+            ("queue its note (stored answer, outcome)", median_ms(
+                lambda: engine._note("planner", "stages", prepared, next(answers), paid),
+                repeat)),
+            ("  its write, later, off the answer's path (no fsync)", median_ms(
+                lambda: engine.ledger.store_answers([next(notes)]), repeat)),
             ("the whole answer (Engine.answer fresh, no wire)", median_ms(
                 lambda: engine.answer("planner", text, fresh=True), repeat)),
         ]

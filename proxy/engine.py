@@ -21,10 +21,11 @@ The order of steps is the privacy argument, so it lives here and only here:
 5. release: post-processing on noisy values only (clamping counts at zero, AVG's division,
    HAVING, ORDER BY, LIMIT), then the answer.
 6. finish: the charge's outcome (answered, failed, cancelled) is noted in the ledger. It is a
-   note, not a charge, so its commit does not wait for the disk. Before release, the answer is
-   stored in the ledger under its question, and the same statement notes it 'answered' (a
-   failure to store loses only the reuse: the charge is already durable); failures and
-   cancellations are noted before the error is raised.
+   note, not a charge, so its commit does not wait for the disk. An answer is queued to be
+   stored under its question, its note written with the 'answered' outcome after release, off
+   the answer's path (``proxy.answer_notes``: until written, the same question in this
+   process finds it in the queue; a lost note loses only the reuse, the charge being durable
+   already); failures and cancellations are noted before the error is raised.
 
 Time. The backend query runs under the proxy's own timeout (access.toml ``[limits]
 query_timeout_ms``), never one the analyst chose: a deadline of the analyst's choosing turns
@@ -60,6 +61,7 @@ from typing import Any, TypeVar
 import sqlglot.expressions as exp
 
 from proxy import faults, noise, selection, spread, stored_answers
+from proxy.answer_notes import AnswerNotes, Note
 from proxy.accounts import Accounts
 from proxy.answer import Accuracy, Answer, ColumnType, OutputColumn, Value
 from proxy.backend import Backend, QueryBackend, QueryControl
@@ -246,6 +248,7 @@ class Engine:
 
         self._renewals = RenewalSchedule(policies, ledger)
         self._renewals.apply_due()
+        self._notes = AnswerNotes(ledger)
 
     @classmethod
     def connect(cls, policies: Policies, backend_dsn: str, ledger_dsn: str | None = None, *,
@@ -284,9 +287,14 @@ class Engine:
             self._facts.clear()
 
     def close(self) -> None:
-        """Close the pools."""
+        """Write the queued answer notes, then close the pools."""
+        self._notes.close()
         self.backend.close()
         self.ledger.close()
+
+    def flush_notes(self, timeout: float | None = None) -> bool:
+        """Wait until every answer released so far is stored and noted in the ledger."""
+        return self._notes.flush(timeout)
 
     # ---- planning (no data read, nothing charged) ------------------------------------------
 
@@ -510,7 +518,7 @@ class Engine:
                  ("backend sql", self.backend.sent_sql(prepared.sql))], form,
                 remaining=self.ledger.remaining(analyst), table=prepared.read.table.table)
         eps = self.epsilon_for(epsilon)
-        stored = self.ledger.stored_answer(analyst, _question(analyst, prepared, eps))
+        stored = self._stored_answer(analyst, _question(analyst, prepared, eps))
         plan, rewritten = prepared.plan, prepared.rewritten
         split = epsilon_split(rewritten, len(plan.measures), eps)
         rows: list[tuple[Value, ...]] = [
@@ -591,7 +599,7 @@ class Engine:
         """The stored answer to ``question``, marked reused, with the budget left now; None
         when there is none or it cannot be read back (then the question is answered, and paid
         for, anew)."""
-        found = self.ledger.stored_answer(analyst, question)
+        found = self._stored_answer(analyst, question)
         if found is None:
             return None
         try:
@@ -601,6 +609,14 @@ class Engine:
                         found.charge_id)
             return None
         return dataclasses.replace(answer, reused_from=found.paid_at, remaining=found.remaining)
+
+    def _stored_answer(self, analyst: str, question: str) -> StoredAnswer | None:
+        """The newest answer to ``question``: one still queued to be written, else the
+        ledger's (``proxy.answer_notes``)."""
+        queued = self._notes.pending(analyst, question)
+        if queued is not None:
+            return queued._replace(remaining=self.ledger.remaining(analyst))
+        return self.ledger.stored_answer(analyst, question)
 
     @contextmanager
     def _one_at_a_time(self, question: str, control: QueryControl | None) -> Iterator[None]:
@@ -633,8 +649,8 @@ class Engine:
         plan = prepared.plan
         text = statement if isinstance(statement, str) else statement.shown() \
             if isinstance(statement, BoundStatement) else statement.sql(dialect="postgres")
-        charge, remaining = self.ledger.reserve(analyst, _charged_tables(plan), eps, text,
-                                                prepared.fingerprint)
+        charge, remaining, paid_at = self.ledger.reserve(analyst, _charged_tables(plan), eps,
+                                                         text, prepared.fingerprint)
         outcome = "failed"
         steady = _steady_ms(plan)
         failure: HushError | None = None
@@ -649,8 +665,8 @@ class Engine:
             release = self._release_ranked if plan.ranked is not None else self._release
             answer = release(prepared, eps, split, true_rows, charge)
             outcome = "answered"
-            if self._store(analyst, question, prepared, answer):
-                outcome = "noted"  # the store recorded the outcome too
+            if self._note(analyst, question, prepared, answer, paid_at):
+                outcome = "noted"  # the note records the outcome too
         except HushError as error:
             failure = error
             if error.sqlstate == QUERY_CANCELED:
@@ -704,14 +720,17 @@ class Engine:
                                  "condition, or ask the data owner to lengthen "
                                  "[timing] answer_after_ms") from None
 
-    def _store(self, analyst: str, question: str, prepared: Prepared, answer: Answer) -> bool:
-        """Keep an answer about to be released for the next asking, noting its charge
-        'answered' in the same statement; True when the note was recorded. A failure loses only
-        the reuse (the charge is durable already), so it is logged, not raised."""
+    def _note(self, analyst: str, question: str, prepared: Prepared, answer: Answer,
+              paid_at: datetime) -> bool:
+        """Queue an answer about to be released to be stored for the next asking and its
+        charge noted 'answered' (``proxy.answer_notes``); True once queued. A failure loses
+        only the reuse (the charge is durable already), so it is logged, not raised."""
         assert answer.charge_id is not None
         try:
-            return self.ledger.store_answer(analyst, question, prepared.statement, answer.epsilon,
-                                            answer.charge_id, stored_answers.encode_answer(answer))
+            self._notes.add(Note(analyst, question, prepared.statement, answer.epsilon,
+                                 answer.charge_id, stored_answers.encode_answer(answer),
+                                 paid_at))
+            return True
         except Exception:
             log.exception("could not store the answer of charge %s", answer.charge_id)
             return False

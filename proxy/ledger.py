@@ -55,6 +55,8 @@ Why it is shaped like this:
   locks only the charge row that paid (its foreign key's KEY SHARE, then the outcome's
   update), which no reservation touches and nothing else holds while the answer is being
   released, so storing joins no lock order and cannot deadlock with reservations.
+  ``store_answers`` writes several such notes in one transaction: the engine queues them and a
+  thread writes them after the answers are released (``proxy.answer_notes``).
 - Epsilon is ``Decimal`` in Python and ``NUMERIC`` in PostgreSQL, never a float: 0.1 charged 30
   times is exactly 3.0. Sums, differences and comparisons happen in PostgreSQL (arbitrary
   precision); Python never does arithmetic on a budget.
@@ -79,10 +81,10 @@ import getpass
 import hashlib
 import re
 import threading
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import AbstractContextManager, contextmanager
 from decimal import Decimal
-from typing import TYPE_CHECKING, Any, NamedTuple
+from typing import TYPE_CHECKING, Any, NamedTuple, Protocol
 
 import psycopg
 from psycopg import sql
@@ -861,10 +863,12 @@ def _copy(error: BaseException) -> BaseException:
 
 
 class Reservation(NamedTuple):
-    """A durable charge: its id (for ``finish``) and the analyst's budget left after it."""
+    """A durable charge: its id (for ``finish``), the analyst's budget left after it, and its
+    time (the charge row's ``reserved_at``: when it was paid)."""
 
     charge_id: int
     remaining: Decimal
+    reserved_at: dt.datetime
 
 
 class StoredAnswer(NamedTuple):
@@ -876,6 +880,17 @@ class StoredAnswer(NamedTuple):
     paid_at: dt.datetime
     charge_id: int
     remaining: Decimal
+
+
+class _AnswerNote(Protocol):
+    """What ``store_answers`` reads of a note (``proxy.answer_notes.Note``)."""
+
+    analyst: str
+    question: str
+    statement: str
+    epsilon: Decimal
+    charge_id: int
+    answer: str
 
 
 class LedgerError(Exception):
@@ -1089,10 +1104,10 @@ class Ledger:
                             "set hushql.epsilon to a positive number such as 0.1")
         request = _Request(analyst, sorted(set(tables)), epsilon, statement[:STATEMENT_EXCERPT],
                            statement_hash(statement), fingerprint)
-        charge_id, refusal, name, limit, left, left_after = self._group.submit(request)
+        charge_id, refusal, name, limit, left, left_after, at = self._group.submit(request)
         if refusal is not None:
             raise _refused(refusal, name, limit, left, epsilon)
-        return Reservation(int(charge_id), left_after)
+        return Reservation(int(charge_id), left_after, at)
 
     def _reserve_together(self, requests: list[_Request]) -> list[tuple[Any, ...]]:
         """Runs ``reserve_charge`` for each request in one durable transaction (see the module
@@ -1130,6 +1145,33 @@ class Ledger:
                 analyst, question, statement[:STATEMENT_EXCERPT], epsilon, charge_id,
                 answer]).fetchone()
         return bool(row and row[0])
+
+    def store_answers(self, notes: Sequence[_AnswerNote]) -> list[bool]:
+        """``store_answer`` for each note, in one transaction (one asynchronous commit), in
+        order; per note, whether its outcome was recorded. If the transaction fails (say one
+        note's charge already stored an answer), each note is stored alone instead, a failure
+        counting as False."""
+        rows = [[n.analyst, n.question, n.statement[:STATEMENT_EXCERPT], n.epsilon, n.charge_id,
+                 n.answer] for n in notes]
+        try:
+            with self._transaction() as conn, conn.cursor() as cur:
+                cur.executemany(self._sql.store_answered, rows, returning=True)
+                recorded = []
+                for _ in rows:
+                    found = cur.fetchone()
+                    recorded.append(bool(found and found[0]))
+                    cur.nextset()
+            return recorded
+        except Exception:
+            if len(rows) == 1:
+                raise
+        recorded = []
+        for row in rows:
+            try:
+                recorded.append(self.store_answer(*row))
+            except Exception:  # the caller records the outcome alone, and logs if it cannot
+                recorded.append(False)
+        return recorded
 
     def stored_answer(self, analyst: str, question: str) -> StoredAnswer | None:
         """The newest answer stored for ``analyst`` under ``question``, or None."""
@@ -1292,13 +1334,14 @@ class _Statements:
 
     def __init__(self, schema: str) -> None:
         s = sql.Identifier(schema).as_string(None)
+        # now(): the transaction's start, which is every charge row's reserved_at.
         self.reserve = (
-            "SELECT charge_id, refusal, refused_name, refused_limit, refused_left, left_after "
-            f"FROM {s}.reserve_charge_hashed(%s, %s::text[], %s, %s, %s, %s)")
+            "SELECT charge_id, refusal, refused_name, refused_limit, refused_left, left_after, "
+            f"now() FROM {s}.reserve_charge_hashed(%s, %s::text[], %s, %s, %s, %s)")
         # Rows in the requests' order: the function returns them as it reserves them.
         self.reserve_batch = (
-            "SELECT charge_id, refusal, refused_name, refused_limit, refused_left, left_after "
-            f"FROM {s}.reserve_charges(%s)")
+            "SELECT charge_id, refusal, refused_name, refused_limit, refused_left, left_after, "
+            f"now() FROM {s}.reserve_charges(%s)")
         self.finish = f"SELECT {s}.finish_charge(%s, %s)"
         self.remaining = (
             f"SELECT greatest(budget - spent, 0) FROM {s}.analyst_budgets WHERE analyst = %s")

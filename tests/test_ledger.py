@@ -177,7 +177,7 @@ def test_commits_are_synchronous_even_when_the_database_default_is_not(
     with ledger._pool.connection() as conn:  # noqa: SLF001
         # finish's asynchronous commit is local to its own transaction
         assert conn.execute("SHOW synchronous_commit").fetchone() == ("on",)
-    charge, left = ledger.reserve("planner", [], D("0.1"), "SELECT 1", "f")
+    charge, left, _ = ledger.reserve("planner", [], D("0.1"), "SELECT 1", "f")
     # Returned means committed: another session sees the charge and the spending.
     assert query(fresh_dsn, "SELECT outcome FROM hushql.charges WHERE id = %s",
                  [charge]) == [("reserved",)]

@@ -16,6 +16,7 @@ import psycopg
 import pytest
 
 from proxy.answer import Accuracy, Answer, OutputColumn
+from proxy.answer_notes import Note
 from proxy.backend import Backend
 from proxy.engine import Engine
 from proxy.ledger import Ledger
@@ -206,14 +207,15 @@ def _outcomes(dsn: str, schema: str) -> list[tuple[str, int]]:
 
 
 def test_storing_notes_the_charge_answered_in_the_same_statement(engines, clinic_dsn) -> None:
-    """The stored answer and the 'answered' outcome are written by one statement before the
-    answer is returned; a store that fails records neither."""
+    """The stored answer and the 'answered' outcome are written by one statement, after the
+    answer is released (proxy.answer_notes); a store that fails records neither."""
     make, schema = engines
     engine = make()
     engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
+    assert engine.flush_notes(10)
     assert _outcomes(clinic_dsn, schema) == [("answered", 1)]
     ledger = engine.ledger
-    charge, _ = ledger.reserve("tester", ["people"], Decimal("0.5"), QUESTION, "f")
+    charge = ledger.reserve("tester", ["people"], Decimal("0.5"), QUESTION, "f").charge_id
     with psycopg.connect(clinic_dsn, autocommit=True) as conn:  # an answer stored beforehand
         conn.execute(f"INSERT INTO {schema}.stored_answers (analyst, question, statement, "
                      "epsilon, charge_id, answer) VALUES ('tester', 'q', 's', 0.5, %s, '{}')",
@@ -223,20 +225,69 @@ def test_storing_notes_the_charge_answered_in_the_same_statement(engines, clinic
     assert _outcomes(clinic_dsn, schema)[1] == ("reserved", 1)  # the note went with the store
 
 
+def test_notes_written_together_fall_back_one_by_one(engines, clinic_dsn) -> None:
+    """Three notes in one transaction, the middle one's charge already holding an answer: the
+    transaction fails, so each is stored alone; the other two are stored and noted answered,
+    the middle one neither (its outcome is then the engine's to record alone)."""
+    make, schema = engines
+    ledger = make().ledger
+    charges = [ledger.reserve("tester", ["people"], Decimal("0.5"), QUESTION, "f").charge_id
+               for _ in range(3)]
+    with psycopg.connect(clinic_dsn, autocommit=True) as conn:
+        conn.execute(f"INSERT INTO {schema}.stored_answers (analyst, question, statement, "
+                     "epsilon, charge_id, answer) VALUES ('tester', 'q', 's', 0.5, %s, '{}')",
+                     [charges[1]])
+    notes = [Note("tester", f"q{i}", QUESTION, Decimal("0.5"), charge, "{}",
+                  dt.datetime.now(dt.timezone.utc)) for i, charge in enumerate(charges)]
+    assert ledger.store_answers(notes) == [True, False, True]
+    assert _outcomes(clinic_dsn, schema) == [("answered", 1), ("reserved", 1), ("answered", 1)]
+
+
 def test_an_answer_whose_store_fails_is_still_noted_answered(engines, clinic_dsn,
                                                               monkeypatch) -> None:
-    """Storing fails: the answer is still given (only its reuse is lost) and the engine
-    notes the outcome on its own."""
+    """Storing fails: the answer is still given (only its reuse is lost) and the notes thread
+    records the outcome on its own."""
     make, schema = engines
     engine = make()
 
     def refuse(*args: object) -> bool:
         raise psycopg.OperationalError("the ledger went away")
 
-    monkeypatch.setattr(engine.ledger, "store_answer", refuse)
+    monkeypatch.setattr(engine.ledger, "store_answers", refuse)
     answer = engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
     assert answer.rows
+    assert engine.flush_notes(10)
     assert _outcomes(clinic_dsn, schema) == [("answered", 0)]
+
+
+def test_a_question_asked_again_before_its_note_is_written_is_not_paid_twice(
+        engines, clinic_dsn, monkeypatch) -> None:
+    """The note of the first answer is held back (a slow ledger): the same question asked
+    again meanwhile finds it queued, is given it for nothing, with the charge's own time; once
+    written, the ledger holds one charge and one stored answer. Closing the engine writes what
+    is still queued."""
+    make, schema = engines
+    engine = make()
+    release = threading.Event()
+    store = engine.ledger.store_answers
+
+    def slow(notes):  # type: ignore[no-untyped-def]
+        release.wait(30)
+        return store(notes)
+
+    monkeypatch.setattr(engine.ledger, "store_answers", slow)
+    first = engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
+    again = engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
+    assert again.reused_from is not None and again.cost == 0 and again.rows == first.rows
+    assert again.remaining == Decimal("999.5")
+    assert _outcomes(clinic_dsn, schema) == [("reserved", 0)]  # not written yet
+    with psycopg.connect(clinic_dsn) as conn:
+        paid = conn.execute(f"SELECT reserved_at FROM {schema}.charges").fetchone()
+    assert paid is not None and again.reused_from == paid[0]
+    release.set()
+    engine.close()
+    assert _outcomes(clinic_dsn, schema) == [("answered", 1)]
+    assert charges(clinic_dsn, schema, "tester") == 1
 
 
 # ---- pure parts --------------------------------------------------------------------------------
@@ -314,6 +365,7 @@ def test_an_unreadable_stored_answer_is_answered_anew(engines, clinic_dsn) -> No
     make, schema = engines
     engine = make()
     engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
+    assert engine.flush_notes(10)  # the stored answer is in the ledger, to be damaged
     with psycopg.connect(clinic_dsn, autocommit=True) as conn:
         conn.execute(f"UPDATE {schema}.stored_answers SET answer = '{{\"object\": \"Nothing\"}}'")
     again = engine.answer("tester", QUESTION, epsilon=Decimal("0.5"))
