@@ -15,6 +15,10 @@ Everything about when those notes reach the ledger lives here. Rules:
 - A note that cannot be stored (the ledger refuses it, or is unreachable) still tries to record
   the outcome alone, as the engine did before notes were queued; a failure is logged, never
   raised into an answer already released.
+- Memory is bounded: at most ``MOST_QUEUED_BYTES`` of answers wait at once. An answer arriving
+  when they are full waits for room (the ledger is then slower than the answers, and the
+  reservations will soon wait on it too); after ``CLOSE_SECONDS`` its note is given up (logged,
+  the outcome recorded alone), never the answer.
 - ``flush`` waits for everything queued so far; ``close`` flushes (bounded wait), then stops
   the thread. Nothing here touches PostgreSQL except through ``Ledger``.
 """
@@ -36,7 +40,9 @@ log = logging.getLogger("hushql.notes")
 BATCH_LIMIT = 64
 """Notes written in one ledger transaction at most."""
 CLOSE_SECONDS = 10.0
-"""How long ``close`` waits for queued notes before giving up on them (logged)."""
+"""How long ``close`` waits for queued notes, and ``add`` for room, before giving up (logged)."""
+MOST_QUEUED_BYTES = 64 << 20
+"""Answer JSON waiting to be written, at most (one answer larger than this waits alone)."""
 
 
 @dataclass(frozen=True)
@@ -62,16 +68,24 @@ class AnswerNotes:
         self._queue: deque[Note] = deque()
         self._pending: dict[tuple[str, str], Note] = {}
         self._writing = 0
+        self._queued_bytes = 0
         self._closing = False
         self._thread = threading.Thread(target=self._write_until_closed, name="hushql-notes",
                                         daemon=True)
         self._thread.start()
 
     def add(self, note: Note) -> None:
-        """Queue ``note``; from now on ``pending`` finds it until it is written."""
+        """Queue ``note``; from now on ``pending`` finds it until it is written. Waits while
+        the queue is full; RuntimeError when closed or still full after ``CLOSE_SECONDS``."""
+        size = len(note.answer)
         with self._changed:
+            if not self._changed.wait_for(
+                    lambda: self._closing or not self._queue
+                    or self._queued_bytes + size <= MOST_QUEUED_BYTES, CLOSE_SECONDS):
+                raise RuntimeError("answer notes queue full")
             if self._closing:
                 raise RuntimeError("answer notes are closed")
+            self._queued_bytes += size
             self._queue.append(note)
             self._pending[(note.analyst, note.question)] = note
             self._changed.notify_all()
@@ -110,6 +124,8 @@ class AnswerNotes:
                 batch = [self._queue.popleft()
                          for _ in range(min(self._limit, len(self._queue)))]
                 self._writing = len(batch)
+                self._queued_bytes -= sum(len(note.answer) for note in batch)
+                self._changed.notify_all()  # room for waiting answers
             try:
                 self._write(batch)
             finally:
