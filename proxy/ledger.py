@@ -635,6 +635,27 @@ _MIGRATIONS: list[tuple[str, tuple[str, ...]]] = [
               FROM jsonb_array_elements(requests) WITH ORDINALITY AS e (r, n)
         $body$
         """,
+        # Several answers' notes (see Ledger.store_answers) in one statement and one commit
+        # that does not wait for the disk; returns the charges noted 'answered'.
+        """
+        CREATE FUNCTION {schema}.store_answered_batch(notes jsonb) RETURNS SETOF bigint
+        LANGUAGE plpgsql AS $body$
+        BEGIN
+            PERFORM set_config('synchronous_commit', 'off', true);
+            INSERT INTO {schema}.stored_answers
+                   (analyst, question, statement, epsilon, charge_id, answer)
+            SELECT e.n ->> 'analyst', e.n ->> 'question', e.n ->> 'statement',
+                   (e.n ->> 'epsilon')::numeric, (e.n ->> 'charge_id')::bigint,
+                   (e.n ->> 'answer')::jsonb
+              FROM jsonb_array_elements(notes) WITH ORDINALITY AS e (n, k) ORDER BY e.k;
+            RETURN QUERY
+            UPDATE {schema}.charges SET outcome = 'answered', finished_at = clock_timestamp()
+             WHERE id IN (SELECT (n ->> 'charge_id')::bigint FROM jsonb_array_elements(notes) n)
+               AND outcome = 'reserved'
+            RETURNING id;
+        END
+        $body$
+        """,
         """
         CREATE FUNCTION {schema}.reserve_batch(requests jsonb)
         RETURNS TABLE (charge_id bigint, refusal text, refused_name text, refused_limit numeric,
@@ -1135,28 +1156,29 @@ class Ledger:
         return bool(row and row[0])
 
     def store_answers(self, notes: Sequence[_AnswerNote]) -> list[bool]:
-        """``store_answer`` for each note, in one transaction (one asynchronous commit), in
-        order; per note, whether its outcome was recorded. If the transaction fails (say one
-        note's charge already stored an answer), each note is stored alone instead, a failure
-        counting as False."""
-        rows = [[n.analyst, n.question, n.statement[:STATEMENT_EXCERPT], n.epsilon, n.charge_id,
-                 n.answer] for n in notes]
+        """``store_answer`` for each note, in one statement and one commit that does not wait
+        for the disk; per note, whether its outcome was recorded. If the statement fails (say
+        one note's charge already stored an answer), each note is stored alone instead, a
+        failure counting as False."""
+        if len(notes) == 1:
+            note = notes[0]
+            return [self.store_answer(note.analyst, note.question, note.statement,
+                                      note.epsilon, note.charge_id, note.answer)]
+        batch = Jsonb([{"analyst": n.analyst, "question": n.question,
+                        "statement": n.statement[:STATEMENT_EXCERPT], "epsilon": str(n.epsilon),
+                        "charge_id": n.charge_id, "answer": n.answer} for n in notes])
         try:
-            with self._transaction() as conn, conn.cursor() as cur:
-                cur.executemany(self._sql.store_answered, rows, returning=True)
-                recorded = []
-                for _ in rows:
-                    found = cur.fetchone()
-                    recorded.append(bool(found and found[0]))
-                    cur.nextset()
-            return recorded
+            with self._connection() as conn:
+                noted = {row[0] for row in conn.execute(self._sql.store_answered_batch,
+                                                        [batch]).fetchall()}
+            return [n.charge_id in noted for n in notes]
         except Exception:
-            if len(rows) == 1:
-                raise
+            pass
         recorded = []
-        for row in rows:
+        for n in notes:
             try:
-                recorded.append(self.store_answer(*row))
+                recorded.append(self.store_answer(n.analyst, n.question, n.statement, n.epsilon,
+                                                  n.charge_id, n.answer))
             except Exception:  # the caller records the outcome alone, and logs if it cannot
                 recorded.append(False)
         return recorded
@@ -1334,6 +1356,7 @@ class _Statements:
         self.remaining = (
             f"SELECT greatest(budget - spent, 0) FROM {s}.analyst_budgets WHERE analyst = %s")
         self.store_answered = f"SELECT {s}.store_answered(%s, %s, %s, %s, %s, %s::jsonb)"
+        self.store_answered_batch = f"SELECT * FROM {s}.store_answered_batch(%s)"
         # The charge's own time: when the answer was paid for.
         self.stored_answer = (
             f"SELECT a.answer, c.reserved_at, a.charge_id, greatest(b.budget - b.spent, 0) "

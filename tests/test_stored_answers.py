@@ -241,6 +241,15 @@ def test_notes_written_together_fall_back_one_by_one(engines, clinic_dsn) -> Non
                   dt.datetime.now(dt.timezone.utc)) for i, charge in enumerate(charges)]
     assert ledger.store_answers(notes) == [True, False, True]
     assert _outcomes(clinic_dsn, schema) == [("answered", 1), ("reserved", 1), ("answered", 1)]
+    # A batch that stores cleanly: one statement; a charge already finished is not noted again.
+    more = [ledger.reserve("tester", ["people"], Decimal("0.5"), QUESTION, "f").charge_id
+            for _ in range(2)]
+    ledger.finish(more[1], "failed")
+    notes = [Note("tester", f"r{i}", QUESTION, Decimal("0.5"), charge, '{"k": [1, "two"]}',
+                  dt.datetime.now(dt.timezone.utc)) for i, charge in enumerate(more)]
+    assert ledger.store_answers(notes) == [True, False]
+    assert _outcomes(clinic_dsn, schema)[3:] == [("answered", 1), ("failed", 1)]
+    assert ledger.stored_answer("tester", "r0").answer == {"k": [1, "two"]}
 
 
 def test_an_answer_whose_store_fails_is_still_noted_answered(engines, clinic_dsn,
