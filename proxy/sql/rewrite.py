@@ -110,7 +110,8 @@ Contributions"), never cell by cell. The backend query:
    its partials, each rounded toward zero: ``trunc(p * w) = sign(p) * min(|p|, floor(|p| B_j /
    total_j), ...)``, computed with integer division (the floor of a minimum is the minimum of
    the floors), so it is exact. AVG's sum and count shrink by the same factor.
-5. sums per cell, joined to the list of declared cells (empty cells read 0); per bound the
+5. sums per cell (each of the two parts below summed per cell on its own, then added),
+   joined to the list of declared cells (empty cells read 0); per bound the
    clipped-away total (see 7). An individual whose totals are all within its bounds has
    ``w = 1`` and keeps every partial as it is (the rounding of 4 gives ``f(N_i) - f(N_{i-1}) =
    p_i`` when f is the identity, with or without the half) and loses nothing; only the others
@@ -1239,8 +1240,15 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     # Per cell, every partial as it is, plus what scaling changed (kept - raw) of the scaled
     # ones: the sum of the kept partials (module notes, 5).
     ordinal_names = [f"i{j}" for j in range(len(plan.keys))]
-    changes = (f"SELECT {', '.join([f'q.{i}' for i in ordinal_names] + [f'q.m{n}' for n in range(len(plan.measures))])} FROM q "
-               f"UNION ALL SELECT {', '.join([f'w.{i}' for i in ordinal_names] + [f'w.m{n} - w.raw{n}' for n in range(len(plan.measures))])} FROM w")
+    # Each side summed per cell first: where q is read again from the table (one-row cells),
+    # its sum is then a parallel aggregate of its own rather than an Append of every row
+    # (measured, day by day with chosen bounds at 10M rows: 9.2x -> 7.2x the plain query).
+    def summed_side(alias: str, values: list[str]) -> str:
+        grouped = f" GROUP BY {', '.join(f'{alias}.{i}' for i in ordinal_names)}" if ordinal_names else ""
+        return (f"SELECT {', '.join([f'{alias}.{i}' for i in ordinal_names] + [f'SUM({v}) AS m{n}' for n, v in enumerate(values)])} "
+                f"FROM {alias}{grouped}")
+    changes = (summed_side("q", [f"q.m{n}" for n in range(len(plan.measures))]) + " UNION ALL "
+               + summed_side("w", [f"w.m{n} - w.raw{n}" for n in range(len(plan.measures))]))
     measures = [f"COALESCE(SUM(u.m{n}), 0) AS m{n}" for n in range(len(plan.measures))]
     tail = [f"b.b{j}" for j in range(len(bounds))] + [f"clip.clipped{j}" for j in range(len(bounds))]
     if plan.keys:
