@@ -587,6 +587,11 @@ def test_which_queries_check_the_key_domain(days) -> None:
     # A numeric type of another scale could hold values between steps: rounded once per cell
     # or once per (household, cell), the two branches could differ, so the query is not split.
     assert not checked(whole.format("jan_keyed"), whole=frozenset())
+    # A filtered sum (its own derived column) is rounded to steps per row, as is a bounded value.
+    assert checked("SELECT SUM(litres) FILTER (WHERE district = 'Old Mill') FROM jan_keyed",
+                   whole=frozenset())
+    assert checked("SELECT SUM(CASE WHEN litres > 100 THEN 1 ELSE 0 END) FROM jan_keyed",
+                   whole=frozenset())  # a bounded value: integers
     assert checked("SELECT COUNT(*) FROM jan_keyed", whole=frozenset())  # no sum
     assert not checked(whole.format("jan_keyed"), keys=frozenset())
     assert not checked(whole.format("jan_chosen"))  # a chosen bound may clip

@@ -591,7 +591,7 @@ def _sums_in_whole_steps(plan: Plan, exact: frozenset[str], whole_steps: frozens
     integer columns and bounded values, inexact columns (rounded per row), and exact columns
     whose type holds only multiples of the step."""
     for measure in plan.measures:
-        if measure.kind in ("sum", "midpoint_sum") and measure.value is None:
+        if measure.kind in ("sum", "midpoint_sum"):  # a bounded value's column is an integer
             column = plan.table.columns[measure.column]  # type: ignore[index]
             name: str = measure.column  # type: ignore[assignment]
             if _in_column_units(column, name, exact) and name not in whole_steps:
