@@ -121,7 +121,10 @@ Contributions"), never cell by cell. The backend query:
    individuals' partials, ``kept - raw`` (a partial and its kept share are NULL together, and
    SUM skips both), and the clipped-away totals are summed over the scaled individuals alone
    (the others' terms are 0): the same numbers, with the sort and the divisions confined to
-   the individuals a bound scales.
+   the individuals a bound scales. Where each (individual, cell) is one row (1) and every sum
+   is in whole steps (9: turning a sum into steps once per cell then gives the sum of the
+   per-row conversions), the partials' cell sums are the row query's cells over the rows with
+   an individual, which convert once per cell.
 
 Sensitivity, given the bounds. Take neighbours D and D' = D minus individual u. Every other
 individual's partials, totals and factor are computed from its own rows only, so they are equal
@@ -496,7 +499,8 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
     else:
         tree = _individual_table_query(plan, bounds, measure_bounds, exact_columns,
                                        middle=buckets > 1,
-                                       one_row_cells=_cells_hold_one_row(plan, unique_keys))
+                                       one_row_cells=_cells_hold_one_row(plan, unique_keys),
+                                       whole=_sums_in_whole_steps(plan, exact_columns, whole_steps))
         checked = _checked_key(plan, unique_keys) if not any(b.chosen for b in bounds) \
             and not plan.joins and buckets == 1 and _sums_in_whole_steps(plan, exact_columns, whole_steps) \
             else None
@@ -1168,7 +1172,7 @@ def _cells_hold_one_row(plan: Plan, unique_keys: frozenset[frozenset[str]]) -> b
 
 def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
                             exact: frozenset[str], middle: bool = False,
-                            one_row_cells: bool = False) -> exp.Select:
+                            one_row_cells: bool = False, whole: bool = False) -> exp.Select:
     """The per-individual rewrite (module notes): partials per (individual, cell) in the
     domains (``middle``: a percentile plan's histogram, thinned about the middle), totals per
     individual, the bounds (declared, or chosen by noisy max over the
@@ -1252,7 +1256,13 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
             f"SUM({v}) AS m{n}" for n, v in enumerate(values)]
         grouped = f" GROUP BY {', '.join(f'{alias}.{i}' for i in ordinal_names)}" if ordinal_names else ""
         return f"SELECT {', '.join(columns)} FROM {alias}{grouped}"
-    changes = (summed_side("q", [f"q.m{n}" for n in range(len(plan.measures))]) + " UNION ALL "
+    # One-row partials whose sums are in whole steps: the partials' cell sums are the row
+    # query's cells (module notes, 5), which turn a numeric sum into steps once per cell, not
+    # once per row.
+    by_rows = one_row_cells and whole
+    as_they_are = (f"SELECT {', '.join([f'qc.{i}' for i in ordinal_names] + [f'qc.m{n}' for n in range(len(plan.measures))])} FROM qc"
+                   if by_rows else summed_side("q", [f"q.m{n}" for n in range(len(plan.measures))]))
+    changes = (as_they_are + " UNION ALL "
                + summed_side("w", [f"w.m{n} - w.raw{n}" for n in range(len(plan.measures))]))
     measures = [f"COALESCE(SUM(u.m{n}), 0) AS m{n}" for n in range(len(plan.measures))]
     tail = [f"b.b{j}" for j in range(len(bounds))] + [f"clip.clipped{j}" for j in range(len(bounds))]
@@ -1277,8 +1287,10 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     # in parallel) rather than stored, one row per table row (measured at 10M rows: 10.7x the
     # plain query stored, 5.7x read again; the same snapshot, so the same rows each time).
     inlined = {"q": False} if one_row_cells else {}
-    for name, part in [("q", q), ("t", t), *histograms, ("b", b), ("s", s), ("w", w), ("lost", lost),
-                       ("clipped", clipped)]:
+    owned = exp.Not(this=exp.Is(this=column_node(policy.individual.column), expression=exp.Null()))
+    cells = [("qc", _row_table_query(plan, exact, owned))] if by_rows else []
+    for name, part in [("q", q), *cells, ("t", t), *histograms, ("b", b), ("s", s), ("w", w),
+                       ("lost", lost), ("clipped", clipped)]:
         outer = outer.with_(name, as_=part, materialized=True if name.startswith("h")
                             else inlined.get(name), copy=False)
     return outer
