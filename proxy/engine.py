@@ -81,7 +81,7 @@ from proxy.sql import statement as slots
 from proxy.sql.statement import BoundStatement
 from proxy.spark_backend import SparkBackend, is_spark_dsn
 from proxy.sql.rewrite import (BOUND_NOISE_SETTING, SCORE_SENSITIVITY, Rewritten, centres_averages,
-                                countable_keys, loss_cap, rewrite)
+                                countable_keys, loss_cap, rewrite, whole_step_columns)
 
 __all__ = ["Engine", "Prepared", "QueryControl", "Statement", "paid_text", "parse_epsilon"]
 
@@ -350,7 +350,8 @@ class Engine:
             read = PreparedRead(plan, read_sql(plan))
             self.backend.check(read.sql)
             return read
-        rewritten = rewrite(plan, self._plan_exact_columns(plan), self._plan_unique_keys(plan))
+        rewritten = rewrite(plan, self._plan_exact_columns(plan), self._plan_unique_keys(plan),
+                            self._plan_whole_steps(plan))
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         return Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                         fingerprint=_fingerprint(rewritten.sql),
@@ -445,6 +446,10 @@ class Engine:
         ``proxy.sql.rewrite`` notes 8)."""
         return frozenset() if plan.joins else self._source_facts(plan.table.table).unique_keys
 
+    def _plan_whole_steps(self, plan: Plan) -> frozenset[str]:
+        """The plan's exact columns holding only whole steps (none for joins, as unique keys)."""
+        return frozenset() if plan.joins else self._source_facts(plan.table.table).whole_steps
+
     def _source_facts(self, table: str) -> SourceFacts:
         """What the backend's catalog says about ``table``'s source; looked up once per table,
         and again after a reload. On any doubt, nothing: sums are then rounded to steps per row,
@@ -459,7 +464,8 @@ class Engine:
             known = SourceFacts(
                 exact_columns=frozenset(name for name, kind in types.items()
                                         if kind.startswith("numeric")),
-                unique_keys=countable_keys(policy, keys, types))
+                unique_keys=countable_keys(policy, keys, types),
+                whole_steps=whole_step_columns(policy, types))
             with self._cache_lock:
                 self._facts[table] = known
         return known
@@ -918,6 +924,7 @@ class SourceFacts:
 
     exact_columns: frozenset[str]
     unique_keys: frozenset[frozenset[str]]
+    whole_steps: frozenset[str] = frozenset()  # numeric columns of whole steps (rewrite, 9)
 
 
 _Fact = TypeVar("_Fact")

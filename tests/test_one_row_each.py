@@ -25,7 +25,7 @@ from proxy.ledger import Ledger
 from proxy.policy import Policies, load_policies
 from proxy.spark_backend import SparkBackend
 from proxy.sql.analyse import analyse
-from proxy.sql.rewrite import rewrite
+from proxy.sql.rewrite import rewrite, whole_step_columns
 from tests.bounds_helpers import run_with_bounds
 from tests.policy_fixtures import DUMMY_VERIFIER
 
@@ -211,13 +211,12 @@ def test_fast_cells_equal_postgresql_and_the_per_individual_query(homes, n: int,
         assert fast.held_rows == 1 and not slow.held_by
         assert (fast.bounds, fast.declared_sensitivities) == (slow.bounds, slow.declared_sensitivities)
         fast_rows, slow_rows = run_with_bounds(conn, fast), run_with_bounds(conn, slow)
-        # Same keys and bound values as the per-individual query, nothing clipped. (The slow
-        # query's clipped figure of a declared bound is never noised nor shown; it also counts
-        # a cap for each household whose partial is NULL, so it is not compared.)
+        # Same keys and bound values as the per-individual query, nothing clipped by either
+        # (a household whose floor area is NULL loses nothing: module notes, 7).
         keys, measures, count = len(plan.keys), len(plan.measures), len(fast.bounds)
         assert [r[:keys] + r[keys + measures:keys + measures + count] for r in fast_rows] == \
             [r[:keys] + r[keys + measures:keys + measures + count] for r in slow_rows]
-        assert all(v == 0 for r in fast_rows for v in r[keys + measures + count:])
+        assert all(v == 0 for r in fast_rows + slow_rows for v in r[keys + measures + count:])
         got = _measures(plan, fast_rows)
         if not exact:  # the same rounding (per row): equal cells
             assert got == _measures(plan, slow_rows), table
@@ -357,6 +356,13 @@ DAILY_SOURCES = {
     # Enforced, but a timestamp takes many values inside a day: not a key that bounds rows.
     "stamped": "ALTER TABLE days.stamped ALTER reading_date TYPE timestamp; "
                "ALTER TABLE days.stamped ADD PRIMARY KEY (household_id, reading_date)",
+    # Keyed, and every reading in January (the declared days of the jan_ tables).
+    "january": "DELETE FROM days.january WHERE reading_date NOT BETWEEN '2026-01-01' AND "
+               "'2026-01-31'; ALTER TABLE days.january ADD PRIMARY KEY (household_id, reading_date)",
+    # January too, but household 5 has 40 more readings without a date (distinct to UNIQUE).
+    "nulled": "DELETE FROM days.nulled WHERE reading_date NOT BETWEEN '2026-01-01' AND "
+              "'2026-01-31'; ALTER TABLE days.nulled ADD UNIQUE (household_id, reading_date); "
+              "INSERT INTO days.nulled SELECT 5, 'Old Mill', NULL, 9 FROM generate_series(1, 40)",
 }
 
 # name -> (source, most_rows, bounds, last declared day)
@@ -455,10 +461,9 @@ def test_held_daily_cells_equal_the_per_individual_query(days, n: int, exact: fr
         assert len(fast_rows) == fast.cells > 1
         assert [row[:cells] for row in fast_rows] == [row[:cells] for row in slow_rows], table
         assert any(row[len(plan.keys)] for row in fast_rows)  # not all empty
-        # Nothing clipped. (The per-individual query's clipped figure of a declared bound is
-        # never noised nor shown; it counts the rounding allowance for each household whose
-        # litres are all NULL, 29 and 58 here, so it is not compared.)
-        assert all(v == 0 for row in fast_rows for v in row[cells:]), table
+        # Nothing clipped, by either query: households 29 and 58, whose litres are all NULL in
+        # January, lose nothing (module notes, 7).
+        assert all(v == 0 for row in fast_rows + slow_rows for v in row[cells:]), table
 
 
 def test_one_daily_household_moves_each_measure_at_most_its_stated_sensitivity(days) -> None:
@@ -503,18 +508,26 @@ ONE_ROW_QUERIES = [
 ]
 
 
-@pytest.mark.parametrize("exact", [frozenset(), frozenset({"litres"})], ids=["per-row", "exact"])
+@pytest.mark.parametrize("exact,whole", [(frozenset(), frozenset()), (frozenset({"litres"}), frozenset()),
+                                         (frozenset({"litres"}), frozenset({"litres"}))],
+                         ids=["per-row", "exact", "exact-whole-steps"])
 @pytest.mark.parametrize("n", range(len(ONE_ROW_QUERIES)), ids=[q[:40] for q in ONE_ROW_QUERIES])
-def test_partials_of_one_row_cells_equal_the_grouped_ones(days, n: int, exact: frozenset[str]) -> None:
+def test_partials_of_one_row_cells_equal_the_grouped_ones(days, n: int, exact: frozenset[str],
+                                                          whole: frozenset[str]) -> None:
     """Chosen bounds (so the per-individual query): the partials read row by row where the key
     holds each (household, cell) to one row give every figure the grouped partials give, bound
     values and clipped-away totals included, at the ceilings and at about 2/5 of them (which
-    clip most households)."""
+    clip most households); with sums in whole steps, the partials' cell sums come from the row
+    query (module notes, 5)."""
     conn, policies, _ = days
     plan = analyse(ONE_ROW_QUERIES[n].format(t="jan_chosen"), policies, "tester")
-    fast, slow = rewrite(plan, exact, DATE_KEY), rewrite(plan, exact)
-    assert not fast.held_by and "GROUP BY 1, 2" in slow.sql
-    assert fast.sql.count("GROUP BY 1, 2") == slow.sql.count("GROUP BY 1, 2") - 1
+    fast, slow = rewrite(plan, exact, DATE_KEY, whole), rewrite(plan, exact, frozenset(), whole)
+    by_rows = exact <= whole or not any(m.kind in ("sum", "midpoint_sum") and m.column in exact
+                                         for m in plan.measures)
+    assert ("qc AS" in fast.sql) is by_rows and "qc AS" not in slow.sql
+    # The partials grouped per (household, cell) in the slow query only.
+    partials = f"GROUP BY {', '.join(str(j + 1) for j in range(len(plan.keys) + 1))}) AS p"
+    assert not fast.held_by and partials in slow.sql and partials not in fast.sql
     clipped = 0
     for values in (tuple(b.ceiling for b in fast.bounds),
                    tuple(min(b.candidates, key=lambda c: abs(5 * c - 2 * b.ceiling))
@@ -523,3 +536,140 @@ def test_partials_of_one_row_cells_equal_the_grouped_ones(days, n: int, exact: f
         assert fast_rows == run_with_bounds(conn, slow, values), values
         clipped += sum(fast_rows[0][-len(fast.bounds):])
     assert clipped > 0  # the smaller bounds did clip
+
+
+def test_a_household_whose_sum_is_all_null_loses_nothing(days) -> None:
+    """Chosen bounds at their ceilings clip nobody in January (31 days at most): households 29
+    and 58, whose litres there are all NULL, add nothing to the clipped-away figure (their
+    partials and kept shares are NULL together: module notes, 7). With LEAST(NULL, cap) = cap
+    each of them added a full cap."""
+    conn, policies, _ = days
+    sql = "SELECT reading_date, COUNT(*), SUM(litres) FROM jan_chosen GROUP BY reading_date"
+    rewritten = rewrite(analyse(sql, policies, "tester"), frozenset({"litres"}))
+    nulls = conn.execute("SELECT household_id FROM days.keyed WHERE reading_date BETWEEN "
+                         "'2026-01-01' AND '2026-01-31' GROUP BY 1 HAVING COUNT(litres) = 0 "
+                         "ORDER BY 1").fetchall()
+    assert nulls == [(29,), (58,)]
+    rows = run_with_bounds(conn, rewritten)
+    assert all(v == 0 for row in rows for v in row[-len(rewritten.bounds):])
+
+
+# ---- a key column not grouped by: the query checks its domain (module notes, 9) -------------
+
+LITRES = frozenset({"litres"})
+CHECKED_QUERIES = [
+    "SELECT COUNT(*), SUM(litres), AVG(litres), COUNT(DISTINCT household_id) FROM {t}",
+    "SELECT district, COUNT(*) FILTER (WHERE litres > 100), SUM(litres), VARIANCE(litres) "
+    "FROM {t} GROUP BY district",
+    "SELECT district, SUM(litres), COUNT(litres) FROM {t} WHERE household_id < 40 GROUP BY district",
+    "SELECT COUNT(*), SUM(litres) FROM {t} WHERE reading_date BETWEEN '2026-01-01' AND '2026-01-31'",
+]
+
+
+def _checked(rewritten) -> bool:
+    return "WITH g AS MATERIALIZED" in rewritten.sql
+
+
+def _ran_per_individual(conn: psycopg.Connection, rewritten) -> bool:
+    """Whether PostgreSQL ran the per-individual branch of a checked query (its partials ``q``
+    were computed), from EXPLAIN ANALYZE."""
+    with conn.transaction(force_rollback=True):
+        lines = [row[0] for row in conn.execute(f"EXPLAIN (ANALYZE, COSTS OFF) {rewritten.sql}")]
+    start = next(i for i, line in enumerate(lines) if line.strip() == "CTE q")
+    return "never executed" not in lines[start + 1]
+
+
+def test_which_queries_check_the_key_domain(days) -> None:
+    _, policies, engine = days
+
+    def checked(sql: str, exact: frozenset[str] = LITRES, whole: frozenset[str] = LITRES,
+                keys: frozenset[frozenset[str]] = DATE_KEY) -> bool:
+        rewritten = rewrite(analyse(sql, policies, "tester"), exact, keys, whole)
+        assert not rewritten.held_by  # the database alone does not hold these
+        return _checked(rewritten)
+
+    whole = "SELECT COUNT(*), SUM(litres) FROM {}"
+    assert checked(whole.format("jan_keyed"))
+    assert checked("SELECT district, SUM(litres) FROM jan_keyed GROUP BY district")
+    assert checked(whole.format("jan_keyed"), exact=frozenset(), whole=frozenset())  # per row
+    # A numeric type of another scale could hold values between steps: rounded once per cell
+    # or once per (household, cell), the two branches could differ, so the query is not split.
+    assert not checked(whole.format("jan_keyed"), whole=frozenset())
+    # A filtered sum (its own derived column) is rounded to steps per row, as is a bounded value.
+    assert checked("SELECT SUM(litres) FILTER (WHERE district = 'Old Mill') FROM jan_keyed",
+                   whole=frozenset())
+    assert checked("SELECT SUM(CASE WHEN litres > 100 THEN 1 ELSE 0 END) FROM jan_keyed",
+                   whole=frozenset())  # a bounded value: integers
+    assert checked("SELECT COUNT(*) FROM jan_keyed", whole=frozenset())  # no sum
+    assert not checked(whole.format("jan_keyed"), keys=frozenset())
+    assert not checked(whole.format("jan_chosen"))  # a chosen bound may clip
+    assert not checked(whole.format("jan_30"))  # 31 declared days against most_rows 30
+    assert not checked(whole.format("two_months"))  # 59 days against 31
+    # The engine reads the scale from the catalog: numeric(7, 1), in steps of 0.1.
+    assert _checked(engine.prepare("tester", whole.format("jan_keyed")).rewritten)
+
+
+def test_whole_step_columns_follow_the_type_scale(days) -> None:
+    _, policies, _ = days
+    policy = policies.tables["jan_keyed"]  # litres in steps of 0.1
+    for kind, whole in (("numeric(7,1)", True), ("numeric(7,0)", True), ("numeric(9,3)", False),
+                        ("numeric", False), ("double precision", False)):
+        assert whole_step_columns(policy, {"litres": kind}) == (LITRES if whole else frozenset()), kind
+    coarse = policy.model_copy(update={"columns": {**policy.columns, "litres": policy.columns[
+        "litres"].model_copy(update={"step": Decimal("0.05")})}})
+    assert whole_step_columns(coarse, {"litres": "numeric(7,1)"}) == LITRES  # 0.1 = 2 x 0.05
+    assert whole_step_columns(policy, {"district": "numeric(7,1)"}) == frozenset()  # not a number
+
+
+@pytest.mark.parametrize("exact", [frozenset(), LITRES], ids=["per-row", "exact"])
+@pytest.mark.parametrize("n", range(len(CHECKED_QUERIES)), ids=[q[:40] for q in CHECKED_QUERIES])
+def test_checked_cells_equal_the_per_individual_query(days, n: int, exact: frozenset[str]) -> None:
+    """Every figure equal, noise off, whichever branch runs: the row query where no counted
+    reading lies outside January (the january source; a WHERE on the date), the per-individual
+    query where one does (keyed: other days; nulled: readings without a date)."""
+    conn, policies, _ = days
+    branches = set()
+    for table in ("jan_january", "jan_keyed", "jan_nulled"):
+        plan = analyse(CHECKED_QUERIES[n].format(t=table), policies, "tester")
+        checked, slow = rewrite(plan, exact, DATE_KEY, LITRES), rewrite(plan, exact)
+        assert _checked(checked) and not _checked(slow)
+        assert (checked.bounds, checked.declared_sensitivities) == (slow.bounds, slow.declared_sensitivities)
+        rows = run_with_bounds(conn, checked)
+        assert len(rows) == checked.cells and any(row[len(plan.keys)] for row in rows)
+        assert rows == run_with_bounds(conn, slow), table
+        outside = table != "jan_january" and "reading_date" not in CHECKED_QUERIES[n]
+        assert _ran_per_individual(conn, checked) is outside, table
+        branches.add(outside)
+    assert branches == ({True, False} if "reading_date" not in CHECKED_QUERIES[n] else {False})
+
+
+def test_one_household_moves_a_checked_answer_at_most_its_sensitivity(days) -> None:
+    """Removing a household moves each measure by at most its sensitivity, also when that
+    household's one reading outside January switches the branch."""
+    conn, policies, _ = days
+    sql = ("SELECT district, COUNT(*), SUM(litres), COUNT(DISTINCT household_id) FROM jan_january "
+           "GROUP BY district")
+    plan = analyse(sql, policies, "tester")
+    rewritten = rewrite(plan, LITRES, DATE_KEY, LITRES)
+    assert _checked(rewritten)
+    sensitivities = rewritten.sensitivities(tuple(b.ceiling for b in rewritten.bounds))
+    assert sensitivities == (31, 155000, 3)
+    with conn.transaction(force_rollback=True):
+        # Household 7 reads once more, on a day outside the declared ones, above the range.
+        conn.execute("INSERT INTO days.january VALUES (7, 'Old Mill', DATE '2025-12-31', 9000)")
+        assert _ran_per_individual(conn, rewritten)
+        largest = _largest_moves(conn, plan, rewritten, "days.january", (7,))
+        counted = conn.execute("SELECT COUNT(*), COUNT(DISTINCT district) FROM days.january "
+                               "WHERE household_id = 7 AND district <> 'Riverside'").fetchone()
+        with conn.transaction(force_rollback=True):
+            conn.execute("DELETE FROM days.january WHERE household_id = 7")
+            assert not _ran_per_individual(conn, rewritten)
+    # Its counted readings (the one outside January among them: the date is not grouped by)
+    # and the districts it reads in; nobody reaches 31 rows, so nothing is scaled.
+    assert (largest[0], largest[2]) == counted
+    households = (1, 2, 29, 58, 60)
+    largest = _largest_moves(conn, plan, rewritten, "days.january", households)
+    most = conn.execute("SELECT MAX(n) FROM (SELECT COUNT(*) AS n FROM days.january WHERE "
+                        "household_id = ANY(%s) AND district <> 'Riverside' GROUP BY household_id) "
+                        "AS c", (list(households),)).fetchone()
+    assert (largest[0],) == most  # each household moves the count by its counted readings

@@ -426,10 +426,10 @@ def key_expression(key: GroupKey, column: ColumnPolicy, *, ordinals: bool) -> ex
                           default=results[-1])
     else:
         raise ValueError(f"a {key.form} key is the column itself")
-    return exp.Case(ifs=[exp.If(this=_inside_domain(key.column, column), true=bucket)])
+    return exp.Case(ifs=[exp.If(this=inside_domain(key.column, column), true=bucket)])
 
 
-def _inside_domain(name: str, column: ColumnPolicy) -> exp.Expression:
+def inside_domain(name: str, column: ColumnPolicy) -> exp.Expression:
     """True exactly for values in the column's declared domain (NULL and NaN are outside)."""
     if column.kind == "category":
         return exp.In(this=column_node(name), expressions=[exp.Literal.string(v) for v in column.values or []])
