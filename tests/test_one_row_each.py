@@ -557,56 +557,25 @@ def test_a_household_whose_sum_is_all_null_loses_nothing(days) -> None:
 # ---- a key column not grouped by: the query checks its domain (module notes, 9) -------------
 
 LITRES = frozenset({"litres"})
-CHECKED_QUERIES = [
-    "SELECT COUNT(*), SUM(litres), AVG(litres), COUNT(DISTINCT household_id) FROM {t}",
-    "SELECT district, COUNT(*) FILTER (WHERE litres > 100), SUM(litres), VARIANCE(litres) "
-    "FROM {t} GROUP BY district",
-    "SELECT district, SUM(litres), COUNT(litres) FROM {t} WHERE household_id < 40 GROUP BY district",
-    "SELECT COUNT(*), SUM(litres) FROM {t} WHERE reading_date BETWEEN '2026-01-01' AND '2026-01-31'",
-]
 
 
 def _checked(rewritten) -> bool:
     return "WITH g AS MATERIALIZED" in rewritten.sql
 
 
-def _ran_per_individual(conn: psycopg.Connection, rewritten) -> bool:
-    """Whether PostgreSQL ran the per-individual branch of a checked query (its partials ``q``
-    were computed), from EXPLAIN ANALYZE."""
-    with conn.transaction(force_rollback=True):
-        lines = [row[0] for row in conn.execute(f"EXPLAIN (ANALYZE, COSTS OFF) {rewritten.sql}")]
-    start = next(i for i, line in enumerate(lines) if line.strip() == "CTE q")
-    return "never executed" not in lines[start + 1]
-
-
-def test_which_queries_check_the_key_domain(days) -> None:
+def test_no_query_picks_its_branch_by_a_count_of_the_data(days) -> None:
+    """Rewrite notes 9: a whole-table or per-district query over a (household, date) key whose
+    date is not grouped by is never split into a row-query branch and a per-individual branch
+    chosen by a count the query makes: one row a WHERE picks out would switch the branch, and
+    with it the answer's time. Whatever the key, scale or bounds, the per-individual query
+    runs."""
     _, policies, engine = days
-
-    def checked(sql: str, exact: frozenset[str] = LITRES, whole: frozenset[str] = LITRES,
-                keys: frozenset[frozenset[str]] = DATE_KEY) -> bool:
-        rewritten = rewrite(analyse(sql, policies, "tester"), exact, keys, whole)
-        assert not rewritten.held_by  # the database alone does not hold these
-        return _checked(rewritten)
-
-    whole = "SELECT COUNT(*), SUM(litres) FROM {}"
-    assert checked(whole.format("jan_keyed"))
-    assert checked("SELECT district, SUM(litres) FROM jan_keyed GROUP BY district")
-    assert checked(whole.format("jan_keyed"), exact=frozenset(), whole=frozenset())  # per row
-    # A numeric type of another scale could hold values between steps: rounded once per cell
-    # or once per (household, cell), the two branches could differ, so the query is not split.
-    assert not checked(whole.format("jan_keyed"), whole=frozenset())
-    # A filtered sum (its own derived column) is rounded to steps per row, as is a bounded value.
-    assert checked("SELECT SUM(litres) FILTER (WHERE district = 'Old Mill') FROM jan_keyed",
-                   whole=frozenset())
-    assert checked("SELECT SUM(CASE WHEN litres > 100 THEN 1 ELSE 0 END) FROM jan_keyed",
-                   whole=frozenset())  # a bounded value: integers
-    assert checked("SELECT COUNT(*) FROM jan_keyed", whole=frozenset())  # no sum
-    assert not checked(whole.format("jan_keyed"), keys=frozenset())
-    assert not checked(whole.format("jan_chosen"))  # a chosen bound may clip
-    assert not checked(whole.format("jan_30"))  # 31 declared days against most_rows 30
-    assert not checked(whole.format("two_months"))  # 59 days against 31
-    # The engine reads the scale from the catalog: numeric(7, 1), in steps of 0.1.
-    assert _checked(engine.prepare("tester", whole.format("jan_keyed")).rewritten)
+    for sql in ("SELECT COUNT(*), SUM(litres) FROM jan_keyed",
+                "SELECT district, SUM(litres) FROM jan_keyed GROUP BY district",
+                "SELECT COUNT(*) FROM jan_keyed WHERE household_id = 7"):
+        rewritten = rewrite(analyse(sql, policies, "tester"), LITRES, DATE_KEY, LITRES)
+        assert not rewritten.held_by and not _checked(rewritten), sql
+    assert not _checked(engine.prepare("tester", "SELECT SUM(litres) FROM jan_keyed").rewritten)
 
 
 def test_whole_step_columns_follow_the_type_scale(days) -> None:
@@ -621,55 +590,3 @@ def test_whole_step_columns_follow_the_type_scale(days) -> None:
     assert whole_step_columns(policy, {"district": "numeric(7,1)"}) == frozenset()  # not a number
 
 
-@pytest.mark.parametrize("exact", [frozenset(), LITRES], ids=["per-row", "exact"])
-@pytest.mark.parametrize("n", range(len(CHECKED_QUERIES)), ids=[q[:40] for q in CHECKED_QUERIES])
-def test_checked_cells_equal_the_per_individual_query(days, n: int, exact: frozenset[str]) -> None:
-    """Every figure equal, noise off, whichever branch runs: the row query where no counted
-    reading lies outside January (the january source; a WHERE on the date), the per-individual
-    query where one does (keyed: other days; nulled: readings without a date)."""
-    conn, policies, _ = days
-    branches = set()
-    for table in ("jan_january", "jan_keyed", "jan_nulled"):
-        plan = analyse(CHECKED_QUERIES[n].format(t=table), policies, "tester")
-        checked, slow = rewrite(plan, exact, DATE_KEY, LITRES), rewrite(plan, exact)
-        assert _checked(checked) and not _checked(slow)
-        assert (checked.bounds, checked.declared_sensitivities) == (slow.bounds, slow.declared_sensitivities)
-        rows = run_with_bounds(conn, checked)
-        assert len(rows) == checked.cells and any(row[len(plan.keys)] for row in rows)
-        assert rows == run_with_bounds(conn, slow), table
-        outside = table != "jan_january" and "reading_date" not in CHECKED_QUERIES[n]
-        assert _ran_per_individual(conn, checked) is outside, table
-        branches.add(outside)
-    assert branches == ({True, False} if "reading_date" not in CHECKED_QUERIES[n] else {False})
-
-
-def test_one_household_moves_a_checked_answer_at_most_its_sensitivity(days) -> None:
-    """Removing a household moves each measure by at most its sensitivity, also when that
-    household's one reading outside January switches the branch."""
-    conn, policies, _ = days
-    sql = ("SELECT district, COUNT(*), SUM(litres), COUNT(DISTINCT household_id) FROM jan_january "
-           "GROUP BY district")
-    plan = analyse(sql, policies, "tester")
-    rewritten = rewrite(plan, LITRES, DATE_KEY, LITRES)
-    assert _checked(rewritten)
-    sensitivities = rewritten.sensitivities(tuple(b.ceiling for b in rewritten.bounds))
-    assert sensitivities == (31, 155000, 3)
-    with conn.transaction(force_rollback=True):
-        # Household 7 reads once more, on a day outside the declared ones, above the range.
-        conn.execute("INSERT INTO days.january VALUES (7, 'Old Mill', DATE '2025-12-31', 9000)")
-        assert _ran_per_individual(conn, rewritten)
-        largest = _largest_moves(conn, plan, rewritten, "days.january", (7,))
-        counted = conn.execute("SELECT COUNT(*), COUNT(DISTINCT district) FROM days.january "
-                               "WHERE household_id = 7 AND district <> 'Riverside'").fetchone()
-        with conn.transaction(force_rollback=True):
-            conn.execute("DELETE FROM days.january WHERE household_id = 7")
-            assert not _ran_per_individual(conn, rewritten)
-    # Its counted readings (the one outside January among them: the date is not grouped by)
-    # and the districts it reads in; nobody reaches 31 rows, so nothing is scaled.
-    assert (largest[0], largest[2]) == counted
-    households = (1, 2, 29, 58, 60)
-    largest = _largest_moves(conn, plan, rewritten, "days.january", households)
-    most = conn.execute("SELECT MAX(n) FROM (SELECT COUNT(*) AS n FROM days.january WHERE "
-                        "household_id = ANY(%s) AND district <> 'Riverside' GROUP BY household_id) "
-                        "AS c", (list(households),)).fetchone()
-    assert (largest[0],) == most  # each household moves the count by its counted readings

@@ -306,33 +306,19 @@ domains, fall in no bucket and are not ranked.
    The key is read when a table is first planned and again after a policy reload; a constraint
    dropped on a running proxy needs a reload (as any change of a source's columns does).
 
-9. A key column not grouped by, its domain checked by the query. Take a key U of note 8 some
-   of whose columns (``unchecked``, e.g. the date of a whole-table or per-district query) are
-   not grouped by, and K computed as in 8 with each such column's whole declared domain
-   (``_checked_key``), K <= most_rows, all bounds declared, one table, no histogram. A counted
-   row whose unchecked columns all lie in their declared domains (``keys.inside_domain``: NULL
-   and NaN are outside) is held as in 8, so if no counted row lies outside (rows with an
-   individual passing the WHERE; FILTER only removes rows, so it is ignored, a superset), every
-   individual has at most K <= most_rows counted rows. The query counts such rows first (``g``,
-   one parallel scan, no grouping) and, on PostgreSQL, runs only one branch, by a one-time
-   filter on that count (``_gated_query``): none, the row query of 8; some, the per-individual
-   query of 1-7, unchanged.
-
-   Same function, so the same argument. The branch depends on the data (removing u may remove
-   the one row outside), so both branches must give the same numbers on every database whose
-   count is 0: there each individual has ``n_rows <= K <= most_rows``, ``w = 1`` for every
-   bound (8: ``tot <= n_rows M <= T``), every partial is kept whole, nothing is clipped (7: each
-   individual's lost amount is 0 or NULL, counted 0) and COUNT(DISTINCT individual) counts
-   each individual in every cell holding a row of it. What remains is the rounding of 8's one
-   difference, which is why the query is split only when every sum turns into steps without
-   rounding (``_sums_in_whole_steps``): integer columns and bounded values (integers already),
-   inexact columns (rounded per row on both branches), and numeric columns whose type
-   numeric(p, s) holds only multiples of the step (``whole_step_columns``: 10^-s a whole number
-   of steps; clamped values and their sums are then whole steps, ``floor(x / step + 0.5)`` is
-   exact, and once per cell equals the sum of once per (individual, cell); AVG's midpoint sum
-   is linear in them). So the answer is always the per-individual query's function of the
-   data, whose sensitivities (3, 4) are the stated ones, and the branch itself is never
-   released. Spark reports no unique keys, so it never sees this shape.
+9. Whole steps. A sum of a column whose backend type is numeric(p, s) with 10^-s a whole
+   number of the column's steps (``whole_step_columns``, the scale read from the catalog), of an
+   integer column, of a bounded value, or of a column rounded to steps per row
+   (``_sums_in_whole_steps``) is a whole number of steps: ``floor(x / step + 0.5)`` is exact,
+   so turning it into steps once per cell or once per (individual, cell) gives the same
+   integers, and the one-row partials of 1 may take their cell sums from the row query.
+   Not done, on purpose: running the row query of 8 only when a count made by the query itself
+   finds no counted row outside a key column's declared domain (e.g. the date of a
+   whole-table query). The answer would be the same function of the data, but the branch,
+   and so the answer's time (2x at 10M rows), would turn on a single row that a WHERE can pick
+   out: a timing channel on one individual, against the bound on one row's work the limits
+   keep (``proxy.sql.filters``). A domain the database enforces (a CHECK constraint read like
+   the unique keys of 8) would give the same speed without it.
 """
 
 from __future__ import annotations
@@ -350,7 +336,7 @@ import sqlglot.expressions as exp
 from proxy.policy import ColumnPolicy, TablePolicy
 from proxy.sql.domains import cell_count, key_size, key_values
 from proxy.sql.vocabulary import clamp_node, column_node, number_node, value_node
-from proxy.sql.keys import inside_domain, key_expression
+from proxy.sql.keys import key_expression
 from proxy.sql.plan import GroupKey, Measure, Plan
 
 # Backend session settings holding, per chosen bound j, the comma-separated integer noise of
@@ -469,9 +455,8 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
     (individual, cell) partial, instead of per row. ``unique_keys`` are the column sets the
     backend itself keeps unique in the source (enforced constraints only, ``countable_keys``):
     when one holds each individual within the declared bounds, the per-individual steps are
-    skipped (module notes, 8), or run only when the query's own count finds a row outside a
-    domain (notes, 9). ``whole_steps`` names exact columns whose type holds only multiples of
-    the column's step (``whole_step_columns``).
+    skipped (module notes, 8). ``whole_steps`` names exact columns whose type holds only
+    multiples of the column's step (``whole_step_columns``, notes 9).
     """
     policy = plan.table
     buckets = 1
@@ -501,11 +486,6 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
                                        middle=buckets > 1,
                                        one_row_cells=_cells_hold_one_row(plan, unique_keys),
                                        whole=_sums_in_whole_steps(plan, exact_columns, whole_steps))
-        checked = _checked_key(plan, unique_keys) if not any(b.chosen for b in bounds) \
-            and not plan.joins and buckets == 1 and _sums_in_whole_steps(plan, exact_columns, whole_steps) \
-            else None
-        if checked is not None:
-            tree = _gated_query(plan, _one_row_each_query(plan, bounds, exact_columns), tree, checked)
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
                      measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
                      measure_multiples=tuple(_row_multiple(policy, m) for m in plan.measures),
@@ -543,8 +523,8 @@ def _key_sizes(plan: Plan, unique_keys: frozenset[frozenset[str]]
                ) -> list[tuple[int, tuple[str, ...], tuple[str, ...]]]:
     """Per enforced unique key holding the individual column: K, the product over its other
     columns of their declared domains (narrowed by the WHERE where grouped by), its columns, and
-    those of its other columns that are not grouped by (their domain is checked by the query
-    itself: module notes, 9)."""
+    those of its other columns that are not grouped by (then the key does not hold: module
+    notes, 8 and 9)."""
     assert plan.table.individual is not None
     individual = plan.table.individual.column
     keyed = {key.column: key.within for key in plan.keys}
@@ -571,22 +551,6 @@ def _holding_key(plan: Plan, unique_keys: frozenset[frozenset[str]]
         return None
     size, columns = min(found)
     return (columns, size) if size <= plan.table.individual.most_rows else None
-
-
-def _checked_key(plan: Plan, unique_keys: frozenset[frozenset[str]]) -> tuple[str, ...] | None:
-    """The columns (not grouped by) of an enforced unique key whose declared domains hold each
-    individual to K <= most_rows counted rows once no counted row lies outside them (module
-    notes, 9): those of the key with the smallest such K; None when no key does."""
-    assert plan.table.individual is not None
-    found = [(size, unchecked) for size, _, unchecked in _key_sizes(plan, unique_keys)
-             if unchecked and size <= plan.table.individual.most_rows]
-    return min(found)[1] if found else None
-
-
-def _all_of(query: exp.Expression, alias: str) -> exp.Select:
-    """SELECT * FROM (query) AS alias."""
-    return exp.Select().select(exp.Star(), copy=False).from_(
-        exp.Subquery(this=query, alias=exp.TableAlias(this=exp.to_identifier(alias))), copy=False)
 
 
 def _sums_in_whole_steps(plan: Plan, exact: frozenset[str], whole_steps: frozenset[str]) -> bool:
@@ -616,32 +580,6 @@ def whole_step_columns(policy: TablePolicy, types: dict[str, str]) -> frozenset[
         if ratio == ratio.to_integral_value() and ratio >= 1:
             found.add(name)
     return frozenset(found)
-
-
-def _gated_query(plan: Plan, rows: exp.Select, individuals: exp.Select,
-                 unchecked: tuple[str, ...]) -> exp.Select:
-    """The row query where no counted row lies outside the declared domains of the key's
-    ``unchecked`` columns, else the per-individual query (module notes, 9): one count of such
-    rows, and PostgreSQL runs only the branch its one-time filter keeps."""
-    policy = plan.table
-    assert policy.individual is not None
-    inside = exp.and_(*[inside_domain(c, policy.columns[c]) for c in unchecked], copy=False)
-    outside = exp.Not(this=exp.Coalesce(this=exp.paren(inside, copy=False), expressions=[exp.false()]))
-    owned = exp.Not(this=exp.Is(this=column_node(policy.individual.column), expression=exp.Null()))
-    count = _filtered(plan, exp.Select().select(
-        exp.alias_(exp.Count(this=exp.Star()), "n", copy=False), copy=False)).where(
-        exp.and_(owned, outside, copy=False), copy=False)
-    found = exp.Subquery(this=_select("SELECT g.n FROM g"))
-    branches = exp.union(
-        _all_of(rows, "fast").where(exp.EQ(this=found, expression=number_node(0)), copy=False),
-        _all_of(individuals, "slow").where(exp.GT(this=found.copy(), expression=number_node(0)),
-                                           copy=False),
-        distinct=False)
-    outer = _all_of(branches, "x")
-    if plan.keys:
-        outer = outer.order_by(*[exp.column(f"i{j}", "x") for j in range(len(plan.keys))], copy=False)
-    # MATERIALIZED: the count is read by both branches' filters and must run once.
-    return outer.with_("g", as_=count, materialized=True, copy=False)
 
 
 def centres_averages(policy: TablePolicy) -> bool:
