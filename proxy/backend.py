@@ -111,10 +111,6 @@ class QueryBackend(Protocol):
     (PostgreSQL) or ``proxy.spark_backend.SparkBackend``. Every method takes the rewrite's
     PostgreSQL text; a backend that speaks another dialect translates it itself."""
 
-    # Whether the per-individual rewrite is written with window functions (``proxy.sql.rewrite``
-    # module notes, 9): the same numbers, in the shape this backend plans best.
-    windowed: bool
-
     def run(self, sql: str, control: QueryControl | None = None,
             settings: dict[str, str] | None = None, *,
             timeout_ms: int | None = None) -> list[tuple[Any, ...]]:
@@ -144,9 +140,6 @@ class QueryBackend(Protocol):
 
 class Backend:
     """A pool of read-only connections to the database holding the protected tables."""
-
-    # PostgreSQL sorts and divides only the individuals a bound scales in the joined shape.
-    windowed = False
 
     def __init__(self, dsn: str, *, pool_size: int = 8, statement_timeout_ms: int = 300_000,
                  open_timeout: float = 30.0) -> None:

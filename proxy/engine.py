@@ -342,8 +342,7 @@ class Engine:
             read = PreparedRead(plan, read_sql(plan))
             self.backend.check(read.sql)
             return read
-        rewritten = rewrite(plan, self._plan_exact_columns(plan), self._plan_unique_keys(plan),
-                            windowed=self.backend.windowed)
+        rewritten = rewrite(plan, self._plan_exact_columns(plan), self._plan_unique_keys(plan))
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         return Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                         fingerprint=_fingerprint(rewritten.sql),

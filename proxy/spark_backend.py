@@ -600,11 +600,6 @@ class _TagCanceller:
 class SparkBackend:
     """Runs rewritten queries on a Spark Connect server: a ``proxy.backend.QueryBackend``."""
 
-    # Spark inlines every common table expression, so the joined shape's totals, filter of the
-    # scaled individuals and self-joins become a long chain of small stages; the windowed shape
-    # (rewrite notes, 9) reads the partials through one exchange by individual.
-    windowed = True
-
     def __init__(self, dsn: str, *, statement_timeout_ms: int = 300_000) -> None:
         from pyspark.sql import SparkSession
 

@@ -14,7 +14,7 @@ import pytest
 
 from proxy.policy import load_policies
 from proxy.sql.analyse import analyse
-from proxy.sql.rewrite import BOUND_NOISE_SETTING, loss_cap, rewrite
+from proxy.sql.rewrite import loss_cap, rewrite
 from tests.bounds_helpers import run_with_bounds
 from tests.policy_fixtures import load_clinic, write_policies
 
@@ -175,53 +175,3 @@ def test_an_individual_over_the_row_bound_contributes_the_bound_in_total(clinic)
             without = run_with_bounds(conn, rewritten, (4,))
         moved = sum(int(a[keys]) - int(b[keys]) for a, b in zip(full, without))
         assert moved in expected, (sql, moved)
-
-
-# Every shape with individuals, on both policies (chosen bounds, and declared ones that clip).
-SHAPES = [(q, "chosen") for q in QUERIES] + [(q, "declared") for q in CENTRED + QUERIES[:4]]
-
-
-@pytest.mark.parametrize("exact", [frozenset(), frozenset({"weight", "fee"})], ids=["per-row", "exact"])
-@pytest.mark.parametrize("query, bounds", SHAPES, ids=[f"{q[1][:50]}-{b}" for q, b in SHAPES])
-def test_the_windowed_shape_answers_as_the_joined_one(clinic, declared, query, bounds: str,
-                                                        exact: frozenset[str]) -> None:
-    # Module notes, 9: the shape written for window-planning backends computes the same rows
-    # (cells, bounds, clipped-away totals) as the joined shape, at the ceilings and at bounds
-    # that scale the heavier individuals down.
-    conn, policies = clinic if bounds == "chosen" else declared
-    plan = analyse(query[1], policies, "tester")
-    joined, windowed = rewrite(plan, exact), rewrite(plan, exact, windowed=True)
-    assert windowed.sql != joined.sql or not joined.bounds
-    clipped = False
-    for values in _bound_choices(joined):
-        rows = run_with_bounds(conn, joined, values)
-        assert run_with_bounds(conn, windowed, values) == rows
-        if joined.bounds:
-            clipped |= any(any(row[-len(joined.bounds):]) for row in rows)
-    assert clipped or not joined.bounds or query[0] == "people"  # the scaling was exercised
-
-
-@pytest.mark.parametrize("query", QUERIES[:4], ids=[q[1][:50] for q in QUERIES[:4]])
-def test_the_windowed_shape_chooses_the_joined_one_s_bounds(clinic, query) -> None:
-    # The noisy max itself (not forced): targets A and seeded noise vectors give many choices;
-    # each shape counts the individuals above each candidate its own way (module notes, 9).
-    import random
-
-    conn, policies = clinic
-    plan = analyse(query[1], policies, "tester")
-    joined, windowed = rewrite(plan), rewrite(plan, windowed=True)
-    draw = random.Random(11)
-    chosen = set()
-    for target in (0, 1, 3, 10, 40, 150, 400):
-        settings = {BOUND_NOISE_SETTING.format(j): ",".join(
-            [str(target)] + [str(draw.randint(-3, 3)) for _ in bound.candidates])
-            for j, bound in enumerate(joined.bounds)}
-        answers = []
-        for rewritten in (joined, windowed):
-            with conn.transaction():
-                for name, value in settings.items():
-                    conn.execute("SELECT set_config(%s, %s, true)", (name, value))
-                answers.append(conn.execute(rewritten.sql).fetchall())
-        assert answers[0] == answers[1]
-        chosen.add(tuple(answers[0][0][-2 * len(joined.bounds):-len(joined.bounds)]))
-    assert len(chosen) > 3  # the targets moved the choice (the check could fail)

@@ -75,15 +75,13 @@ def bound_values(rewritten: Rewritten, pick: str) -> tuple[int, ...]:
 
 
 def noise_free_both(clinic, sql: str, pick: str = "ceiling") -> tuple[list, list, Rewritten]:
-    """The rewrite's noise-free rows for ``sql`` on Spark (in the shape the engine writes for
-    it: windowed, rewrite notes 9) and on PostgreSQL (the joined shape), with the same bounds
-    forced, as ints."""
+    """The rewrite's noise-free rows for ``sql`` on Spark and on PostgreSQL, with the same
+    bounds forced, as ints."""
     backend, conn, policies = clinic
-    plan = analyse(sql, policies, "tester")
-    rewritten = rewrite(plan, EXACT, windowed=backend.windowed)
+    rewritten = rewrite(analyse(sql, policies, "tester"), EXACT)
     values = bound_values(rewritten, pick)
     on_spark = backend.run(rewritten.sql, None, forced_settings(rewritten, values) or None)
-    on_postgres = run_with_bounds(conn, rewrite(plan, EXACT), values)
+    on_postgres = run_with_bounds(conn, rewritten, values)
     assert len(on_spark) == rewritten.cells
     return as_ints(on_spark), as_ints(on_postgres), rewritten
 
@@ -195,7 +193,7 @@ def test_one_individual_moves_spark_answers_at_most_the_sensitivity(clinic) -> N
                                   "ORDER BY count(*) DESC, person_id LIMIT 2")
     sql = "SELECT ward, COUNT(*), SUM(minutes), COUNT(DISTINCT person_id) FROM visits GROUP BY ward"
     plan = analyse(sql, policies, "tester")
-    full_rewrite = rewrite(plan, windowed=backend.windowed)
+    full_rewrite = rewrite(plan)
     values = bound_values(full_rewrite, "low")
     settings = forced_settings(full_rewrite, values)
     full = backend.run(full_rewrite.sql, None, settings)
@@ -204,7 +202,7 @@ def test_one_individual_moves_spark_answers_at_most_the_sensitivity(clinic) -> N
         session.sql(f"SELECT * FROM clinic.visits WHERE person_id <> {int(person)}").write \
             .mode("overwrite").format("parquet").saveAsTable("neighbour.visits")
         table = plan.table.model_copy(update={"source": "neighbour.visits"})
-        without_rewrite = rewrite(dataclasses.replace(plan, table=table), windowed=backend.windowed)
+        without_rewrite = rewrite(dataclasses.replace(plan, table=table))
         without = backend.run(without_rewrite.sql, None, forced_settings(without_rewrite, values))
         measures = len(plan.measures)
         moves = [sum(abs(int(a[1 + n]) - int(b[1 + n])) for a, b in zip(full, without))
@@ -297,8 +295,7 @@ def test_a_slow_query_is_interrupted_at_the_statement_timeout(clinic) -> None:
 
 def test_a_query_reading_unbound_noise_fails_closed(clinic) -> None:
     backend, _, policies = clinic
-    rewritten = rewrite(analyse("SELECT ward, COUNT(*) FROM visits GROUP BY ward", policies, "tester"),
-                        windowed=backend.windowed)
+    rewritten = rewrite(analyse("SELECT ward, COUNT(*) FROM visits GROUP BY ward", policies, "tester"))
     assert any(b.chosen for b in rewritten.bounds)
     with pytest.raises(HushError) as failed:
         backend.run(rewritten.sql)  # no bound noise given

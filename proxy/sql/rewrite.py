@@ -9,8 +9,7 @@ The backend query returns exactly one row per declared cell, in domain order: th
 ``i0, i1, ...``, one column per measure ``m0, m1, ...`` (0 for empty cells), and for tables with
 individuals each bound's value ``b0, b1, ...`` then each bound's clipped-away total (the same on
 every row). It never returns rows of the table, never sorts, limits or filters on aggregates
-(the one ORDER BY ... LIMIT 1, or in the windowed shape of note 9 the GREATEST, ranks the
-bounds' noisy scores: that is the mechanism itself).
+(the one ORDER BY ... LIMIT 1 ranks the bounds' noisy scores: that is the mechanism itself).
 
 Row tables (each row is one individual)
 ---------------------------------------
@@ -298,46 +297,6 @@ domains, fall in no bucket and are not ranked.
    answer's distribution is the per-individual path's.
    The key is read when a table is first planned and again after a policy reload; a constraint
    dropped on a running proxy needs a reload (as any change of a source's columns does).
-
-9. The windowed shape (``rewrite(..., windowed=True)``, asked by backends that inline common
-   table expressions and plan window functions better than self-joins: Spark). Steps 1 and 3
-   to 7 compute the same numbers from the same partials ``q``; only where the totals are read
-   and how the clipped-away totals are added up differ.
-
-   - ``qt``: each row of q with its individual's totals as window columns over the
-     individual's rows (``PARTITION BY who``): ``n_rows = SUM(r)``, ``touched = COUNT(*)``,
-     ``tot_j = SUM(|partial|)``, the same sums step 2 groups by individual; the running totals
-     of step 4 (the same window, ordered by the cell ordinals, rows up to the current one) for
-     every individual, not only the scaled ones; and ``nth``, the row's rank in that order (1
-     on exactly one row per individual; without keys every individual has one row).
-   - A chosen bound's ``above_k`` is ``COUNT(total > candidate_k)`` over the rows with
-     ``nth = 1``: one row per individual, so it counts the individuals whose integer total
-     exceeds candidate k, i.e. those with at least k of the ascending thresholds ``candidate +
-     1`` at or below it, which is the histogram's ``SUM(n) WHERE slot >= k``. The choice is the
-     first candidate (ascending k) whose score equals the GREATEST score: the highest score,
-     ties to the smallest k, the candidate ORDER BY ... LIMIT 1 returns. Same scores, same
-     noise, same winner, so the proof of step 2 applies unchanged.
-   - Every partial is scaled on its own row by the same expression as in step 4 (``CASE WHEN
-     within THEN p ELSE f(running) - f(running - p) END``), and the cells sum the kept partials
-     directly: the joined shape's "partials as they are, plus kept - raw of the scaled ones"
-     (step 5) is that sum, since kept = raw where the totals are within the bounds and a kept
-     partial is NULL exactly where its raw one is.
-   - Clipped-away totals (step 7): an individual's clipped amount for bound j is the sum over
-     its cells of ``|raw| - |kept|``. The kept shares telescope: in cell order each is
-     ``f(N_i) - f(N_{i-1})`` with ``N_i = N_{i-1} + |p_i|`` (a NULL partial adds nothing to
-     the running total and keeps NULL), so they add up to ``f(N_last) - f(0) = f(total)``
-     (f(0) = 0, with or without the half), and the clipped amount is ``total - f(total)``,
-     read from the individual's one ``nth = 1`` row with its totals. Where all totals are
-     within the bounds, ``f(total) = total`` (each term ``total * B / T`` is at least total
-     when T <= B) and the amount is 0, as the joined shape's, which leaves those individuals
-     out. Where a sum's total is NULL (all its partials NULL) the amount is NULL in both, and
-     LEAST(NULL, cap) is the cap in both engines. Each amount is capped as in step 7, so the
-     sensitivity of a clipped-away total is unchanged.
-
-   Tests run both shapes on PostgreSQL over the same rows, at bounds that scale individuals
-   down and under seeded noise that moves the choice, and require the same rows
-   (``tests/test_individuals.py``); Spark runs the windowed shape against PostgreSQL's joined
-   one (``tests/test_spark.py``).
 """
 
 from __future__ import annotations
@@ -464,8 +423,7 @@ class Rewritten:
 
 
 def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
-            unique_keys: frozenset[frozenset[str]] = frozenset(), *,
-            windowed: bool = False) -> Rewritten:
+            unique_keys: frozenset[frozenset[str]] = frozenset()) -> Rewritten:
     """Build the backend query and sensitivities of an analysed plan. Pure.
 
     ``exact_columns`` names number columns whose backend type is exact (numeric): their clamped
@@ -473,8 +431,7 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
     (individual, cell) partial, instead of per row. ``unique_keys`` are the column sets the
     backend itself keeps unique in the source (enforced constraints only, ``countable_keys``):
     when one holds each individual within the declared bounds, the per-individual steps are
-    skipped (module notes, 8). ``windowed`` writes the per-individual steps with window
-    functions (module notes, 9), for backends that plan those better than self-joins.
+    skipped (module notes, 8).
     """
     policy = plan.table
     buckets = 1
@@ -502,8 +459,7 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
     else:
         tree = _individual_table_query(plan, bounds, measure_bounds, exact_columns,
                                        middle=buckets > 1,
-                                       one_row_cells=_cells_hold_one_row(plan, unique_keys),
-                                       windowed=windowed)
+                                       one_row_cells=_cells_hold_one_row(plan, unique_keys))
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
                      measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
                      measure_multiples=tuple(_row_multiple(policy, m) for m in plan.measures),
@@ -1021,30 +977,29 @@ def _partial(policy: TablePolicy, measure: Measure, exact: frozenset[str]) -> ex
     return _aggregate(policy, measure, exact)
 
 
-def _scaled(value: str, bounds: tuple[Bound, ...], *, half: bool = False, totals: str = "t") -> str:
+def _scaled(value: str, bounds: tuple[Bound, ...], *, half: bool = False) -> str:
     """SQL for floor(value * w), value >= 0: w = min(1, B_j / total_j) over the plan's bounds,
     as integer divisions (floor of a minimum is the minimum of the floors), exact. With ``half``,
     floor(value * w + 1/2): ``div(2 value B_j + total_j, 2 total_j)`` (the value's own term
-    is an integer, which the half leaves as it is). The individual's totals are read from the
-    relation ``totals``."""
+    is an integer, which the half leaves as it is)."""
     terms = [value]
     for j, bound in enumerate(bounds):
         total = "n_rows" if bound.subject == "rows" else f"tot{j}"
         # (the numerator in parentheses: Spark's DIV binds tighter than +)
-        terms.append(f"div((2 * {value} * b.b{j} + {totals}.{total}), NULLIF(2 * {totals}.{total}, 0))"
-                     if half else f"div({value} * b.b{j}, NULLIF({totals}.{total}, 0))")
+        terms.append(f"div((2 * {value} * b.b{j} + t.{total}), NULLIF(2 * t.{total}, 0))" if half
+                     else f"div({value} * b.b{j}, NULLIF(t.{total}, 0))")
     return f"LEAST({', '.join(terms)})"
 
 
-def _within(bounds: tuple[Bound, ...], totals: str = "t") -> str:
-    """SQL true exactly when an individual's totals (``totals``) are all within the bounds
-    (``b``): its factor is 1; NULL when a total is NULL (all its partials of a sum are)."""
-    return " AND ".join(f"{totals}.{'n_rows' if bound.subject == 'rows' else f'tot{j}'} <= b.b{j}"
+def _within(bounds: tuple[Bound, ...]) -> str:
+    """SQL true exactly when an individual's totals (``t``) are all within the bounds (``b``):
+    its factor is 1; NULL when a total is NULL (all its partials of a sum are)."""
+    return " AND ".join(f"t.{'n_rows' if bound.subject == 'rows' else f'tot{j}'} <= b.b{j}"
                         for j, bound in enumerate(bounds))
 
 
 def _kept(value: str, running: str | None, bounds: tuple[Bound, ...], *,
-          half: bool = False, totals: str = "t") -> str:
+          half: bool = False) -> str:
     """SQL for one partial's kept share, value >= 0 (module notes, 4): ``f(running) -
     f(running - value)`` with f = floor(x * w) (``half``: floor(x * w + 1/2), for histograms,
     module notes "Percentiles") and ``running`` the individual's running total up to and
@@ -1052,10 +1007,9 @@ def _kept(value: str, running: str | None, bounds: tuple[Bound, ...], *,
     (every total within its bound) that difference is ``value`` itself, so the divisions run
     only for the individuals a bound scales down."""
     if running is None:
-        return _scaled(value, bounds, half=half, totals=totals)
-    return (f"CASE WHEN {_within(bounds, totals)} THEN {value} ELSE "
-            f"{_scaled(running, bounds, half=half, totals=totals)} - "
-            f"{_scaled(f'({running} - {value})', bounds, half=half, totals=totals)} END")
+        return _scaled(value, bounds, half=half)
+    return (f"CASE WHEN {_within(bounds)} THEN {value} ELSE {_scaled(running, bounds, half=half)} - "
+            f"{_scaled(f'({running} - {value})', bounds, half=half)} END")
 
 
 def _over_one_row(aggregate: exp.Expression) -> exp.Expression:
@@ -1089,13 +1043,12 @@ def _cells_hold_one_row(plan: Plan, unique_keys: frozenset[frozenset[str]]) -> b
 
 def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
                             exact: frozenset[str], middle: bool = False,
-                            one_row_cells: bool = False, windowed: bool = False) -> exp.Select:
+                            one_row_cells: bool = False) -> exp.Select:
     """The per-individual rewrite (module notes): partials per (individual, cell) in the
     domains (``middle``: a percentile plan's histogram, thinned about the middle), totals per
     individual, the bounds (declared, or chosen by noisy max over the
     candidates), one factor per individual scaling all its partials, sums per cell, and per
-    bound the clipped-away total, each individual capped. ``windowed``: the same numbers in
-    the shape of module notes 9 (totals and running totals as windows over the partials)."""
+    bound the clipped-away total, each individual capped."""
     policy = plan.table
     assert policy.individual is not None
     who = exp.alias_(column_node(policy.individual.column), "who", copy=False)
@@ -1113,12 +1066,12 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
             *[number_node(j + 1) for j in range(len(keys) + 1)], copy=False)
     q = _in_domains(plan, per_individual, "p", listed=one_row_cells) if plan.keys else per_individual
     sum_bounds = [(j, measure_bounds.index(j)) for j, b in enumerate(bounds) if b.subject != "rows"]
+    totals = ["who", "SUM(r) AS n_rows", "COUNT(*) AS touched"] + [
+        f"SUM(ABS(m{n})) AS tot{j}" for j, n in sum_bounds]
+    t = _select(f"SELECT {', '.join(totals)} FROM q GROUP BY who")
     b = _select("SELECT " + ", ".join(
-        f"({_choice_sql(j, bound, windowed)}) AS b{j}" if bound.chosen else f"{bound.ceiling} AS b{j}"
+        f"({_choice_sql(j, bound)}) AS b{j}" if bound.chosen else f"{bound.ceiling} AS b{j}"
         for j, bound in enumerate(bounds)))
-    # Where the scaling reads an individual's totals: ``t`` joined to its partials, or (windowed)
-    # the columns the windows add to each partial's row.
-    held = "q" if windowed else "t"
     rows_bound = next((j for j, bound in enumerate(bounds) if bound.subject == "rows"), None)
     ordinals = [f"q.i{j}" for j in range(len(plan.keys))]
     # Per scaled partial: its size (>= 0) and, with keys, its individual's running total in
@@ -1130,21 +1083,15 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     window = (f"OVER (PARTITION BY q.who ORDER BY {', '.join(ordinals)} "
               "ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW)")
     running = {name: f"q.run_{name}" if plan.keys else None for name in sizes}
-    scaled = [f"{_kept('q.r', running['r'], bounds, half=middle, totals=held)} AS r_kept"]
+    scaled = [f"{_kept('q.r', running['r'], bounds, half=middle)} AS r_kept"]
     for n, measure in enumerate(plan.measures):
         if measure.kind == "count_individuals":
-            scaled.append(f"CASE WHEN {held}.touched <= b.b{rows_bound} THEN q.m{n} ELSE 0 END AS m{n}")
+            scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN q.m{n} ELSE 0 END AS m{n}")
         elif measure.kind in signed:
-            scaled.append(f"SIGN(q.m{n}) * ({_kept(sizes[f'm{n}'], running[f'm{n}'], bounds, totals=held)})"
+            scaled.append(f"SIGN(q.m{n}) * ({_kept(sizes[f'm{n}'], running[f'm{n}'], bounds)})"
                           f" AS m{n}")
         else:
-            scaled.append(f"{_kept(sizes[f'm{n}'], running[f'm{n}'], bounds, half=middle, totals=held)}"
-                          f" AS m{n}")
-    if windowed:
-        return _windowed_query(plan, q, b, bounds, sizes, scaled[1:], sum_bounds, middle)
-    totals = ["who", "SUM(r) AS n_rows", "COUNT(*) AS touched"] + [
-        f"SUM(ABS(m{n})) AS tot{j}" for j, n in sum_bounds]
-    t = _select(f"SELECT {', '.join(totals)} FROM q GROUP BY who")
+            scaled.append(f"{_kept(sizes[f'm{n}'], running[f'm{n}'], bounds, half=middle)} AS m{n}")
     # Only the individuals a bound may scale (``s``: factor below 1, or a NULL total) are
     # scaled, and only their partials sorted for running totals (module notes, 5).
     s = _select(f"SELECT t.* FROM t CROSS JOIN b WHERE NOT COALESCE({_within(bounds)}, FALSE)")
@@ -1204,90 +1151,22 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     return outer
 
 
-def _loss_terms_sql(terms: list[LossTerm], joined: bool = False) -> str:
-    """The terms of a loss cap; ``joined``: the bounds' row ``b`` is joined, not read apart."""
-    return ", ".join((f"{c} - {a} * " + (f"b.b{k}" if joined else f"(SELECT b{k} FROM b)"))
-                     if k is not None else str(c) for c, a, k in terms)
+def _loss_terms_sql(terms: list[LossTerm]) -> str:
+    return ", ".join(f"{c} - {a} * (SELECT b{k} FROM b)" if k is not None else str(c)
+                     for c, a, k in terms)
 
 
-def _windowed_query(plan: Plan, q: exp.Select, b: exp.Select, bounds: tuple[Bound, ...],
-                    sizes: dict[str, str], scaled: list[str], sum_bounds: list[tuple[int, int]],
-                    middle: bool) -> exp.Select:
-    """The per-individual rewrite after the partials ``q`` and the bounds ``b``, in the shape of
-    module notes 9: ``qt`` is q with each individual's totals, running totals in cell order and
-    its rows' rank ``nth`` as window columns; every partial is scaled on its own row (``scaled``,
-    read from qt as ``q``) and summed per cell; the clipped-away totals come from one row per
-    individual, the telescoped loss ``total - f(total)``."""
-    ordinal_names = [f"i{j}" for j in range(len(plan.keys))]
-    whole = "OVER (PARTITION BY q.who)"
-    columns = ["q.who", "q.r"] + [f"q.{i}" for i in ordinal_names] + [
-        f"q.m{n}" for n in range(len(plan.measures))] + [
-        f"SUM(q.r) {whole} AS n_rows", f"COUNT(*) {whole} AS touched"] + [
-        f"SUM(ABS(q.m{n})) {whole} AS tot{j}" for j, n in sum_bounds]
-    if plan.keys:
-        order = f"PARTITION BY q.who ORDER BY {', '.join(f'q.{i}' for i in ordinal_names)}"
-        columns += [f"SUM({size}) OVER ({order} ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW)"
-                    f" AS run_{name}" for name, size in sizes.items()]
-        columns.append(f"ROW_NUMBER() OVER ({order}) AS nth")
-    else:  # one partial per individual
-        columns.append("1 AS nth")
-    qt = _select(f"SELECT {', '.join(columns)} FROM q")
-    w = _select(f"SELECT {', '.join([f'q.{i}' for i in ordinal_names] + scaled)} "
-                "FROM qt AS q CROSS JOIN b")
-    losses = []
-    for j, bound in enumerate(bounds):
-        total = "q.n_rows" if bound.subject == "rows" else f"q.tot{j}"
-        kept = _scaled(total, bounds, half=middle and bound.subject == "rows", totals="q")
-        losses.append(f"COALESCE(SUM(LEAST({total} - {kept}, GREATEST("
-                      f"{_loss_terms_sql(loss_terms(bounds, j), joined=True)}) + {ROUNDING_LOSS})), 0)"
-                      f" AS clipped{j}")
-    clipped = _select(f"SELECT {', '.join(losses)} FROM qt AS q CROSS JOIN b WHERE q.nth = 1")
-    measures = [f"COALESCE(SUM(w.m{n}), 0) AS m{n}" for n in range(len(plan.measures))]
-    tail = [f"b.b{j}" for j in range(len(bounds))] + [f"clip.clipped{j}" for j in range(len(bounds))]
-    if plan.keys:
-        summed = _select(f"SELECT {', '.join([f'w.{i} AS {i}' for i in ordinal_names] + measures)} "
-                         f"FROM w GROUP BY {', '.join(f'w.{i}' for i in ordinal_names)}")
-        outer = _finish(plan, summed, by_ordinal=True)
-        outer = outer.join(exp.to_table("b"), join_type="cross", copy=False).join(
-            exp.to_table("clipped", alias="clip"), join_type="cross", copy=False)
-        outer = outer.select(*[_expression(x) for x in tail], copy=False)
-    else:
-        outer = _select(f"SELECT {', '.join([f'a.m{n}' for n in range(len(plan.measures))] + tail)} "
-                        f"FROM (SELECT {', '.join(measures)} FROM w) AS a CROSS JOIN b "
-                        f"CROSS JOIN clipped AS clip")
-    for name, part in [("q", q), ("qt", qt), ("b", b), ("w", w), ("clipped", clipped)]:
-        outer = outer.with_(name, as_=part, copy=False)
-    return outer
-
-
-def _choice_sql(j: int, bound: Bound, windowed: bool = False) -> str:
+def _choice_sql(j: int, bound: Bound) -> str:
     """The noisy-max choice of bound j among its candidates (module notes, 2): the candidate
     with the highest ``noise_k - |above_k - A|``, ties to the smallest. ``above_k`` (the
     individuals whose total exceeds candidate k) comes from the histogram ``h<j>`` of the totals
     over the candidates, counted in one pass with width_bucket: an individual's slot is the
     number of candidates below its total. The engine passes ``A,noise_1,...,noise_G`` in a
-    setting.
-
-    ``windowed`` (module notes, 9): each ``above_k`` is counted directly over one row per
-    individual (``qt`` where ``nth = 1``), ``COUNT(total > candidate_k)``: the individuals with
-    at least k thresholds ``candidate + 1`` at or below their integer total, the same number.
-    The scores are columns of that one row; the choice is the first candidate, in ascending
-    order, whose score equals their GREATEST: the highest score, ties to the smallest k, as
-    the ORDER BY ... LIMIT 1 picks."""
-    setting = f"current_setting('{BOUND_NOISE_SETTING.format(j)}')"
-    target = f"CAST(split_part({setting}, ',', 1) AS bigint)"
-    if windowed:
-        total = "n_rows" if bound.subject == "rows" else f"tot{j}"
-        scores = ", ".join(
-            f"CAST(split_part({setting}, ',', {k + 1}) AS bigint) - ABS(COUNT(CASE WHEN {total} > {c} "
-            f"THEN 1 END) - {target}) AS s{k}" for k, c in enumerate(bound.candidates, start=1))
-        names = [f"x.s{k}" for k in range(1, len(bound.candidates) + 1)]
-        pick = " ".join(f"WHEN {name} = x.best THEN {c}" for name, c in zip(names, bound.candidates))
-        return (f"SELECT CASE {pick} END FROM (SELECT s.*, GREATEST({', '.join(names).replace('x.', 's.')})"
-                f" AS best FROM (SELECT {scores} FROM qt WHERE nth = 1) AS s) AS x")
+    setting."""
     grid = ", ".join(f"({k}, {c})" for k, c in enumerate(bound.candidates, start=1))
+    setting = f"current_setting('{BOUND_NOISE_SETTING.format(j)}')"
     return (
         f"SELECT g.tau FROM (VALUES {grid}) AS g(k, tau) "
         f"ORDER BY CAST(split_part({setting}, ',', g.k + 1) AS bigint) "
         f"- ABS(COALESCE((SELECT SUM(h.n) FROM h{j} AS h WHERE h.slot >= g.k), 0) "
-        f"- {target}) DESC, g.k LIMIT 1")
+        f"- CAST(split_part({setting}, ',', 1) AS bigint)) DESC, g.k LIMIT 1")
