@@ -28,6 +28,11 @@ Rules of this module:
   a tag of its own, interrupted by a timer or by the session's cancel request.
 - Spark error text never leaves this module (it could quote a row), as in ``proxy.backend``.
   Spark has no read-only transactions: give the Connect server's user read access only.
+- The rewrite's final ORDER BY of the cells' ordinals (``c.i0, c.i1, ...``, the leading
+  output columns, never NULL) is not sent: Spark would sort a handful of rows through a
+  range-partitioned exchange, sampled by a job of its own. ``run`` sorts the collected rows by
+  those columns instead, ascending with NULL last as PostgreSQL would: the same rows in the
+  same order.
 - PostgreSQL's planner settings (``proxy.backend.BACKEND_SETTINGS``: JIT off, a larger
   work_mem) are not carried over: they change speed only, never a value, and Spark plans its
   own code generation and spills under its executors' memory settings.
@@ -37,6 +42,7 @@ from __future__ import annotations
 
 import functools
 import logging
+import re
 import threading
 import uuid
 import warnings
@@ -153,6 +159,7 @@ class _Writer:
 
     def __init__(self, types: Mapping[str, str]) -> None:
         self.types = types
+        self.sorted_by = 0  # leading output columns the rows are sorted by after collecting
 
     def exact_type(self, node: exp.Expression) -> bool:
         name = _column_name(node)
@@ -198,6 +205,25 @@ class _Writer:
                 and node.this.to.this == exp.DataType.Type.DATE:
             return exp.Anonymous(this="date_add", expressions=[
                 node.this.copy(), exp.cast(node.expression.copy(), "int")])
+        return node
+
+    def ordinals_sorted_here(self, node: exp.Expression) -> exp.Expression:
+        """The outermost ``ORDER BY c.i0, c.i1, ...`` (ascending, no LIMIT), when those are the
+        query's leading output columns -> no ORDER BY; ``sorted_by`` records how many leading
+        columns ``run`` sorts the rows by."""
+        if node.parent is not None or not isinstance(node, exp.Select) \
+                or node.args.get("order") is None or node.args.get("limit") is not None \
+                or node.args.get("offset") is not None:
+            return node
+        keys = node.args["order"].expressions
+        leading = node.expressions[:len(keys)]
+        if len(leading) == len(keys) and all(
+                isinstance(k, exp.Ordered) and not k.args.get("desc")
+                and isinstance(k.this, exp.Column) and k.this.table == "c"
+                and re.fullmatch(r"i\d+", k.this.name) and p == k.this
+                for k, p in zip(keys, leading)):
+            node.set("order", None)
+            self.sorted_by = len(keys)
         return node
 
     def plain_ctes(self, node: exp.Expression) -> exp.Expression:
@@ -457,6 +483,8 @@ SPARK_TRANSFORMS: dict[str, str] = {
     "scores_as_columns": "Spark refuses correlated subqueries in ORDER BY; the same scores as "
         "columns of an inner SELECT order the same rows",
     "single_extremes": "GREATEST or LEAST of one value is that value; Spark wants two",
+    "ordinals_sorted_here": "the cells come back sorted by their ordinals either way: by "
+        "run, in Python, rather than by a sort stage on Spark",
     "plain_ctes": "MATERIALIZED is a PostgreSQL planner hint; the values do not change",
     "histogram_slots": "width_bucket over a sorted array (how many thresholds are <= x) does "
         "not exist in Spark; counting them is the same integer",
@@ -486,16 +514,32 @@ def to_spark_sql(postgres_sql: str, types: Mapping[str, str] | None = None, *,
     ``pretty`` lays it out over lines (EXPLAIN), the same statement.
 
     Raises NotOnSpark when a part cannot be written with PostgreSQL's exact values."""
+    return spark_query(postgres_sql, types, pretty=pretty)[0]
+
+
+def spark_query(postgres_sql: str, types: Mapping[str, str] | None = None, *,
+                pretty: bool = False) -> tuple[str, int]:
+    """``to_spark_sql``'s text and how many leading output columns the collected rows must be
+    sorted by (``ordinals_sorted_here``; 0: none)."""
     return _to_spark_sql(postgres_sql, tuple(sorted((types or {}).items())), pretty)
 
 
 @functools.lru_cache(maxsize=1024)
-def _to_spark_sql(postgres_sql: str, types: tuple[tuple[str, str], ...], pretty: bool) -> str:
+def _to_spark_sql(postgres_sql: str, types: tuple[tuple[str, str], ...],
+                  pretty: bool) -> tuple[str, int]:
     tree = sqlglot.parse_one(postgres_sql, read="postgres")
     writer = _Writer(dict(types))
     for name in SPARK_TRANSFORMS:
         tree = tree.transform(getattr(writer, name), copy=False)
-    return tree.sql(dialect="spark", pretty=pretty)
+    return tree.sql(dialect="spark", pretty=pretty), writer.sorted_by
+
+
+def _sorted_rows(rows: list[tuple[Any, ...]], columns: int) -> list[tuple[Any, ...]]:
+    """Rows ordered by their first ``columns`` values, ascending, NULL last (PostgreSQL's
+    ORDER BY of ``ordinals_sorted_here``); stable."""
+    if not columns:
+        return rows
+    return sorted(rows, key=lambda row: tuple((v is None, v) for v in row[:columns]))
 
 
 def refuse_joins(postgres_sql: str) -> None:
@@ -586,7 +630,7 @@ class SparkBackend:
         seconds = self._timeout if timeout_ms is None else max(1, timeout_ms) / 1000
         timer = threading.Timer(seconds, expire)
         try:
-            text = self._spark_text(sql)
+            text, sorted_by = self._spark_text(sql)
             arguments = {parameter_name(k): v for k, v in (settings or {}).items()}
             if control is not None and not control._attach(_TagCanceller(self._session, tag)):
                 raise HushError(QUERY_CANCELED, "canceling statement due to user request")
@@ -599,7 +643,7 @@ class SparkBackend:
                 self._session.removeTag(tag)
                 if control is not None:
                     control._attach(None)
-            return [tuple(row) for row in rows]
+            return _sorted_rows([tuple(row) for row in rows], sorted_by)
         except HushError:
             raise
         except Exception as error:
@@ -635,11 +679,12 @@ class SparkBackend:
     def sent_sql(self, sql: str) -> str:
         """The Spark SQL sent for a rewritten query, laid out over lines for EXPLAIN; its
         ``:hushql_...`` parameters are bound per query. HushError 0A000 as ``check``."""
-        return self._spark_text(sql, pretty=True)
+        return self._spark_text(sql, pretty=True)[0]
 
-    def _spark_text(self, sql: str, *, pretty: bool = False) -> str:
+    def _spark_text(self, sql: str, *, pretty: bool = False) -> tuple[str, int]:
+        """The Spark text of a rewritten query and the leading columns to sort its rows by."""
         try:
-            return to_spark_sql(sql, self._types_of(sql), pretty=pretty)
+            return spark_query(sql, self._types_of(sql), pretty=pretty)
         except NotOnSpark as error:
             raise HushError(FEATURE_NOT_SUPPORTED,
                             f"this query cannot be answered on the Spark backend: {error}",

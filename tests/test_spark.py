@@ -256,7 +256,8 @@ def explained_sql(engine, sql: str) -> str:
 
 def test_explain_shows_the_spark_sql_that_runs(engine, clinic) -> None:
     """EXPLAIN on Spark shows the Spark SQL sent, not the PostgreSQL rewrite: run as it reads
-    (its parameters bound as the engine binds them), it gives the rows the backend gives."""
+    (its parameters bound as the engine binds them), it gives the rows the backend gives, which
+    the backend then sorts by the cells' ordinals (``ordinals_sorted_here``)."""
     backend, _, _ = clinic
     sql = "SELECT ward, floor(minutes / 10) * 10 AS m, COUNT(*), SUM(minutes) FROM visits GROUP BY 1, 2"
     shown = explained_sql(engine, sql)
@@ -267,7 +268,8 @@ def test_explain_shows_the_spark_sql_that_runs(engine, clinic) -> None:
     assert " DIV " in shown and "current_setting" in rewritten.sql.lower()
     settings = forced_settings(rewritten, bound_values(rewritten, "low"))
     arguments = {name.replace(".", "_"): value for name, value in settings.items()}
-    assert as_ints(backend._session.sql(shown, args=arguments).collect()) == \
+    assert "ORDER BY C.I0" not in " ".join(shown.split()).upper()  # sorted by run, not Spark
+    assert sorted(as_ints(backend._session.sql(shown, args=arguments).collect())) == \
         as_ints(backend.run(rewritten.sql, None, settings))
 
 
@@ -575,3 +577,21 @@ def test_a_shape_spark_cannot_run_exactly_is_refused_by_the_check_the_engine_run
     with pytest.raises(HushError) as refused:
         backend.check(sql)
     assert refused.value.sqlstate == "0A000" and "DECIMAL" in (refused.value.hint or "")
+
+
+def test_only_the_final_sort_of_the_cells_ordinals_is_left_to_run() -> None:
+    from proxy.spark_backend import _sorted_rows, spark_query
+
+    cells = ("SELECT c.i0, c.i1, COALESCE(a.m0, 0) AS m0 FROM (SELECT 1 AS i0, 2 AS i1) AS c "
+             "LEFT JOIN (SELECT 1 AS i0, 2 AS i1, 3 AS m0) AS a ON a.i0 = c.i0 ORDER BY c.i0, c.i1")
+    text, sorted_by = spark_query(cells)
+    assert sorted_by == 2 and "ORDER BY" not in text.upper()
+    # Any other sort is Spark's to do: descending, limited, not the leading columns, not c's.
+    for kept in (cells.replace("ORDER BY c.i0, c.i1", "ORDER BY c.i0, c.i1 DESC"),
+                 cells + " LIMIT 1", cells.replace("ORDER BY c.i0, c.i1", "ORDER BY c.i1"),
+                 cells.replace("c.", "d.").replace("AS c ", "AS d ")):
+        text, sorted_by = spark_query(kept)
+        assert sorted_by == 0 and "ORDER BY" in text.upper(), kept
+    # run's sort: ascending by the leading columns, NULL last as PostgreSQL sorts.
+    assert _sorted_rows([(2, 0, "b"), (None, 1, "c"), (1, 5, "a"), (1, None, "d")], 2) == \
+        [(1, 5, "a"), (1, None, "d"), (2, 0, "b"), (None, 1, "c")]
