@@ -20,6 +20,7 @@ import os
 import shutil
 import subprocess
 import sys
+import time
 from decimal import Decimal
 from pathlib import Path
 
@@ -458,6 +459,18 @@ def run_cli(*arguments: str) -> subprocess.CompletedProcess[str]:
                           capture_output=True, timeout=300)
 
 
+def _wait_for_stored_answers(ledger_dsn: str, count: int, seconds: float = 30) -> None:
+    """Until the ledger holds ``count`` stored answers (written off the answers' path)."""
+    deadline = time.monotonic() + seconds
+    while True:
+        with psycopg.connect(ledger_dsn) as conn:
+            found = conn.execute("SELECT count(*) FROM hushql.stored_answers").fetchone()
+        if found is not None and found[0] >= count:
+            return
+        assert time.monotonic() < deadline, f"{found} stored answers after {seconds} s"
+        time.sleep(0.05)
+
+
 def test_serve_on_spark_answers_psql_with_noise_a_charge_and_a_notice(
         spark_scenario: str, module_dsn: str, tmp_path: Path) -> None:
     """The issue's acceptance check: a real psql, then psycopg for each of the demo's
@@ -479,7 +492,10 @@ def test_serve_on_spark_answers_psql_with_noise_a_charge_and_a_notice(
             notices: list[str] = []
             conn.add_notice_handler(lambda diagnostic: notices.append(diagnostic.message_primary))
             # psql's question again: the stored answer, reused for nothing (a stored answer
-            # lives in the ledger's PostgreSQL whatever the backend).
+            # lives in the ledger's PostgreSQL whatever the backend). Its note is written just
+            # after the answer (proxy.answer_notes) and this connection may land on the other
+            # worker, which finds it once written: wait for it.
+            _wait_for_stored_answers(module_dsn, 1)
             before = read_books(module_dsn)
             conn.execute("SELECT COUNT(*) FROM households").fetchall()
             assert notices.pop().startswith("this answer was given before and is reused")
