@@ -32,6 +32,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import collections
+import concurrent.futures
 import os
 import re
 import shutil
@@ -127,6 +128,38 @@ async def _run(host: str, port: int, database: str, clients: int, seconds: float
         for i in range(clients))))
 
 
+def _cpu_seconds(database: str, proxy_pid: int) -> dict[str, float]:
+    """CPU seconds used so far (Linux /proc; empty elsewhere) by the proxy's processes, the
+    PostgreSQL backends connected to ``database`` (its queries and its ledger alike) and this
+    benchmark's own process (the clients)."""
+    ticks = os.sysconf("SC_CLK_TCK") if hasattr(os, "sysconf") else 100
+    used: collections.Counter[str] = collections.Counter()
+    for pid in (p for p in os.listdir("/proc") if p.isdigit()) if os.path.isdir("/proc") else ():
+        try:
+            stat = Path(f"/proc/{pid}/stat").read_text()
+            command = Path(f"/proc/{pid}/cmdline").read_bytes().replace(b"\0", b" ").decode()
+        except OSError:
+            continue
+        fields = stat[stat.rfind(")") + 2:].split()
+        parent, seconds = int(fields[1]), (int(fields[11]) + int(fields[12])) / ticks
+        if int(pid) == os.getpid():
+            used["the clients (this process)"] += seconds
+        elif int(pid) == proxy_pid or parent == proxy_pid:
+            used["hushql serve (all workers)"] += seconds
+        elif command.startswith("postgres:") and f" {database} " in command:
+            used["PostgreSQL backends (queries and ledger)"] += seconds
+    return dict(used)
+
+
+def _cpu_share(database: str, proxy_pid: int, seconds: float) -> dict[str, float]:
+    """Cores used by each part over the middle half of a ``seconds``-long run starting now."""
+    time.sleep(seconds / 4)
+    before, started = _cpu_seconds(database, proxy_pid), time.monotonic()
+    time.sleep(seconds / 2)
+    after, elapsed = _cpu_seconds(database, proxy_pid), time.monotonic() - started
+    return {part: (after[part] - before.get(part, 0.0)) / elapsed for part in after}
+
+
 def _percentile(values: list[float], q: float) -> float:
     ordered = sorted(values)
     return ordered[min(len(ordered) - 1, int(q * len(ordered)))] if ordered else float("nan")
@@ -206,9 +239,13 @@ def main() -> int:
             if args.mix == "mixed" else [("planner", BENCH_PASSWORD)]
         started = time.monotonic()
         args.fresh = _knows_fresh(port)
-        through = asyncio.run(_run("127.0.0.1", port, "hushql_demo", args.clients, args.seconds,
-                                   MIX if args.mix == "mixed" else ["accepted"], analysts,
-                                   [FRESH] if args.fresh else []))
+        with concurrent.futures.ThreadPoolExecutor(1) as sampler:
+            cores = sampler.submit(_cpu_share, name, proxy.pid, args.seconds)
+            through = asyncio.run(_run(
+                "127.0.0.1", port, "hushql_demo", args.clients, args.seconds,
+                MIX if args.mix == "mixed" else ["accepted"], analysts,
+                [FRESH] if args.fresh else []))
+            args.cores = cores.result()
         elapsed = time.monotonic() - started
         server = conninfo_to_dict(dsn)
         direct_started = time.monotonic()
@@ -330,6 +367,11 @@ def _report(console: Console, args: argparse.Namespace, through: list[ClientCoun
                        str(EPSILON * seen), "agree" if agrees else "MISMATCH")
     console.print(ledger)
     console.print(f"reservations per ledger commit (mean): {args.per_commit:.1f}")
+    if args.cores:
+        answers_per_second = sum(c.outcomes["ok"] for c in through) / elapsed
+        console.print("CPU through hushql (middle half of the run): " + "; ".join(
+            f"{part} {used:.2f} cores, {used / answers_per_second * 1000:.2f} ms per answer"
+            for part, used in sorted(args.cores.items(), key=lambda item: -item[1])))
     direct_answers = sum(c.outcomes["ok"] for c in direct)
     if direct_answers:
         ratio = (sum(c.outcomes["ok"] for c in through) / elapsed) / (direct_answers

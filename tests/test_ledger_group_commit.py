@@ -15,7 +15,9 @@ from concurrent.futures import ThreadPoolExecutor
 from decimal import Decimal
 from typing import Any
 
+import psycopg
 import pytest
+from psycopg.types.json import Jsonb
 
 from proxy.errors import BUDGET_EXHAUSTED, HushError
 from proxy.ledger import Ledger, _Request, statement_hash
@@ -188,3 +190,31 @@ def test_a_batch_charged_at_once_matches_the_same_reservations_one_by_one(
         whole += all(row[1] is None for row in together)
     assert _books(fresh_dsn, "batched") == _books(fresh_dsn, "single")
     assert 5 <= whole <= 28, f"{whole} of 30 batches fit whole: the test misses a path"
+
+
+def test_a_batch_of_notes_finds_its_charges_by_index_however_many_there_are(
+        fresh_dsn: str, open_ledger: Callable[..., Ledger]) -> None:
+    """Noting answers must not cost more as the ledger grows: with thousands of charges (and
+    fresh statistics), storing a batch of notes reads the charges table through its primary
+    key only. Counted by PostgreSQL itself, in the transaction's own table statistics
+    (pg_stat_xact_user_tables, documented with the cumulative statistics system). Version 8's
+    ``id IN (SELECT ...)`` was planned as a sequential scan of every charge."""
+    ledger = open_ledger()
+    ledger.sync_budgets(make_policies({"planner": "1000"}, {"households": None}))
+    for b in range(30):
+        ledger._reserve_together([
+            _Request("planner", ["households"], D("0.001"), f"q{b}.{i}",
+                     statement_hash(f"q{b}.{i}"), "f") for i in range(100)])
+    with psycopg.connect(fresh_dsn) as conn:
+        conn.execute("ANALYZE hushql.charges")
+        conn.commit()
+        ids = [row[0] for row in conn.execute(
+            "SELECT id FROM hushql.charges ORDER BY id DESC LIMIT 3").fetchall()]
+        notes = Jsonb([{"analyst": "planner", "question": f"k{i}", "statement": "s",
+                        "epsilon": "0.001", "charge_id": i, "answer": {}} for i in ids])
+        noted = [row[0] for row in conn.execute(
+            "SELECT * FROM hushql.store_answered_batch(%s)", [notes]).fetchall()]
+        scans = conn.execute("SELECT seq_scan FROM pg_stat_xact_user_tables "
+                             "WHERE schemaname = 'hushql' AND relname = 'charges'").fetchone()
+    assert sorted(noted) == sorted(ids)
+    assert scans == (0,), f"charges scanned whole {scans} time(s) to note 3 answers"
