@@ -550,7 +550,7 @@ def test_the_hash_migration_fills_in_rows_written_before_it(
     with old._connection() as conn:  # version 1's budget rows, as that version wrote them
         conn.execute("INSERT INTO hushql.analyst_budgets (analyst, budget) VALUES ('planner', 3.0)")
         conn.execute("INSERT INTO hushql.table_budgets (table_name, cap) VALUES ('households', NULL)")
-    old._sql.reserve = old._sql.reserve.replace("reserve_charge_hashed(%s, %s::text[], %s, %s, %s, %s)",
+    old._sql.reserve = old._sql.reserve.replace("reserve_one(%s, %s::text[], %s, %s, %s, %s)",
                                                 "reserve_charge(%s, %s::text[], %s, %s, %s)")
     with old._connection() as conn:
         conn.execute(old._sql.reserve, ["planner", ["households"], D("0.1"), "SELECT 2", "fp"])
