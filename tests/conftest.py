@@ -20,6 +20,8 @@ import pytest
 from psycopg.conninfo import conninfo_to_dict
 
 from proxy.dsn import with_database
+from proxy.mirrors import mirror_label
+from proxy.wire.catalog import MIRROR_PREFIX
 
 
 def _docker_answers() -> bool:
@@ -67,10 +69,18 @@ def create_database(admin_dsn: str) -> str:
 
 
 def drop_database(admin_dsn: str, dsn: str) -> None:
-    """Drop a database made by create_database, ending any session still connected to it."""
+    """Drop a database made by create_database, ending any session still connected to it,
+    and the catalog mirrors labelled for it (``proxy.mirrors.provision`` labels the mirrors it
+    makes, the demo's among them; a test that stops a demo leaves them, and they would
+    outlive the run)."""
     name = conninfo_to_dict(dsn)["dbname"]
     with psycopg.connect(admin_dsn, autocommit=True) as conn:
         conn.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+        for (mirror,) in conn.execute(
+                "SELECT datname FROM pg_database d WHERE datname LIKE %s "
+                "AND shobj_description(d.oid, 'pg_database') = %s",
+                [MIRROR_PREFIX.replace("_", r"\_") + "%", mirror_label(name)]).fetchall():
+            conn.execute(f'DROP DATABASE IF EXISTS "{mirror}" WITH (FORCE)')
 
 
 @pytest.fixture
