@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import random
 import threading
+import time
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from decimal import Decimal
@@ -20,7 +21,7 @@ import pytest
 from psycopg.types.json import Jsonb
 
 from proxy.errors import BUDGET_EXHAUSTED, HushError
-from proxy.ledger import Ledger, _Request, statement_hash
+from proxy.ledger import Ledger, _GroupCommit, _Request, statement_hash
 from proxy.policy import Individual, Policies
 from tests.test_ledger import charge_count, make_policies, open_ledger, query  # noqa: F401
 
@@ -79,6 +80,94 @@ def test_concurrent_reservations_are_batched_and_never_overspend(
     assert ledger.spent("planner") == D("2.0") and charge_count(fresh_dsn) == 20
     assert sum(sizes) == threads
     assert max(sizes) > 1, f"no batch held more than one reservation: {sizes}"
+
+
+class _HeldRuns:
+    """A stand-in for the database: records each batch (as (analyst, statement) pairs) and
+    holds the batches of analysts in ``held`` until ``release`` is set."""
+
+    def __init__(self, held: set[str]) -> None:
+        self.held = held
+        self.release = threading.Event()
+        self.started = threading.Event()
+        self.batches: list[list[tuple[str, str]]] = []
+        self._lock = threading.Lock()
+
+    def __call__(self, requests: list[_Request]) -> list[tuple[object, ...]]:
+        with self._lock:
+            self.batches.append([(r.analyst, r.statement) for r in requests])
+        if any(r.analyst in self.held for r in requests):
+            self.started.set()
+            assert self.release.wait(10)
+        return [(i, None, None, None, None, D(1), None) for i in range(len(requests))]
+
+
+def _submit_all(group: _GroupCommit, requests: list[_Request]) -> list[threading.Thread]:
+    threads = [threading.Thread(target=group.submit, args=(r,)) for r in requests]
+    for thread in threads:
+        thread.start()
+    return threads
+
+
+def _request(analyst: str, statement: str, tables: tuple[str, ...] = ("households",)
+             ) -> _Request:
+    return _Request(analyst, list(tables), D("0.1"), statement, statement_hash(statement), "f")
+
+
+def test_reservations_waiting_for_a_committing_row_go_in_one_next_batch() -> None:
+    """While a batch of the planner commits, the planner's next reservations wait for it and
+    are then committed together: not split among free slots into small batches queued on the
+    same row lock (what the group commit did before)."""
+    runs = _HeldRuns({"planner"})
+    group = _GroupCommit(runs, limit=64, in_flight=4)
+    first = _submit_all(group, [_request("planner", "first")])
+    assert runs.started.wait(10)
+    later = _submit_all(group, [_request("planner", f"later {i}") for i in range(6)])
+    time.sleep(0.2)  # every later one is waiting by now
+    assert len(runs.batches) == 1, runs.batches
+    runs.release.set()
+    for thread in first + later:
+        thread.join(10)
+    assert [len(batch) for batch in runs.batches] == [1, 6], runs.batches
+
+
+def test_a_committing_batch_does_not_hold_up_reservations_for_other_rows() -> None:
+    """The researcher, on another table, is committed while the planner's batch is held; a
+    reservation sharing the planner's table waits for it. Batches keep ``limit``."""
+    runs = _HeldRuns({"planner"})
+    group = _GroupCommit(runs, limit=2, in_flight=4)
+    held = _submit_all(group, [_request("planner", "held", ("households",))])
+    assert runs.started.wait(10)
+    others = _submit_all(group, [_request("researcher", f"r{i}", ("tariffs",))
+                                 for i in range(5)])
+    for thread in others:
+        thread.join(10)
+        assert not thread.is_alive(), "the researcher waited for the planner's batch"
+    sharing = _submit_all(group, [_request("auditor", "shares households", ("households",))])
+    time.sleep(0.2)
+    assert ("auditor", "shares households") not in [r for b in runs.batches for r in b]
+    runs.release.set()
+    for thread in held + sharing:
+        thread.join(10)
+    assert all(len(batch) <= 2 for batch in runs.batches), runs.batches
+    assert sorted(r for b in runs.batches for r in b) == sorted(
+        [("planner", "held"), ("auditor", "shares households")]
+        + [("researcher", f"r{i}") for i in range(5)])
+
+
+def test_a_failing_batch_fails_its_reservations_and_frees_its_rows() -> None:
+    calls = []
+
+    def failing_once(requests: list[_Request]) -> list[tuple[object, ...]]:
+        calls.append(len(requests))
+        if len(calls) == 1:
+            raise HushError("08006", "the ledger is unavailable")
+        return [(1, None, None, None, None, D(1), None)] * len(requests)
+
+    group = _GroupCommit(failing_once, limit=8, in_flight=2)
+    with pytest.raises(HushError):
+        group.submit(_request("planner", "fails"))
+    assert group.submit(_request("planner", "then succeeds"))[0] == 1
 
 
 def test_two_ledgers_batching_over_shared_rows_never_deadlock_nor_overspend(
