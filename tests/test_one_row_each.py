@@ -756,3 +756,17 @@ def test_a_late_date_that_moves_k_is_planned_per_value(days) -> None:
     tree = bound(text, [dt.date(2026, 1, 1)], (1082,)).tree
     assert slots.late_slots(tree, engine.policies) == {1}
     assert slots.late_slots(tree, engine.policies, engine._narrowed_columns) == set()
+
+
+def test_a_percentile_keeps_the_date_on_the_per_individual_query(days) -> None:
+    """A percentile's histogram always takes the per-individual query (notes 8); with declared
+    bounds it keeps the date too, and its histogram is the one of January written in WHERE."""
+    conn, policies, _ = days
+    sql = "SELECT PERCENTILE_CONT(0.5) WITHIN GROUP (ORDER BY litres) FROM {t}{w}"
+    kept = rewrite(analyse(sql.format(t="jan_keyed", w=""), policies, "tester"), LITRES,
+                   DATE_KEY, LITRES)
+    written = rewrite(analyse(sql.format(t="jan_keyed", w=f" WHERE {JANUARY}"), policies,
+                              "tester"), LITRES, frozenset(), LITRES)
+    assert not kept.held_by and kept.kept_in_domains == ("reading_date",)
+    rows = run_with_bounds(conn, kept)
+    assert rows == run_with_bounds(conn, written) and sum(row[1] for row in rows) > 0
