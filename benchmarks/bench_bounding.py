@@ -132,7 +132,7 @@ def shown_settings(dsn: str) -> str:
         return ", ".join(f"{n}={conn.execute(f'SHOW {n}').fetchone()[0]}" for n in names)
 
 
-def bench(console: Console, dsn: str, rows: int, repeat: int) -> None:
+def bench(console: Console, dsn: str, rows: int, repeat: int, only: list[str]) -> None:
     schema = schema_of(rows)
     source = f"{schema}.readings"
     with tempfile.TemporaryDirectory() as folder:
@@ -153,6 +153,8 @@ def bench(console: Console, dsn: str, rows: int, repeat: int) -> None:
         try:
             with psycopg.connect(dsn, autocommit=True) as direct:
                 for label, private_sql, plain_sql, keys in CASES:
+                    if only and not any(part in label for part in only):
+                        continue
                     plain_text, floor_text = plain_queries(plain_sql, keys, source)
                     plain = median_ms(lambda: direct.execute(plain_text).fetchall(), repeat, 1)
                     floor = median_ms(lambda: direct.execute(floor_text).fetchall(), repeat, 1)
@@ -180,6 +182,8 @@ def main() -> int:
     parser.add_argument("--keep", action="store_true", help="reuse tables loaded before")
     parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
                         help="a session setting for both sides (repeatable)")
+    parser.add_argument("--only", action="append", default=[], metavar="TEXT",
+                        help="only the query shapes whose label holds TEXT (repeatable)")
     args = parser.parse_args()
     console = Console()
     dsn = with_settings(args.backend, args.set)
@@ -189,7 +193,7 @@ def main() -> int:
         if not args.keep:
             with console.status(f"loading {rows:,} readings"):
                 load(args.backend, rows)
-        bench(console, dsn, rows, args.repeat)
+        bench(console, dsn, rows, args.repeat, args.only)
     return 0
 
 

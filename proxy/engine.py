@@ -73,7 +73,7 @@ from proxy.sql.analyse import analyse, output_type
 from proxy.sql.domains import describe_key, key_label, key_values
 from proxy.sql.limits import Limits
 from proxy.sql.parameters import parameter_types
-from proxy.sql.plan import PERCENTILE_KINDS, SPREAD_KINDS, Measure, Output, Plan
+from proxy.sql.plan import PERCENTILE_KINDS, SPREAD_KINDS, GroupKey, Measure, Output, Plan
 from proxy.sql.public import PublicRead, read_sql
 from proxy.sql.vocabulary import column_types
 from proxy.sql.postprocess import carried_accuracy, postprocess, written_expression
@@ -376,7 +376,7 @@ class Engine:
         statement_key = (analyst, bound.text, bound.types)
         late = self._late.get(statement_key)
         if late is None:
-            late = slots.late_slots(bound.tree, self.policies)
+            late = slots.late_slots(bound.tree, self.policies, self._narrowed_columns)
             with self._cache_lock:
                 if len(self._late) >= 4 * self._cache_size:  # bounded like the plans
                     self._late.clear()
@@ -445,6 +445,15 @@ class Engine:
         individuals' rows (none for joins: the row query is for single tables,
         ``proxy.sql.rewrite`` notes 8)."""
         return frozenset() if plan.joins else self._source_facts(plan.table.table).unique_keys
+
+    def _narrowed_columns(self, table: str) -> frozenset[str]:
+        """The columns of ``table`` whose WHERE literals may decide whether an enforced unique
+        key holds its individuals (``proxy.sql.rewrite`` notes 10): its keys' other columns."""
+        individual = self.policies.tables[table].individual
+        if individual is None:
+            return frozenset()
+        return frozenset(c for key in self._source_facts(table).unique_keys
+                         for c in key) - {individual.column}
 
     def _plan_whole_steps(self, plan: Plan) -> frozenset[str]:
         """The plan's exact columns holding only whole steps (none for joins, as unique keys)."""
@@ -535,6 +544,10 @@ class Engine:
             ("cells", str(rewritten.cells)),
             *[(f"key {key_label(key)}", describe_key(plan.table.columns[key.column], key))
               for key in plan.keys],
+            *[(f"counted {name}", f"{describe_key(plan.table.columns[name], GroupKey(name))} "
+                                  "only: rows whose value is NULL or outside them are not counted "
+                                  "(a declared bound and an enforced unique key)")
+              for name in rewritten.kept_in_domains],
             ("epsilon", str(eps)),
             ("epsilon per measure", f"{split.measure:.6g}"),
         ]
@@ -1194,6 +1207,9 @@ def _answer_notes(plan: Plan, rewritten: Rewritten, values: tuple[int, ...]) -> 
                      "lower edge")
     if plan.table.individual is not None:
         notes.append(f"rows without a {plan.table.individual.column} are not counted")
+        for name in rewritten.kept_in_domains:  # (proxy.sql.rewrite, 10)
+            notes.append(f"rows whose {name} is NULL or outside its declared values are not "
+                         "counted")
         if rewritten.held_by:  # the bounds hold of themselves (proxy.sql.rewrite, 8)
             notes.append(f"each individual has at most {_rows_text(rewritten.held_rows)} "
                          f"here (the database keeps {_held_text(rewritten)}), so nothing is "

@@ -429,9 +429,9 @@ def test_which_daily_queries_the_key_holds(days) -> None:
     # No key, a timestamp (many values a day), a chosen bound: the per-individual query.
     for table in ("jan_plain", "jan_stamped", "jan_chosen"):
         assert held(group.format(table, "")) == ((), 0), table
-    # The date is not a key: rows outside its domain are counted, so nothing bounds them.
-    assert held("SELECT COUNT(*), SUM(litres) FROM jan_keyed") == ((), 0)
-    assert held("SELECT district, COUNT(*) FROM jan_keyed GROUP BY district") == ((), 0)
+    # The date not grouped by: kept in its declared days, so the key holds too (notes 10).
+    assert held("SELECT COUNT(*), SUM(litres) FROM jan_keyed") == by_day
+    assert held("SELECT district, COUNT(*) FROM jan_keyed GROUP BY district") == by_day
     # K = 31 days against most_rows 30: held only once the WHERE leaves 30 days.
     assert held(group.format("jan_30", "")) == ((), 0)
     assert held(group.format("jan_30", "WHERE reading_date > '2026-01-01' ")) == \
@@ -564,17 +564,22 @@ def _checked(rewritten) -> bool:
 
 
 def test_no_query_picks_its_branch_by_a_count_of_the_data(days) -> None:
-    """Rewrite notes 9: a whole-table or per-district query over a (household, date) key whose
-    date is not grouped by is never split into a row-query branch and a per-individual branch
-    chosen by a count the query makes: one row a WHERE picks out would switch the branch, and
-    with it the answer's time. Whatever the key, scale or bounds, the per-individual query
-    runs."""
+    """Rewrite notes 9 and 10: a whole-table or per-district query over a (household, date)
+    key whose date is not grouped by is never split into a row-query branch and a
+    per-individual branch chosen by a count the query makes: one row a WHERE picks out would
+    switch the branch, and with it the answer's time. The path is fixed by the text, the
+    policy and the keys: the row query alone, its dates kept in the declared days, or the
+    per-individual query alone."""
     _, policies, engine = days
     for sql in ("SELECT COUNT(*), SUM(litres) FROM jan_keyed",
                 "SELECT district, SUM(litres) FROM jan_keyed GROUP BY district",
-                "SELECT COUNT(*) FROM jan_keyed WHERE household_id = 7"):
+                "SELECT COUNT(*) FROM jan_keyed WHERE household_id = 7",
+                "SELECT COUNT(*), SUM(litres) FROM jan_30"):
         rewritten = rewrite(analyse(sql, policies, "tester"), LITRES, DATE_KEY, LITRES)
-        assert not rewritten.held_by and not _checked(rewritten), sql
+        assert not _checked(rewritten), sql
+        # One path or the other, never both in one query.
+        assert ("n_rows" in rewritten.sql) is not rewritten.held_by, sql
+        assert rewritten.kept_in_domains == ("reading_date",), sql
     assert not _checked(engine.prepare("tester", "SELECT SUM(litres) FROM jan_keyed").rewritten)
 
 
@@ -590,3 +595,178 @@ def test_whole_step_columns_follow_the_type_scale(days) -> None:
     assert whole_step_columns(policy, {"district": "numeric(7,1)"}) == frozenset()  # not a number
 
 
+
+
+# ---- a key column not grouped by: kept in its declared days (module notes, 10) --------------
+
+JANUARY = "reading_date BETWEEN '2026-01-01' AND '2026-01-31'"
+
+
+def _kept(engine: Engine, sql: str) -> tuple[tuple[str, ...], int, tuple[str, ...]]:
+    rewritten = engine.prepare("tester", sql).rewritten
+    assert ("n_rows" in rewritten.sql) is not rewritten.held_by, sql  # one path or the other
+    return rewritten.held_by, rewritten.held_rows, rewritten.kept_in_domains
+
+
+def test_which_whole_table_queries_keep_the_date(days) -> None:
+    _, _, engine = days
+    key = ("household_id", "reading_date")
+    whole = "SELECT COUNT(*), SUM(litres) FROM {} {}"
+    # Declared bounds, the date not grouped by: kept in January, K = 31 days <= most_rows.
+    for sql in (whole.format("jan_keyed", ""), whole.format("jan_unique_nulls", ""),
+                "SELECT district, COUNT(*), AVG(litres) FROM jan_keyed GROUP BY district",
+                "SELECT CASE WHEN litres > 100 THEN 'high' ELSE 'low' END, COUNT(*) "
+                "FROM jan_keyed GROUP BY 1"):
+        assert _kept(engine, sql) == (key, 31, ("reading_date",)), sql
+    # The WHERE's literals on the date narrow K.
+    assert _kept(engine, whole.format("jan_keyed", "WHERE reading_date >= '2026-01-10'")) == \
+        (key, 22, ("reading_date",))
+    assert _kept(engine, whole.format(
+        "jan_keyed", "WHERE reading_date IN ('2026-01-02', '2026-01-05', '2027-01-01')")) == \
+        (key, 2, ("reading_date",))
+    # K = 31 against most_rows 30: the per-individual query, over the same kept rows, until
+    # the WHERE leaves 30 days.
+    assert _kept(engine, whole.format("jan_30", "")) == ((), 0, ("reading_date",))
+    assert _kept(engine, whole.format("jan_30", "WHERE reading_date > '2026-01-01'")) == \
+        (key, 30, ("reading_date",))
+    assert _kept(engine, whole.format("two_months", "")) == ((), 0, ("reading_date",))
+    assert _kept(engine, whole.format("two_months", "WHERE reading_date < '2026-02-01'")) == \
+        (key, 31, ("reading_date",))
+    # No enforced key, a timestamp (no declared values of its type), a chosen bound:
+    # unchanged, every row with a household counted, the per-individual query.
+    for table in ("jan_plain", "jan_stamped", "jan_chosen"):
+        assert _kept(engine, whole.format(table, "")) == ((), 0, ()), table
+    # Grouped by the date (or a bucket of it): nothing more to keep.
+    assert _kept(engine, "SELECT date_trunc('week', reading_date), COUNT(*) FROM jan_keyed "
+                         "GROUP BY 1") == (key, 31, ())
+
+
+# (query over {t}, the same with the declared days written in its WHERE)
+KEPT_QUERIES = [
+    ("SELECT COUNT(*), SUM(litres), AVG(litres), COUNT(DISTINCT household_id) FROM {t}",
+     f"SELECT COUNT(*), SUM(litres), AVG(litres), COUNT(DISTINCT household_id) FROM {{t}} "
+     f"WHERE {JANUARY}"),
+    ("SELECT district, COUNT(*), SUM(litres) FILTER (WHERE litres > 100), VARIANCE(litres) "
+     "FROM {t} GROUP BY district",
+     f"SELECT district, COUNT(*), SUM(litres) FILTER (WHERE litres > 100), VARIANCE(litres) "
+     f"FROM {{t}} WHERE {JANUARY} GROUP BY district"),
+    ("SELECT COUNT(*), COUNT(litres) FROM {t} WHERE reading_date >= '2026-01-10'",
+     f"SELECT COUNT(*), COUNT(litres) FROM {{t}} WHERE reading_date >= '2026-01-10' AND {JANUARY}"),
+]
+
+
+@pytest.mark.parametrize("exact", [frozenset(), LITRES], ids=["per-row", "exact"])
+@pytest.mark.parametrize("n", range(len(KEPT_QUERIES)), ids=[q[0][:40] for q in KEPT_QUERIES])
+def test_kept_rows_give_the_per_individual_answer(days, n: int, exact: frozenset[str]) -> None:
+    """Noise off: the row query with the date kept in January equals the per-individual query
+    (no key known) of the same question with January written in its WHERE, on sources with
+    readings outside January, NULL dates (household 5: 40 more rows) and households reading
+    every day of January (31 rows = most_rows); and at most_rows 30, where the per-individual
+    query runs with the date kept and scales those households down, the same again."""
+    conn, policies, _ = days
+    kept_sql, written_sql = KEPT_QUERIES[n]
+    days_counted = 22 if "2026-01-10" in kept_sql else 31
+    for table, held in (("jan_keyed", days_counted), ("jan_unique_nulls", days_counted),
+                        ("jan_30", 0 if days_counted > 30 else days_counted)):
+        plan = analyse(kept_sql.format(t=table), policies, "tester")
+        kept = rewrite(plan, exact, DATE_KEY, LITRES)
+        written = rewrite(analyse(written_sql.format(t=table), policies, "tester"), exact,
+                          frozenset(), LITRES)
+        assert kept.held_rows == held and kept.kept_in_domains == ("reading_date",), table
+        assert not written.held_by and not written.kept_in_domains
+        assert (kept.bounds, kept.declared_sensitivities) == \
+            (written.bounds, written.declared_sensitivities)
+        kept_rows, written_rows = run_with_bounds(conn, kept), run_with_bounds(conn, written)
+        assert kept_rows == written_rows, table
+        assert any(row[len(plan.keys)] for row in kept_rows)  # not all empty
+        clipped = [v for row in kept_rows for v in row[-len(kept.bounds):]]
+        # Only most_rows 30 scales anyone, and only a household counted on all 31 days (by
+        # district, a day in 'Riverside' is outside the cells).
+        assert any(clipped) is (table == "jan_30" and n == 0), table
+    # And PostgreSQL's own count of the first query: the rows with a household in January.
+    if n == 0:
+        rows = run_with_bounds(conn, rewrite(analyse(kept_sql.format(t="jan_unique_nulls"),
+                                                     policies, "tester"), exact, DATE_KEY, LITRES))
+        expected = conn.execute(f"SELECT count(*) FROM days.unique_nulls WHERE {JANUARY} "
+                                "AND household_id IS NOT NULL").fetchone()[0]
+        everything = conn.execute("SELECT count(*) FROM days.unique_nulls "
+                                  "WHERE household_id IS NOT NULL").fetchone()[0]
+        assert rows[0][0] == expected < everything
+
+
+def test_one_household_moves_a_kept_answer_at_most_its_sensitivity(days) -> None:
+    """Removing one household moves the whole-table row query by at most R = 31 rows (and T,
+    distinct households 1), though households own 37 rows in the source (days outside
+    January) and household 5 of unique_nulls 77 (40 without a date)."""
+    conn, policies, _ = days
+    for table, source in (("jan_keyed", "days.keyed"), ("jan_unique_nulls", "days.unique_nulls")):
+        sql = f"SELECT COUNT(*), SUM(litres), COUNT(DISTINCT household_id) FROM {table}"
+        plan = analyse(sql, policies, "tester")
+        rewritten = rewrite(plan, LITRES, DATE_KEY, LITRES)
+        assert rewritten.held_rows == 31
+        assert rewritten.sensitivities(tuple(b.ceiling for b in rewritten.bounds)) == \
+            (31, 155000, 1)
+        largest = _largest_moves(conn, plan, rewritten, source, (1, 2, 5, 29, 59, 60))
+        # The check can fail: a household of 31 January readings moves the count by 31.
+        assert largest[0] == 31 and largest[2] == 1, table
+
+
+def test_explain_and_notes_say_the_date_is_kept(days) -> None:
+    _, _, engine = days
+    sql = "SELECT COUNT(*) FROM jan_keyed"
+    explained = dict(engine.explain("tester", sql, epsilon=Decimal(1)).rows)
+    assert explained["counted reading_date"] == (
+        "31 values: 2026-01-01 .. 2026-01-31 only: rows whose value is NULL or outside them are "
+        "not counted (a declared bound and an enforced unique key)")
+    assert explained["bound on rows per individual"] == (
+        "declared: 31 (the policy's most_rows); held by the database, which keeps "
+        "(household_id, reading_date) unique and the query counts at most 31 values of "
+        "reading_date, so nothing is scaled")
+    answer = engine.answer("tester", sql, epsilon=Decimal(1))
+    kept = "rows whose reading_date is NULL or outside its declared values are not counted"
+    assert kept in answer.notes
+    assert [a.sensitivity for a in answer.accuracy] == [31]
+    # The per-individual query keeps the date too (most_rows 30), and says so; a chosen bound
+    # keeps nothing, and says nothing.
+    for table, said in (("jan_30", True), ("jan_chosen", False)):
+        explained = dict(engine.explain("tester", f"SELECT COUNT(*) FROM {table}",
+                                        epsilon=Decimal(1)).rows)
+        assert ("counted reading_date" in explained) is said, table
+        notes = engine.answer("tester", f"SELECT COUNT(*) FROM {table}", epsilon=Decimal(1)).notes
+        assert (kept in notes) is said, table
+
+
+def test_a_late_date_that_moves_k_is_planned_per_value(days) -> None:
+    """A prepared statement's slot on the kept date decides K (31 days against most_rows 30),
+    so each value is planned: bound late into the plan of 2027-01-01 (K = 0, the row query,
+    the same plan as the marker's, so the check against fresh analysis passes), 2025-12-01
+    would run the row query with K = 31 > most_rows."""
+    import datetime as dt
+
+    from tests.test_statement import bound
+
+    _, _, engine = days
+    text = "SELECT COUNT(*) FROM jan_30 WHERE reading_date > $1"
+    held = [(bool(rewritten.held_by), rewritten.held_rows) for rewritten in (
+        engine.prepare("tester", bound(text, [day], (1082,))).rewritten
+        for day in (dt.date(2027, 1, 1), dt.date(2025, 12, 1), dt.date(2026, 1, 20)))]
+    assert held == [(True, 0), (False, 0), (True, 11)]
+    # A date column of no key is still bound late.
+    from proxy.sql import statement as slots
+    tree = bound(text, [dt.date(2026, 1, 1)], (1082,)).tree
+    assert slots.late_slots(tree, engine.policies) == {1}
+    assert slots.late_slots(tree, engine.policies, engine._narrowed_columns) == set()
+
+
+def test_a_percentile_keeps_the_date_on_the_per_individual_query(days) -> None:
+    """A percentile's histogram always takes the per-individual query (notes 8); with declared
+    bounds it keeps the date too, and its histogram is the one of January written in WHERE."""
+    conn, policies, _ = days
+    sql = "SELECT PERCENTILE_CONT(0.5) WITHIN GROUP (ORDER BY litres) FROM {t}{w}"
+    kept = rewrite(analyse(sql.format(t="jan_keyed", w=""), policies, "tester"), LITRES,
+                   DATE_KEY, LITRES)
+    written = rewrite(analyse(sql.format(t="jan_keyed", w=f" WHERE {JANUARY}"), policies,
+                              "tester"), LITRES, frozenset(), LITRES)
+    assert not kept.held_by and kept.kept_in_domains == ("reading_date",)
+    rows = run_with_bounds(conn, kept)
+    assert rows == run_with_bounds(conn, written) and sum(row[1] for row in rows) > 0

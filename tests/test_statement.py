@@ -131,7 +131,7 @@ def test_a_wrong_late_slot_is_caught_by_the_check_against_fresh_analysis(engine,
     """The companion: claiming a key column's slot is late would change the cells (WHERE
     narrows the key's domain); the first plan's check finds it and plans per value."""
     text = "SELECT age, COUNT(*) FROM people WHERE age < $1 GROUP BY age"
-    monkeypatch.setattr(slots, "late_slots", lambda tree, policies: frozenset({1}))
+    monkeypatch.setattr(slots, "late_slots", lambda tree, policies, narrowed: frozenset({1}))
     b = bound(text, [50], (types.INT8,))
     planned = engine.prepare(ANALYST, b)
     assert engine._late[(ANALYST, text, (types.INT8,))] == frozenset()  # turned off

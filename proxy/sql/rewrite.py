@@ -258,13 +258,15 @@ domains, fall in no bucket and are not ranked.
    equality and own collations, of an ordinary table without inheritance children, as
    ``proxy.backend`` reads it from the catalog; never the data owner's word; Spark reports
    none). Take such a key U = {individual, c_1, ..., c_k} where every c_i is the column of a
-   GROUP BY key of the plan and has a type taking only its declared values inside its declared
-   domain (``countable_keys``: date for dates, smallint, integer or bigint for integers, text
-   or character varying for categories, boolean). Every counted row lies in the cells, so its
-   c_i lies in c_i's declared domain narrowed by the WHERE literals on c_i (``within``): a key
-   over c_i maps every other value to no cell (a key as written joins the declared values; a
-   bucket is NULL outside the domain, ``proxy.sql.keys``), and a row failing a WHERE conjunct
-   is not counted. Call D_i that narrowed domain. Two rows of one individual agree on the
+   GROUP BY key of the plan, or kept in its declared domain (10), and has a type taking only
+   its declared values inside its declared domain (``countable_keys``: date for dates,
+   smallint, integer or bigint for integers, text or character varying for categories,
+   boolean). Every counted row lies in the cells, so its c_i lies in c_i's declared domain
+   narrowed by the WHERE literals on c_i (``within``; for a kept column, ``keys.narrowings``
+   of the WHERE): a key over c_i maps every other value to no cell (a key as written joins the
+   declared values; a bucket is NULL outside the domain, ``proxy.sql.keys``), a kept column's
+   other values are not counted (10), and a row failing a WHERE conjunct is not counted. Call
+   D_i that narrowed domain. Two rows of one individual agree on the
    individual column, so they differ in some c_i by the key's equality, and two values equal
    to one declared value are equal to each other (the guards and joins compare with that
    equality or with the finer equality of their text): an individual has at most ``K =
@@ -317,8 +319,45 @@ domains, fall in no bucket and are not ranked.
    whole-table query). The answer would be the same function of the data, but the branch,
    and so the answer's time (2x at 10M rows), would turn on a single row that a WHERE can pick
    out: a timing channel on one individual, against the bound on one row's work the limits
-   keep (``proxy.sql.filters``). A domain the database enforces (a CHECK constraint read like
-   the unique keys of 8) would give the same speed without it.
+   keep (``proxy.sql.filters``). Note 10 gets the same speed without any count: such rows are
+   never counted, whatever the data.
+
+10. Key columns kept in their declared domains. With declared bounds on one table, every column
+   c of an enforced unique key U with the individual (``unique_keys``, as in 8: its other
+   columns are policy columns of a type taking only their declared values) that the plan does
+   not group by is *kept* (``_kept_in_domains``): a row whose c is NULL or outside c's declared
+   domain (``keys.inside_domain``, the guard of every bucket key) is not counted, by the row
+   query and the per-individual query alike (``_counted``, next to the WHERE and the
+   individual's NOT NULL, before any partial, total or cell). A grouped column needs nothing:
+   a key counts only rows inside its column's domain (8). So each c_i of U but the individual
+   is held to its declared domain narrowed by the WHERE literals on it, and 8 bounds each
+   individual to K = prod |D_i| counted rows: where K <= most_rows the row query runs, else the
+   per-individual query, over the same rows either way.
+
+   Proof that it is one function of the data. The rows counted are fixed by the plan, the
+   declared bounds and the catalog's keys alone, and are the same on both paths: the kept
+   columns do not depend on K (which WHERE literals move) nor on the data. Over those rows
+   and with K <= most_rows, 8 shows that the row query's cells, bound values and clipped-away
+   totals are the per-individual query's (equal integers where every sum is in whole steps,
+   9; else the rounding to steps once per cell, 8). So with the noise off the answer is one
+   function of the data whichever path runs; the path itself, and with it the time, is chosen
+   from the query text, the policy and the catalog only, never from a count (9), and a row
+   outside the domain costs one per-row comparison on either path, as a row failing the WHERE.
+
+   Sensitivity. The kept condition is a per-row condition like the WHERE: removing an
+   individual u removes exactly u's counted rows and changes no other row's passing, so
+   notes 1 to 8 hold over the counted rows unchanged (R, T, min(R, cells) on the per-individual
+   path; at most K <= R rows moved on the row path, 8).
+
+   Why such rows are dropped rather than counted. Counting them would break K (a household's
+   readings on days outside the declared year are not bounded by the key), and the policy
+   declares that the column takes those values only, as it does for a grouped key, whose rows
+   outside the domain are not counted either. Chosen bounds, joins and tables without such a
+   key are unchanged: they take the per-individual path, which bounds every individual by its
+   factor, so keeping would change what they count for no speed. The answer's notes and
+   EXPLAIN name each kept column. A WHERE literal on a kept column moves K, and so the path:
+   a prepared statement's slot on such a column is planned per value (``proxy.sql.statement``),
+   never bound late into a plan made for another value.
 """
 
 from __future__ import annotations
@@ -336,7 +375,7 @@ import sqlglot.expressions as exp
 from proxy.policy import ColumnPolicy, TablePolicy
 from proxy.sql.domains import cell_count, key_size, key_values
 from proxy.sql.vocabulary import clamp_node, column_node, number_node, value_node
-from proxy.sql.keys import key_expression
+from proxy.sql.keys import inside_domain, key_expression, narrowings
 from proxy.sql.plan import GroupKey, Measure, Plan
 
 # Backend session settings holding, per chosen bound j, the comma-separated integer noise of
@@ -429,6 +468,9 @@ class Rewritten:
     # hold of themselves (module notes, 8). Empty and 0 otherwise.
     held_by: tuple[str, ...] = ()
     held_rows: int = 0
+    # Columns of such keys the query does not group by, whose rows outside the declared values
+    # (NULL included) are not counted, on either path (module notes, 10). Empty otherwise.
+    kept_in_domains: tuple[str, ...] = ()
 
     def sensitivities(self, values: tuple[int, ...] = ()) -> tuple[int, ...]:
         """The L1 sensitivity of each measure given the bounds' values (module notes, 3)."""
@@ -477,20 +519,22 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
                          row_sensitivities=tuple(_unit_sensitivity(policy, m) for m in plan.measures),
                          measure_kinds=kinds, buckets=buckets)
     bounds, measure_bounds = _bounds(plan, cells)
-    held = _holding_key(plan, unique_keys) if not any(b.chosen for b in bounds) \
-        and not plan.joins and buckets == 1 else None  # one table, no percentile histogram
-    if held is not None:
-        tree = _one_row_each_query(plan, bounds, exact_columns)
+    declared = not any(b.chosen for b in bounds) and not plan.joins  # one table, declared bounds
+    kept = _kept_in_domains(plan, unique_keys) if declared else ()
+    held = _holding_key(plan, unique_keys, kept) if declared and buckets == 1 else None
+    if held is not None:  # (no percentile histogram)
+        tree = _one_row_each_query(plan, bounds, exact_columns, kept)
     else:
         tree = _individual_table_query(plan, bounds, measure_bounds, exact_columns,
                                        middle=buckets > 1,
                                        one_row_cells=_cells_hold_one_row(plan, unique_keys),
-                                       whole=_sums_in_whole_steps(plan, exact_columns, whole_steps))
+                                       whole=_sums_in_whole_steps(plan, exact_columns, whole_steps),
+                                       kept=kept)
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
                      measure_bounds=measure_bounds, row_sensitivities=(), measure_kinds=kinds,
                      measure_multiples=tuple(_row_multiple(policy, m) for m in plan.measures),
                      buckets=buckets, held_by=held[0] if held else (),
-                     held_rows=held[1] if held else 0)
+                     held_rows=held[1] if held else 0, kept_in_domains=kept)
 
 
 # Backend types (``format_type``) that take, inside a column's declared domain, only the
@@ -522,31 +566,40 @@ def countable_keys(policy: TablePolicy, keys: frozenset[frozenset[str]],
 def _key_sizes(plan: Plan, unique_keys: frozenset[frozenset[str]]
                ) -> list[tuple[int, tuple[str, ...], tuple[str, ...]]]:
     """Per enforced unique key holding the individual column: K, the product over its other
-    columns of their declared domains (narrowed by the WHERE where grouped by), its columns, and
-    those of its other columns that are not grouped by (then the key does not hold: module
-    notes, 8 and 9)."""
+    columns of their declared domains narrowed by the WHERE literals on them (a grouped
+    column's key carries them; ``keys.narrowings`` reads them for the others), its columns, and
+    those of its other columns that are not grouped by (module notes, 8 and 10)."""
     assert plan.table.individual is not None
     individual = plan.table.individual.column
     keyed = {key.column: key.within for key in plan.keys}
+    written = narrowings(plan.where, plan.table)
     found = []
     for key in unique_keys:
         if individual not in key:
             continue
         others = sorted(key - {individual})
-        size = cell_count([key_size(plan.table.columns[c], GroupKey(c, within=keyed.get(c)))
-                           for c in others])
+        size = cell_count([key_size(plan.table.columns[c], GroupKey(
+            c, within=keyed[c] if c in keyed else written.get(c))) for c in others])
         found.append((size, (individual, *others), tuple(c for c in others if c not in keyed)))
     return found
 
 
-def _holding_key(plan: Plan, unique_keys: frozenset[frozenset[str]]
+def _kept_in_domains(plan: Plan, unique_keys: frozenset[frozenset[str]]) -> tuple[str, ...]:
+    """The columns whose rows outside the declared values are not counted, on either path,
+    when bounds are declared (module notes, 10): every column of an enforced unique key with
+    the individual that the plan does not group by. Sorted; decided from the plan and keys."""
+    return tuple(sorted({c for _, _, unchecked in _key_sizes(plan, unique_keys) for c in unchecked}))
+
+
+def _holding_key(plan: Plan, unique_keys: frozenset[frozenset[str]], kept: tuple[str, ...]
                  ) -> tuple[tuple[str, ...], int] | None:
     """An enforced unique key holding each individual to K <= most_rows counted rows, with K
-    (module notes, 8): every other column of the key is grouped by, and K is the product of
-    their declared domains narrowed by the WHERE; the smallest K, None when no key holds."""
+    (module notes, 8 and 10): every other column of the key is grouped by or kept in its
+    declared domain, and K is the product of their declared domains narrowed by the WHERE; the
+    smallest K (then the first columns), None when no key holds."""
     assert plan.table.individual is not None
     found = [(size, columns) for size, columns, unchecked in _key_sizes(plan, unique_keys)
-             if not unchecked]
+             if set(unchecked) <= set(kept)]
     if not found:
         return None
     size, columns = min(found)
@@ -1005,15 +1058,25 @@ def _row_table_query(plan: Plan, exact: frozenset[str],
     return _finish(plan, grouped, by_ordinal=False)
 
 
-def _one_row_each_query(plan: Plan, bounds: tuple[Bound, ...], exact: frozenset[str]) -> exp.Select:
-    """When the backend holds each individual within the declared bounds (module notes, 8):
-    the row query over the rows with an individual, then each declared bound's value and a
-    clipped-away 0."""
+def _counted(plan: Plan, kept: tuple[str, ...]) -> exp.Expression:
+    """Which rows a table with individuals counts beyond the WHERE: those with an individual
+    (module notes, 1) and each ``kept`` column inside its declared domain (notes, 10)."""
+    assert plan.table.individual is not None
+    owned: exp.Expression = exp.Not(this=exp.Is(this=column_node(plan.table.individual.column),
+                                                 expression=exp.Null()))
+    inside = [inside_domain(name, plan.table.columns[name]) for name in kept]
+    return exp.and_(owned, *inside, copy=False) if inside else owned
+
+
+def _one_row_each_query(plan: Plan, bounds: tuple[Bound, ...], exact: frozenset[str],
+                        kept: tuple[str, ...] = ()) -> exp.Select:
+    """When the backend holds each individual within the declared bounds (module notes, 8 and
+    10): the row query over the rows ``_counted`` keeps, then each declared bound's value and
+    a clipped-away 0."""
     assert plan.table.individual is not None and not any(b.chosen for b in bounds)
-    owned = exp.Not(this=exp.Is(this=column_node(plan.table.individual.column), expression=exp.Null()))
     tail = [exp.alias_(number_node(b.ceiling), f"b{j}", copy=False) for j, b in enumerate(bounds)] + [
         exp.alias_(number_node(0), f"clipped{j}", copy=False) for j in range(len(bounds))]
-    return _row_table_query(plan, exact, owned).select(*tail, copy=False)
+    return _row_table_query(plan, exact, _counted(plan, kept)).select(*tail, copy=False)
 
 
 def _select(text: str) -> exp.Select:
@@ -1110,14 +1173,17 @@ def _cells_hold_one_row(plan: Plan, unique_keys: frozenset[frozenset[str]]) -> b
 
 def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
                             exact: frozenset[str], middle: bool = False,
-                            one_row_cells: bool = False, whole: bool = False) -> exp.Select:
+                            one_row_cells: bool = False, whole: bool = False,
+                            kept: tuple[str, ...] = ()) -> exp.Select:
     """The per-individual rewrite (module notes): partials per (individual, cell) in the
     domains (``middle``: a percentile plan's histogram, thinned about the middle), totals per
     individual, the bounds (declared, or chosen by noisy max over the
     candidates), one factor per individual scaling all its partials, sums per cell, and per
-    bound the clipped-away total, each individual capped."""
+    bound the clipped-away total, each individual capped; over the rows ``_counted`` keeps
+    (``kept``: columns held to their declared values, module notes 10)."""
     policy = plan.table
     assert policy.individual is not None
+    counted = _counted(plan, kept)
     who = exp.alias_(column_node(policy.individual.column), "who", copy=False)
     keys = [exp.alias_(_key_expression(policy, k), f"k{j}", copy=False) for j, k in enumerate(plan.keys)]
     partials = [exp.alias_(exp.Count(this=exp.Star()), "r", copy=False)] + [
@@ -1126,8 +1192,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     if one_row_cells:  # each (individual, cell) holds one row at most (module notes, 1)
         partials = [_over_one_row(partial) for partial in partials]
     per_individual = _filtered(plan, exp.Select().select(who, *keys, *partials, copy=False)).where(
-        exp.Not(this=exp.Is(this=column_node(policy.individual.column), expression=exp.Null())),
-        copy=False)
+        counted, copy=False)
     if not one_row_cells:
         per_individual = per_individual.group_by(
             *[number_node(j + 1) for j in range(len(keys) + 1)], copy=False)
@@ -1225,8 +1290,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     # in parallel) rather than stored, one row per table row (measured at 10M rows: 10.7x the
     # plain query stored, 5.7x read again; the same snapshot, so the same rows each time).
     inlined = {"q": False} if one_row_cells else {}
-    owned = exp.Not(this=exp.Is(this=column_node(policy.individual.column), expression=exp.Null()))
-    cells = [("qc", _row_table_query(plan, exact, owned))] if by_rows else []
+    cells = [("qc", _row_table_query(plan, exact, counted.copy()))] if by_rows else []
     for name, part in [("q", q), *cells, ("t", t), *histograms, ("b", b), ("s", s), ("w", w),
                        ("lost", lost), ("clipped", clipped)]:
         outer = outer.with_(name, as_=part, materialized=True if name.startswith("h")

@@ -17,9 +17,12 @@ late slot in three steps: the tree limits (``proxy.sql.limits.check_tree``) coun
 check its digits; ``proxy.sql.filters.literal`` checks its range and rebuilds it as a fresh
 node from its own text; the comparison unifies the column's type with the literal's, and puts
 the rebuilt node, unchanged, in the rebuilt WHERE, which the rewrite copies into the backend
-SQL. The one other reader of WHERE literals is the narrowing of GROUP BY keys' domains
-(``proxy.sql.keys.narrowings``), which only matters for a key's column; a late slot's column
-appears nowhere outside WHERE, so it is no key's column. Two values of one class (same Python
+SQL. The other readers of WHERE literals are the narrowings of ``proxy.sql.keys.narrowings``:
+of GROUP BY keys' domains, which only matter for a key's column (a late slot's column appears
+nowhere outside WHERE, so it is no key's column), and of the other columns of an enforced unique
+key with the individual, which decide whether the key holds each individual within its bound
+(``proxy.sql.rewrite`` notes 10): the engine names those columns (``narrowed``) and a slot on
+one of them is planned. Two values of one class (same Python
 type, same sign: a negative number is one node more) therefore give plans that differ only in
 that literal's text. So the engine plans a class once with a marker value in each late slot,
 finds the marker's rendering in the backend SQL (exactly as many times as the slot appears, or
@@ -39,7 +42,7 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass
 from decimal import Decimal
-from typing import Any, Hashable
+from typing import Any, Callable, Hashable
 
 import sqlglot.expressions as exp
 
@@ -101,8 +104,15 @@ class BoundStatement:
         return f"{self.text}\n-- parameters: {values}" if values else self.text
 
 
-def late_slots(tree: exp.Expression, policies: Policies) -> frozenset[int]:
-    """The slots (1-based) whose values can be bound late (module rules); pure."""
+def _nothing_narrowed(table: str) -> frozenset[str]:
+    return frozenset()
+
+
+def late_slots(tree: exp.Expression, policies: Policies,
+               narrowed: Callable[[str], frozenset[str]] = _nothing_narrowed) -> frozenset[int]:
+    """The slots (1-based) whose values can be bound late (module rules); ``narrowed(table)``
+    names the columns of a policy table whose WHERE literals the rewrite reads (a slot on one
+    is planned). Pure given ``narrowed``."""
     if not isinstance(tree, exp.Select):
         return frozenset()
     tables = list(tree.find_all(exp.Table))
@@ -113,7 +123,7 @@ def late_slots(tree: exp.Expression, policies: Policies) -> frozenset[int]:
     if table is None:
         return frozenset()
     outside = {c.name for c in tree.find_all(exp.Column)
-               if not _under(c, where)}
+               if not _under(c, where)} | narrowed(table.table)
     found: set[int] = set()
     refused: set[int] = set()
     for node in tree.find_all(exp.Parameter, exp.Placeholder):
