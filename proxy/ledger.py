@@ -37,12 +37,13 @@ Why it is shaped like this:
   reservation for a row a committing batch holds waits for that batch (its row lock would
   make it wait in the database anyway) and goes in the next batch with the others that
   waited. (Before, batches formed as leaders came free, so reservations for one hot row were
-  split among several small batches queued on its lock. Measured alternately with
-  bench_load.py, 32 clients of one analyst, 2 workers, on a loaded machine: 4.6 to 4.9
-  reservations per commit and 553 to 628 answers/s before, 6.9 to 7.2 and 573 to 795
-  after.) The gain: a hot row (one
-  analyst, one table cap) is locked, written and flushed to disk once per batch instead of
-  once per answer, and the batch is one statement and one round trip. A new kind of budget
+  split among several small batches queued on its lock. Measured alternately, five rounds
+  each, with bench_load.py, 32 clients of one analyst, 2 workers, quiet machine: 3.6 to 3.8
+  reservations per commit before, 5.1 to 5.5 after; answers/s 847-1,037 before and 704-980
+  after, no difference separable from the noise, since the proxy and the database are
+  CPU-bound on two cores there.) The gain: a hot row (one analyst, one table cap) is locked,
+  written and flushed to disk once per batch instead of once per answer, and the batch is one
+  statement and one round trip. A new kind of budget
   adds its lock, in its place in the order, to both functions.
 - Once a query has started its charge stands, whatever happens (an error at run time can depend
   on the data): ``finish`` only records the outcome and never gives epsilon back.
