@@ -288,7 +288,7 @@ def _stages(policies: Path, dsn: str, repeat: int = 200) -> list[str]:
     try:
         text = ACCEPTED.format(k=3)
         prepared = engine.prepare("planner", text)
-        split = epsilon_split(prepared.rewritten, len(prepared.plan.measures), EPSILON)
+        split = epsilon_split(prepared.plan, prepared.rewritten, EPSILON)
         settings = _bound_settings(prepared.rewritten, split)
         rows = engine.backend.run(prepared.rewritten.sql, None, settings)
         # Answers of charges of their own to store (one each), made before the clock starts.

@@ -118,11 +118,17 @@ class EpsilonSplit:
     clip: Decimal
 
 
-def epsilon_split(rewritten: Rewritten, measures: int, epsilon: Decimal) -> EpsilonSplit:
-    """Basic sequential composition: the parts add up to ``epsilon`` exactly."""
+def epsilon_split(plan: Plan, rewritten: Rewritten, epsilon: Decimal) -> EpsilonSplit:
+    """Basic sequential composition: the parts add up to ``epsilon`` exactly. A percentile
+    plan reports no clipped-away figure (its answer is a rank, selected from a histogram that is
+    never released), so its clip share goes to its measures."""
+    measures = len(plan.measures)
     if not any(b.chosen for b in rewritten.bounds):
         return EpsilonSplit(measure=epsilon / measures, bound=Decimal(0), clip=Decimal(0))
     count = len(rewritten.bounds)
+    if plan.ranked is not None:
+        return EpsilonSplit(measure=epsilon * (1 - BOUND_SHARE) / measures,
+                            bound=epsilon * BOUND_SHARE / count, clip=Decimal(0))
     return EpsilonSplit(measure=epsilon * (1 - BOUND_SHARE - CLIP_SHARE) / measures,
                         bound=epsilon * BOUND_SHARE / count, clip=epsilon * CLIP_SHARE / count)
 
@@ -535,7 +541,7 @@ class Engine:
         eps = self.epsilon_for(epsilon)
         stored = self._stored_answer(analyst, _question(analyst, prepared, eps))
         plan, rewritten = prepared.plan, prepared.rewritten
-        split = epsilon_split(rewritten, len(plan.measures), eps)
+        split = epsilon_split(plan, rewritten, eps)
         rows: list[tuple[Value, ...]] = [
             ("table", plan.table.table),
             ("protected unit", f"individual ({plan.table.individual.column}, population "
@@ -558,8 +564,9 @@ class Engine:
                 rows.append((f"bound on {what} per individual",
                              f"chosen per query by a private quantile (noisy max over "
                              f"{len(bound.candidates)} candidates up to the ceiling "
-                             f"{_show(bound.ceiling * unit)}), epsilon {split.bound:.6g}; "
-                             f"clipped-away total reported with epsilon {split.clip:.6g}"))
+                             f"{_show(bound.ceiling * unit)}), epsilon {split.bound:.6g}"
+                             + (f"; clipped-away total reported with epsilon {split.clip:.6g}"
+                                if split.clip else "")))
             else:
                 held = (f"; held by the database, which keeps {_held_text(rewritten)}, "
                         "so nothing is scaled" if rewritten.held_by else "")
@@ -675,7 +682,7 @@ class Engine:
         failure: HushError | None = None
         try:
             faults.pause("after-reserve")
-            split = epsilon_split(prepared.rewritten, len(plan.measures), eps)
+            split = epsilon_split(plan, prepared.rewritten, eps)
             true_rows = self._run_in_time(prepared, control,
                                           _bound_settings(prepared.rewritten, split), arrived,
                                           steady)

@@ -136,7 +136,7 @@ def engines(module_dsn: str, tmp_path_factory: pytest.TempPathFactory):
 def _samples(engine: Engine, sql: str, statistic: Callable[[list[tuple]], float]) -> np.ndarray:
     """``SAMPLES`` answers to ``sql`` through the engine's steps, reduced to one number each."""
     prepared = engine.prepare("auditor", sql)
-    split = epsilon_split(prepared.rewritten, len(prepared.plan.measures), EPSILON)
+    split = epsilon_split(prepared.plan, prepared.rewritten, EPSILON)
     found = []
     for _ in range(SAMPLES):
         rows = engine.backend.run(prepared.rewritten.sql, None,

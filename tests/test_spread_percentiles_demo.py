@@ -57,7 +57,7 @@ def test_litres_spread_bound_covers_postgresql(demo) -> None:
     values = (min(c for c in rows_bound.candidates if c >= 7),)
     with psycopg.connect(dsn, autocommit=True) as conn:
         rows = run_with_bounds(conn, rewritten, values)
-    split = epsilon_split(rewritten, len(plan.measures), Decimal("1"))
+    split = epsilon_split(plan, rewritten, Decimal("1"))
     scales = tuple(Fraction(s) / Fraction(split.measure) for s in rewritten.sensitivities(values))
     widths = spread.widths(scales)  # type: ignore[arg-type]
     cap = spread.largest_variance(0, 20000)

@@ -196,7 +196,8 @@ second scan. Report noisy max with noise drawn before the query (exact integer s
    epsilon_c per bound on its clipped-away figure, and epsilon_m per measure on the measures
    (noise scaled to the sensitivities at the chosen bounds, which are released and public).
    By basic adaptive sequential composition the query is (sum of these)-DP; the engine's split
-   makes that sum the query's epsilon.
+   makes that sum the query's epsilon. A percentile plan releases no clipped-away figure (the
+   backend's is dropped unread), so it spends no epsilon_c and its measures get that share.
 
 7. How far clipping may have lowered an answer. Per bound j, ``clipped_j`` sums over
    individuals their clipped-away amount (rows, or the L1 of the sum's partials, lost to the
