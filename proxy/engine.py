@@ -126,11 +126,9 @@ def epsilon_split(plan: Plan, rewritten: Rewritten, epsilon: Decimal) -> Epsilon
     if not any(b.chosen for b in rewritten.bounds):
         return EpsilonSplit(measure=epsilon / measures, bound=Decimal(0), clip=Decimal(0))
     count = len(rewritten.bounds)
-    if plan.ranked is not None:
-        return EpsilonSplit(measure=epsilon * (1 - BOUND_SHARE) / measures,
-                            bound=epsilon * BOUND_SHARE / count, clip=Decimal(0))
-    return EpsilonSplit(measure=epsilon * (1 - BOUND_SHARE - CLIP_SHARE) / measures,
-                        bound=epsilon * BOUND_SHARE / count, clip=epsilon * CLIP_SHARE / count)
+    clip_share = Decimal(0) if plan.ranked is not None else CLIP_SHARE
+    return EpsilonSplit(measure=epsilon * (1 - BOUND_SHARE - clip_share) / measures,
+                        bound=epsilon * BOUND_SHARE / count, clip=epsilon * clip_share / count)
 
 
 @dataclass(frozen=True)

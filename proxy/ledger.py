@@ -43,8 +43,8 @@ Why it is shaped like this:
   after, no difference separable from the noise, since the proxy and the database are
   CPU-bound on two cores there.) The gain: a hot row (one analyst, one table cap) is locked,
   written and flushed to disk once per batch instead of once per answer, and the batch is one
-  statement and one round trip. A new kind of budget
-  adds its lock, in its place in the order, to both functions.
+  statement and one round trip. A new kind of budget adds its lock, in its place in the order,
+  to both functions.
 - Once a query has started its charge stands, whatever happens (an error at run time can depend
   on the data): ``finish`` only records the outcome and never gives epsilon back.
 - Several proxy processes may share one ledger. Row locks (``SELECT ... FOR UPDATE``) make

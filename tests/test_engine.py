@@ -284,7 +284,8 @@ def test_chosen_bounds_are_explained_and_reported_with_what_they_clipped(make_en
 def test_a_percentile_with_chosen_bounds_spends_no_epsilon_on_a_clipped_figure_it_never_reports(
         make_engine) -> None:
     engine = make_engine(most_rows=10, bounds="chosen")
-    sql = "SELECT ward, percentile_cont(0.5) WITHIN GROUP (ORDER BY minutes) FROM visits GROUP BY ward"
+    sql = ("SELECT ward, percentile_cont(0.5) WITHIN GROUP (ORDER BY minutes) FROM visits "
+           "GROUP BY ward")
     explained = dict(engine.explain("tester", sql, epsilon=Decimal(1)).rows)
     # One bound (rows) chosen with 10%; the selection gets the other 90%, the 5% a clipped
     # figure would take included: the answer is a rank, and no clipped figure is released.
