@@ -111,6 +111,10 @@ class QueryBackend(Protocol):
     (PostgreSQL) or ``proxy.spark_backend.SparkBackend``. Every method takes the rewrite's
     PostgreSQL text; a backend that speaks another dialect translates it itself."""
 
+    # Up to this many cells, per-individual queries take the one-row-per-individual shape
+    # (``proxy.sql.rewrite``, module notes 11); 0: never.
+    wide_cells: int
+
     def run(self, sql: str, control: QueryControl | None = None,
             settings: dict[str, str] | None = None, *,
             timeout_ms: int | None = None) -> list[tuple[Any, ...]]:
@@ -140,6 +144,10 @@ class QueryBackend(Protocol):
 
 class Backend:
     """A pool of read-only connections to the database holding the protected tables."""
+
+    # PostgreSQL runs the joined shape faster: it plans the per-individual steps as one query
+    # over shared intermediate results, and a wide row of many cells costs it more per row.
+    wide_cells = 0
 
     def __init__(self, dsn: str, *, pool_size: int = 8, statement_timeout_ms: int = 300_000,
                  open_timeout: float = 30.0) -> None:

@@ -355,7 +355,7 @@ class Engine:
             self.backend.check(read.sql)
             return read
         rewritten = rewrite(plan, self._plan_exact_columns(plan), self._plan_unique_keys(plan),
-                            self._plan_whole_steps(plan))
+                            self._plan_whole_steps(plan), wide_cells=self.backend.wide_cells)
         self.backend.check(rewritten.sql)  # a shape the backend cannot run exactly: before any charge
         return Prepared(plan=plan, rewritten=rewritten, cells=_cell_values(plan),
                         fingerprint=_fingerprint(rewritten.sql),

@@ -33,6 +33,11 @@ Rules of this module:
   range-partitioned exchange, sampled by a job of its own. ``run`` sorts the collected rows by
   those columns instead, ascending with NULL last as PostgreSQL would: the same rows in the
   same order.
+- Per-individual answers of at most ``WIDE_CELLS`` cells are asked of the rewrite in its
+  one-row-per-individual shape (``proxy.sql.rewrite``, module notes 11): the same rows as the
+  joined shape, in one grouping per (individual, cell), one per individual and one aggregate,
+  where the joined shape's windows, joins and scalar subqueries each run as stages of their
+  own. The cell ordinal it computes per row reads as an integer column.
 - PostgreSQL's planner settings (``proxy.backend.BACKEND_SETTINGS``: JIT off, a larger
   work_mem) are not carried over: they change speed only, never a value, and Spark plans its
   own code generation and spills under its executors' memory settings.
@@ -56,7 +61,7 @@ import sqlglot.expressions as exp
 from proxy.backend import QueryControl
 from proxy.errors import FEATURE_NOT_SUPPORTED, INTERNAL_ERROR, QUERY_CANCELED, HushError
 from proxy.policy import Policies
-from proxy.sql.rewrite import JOINED_ROWS_ALIAS
+from proxy.sql.rewrite import JOINED_ROWS_ALIAS, WIDE_CELL_COLUMN
 
 log = logging.getLogger("hushql.spark")
 # pyspark warns on import that it does not "fully support" the pandas installed; this module
@@ -66,6 +71,11 @@ warnings.filterwarnings("ignore", message="PySpark does not yet fully support pa
                         category=FutureWarning)
 
 SPARK_SCHEME = "sc://"
+
+# Per-individual queries of up to this many cells take the one-row-per-individual shape. Its
+# running sizes are sums over the cells before each one, so its text grows with the square of
+# the cells: at 49 cells planning ran a 1 GB driver out of memory; 12 (months) measured faster.
+WIDE_CELLS = 16
 
 # Spark session settings the backend fixes for every query (see the module rules).
 SESSION_CONFIG = {
@@ -158,7 +168,8 @@ class _Writer:
     """The transforms of one query, knowing the column types of the tables it reads."""
 
     def __init__(self, types: Mapping[str, str]) -> None:
-        self.types = types
+        # The wide shape's cell ordinal (a CASE of integer literals) reads as an integer column.
+        self.types = {**types, WIDE_CELL_COLUMN: "integer"}
         self.sorted_by = 0  # leading output columns the rows are sorted by after collecting
 
     def exact_type(self, node: exp.Expression) -> bool:
@@ -599,6 +610,11 @@ class _TagCanceller:
 
 class SparkBackend:
     """Runs rewritten queries on a Spark Connect server: a ``proxy.backend.QueryBackend``."""
+
+    # Spark runs each step of the joined per-individual shape as stages of its own, each
+    # costing tenths of a second however few its rows; the wide shape needs one grouping and
+    # one aggregate (module rules). Past this many cells its rows grow too wide to pay.
+    wide_cells = WIDE_CELLS
 
     def __init__(self, dsn: str, *, statement_timeout_ms: int = 300_000) -> None:
         from pyspark.sql import SparkSession

@@ -202,7 +202,7 @@ def test_the_plan_cache_is_bounded_in_memory_not_only_in_entries() -> None:
     def engine(cache_bytes: int) -> Engine:
         return Engine(POLICIES, SimpleNamespace(column_types=lambda source: {},  # type: ignore[arg-type]
                                                 unique_keys=lambda source: frozenset(),
-                                                check=lambda sql: None),
+                                                check=lambda sql: None, wide_cells=0),
                       SimpleNamespace(sync_budgets=lambda policies, source=None: []),  # type: ignore[arg-type]
                       plan_cache_bytes=cache_bytes)
 

@@ -31,7 +31,7 @@ from proxy.backend import QueryControl
 from proxy.errors import HushError
 from proxy.policy import load_policies
 from proxy.sql.analyse import analyse
-from proxy.sql.rewrite import Rewritten, rewrite
+from proxy.sql.rewrite import WIDE_CELL_COLUMN, Rewritten, rewrite
 from tests.bounds_helpers import forced_settings, run_with_bounds
 from proxy.demo import DEMO_DATABASE
 from tests.policy_fixtures import load_clinic, write_policies
@@ -77,11 +77,15 @@ def bound_values(rewritten: Rewritten, pick: str) -> tuple[int, ...]:
 
 def noise_free_both(clinic, sql: str, pick: str = "ceiling") -> tuple[list, list, Rewritten]:
     """The rewrite's noise-free rows for ``sql`` on Spark and on PostgreSQL, with the same
-    bounds forced, as ints."""
+    bounds forced, as ints: each backend's own shape (Spark's one row per individual up to its
+    ``wide_cells``, PostgreSQL's joined shape)."""
     backend, conn, policies = clinic
-    rewritten = rewrite(analyse(sql, policies, "tester"), EXACT)
+    plan = analyse(sql, policies, "tester")
+    rewritten = rewrite(plan, EXACT)
+    on_spark_shape = rewrite(plan, EXACT, wide_cells=backend.wide_cells)
     values = bound_values(rewritten, pick)
-    on_spark = backend.run(rewritten.sql, None, forced_settings(rewritten, values) or None)
+    on_spark = backend.run(on_spark_shape.sql, None,
+                           forced_settings(on_spark_shape, values) or None)
     on_postgres = run_with_bounds(conn, rewritten, values)
     assert len(on_spark) == rewritten.cells
     return as_ints(on_spark), as_ints(on_postgres), rewritten
@@ -139,6 +143,15 @@ def test_spark_answers_as_postgresql_does(clinic, sql: str, pick: str) -> None:
     if pick == "low" and "BETWEEN" not in sql:  # the bounds clipped something, reported alike
         clipped = [row[-len(rewritten.bounds):] for row in on_spark]
         assert any(any(c) for c in clipped)
+
+
+def test_spark_runs_per_individual_cases_in_the_wide_shape(clinic) -> None:
+    """The comparison above checks Spark's own shape (one row per individual) against
+    PostgreSQL's joined one wherever the cells are few enough: most per-individual cases."""
+    backend, _, policies = clinic
+    wide = [sql for sql in SAME_ON_BOTH if WIDE_CELL_COLUMN in rewrite(
+        analyse(sql, policies, "tester"), EXACT, wide_cells=backend.wide_cells).sql]
+    assert all("visits" in sql for sql in wide) and len(wide) >= 4
 
 
 def spark_rows(clinic, sql: str) -> list[tuple]:

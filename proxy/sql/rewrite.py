@@ -359,6 +359,33 @@ domains, fall in no bucket and are not ranked.
    EXPLAIN name each kept column. A WHERE literal on a kept column moves K, and so the path:
    a prepared statement's slot on such a column is planned per value (``proxy.sql.statement``),
    never bound late into a plan made for another value.
+
+11. One row per individual (``wide_cells``). A backend that runs each step of the query above
+   as stages of its own, each costing a fixed tenth of a second or more however few its rows
+   (Spark), asks for the same steps over one row per individual when the cells are few
+   (``_wide_individual_query``): ``q`` groups the counted rows by (individual, cell ordinal),
+   with the partials of 1; the ordinal is computed per row from each key's value (computed
+   once, ``hushql_key<j>``) by the joins' own match (``_key_matches``) against the declared
+   values, in domain order, NULL outside the domains; ``p`` makes each individual's partials
+   columns, ``r_c`` (0 where it has no row in cell c) and ``m<n>_c`` (NULL there), and leaves
+   out the NULL cell and the individuals with no row in any cell; ``t`` adds its totals
+   (``n_rows``, ``touched``, ``tot_j``: NULL when every partial of the sum is NULL, as SUM over
+   no value gives) and, per cell in ordinal order, its running sizes; ``b`` is chosen as in 3
+   with each ``above_k`` counted in one aggregate over t (``COUNT(*) FILTER (WHERE total >
+   candidate_k)``: an individual's histogram slot is at least k exactly when its total exceeds
+   candidate k, and a NULL total exceeds none, so these are the histogram's numbers); ``w``
+   keeps each partial's share by ``_kept``, the same expression over the same values; ``a``
+   sums the kept shares per cell and each individual's clipped-away amount, capped as in 7.
+
+   Same answer. Every individual's partials, totals, running sizes (the same order of cells)
+   and factor are the joined shape's, and a missing partial (NULL, or a count of 0) adds
+   nothing to a total, a running size, a kept share, a cell or a clipped amount, as the
+   joined shape's missing row adds nothing there; an individual within its bounds keeps every
+   partial and loses 0 in both. So the rows, and with them the sensitivities of 3, the choice
+   of 3, the composition of 6 and the caps of 7, are the joined shape's
+   (``tests/test_wide_shape.py`` compares the two on PostgreSQL, ``tests/test_spark.py`` Spark's
+   wide rows with PostgreSQL's joined ones). Where the query is skipped for the row query
+   (8) or its cells hold one row each (1), the joined shape runs: those need no grouping.
 """
 
 from __future__ import annotations
@@ -385,6 +412,10 @@ BOUND_NOISE_SETTING = "hushql.bound_noise_{}"
 
 # The alias of the derived table a join reads through (``_rows``); other backends look for it.
 JOINED_ROWS_ALIAS = "j"
+
+# The column holding each row's cell ordinal in the one-row-per-individual shape (notes 11).
+WIDE_CELL_COLUMN = "hushql_cell"
+WIDE_KEY_PREFIX = "hushql_key"  # + j: key j's value, computed once per row
 
 # Candidates for a chosen bound: the ceiling times (4/5)^k, k = 0..MOST_CANDIDATES-1 (at least 1).
 _CANDIDATE_RATIO = Fraction(4, 5)
@@ -418,6 +449,11 @@ SCORE_SENSITIVITY = 1
 # What rounding may take from one individual on top of its factor, in measure units: the
 # rounding is cumulative over its cells (module notes, 4), so it loses under one unit in all.
 ROUNDING_LOSS = 1
+
+# Measures whose partials may be negative: their size is the partial's absolute value, and the
+# kept share takes the partial's sign.
+_SIGNED_KINDS = ("sum", "midpoint_sum", "centred_sum")
+
 
 # A term of a loss cap: constant - coefficient * (value of bound ``index``), or the constant.
 LossTerm = tuple[int, int, "int | None"]
@@ -490,7 +526,7 @@ class Rewritten:
 
 def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
             unique_keys: frozenset[frozenset[str]] = frozenset(),
-            whole_steps: frozenset[str] = frozenset()) -> Rewritten:
+            whole_steps: frozenset[str] = frozenset(), wide_cells: int = 0) -> Rewritten:
     """Build the backend query and sensitivities of an analysed plan. Pure.
 
     ``exact_columns`` names number columns whose backend type is exact (numeric): their clamped
@@ -499,7 +535,9 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
     backend itself keeps unique in the source (enforced constraints only, ``countable_keys``):
     when one holds each individual within the declared bounds, the per-individual steps are
     skipped (module notes, 8). ``whole_steps`` names exact columns whose type holds only
-    multiples of the column's step (``whole_step_columns``, notes 9).
+    multiples of the column's step (``whole_step_columns``, notes 9). ``wide_cells``: up to
+    this many cells, the per-individual steps run with one row per individual (notes 11), the
+    shape a backend that plans each step as a stage of its own runs fastest (0: never).
     """
     policy = plan.table
     buckets = 1
@@ -523,12 +561,16 @@ def rewrite(plan: Plan, exact_columns: frozenset[str] = frozenset(),
     declared = not any(b.chosen for b in bounds) and not plan.joins  # one table, declared bounds
     kept = _kept_in_domains(plan, unique_keys) if declared else ()
     held = _holding_key(plan, unique_keys, kept) if declared and buckets == 1 else None
+    one_row_cells = _cells_hold_one_row(plan, unique_keys)
     if held is not None:  # (no percentile histogram)
         tree = _one_row_each_query(plan, bounds, exact_columns, kept)
+    elif cells <= wide_cells and not one_row_cells:
+        tree = _wide_individual_query(plan, bounds, measure_bounds, exact_columns, cells,
+                                      middle=buckets > 1, kept=kept)
     else:
         tree = _individual_table_query(plan, bounds, measure_bounds, exact_columns,
                                        middle=buckets > 1,
-                                       one_row_cells=_cells_hold_one_row(plan, unique_keys),
+                                       one_row_cells=one_row_cells,
                                        whole=_sums_in_whole_steps(plan, exact_columns, whole_steps),
                                        kept=kept)
     return Rewritten(sql=tree.sql(dialect="postgres"), cells=cells, bounds=bounds,
@@ -1209,7 +1251,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     ordinals = [f"q.i{j}" for j in range(len(plan.keys))]
     # Per scaled partial: its size (>= 0) and, with keys, its individual's running total in
     # cell order (module notes, 4); the running totals come from a window over q.
-    signed = ("sum", "midpoint_sum", "centred_sum")
+    signed = _SIGNED_KINDS
     sizes = {"r": "q.r"} | {f"m{n}": f"ABS(q.m{n})" if measure.kind in signed else f"q.m{n}"
                             for n, measure in enumerate(plan.measures)
                             if measure.kind != "count_individuals"}
@@ -1281,10 +1323,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
         outer = _select(f"SELECT {', '.join([f'a.m{n}' for n in range(len(plan.measures))] + tail)} "
                         f"FROM (SELECT {', '.join(measures)} FROM ({changes}) AS u) AS a CROSS JOIN b "
                         f"CROSS JOIN clipped AS clip")
-    histograms = [(f"h{j}", _select(
-        f"SELECT width_bucket({'n_rows' if bound.subject == 'rows' else f'tot{j}'}::numeric, "
-        f"ARRAY[{', '.join(str(c + 1) for c in bound.candidates)}]::numeric[]) AS slot, "
-        f"COUNT(*) AS n FROM t GROUP BY 1")) for j, bound in enumerate(bounds) if bound.chosen]
+    histograms = [(f"h{j}", _histogram(j, bound)) for j, bound in enumerate(bounds) if bound.chosen]
     # MATERIALIZED: each histogram is read once per candidate by the choice; inlined, it would
     # be recomputed each time. The other parts are read more than once, so they are anyway,
     # but for one-row partials: read again from the table (three times, each scan free to run
@@ -1299,22 +1338,197 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     return outer
 
 
-def _loss_terms_sql(terms: list[LossTerm]) -> str:
-    return ", ".join(f"{c} - {a} * (SELECT b{k} FROM b)" if k is not None else str(c)
-                     for c, a, k in terms)
+def _loss_terms_sql(terms: list[LossTerm], row: str | None = None) -> str:
+    """The terms of a loss cap as SQL, each bound's value read from ``b`` (or from the columns
+    ``row.b<k>`` of a row that carries them)."""
+    return ", ".join((f"{c} - {a} * {row}.b{k}" if row else f"{c} - {a} * (SELECT b{k} FROM b)")
+                     if k is not None else str(c) for c, a, k in terms)
 
 
-def _choice_sql(j: int, bound: Bound) -> str:
+def _histogram(j: int, bound: Bound) -> exp.Select:
+    """``h<j>``: the individuals of ``t`` counted by their slot among bound j's candidates (the
+    number of candidates below their total), one pass with width_bucket (module notes, 3)."""
+    return _select(
+        f"SELECT width_bucket({'n_rows' if bound.subject == 'rows' else f'tot{j}'}::numeric, "
+        f"ARRAY[{', '.join(str(c + 1) for c in bound.candidates)}]::numeric[]) AS slot, "
+        f"COUNT(*) AS n FROM t GROUP BY 1")
+
+
+def _choice_sql(j: int, bound: Bound, counted: bool = False) -> str:
     """The noisy-max choice of bound j among its candidates (module notes, 2): the candidate
     with the highest ``noise_k - |above_k - A|``, ties to the smallest. ``above_k`` (the
     individuals whose total exceeds candidate k) comes from the histogram ``h<j>`` of the totals
     over the candidates, counted in one pass with width_bucket: an individual's slot is the
-    number of candidates below its total. The engine passes ``A,noise_1,...,noise_G`` in a
-    setting."""
+    number of candidates below its total. With ``counted``, from the one row ``h<j>`` holding
+    every above_k as a column ``a<k>`` (``_above_counts``): the same numbers. The engine passes
+    ``A,noise_1,...,noise_G`` in a setting."""
     grid = ", ".join(f"({k}, {c})" for k, c in enumerate(bound.candidates, start=1))
     setting = f"current_setting('{BOUND_NOISE_SETTING.format(j)}')"
+    if counted:
+        source = f"(VALUES {grid}) AS g(k, tau) CROSS JOIN h{j} AS h"
+        above = "CASE g.k " + " ".join(f"WHEN {k} THEN h.a{k}"
+                                       for k in range(1, len(bound.candidates) + 1)) + " END"
+    else:
+        source = f"(VALUES {grid}) AS g(k, tau)"
+        above = f"COALESCE((SELECT SUM(h.n) FROM h{j} AS h WHERE h.slot >= g.k), 0)"
     return (
-        f"SELECT g.tau FROM (VALUES {grid}) AS g(k, tau) "
+        f"SELECT g.tau FROM {source} "
         f"ORDER BY CAST(split_part({setting}, ',', g.k + 1) AS bigint) "
-        f"- ABS(COALESCE((SELECT SUM(h.n) FROM h{j} AS h WHERE h.slot >= g.k), 0) "
+        f"- ABS({above} "
         f"- CAST(split_part({setting}, ',', 1) AS bigint)) DESC, g.k LIMIT 1")
+
+
+def _above_counts(j: int, bound: Bound) -> exp.Select:
+    """``h<j>`` as one row: per candidate k, ``a<k>`` the individuals of ``t`` whose total
+    exceeds it (NULL totals exceed none), all counted in one aggregate."""
+    total = "n_rows" if bound.subject == "rows" else f"tot{j}"
+    return _select("SELECT " + ", ".join(f"COUNT(*) FILTER (WHERE {total} > {c}) AS a{k}"
+                                         for k, c in enumerate(bound.candidates, start=1))
+                   + " FROM t")
+
+
+def _cell_ordinal(plan: Plan) -> exp.Expression:
+    """Per row, the ordinal of its cell in domain order (``i0 * n1 * ... + i1 * n2 * ... +
+    ...``, the order of ``ORDER BY i0, i1, ...``), NULL when a key lies outside its declared
+    domain (such rows fall in no cell, as the inner joins of ``_in_domains`` drop them). Each
+    key's ordinal is matched with ``_key_matches``, the joins' own condition, on the key's
+    value computed once per row as ``hushql_key<j>`` (``_wide_individual_query``)."""
+    policy = plan.table
+    ordinal: exp.Expression | None = None
+    for j, key in enumerate(plan.keys):
+        values = key_values(_key_column(policy, key), key)
+        own = exp.Case(ifs=[exp.If(this=_key_matches(key, policy, exp.column(f"{WIDE_KEY_PREFIX}{j}"),
+                                                     number_node(i) if key.form == "case" else value_node(v)),
+                                   true=number_node(i)) for i, v in enumerate(values)])
+        ordinal = own if ordinal is None else exp.Add(
+            this=exp.Mul(this=exp.paren(ordinal, copy=False), expression=number_node(len(values))),
+            expression=own)
+    assert ordinal is not None
+    return ordinal
+
+
+def _wide_individual_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds: tuple[int, ...],
+                           exact: frozenset[str], cells: int, middle: bool = False,
+                           kept: tuple[str, ...] = ()) -> exp.Select:
+    """The per-individual rewrite with one row per individual and each cell's partials as
+    columns (module notes 11): the same partials, totals, bounds, kept shares, cell sums and
+    clipped-away totals as ``_individual_table_query``, computed by one grouping per
+    individual and one aggregate over individuals. Must hold: 0 < cells, few enough that a
+    row's cell columns stay cheap (the backend's ``wide_cells``)."""
+    policy = plan.table
+    assert policy.individual is not None
+    n_measures = len(plan.measures)
+    cell_range = range(cells)
+    signed = _SIGNED_KINDS
+    # q: per individual and cell (its ordinal, computed per row from each key's value), its
+    # rows and partials, as the joined shape's q. p: per individual, per cell c, its rows r_c
+    # (0 where it has no row in c) and partials m<n>_c (q's one row of the pair; NULL where it
+    # has none: no partial, as the joined shape has no row for it, and NULL adds nothing to
+    # any total, running size, kept share or cell).
+    keyed = _filtered(plan, exp.Select().select(exp.Star(), *[
+        exp.alias_(_key_expression(policy, key), f"{WIDE_KEY_PREFIX}{j}", copy=False)
+        for j, key in enumerate(plan.keys)], copy=False)).where(_counted(plan, kept), copy=False)
+    celled = exp.Select().select(
+        exp.Star(), exp.alias_(_cell_ordinal(plan) if plan.keys else number_node(0),
+                               WIDE_CELL_COLUMN, copy=False), copy=False).from_(
+        exp.Subquery(this=keyed, alias=exp.TableAlias(this=exp.to_identifier("k"))), copy=False)
+    partials = [exp.alias_(exp.Count(this=exp.Star()), "r", copy=False)] + [
+        exp.alias_(_partial(policy, m, exact), f"m{n}", copy=False)
+        for n, m in enumerate(plan.measures)]
+    q = exp.Select().select(
+        exp.alias_(column_node(policy.individual.column), "who", copy=False),
+        exp.column(WIDE_CELL_COLUMN), *partials, copy=False).from_(
+        exp.Subquery(this=celled, alias=exp.TableAlias(this=exp.to_identifier("x"))), copy=False
+    ).group_by(number_node(1), number_node(2), copy=False)
+    pivot = []
+    for c in cell_range:
+        pivot.append(f"SUM(CASE WHEN {WIDE_CELL_COLUMN} = {c} THEN r ELSE 0 END) AS r_{c}")
+        pivot += [f"MAX(CASE WHEN {WIDE_CELL_COLUMN} = {c} THEN m{n} END) AS m{n}_{c}"
+                  for n in range(n_measures)]
+    # Rows outside the domains (a NULL cell) are grouped in q and left out here, where no
+    # filter can be pushed back into the scan (Spark would copy the cell's CASE into it once
+    # per branch); individuals with no row in any cell are left out, as from the joined t.
+    # (Grouping per (individual, cell) first, then per individual, measured faster on Spark
+    # than one grouping per individual with a conditional aggregate per cell: by month at 10M
+    # rows 3.8 s against 4.9 s, by district 2.1 s against 1.9 s.)
+    p = _select(f"SELECT who, {', '.join(pivot)} FROM q GROUP BY who "
+                f"HAVING COUNT({WIDE_CELL_COLUMN}) > 0")
+    # t: its totals (n_rows, touched, tot<j>: NULL when every partial of the sum is NULL, as
+    # SUM over no value), and per cell the running sizes up to and including it.
+    sizes = {"r": [f"r_{c}" for c in cell_range]}
+    for n, measure in enumerate(plan.measures):
+        if measure.kind != "count_individuals":
+            sizes[f"m{n}"] = [f"ABS(m{n}_{c})" if measure.kind in signed else f"m{n}_{c}"
+                              for c in cell_range]
+    totals = ["p.*", " + ".join(f"r_{c}" for c in cell_range) + " AS n_rows",
+              " + ".join(f"CASE WHEN r_{c} > 0 THEN 1 ELSE 0 END" for c in cell_range) + " AS touched"]
+    for j, bound in enumerate(bounds):
+        if bound.subject != "rows":
+            n = measure_bounds.index(j)
+            totals.append(f"CASE WHEN {' AND '.join(f'm{n}_{c} IS NULL' for c in cell_range)} THEN NULL "
+                          f"ELSE {' + '.join(f'COALESCE(ABS(m{n}_{c}), 0)' for c in cell_range)} END AS tot{j}")
+    if plan.keys:
+        for name, parts in sizes.items():
+            totals += [" + ".join(f"COALESCE({part}, 0)" for part in parts[:c + 1]) + f" AS run_{name}_{c}"
+                       for c in cell_range]
+    t = _select(f"SELECT {', '.join(totals)} FROM p")
+    b = _select("SELECT " + ", ".join(
+        f"({_choice_sql(j, bound, counted=True)}) AS b{j}" if bound.chosen
+        else f"{bound.ceiling} AS b{j}" for j, bound in enumerate(bounds)))
+    rows_bound = next((j for j, bound in enumerate(bounds) if bound.subject == "rows"), None)
+
+    def share(name: str, c: int, size: str) -> str:  # a partial's kept share (module notes, 4)
+        return _kept(size, f"t.run_{name}_{c}" if plan.keys else None, bounds, half=middle)
+    # w: per individual, each cell's kept shares (NULL where it has no partial).
+    shares = []
+    for c in cell_range:
+        shares.append(f"{share('r', c, f't.r_{c}')} AS r_kept_{c}")
+        for n, measure in enumerate(plan.measures):
+            if measure.kind == "count_individuals":
+                kept_share = f"CASE WHEN t.touched <= b.b{rows_bound} THEN t.m{n}_{c} ELSE 0 END"
+            elif measure.kind in signed:
+                kept_share = f"SIGN(t.m{n}_{c}) * ({share(f'm{n}', c, f'ABS(t.m{n}_{c})')})"
+            else:
+                kept_share = share(f"m{n}", c, f"t.m{n}_{c}")
+            shares.append(f"CASE WHEN t.m{n}_{c} IS NOT NULL THEN {kept_share} END AS k{n}_{c}")
+    w = _select(f"SELECT t.*, b.*, {', '.join(shares)} FROM t CROSS JOIN b")
+    # a: per cell and measure the sum of the kept shares; per bound the clipped-away total,
+    # each individual's amount (rows, or the L1 of a sum's partials, lost) capped.
+    lost = []
+    for j, bound in enumerate(bounds):
+        if bound.subject == "rows":
+            lost.append(" + ".join(f"(w.r_{c} - w.r_kept_{c})" for c in cell_range))
+        else:
+            n = measure_bounds.index(j)
+            lost.append(" + ".join(f"COALESCE(ABS(w.m{n}_{c}) - ABS(w.k{n}_{c}), 0)" for c in cell_range))
+    sums = [f"COALESCE(SUM(w.k{n}_{c}), 0) AS s{n}_{c}" for c in cell_range for n in range(n_measures)]
+    caps = [f"COALESCE(SUM(LEAST({amount}, GREATEST({_loss_terms_sql(loss_terms(bounds, j), 'w')})"
+            f" + {ROUNDING_LOSS})), 0) AS clipped{j}" for j, amount in enumerate(lost)]
+    a = _select(f"SELECT {', '.join(sums + caps)} FROM w")
+    # One row per cell, in domain order: its ordinals, its measures, the bounds, the clipped.
+    tail = [f"b.b{j}" for j in range(len(bounds))] + [f"a.clipped{j}" for j in range(len(bounds))]
+    if plan.keys:
+        measures = [f"CASE c.cell {' '.join(f'WHEN {c} THEN a.s{n}_{c}' for c in cell_range)} END AS m{n}"
+                    for n in range(n_measures)]
+        ordinals = [f"c.i{j}" for j in range(len(plan.keys))]
+        listed = ", ".join(f"({', '.join(str(x) for x in (c,) + ordinal)})"
+                           for c, ordinal in enumerate(_cell_ordinals(plan)))
+        outer = _select(f"SELECT {', '.join(ordinals + measures + tail)} FROM (VALUES {listed}) "
+                        f"AS c(cell, {', '.join(f'i{j}' for j in range(len(plan.keys)))}) "
+                        f"CROSS JOIN a CROSS JOIN b ORDER BY {', '.join(ordinals)}")
+    else:
+        outer = _select(f"SELECT {', '.join([f'a.s{n}_0 AS m{n}' for n in range(n_measures)] + tail)} "
+                        "FROM a CROSS JOIN b")
+    counts = [(f"h{j}", _above_counts(j, bound)) for j, bound in enumerate(bounds) if bound.chosen]
+    for name, part in [("q", q), ("p", p), ("t", t), *counts, ("b", b), ("w", w), ("a", a)]:
+        outer = outer.with_(name, as_=part, copy=False)
+    return outer
+
+
+def _cell_ordinals(plan: Plan) -> list[tuple[int, ...]]:
+    """Each cell's key ordinals (i0, i1, ...), in domain order (the order of ``_cell_ordinal``)."""
+    sizes = [key_size(_key_column(plan.table, key), key) for key in plan.keys]
+    ordinals: list[tuple[int, ...]] = [()]
+    for size in sizes:
+        ordinals = [before + (i,) for before in ordinals for i in range(size)]
+    return ordinals
