@@ -145,8 +145,9 @@ class QueryBackend(Protocol):
 class Backend:
     """A pool of read-only connections to the database holding the protected tables."""
 
-    # PostgreSQL runs the joined shape faster: it plans the per-individual steps as one query
-    # over shared intermediate results, and a wide row of many cells costs it more per row.
+    # PostgreSQL keeps the joined shape, whose steps it runs as one plan over shared results:
+    # the wide shape's text grows with the square of its cells, and PostgreSQL's planner spent
+    # minutes, uninterruptibly, on one of 183 cells (DEVELOPERS.md, speed notes).
     wide_cells = 0
 
     def __init__(self, dsn: str, *, pool_size: int = 8, statement_timeout_ms: int = 300_000,

@@ -612,8 +612,8 @@ class SparkBackend:
     """Runs rewritten queries on a Spark Connect server: a ``proxy.backend.QueryBackend``."""
 
     # Spark runs each step of the joined per-individual shape as stages of its own, each
-    # costing tenths of a second however few its rows; the wide shape needs one grouping and
-    # one aggregate (module rules). Past this many cells its rows grow too wide to pay.
+    # costing tenths of a second however few its rows; the wide shape needs a few (module
+    # rules), up to WIDE_CELLS cells (past them its text grows too large: see there).
     wide_cells = WIDE_CELLS
 
     def __init__(self, dsn: str, *, statement_timeout_ms: int = 300_000) -> None:

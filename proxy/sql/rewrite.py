@@ -364,7 +364,7 @@ domains, fall in no bucket and are not ranked.
    as stages of its own, each costing a fixed tenth of a second or more however few its rows
    (Spark), asks for the same steps over one row per individual when the cells are few
    (``_wide_individual_query``): ``q`` groups the counted rows by (individual, cell ordinal),
-   with the partials of 1; the ordinal is computed per row from each key's value (computed
+   with the partials of step 1; the ordinal is computed per row from each key's value (computed
    once, ``hushql_key<j>``) by the joins' own match (``_key_matches``) against the declared
    values, in domain order, NULL outside the domains; ``p`` makes each individual's partials
    columns, ``r_c`` (0 where it has no row in cell c) and ``m<n>_c`` (NULL there), and leaves
