@@ -370,10 +370,8 @@ domains, fall in no bucket and are not ranked.
    columns, ``r_c`` (0 where it has no row in cell c) and ``m<n>_c`` (NULL there), and leaves
    out the NULL cell and the individuals with no row in any cell; ``t`` adds its totals
    (``n_rows``, ``touched``, ``tot_j``: NULL when every partial of the sum is NULL, as SUM over
-   no value gives) and, per cell in ordinal order, its running sizes; ``b`` is chosen as in 3
-   with each ``above_k`` counted in one aggregate over t (``COUNT(*) FILTER (WHERE total >
-   candidate_k)``: an individual's histogram slot is at least k exactly when its total exceeds
-   candidate k, and a NULL total exceeds none, so these are the histogram's numbers); ``w``
+   no value gives) and, per cell in ordinal order, its running sizes; ``b`` is chosen as in 3,
+   from the same histogram of t's totals; ``w``
    keeps each partial's share by ``_kept``, the same expression over the same values; ``a``
    sums the kept shares per cell and each individual's clipped-away amount, capped as in 7.
 
@@ -391,6 +389,7 @@ domains, fall in no bucket and are not ranked.
 from __future__ import annotations
 
 import datetime as dt
+import itertools
 import re
 from dataclasses import dataclass, replace
 from decimal import Decimal
@@ -1157,7 +1156,7 @@ def _scaled(value: str, bounds: tuple[Bound, ...], *, half: bool = False) -> str
     is an integer, which the half leaves as it is)."""
     terms = [value]
     for j, bound in enumerate(bounds):
-        total = "n_rows" if bound.subject == "rows" else f"tot{j}"
+        total = _total(j, bound)
         # (the numerator in parentheses: Spark's DIV binds tighter than +)
         terms.append(f"div((2 * {value} * b.b{j} + t.{total}), NULLIF(2 * t.{total}, 0))" if half
                      else f"div({value} * b.b{j}, NULLIF(t.{total}, 0))")
@@ -1167,8 +1166,7 @@ def _scaled(value: str, bounds: tuple[Bound, ...], *, half: bool = False) -> str
 def _within(bounds: tuple[Bound, ...]) -> str:
     """SQL true exactly when an individual's totals (``t``) are all within the bounds (``b``):
     its factor is 1; NULL when a total is NULL (all its partials of a sum are)."""
-    return " AND ".join(f"t.{'n_rows' if bound.subject == 'rows' else f'tot{j}'} <= b.b{j}"
-                        for j, bound in enumerate(bounds))
+    return " AND ".join(f"t.{_total(j, bound)} <= b.b{j}" for j, bound in enumerate(bounds))
 
 
 def _kept(value: str, running: str | None, bounds: tuple[Bound, ...], *,
@@ -1251,8 +1249,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     ordinals = [f"q.i{j}" for j in range(len(plan.keys))]
     # Per scaled partial: its size (>= 0) and, with keys, its individual's running total in
     # cell order (module notes, 4); the running totals come from a window over q.
-    signed = _SIGNED_KINDS
-    sizes = {"r": "q.r"} | {f"m{n}": f"ABS(q.m{n})" if measure.kind in signed else f"q.m{n}"
+    sizes = {"r": "q.r"} | {f"m{n}": f"ABS(q.m{n})" if measure.kind in _SIGNED_KINDS else f"q.m{n}"
                             for n, measure in enumerate(plan.measures)
                             if measure.kind != "count_individuals"}
     window = (f"OVER (PARTITION BY q.who ORDER BY {', '.join(ordinals)} "
@@ -1262,7 +1259,7 @@ def _individual_table_query(plan: Plan, bounds: tuple[Bound, ...], measure_bound
     for n, measure in enumerate(plan.measures):
         if measure.kind == "count_individuals":
             scaled.append(f"CASE WHEN t.touched <= b.b{rows_bound} THEN q.m{n} ELSE 0 END AS m{n}")
-        elif measure.kind in signed:
+        elif measure.kind in _SIGNED_KINDS:
             scaled.append(f"SIGN(q.m{n}) * ({_kept(sizes[f'm{n}'], running[f'm{n}'], bounds)})"
                           f" AS m{n}")
         else:
@@ -1345,46 +1342,34 @@ def _loss_terms_sql(terms: list[LossTerm], row: str | None = None) -> str:
                      if k is not None else str(c) for c, a, k in terms)
 
 
+def _total(j: int, bound: Bound) -> str:
+    """The column of ``t`` holding an individual's total for bound j."""
+    return "n_rows" if bound.subject == "rows" else f"tot{j}"
+
+
 def _histogram(j: int, bound: Bound) -> exp.Select:
     """``h<j>``: the individuals of ``t`` counted by their slot among bound j's candidates (the
     number of candidates below their total), one pass with width_bucket (module notes, 3)."""
     return _select(
-        f"SELECT width_bucket({'n_rows' if bound.subject == 'rows' else f'tot{j}'}::numeric, "
+        f"SELECT width_bucket({_total(j, bound)}::numeric, "
         f"ARRAY[{', '.join(str(c + 1) for c in bound.candidates)}]::numeric[]) AS slot, "
         f"COUNT(*) AS n FROM t GROUP BY 1")
 
 
-def _choice_sql(j: int, bound: Bound, counted: bool = False) -> str:
+def _choice_sql(j: int, bound: Bound) -> str:
     """The noisy-max choice of bound j among its candidates (module notes, 2): the candidate
     with the highest ``noise_k - |above_k - A|``, ties to the smallest. ``above_k`` (the
     individuals whose total exceeds candidate k) comes from the histogram ``h<j>`` of the totals
     over the candidates, counted in one pass with width_bucket: an individual's slot is the
-    number of candidates below its total. With ``counted``, from the one row ``h<j>`` holding
-    every above_k as a column ``a<k>`` (``_above_counts``): the same numbers. The engine passes
-    ``A,noise_1,...,noise_G`` in a setting."""
+    number of candidates below its total. The engine passes ``A,noise_1,...,noise_G`` in a
+    setting."""
     grid = ", ".join(f"({k}, {c})" for k, c in enumerate(bound.candidates, start=1))
     setting = f"current_setting('{BOUND_NOISE_SETTING.format(j)}')"
-    if counted:
-        source = f"(VALUES {grid}) AS g(k, tau) CROSS JOIN h{j} AS h"
-        above = "CASE g.k " + " ".join(f"WHEN {k} THEN h.a{k}"
-                                       for k in range(1, len(bound.candidates) + 1)) + " END"
-    else:
-        source = f"(VALUES {grid}) AS g(k, tau)"
-        above = f"COALESCE((SELECT SUM(h.n) FROM h{j} AS h WHERE h.slot >= g.k), 0)"
     return (
-        f"SELECT g.tau FROM {source} "
+        f"SELECT g.tau FROM (VALUES {grid}) AS g(k, tau) "
         f"ORDER BY CAST(split_part({setting}, ',', g.k + 1) AS bigint) "
-        f"- ABS({above} "
+        f"- ABS(COALESCE((SELECT SUM(h.n) FROM h{j} AS h WHERE h.slot >= g.k), 0) "
         f"- CAST(split_part({setting}, ',', 1) AS bigint)) DESC, g.k LIMIT 1")
-
-
-def _above_counts(j: int, bound: Bound) -> exp.Select:
-    """``h<j>`` as one row: per candidate k, ``a<k>`` the individuals of ``t`` whose total
-    exceeds it (NULL totals exceed none), all counted in one aggregate."""
-    total = "n_rows" if bound.subject == "rows" else f"tot{j}"
-    return _select("SELECT " + ", ".join(f"COUNT(*) FILTER (WHERE {total} > {c}) AS a{k}"
-                                         for k, c in enumerate(bound.candidates, start=1))
-                   + " FROM t")
 
 
 def _cell_ordinal(plan: Plan) -> exp.Expression:
@@ -1412,14 +1397,13 @@ def _wide_individual_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds
                            kept: tuple[str, ...] = ()) -> exp.Select:
     """The per-individual rewrite with one row per individual and each cell's partials as
     columns (module notes 11): the same partials, totals, bounds, kept shares, cell sums and
-    clipped-away totals as ``_individual_table_query``, computed by one grouping per
-    individual and one aggregate over individuals. Must hold: 0 < cells, few enough that a
-    row's cell columns stay cheap (the backend's ``wide_cells``)."""
+    clipped-away totals as ``_individual_table_query``, computed by a grouping per (individual,
+    cell), one per individual and one aggregate over individuals. Must hold: 0 < cells, few
+    enough that a row's cell columns stay cheap (the backend's ``wide_cells``)."""
     policy = plan.table
     assert policy.individual is not None
     n_measures = len(plan.measures)
     cell_range = range(cells)
-    signed = _SIGNED_KINDS
     # q: per individual and cell (its ordinal, computed per row from each key's value), its
     # rows and partials, as the joined shape's q. p: per individual, per cell c, its rows r_c
     # (0 where it has no row in c) and partials m<n>_c (q's one row of the pair; NULL where it
@@ -1458,7 +1442,7 @@ def _wide_individual_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds
     sizes = {"r": [f"r_{c}" for c in cell_range]}
     for n, measure in enumerate(plan.measures):
         if measure.kind != "count_individuals":
-            sizes[f"m{n}"] = [f"ABS(m{n}_{c})" if measure.kind in signed else f"m{n}_{c}"
+            sizes[f"m{n}"] = [f"ABS(m{n}_{c})" if measure.kind in _SIGNED_KINDS else f"m{n}_{c}"
                               for c in cell_range]
     totals = ["p.*", " + ".join(f"r_{c}" for c in cell_range) + " AS n_rows",
               " + ".join(f"CASE WHEN r_{c} > 0 THEN 1 ELSE 0 END" for c in cell_range) + " AS touched"]
@@ -1473,7 +1457,7 @@ def _wide_individual_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds
                        for c in cell_range]
     t = _select(f"SELECT {', '.join(totals)} FROM p")
     b = _select("SELECT " + ", ".join(
-        f"({_choice_sql(j, bound, counted=True)}) AS b{j}" if bound.chosen
+        f"({_choice_sql(j, bound)}) AS b{j}" if bound.chosen
         else f"{bound.ceiling} AS b{j}" for j, bound in enumerate(bounds)))
     rows_bound = next((j for j, bound in enumerate(bounds) if bound.subject == "rows"), None)
 
@@ -1486,7 +1470,7 @@ def _wide_individual_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds
         for n, measure in enumerate(plan.measures):
             if measure.kind == "count_individuals":
                 kept_share = f"CASE WHEN t.touched <= b.b{rows_bound} THEN t.m{n}_{c} ELSE 0 END"
-            elif measure.kind in signed:
+            elif measure.kind in _SIGNED_KINDS:
                 kept_share = f"SIGN(t.m{n}_{c}) * ({share(f'm{n}', c, f'ABS(t.m{n}_{c})')})"
             else:
                 kept_share = share(f"m{n}", c, f"t.m{n}_{c}")
@@ -1519,16 +1503,14 @@ def _wide_individual_query(plan: Plan, bounds: tuple[Bound, ...], measure_bounds
     else:
         outer = _select(f"SELECT {', '.join([f'a.s{n}_0 AS m{n}' for n in range(n_measures)] + tail)} "
                         "FROM a CROSS JOIN b")
-    counts = [(f"h{j}", _above_counts(j, bound)) for j, bound in enumerate(bounds) if bound.chosen]
-    for name, part in [("q", q), ("p", p), ("t", t), *counts, ("b", b), ("w", w), ("a", a)]:
-        outer = outer.with_(name, as_=part, copy=False)
+    histograms = [(f"h{j}", _histogram(j, bound)) for j, bound in enumerate(bounds) if bound.chosen]
+    for name, part in [("q", q), ("p", p), ("t", t), *histograms, ("b", b), ("w", w), ("a", a)]:
+        outer = outer.with_(name, as_=part, materialized=True if name.startswith("h") else None,
+                            copy=False)
     return outer
 
 
 def _cell_ordinals(plan: Plan) -> list[tuple[int, ...]]:
     """Each cell's key ordinals (i0, i1, ...), in domain order (the order of ``_cell_ordinal``)."""
-    sizes = [key_size(_key_column(plan.table, key), key) for key in plan.keys]
-    ordinals: list[tuple[int, ...]] = [()]
-    for size in sizes:
-        ordinals = [before + (i,) for before in ordinals for i in range(size)]
-    return ordinals
+    return list(itertools.product(*(range(key_size(_key_column(plan.table, key), key))
+                                    for key in plan.keys)))
